@@ -1,0 +1,118 @@
+"""What flows in and out of the session core.
+
+The core is fed `InputEvent`s and returns `Command`s for the box and `Record`s for its
+subscribers (store, estimator, status page). All times are seconds from session start,
+as floats; device times travel alongside untouched so the store can keep both.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+
+# ---------------------------------------------------------------- box side
+
+
+@dataclass(frozen=True, slots=True)
+class InputEvent:
+    """An input edge seen by the box: `rising` True for onset (press, head entry)."""
+
+    name: str  # logical input name from the protocol's wiring
+    rising: bool = True
+    device_t_us: int | None = None  # raw device clock (wraps at 2**32), when known
+    device_seq: int | None = None  # device sequence number, when it came over a wire
+
+
+@dataclass(frozen=True, slots=True)
+class SetOutput:
+    """Drive a held output (lever extended, light on, tone on) active or inactive."""
+
+    name: str
+    channel: int
+    active: bool
+
+
+@dataclass(frozen=True, slots=True)
+class PulseOutput:
+    """A timed pulse generated on the device (feeder, sync); the host never times it."""
+
+    name: str
+    channel: int
+    ms: int
+
+
+Command = SetOutput | PulseOutput
+
+
+# ---------------------------------------------------------------- record stream
+
+
+@dataclass(frozen=True, slots=True)
+class SessionStarted:
+    t: float
+    protocol: str
+    seed: int
+    first_block: str
+
+
+@dataclass(frozen=True, slots=True)
+class EventLogged:
+    """Anything worth keeping in the events table, in time order.
+
+    `kind` is one of: input, output, pulse, step, block, note, link_lost, link_restored,
+    cap, alarm. `name` is the input/output/step/block it concerns.
+    """
+
+    t: float
+    kind: str
+    name: str
+    value: float | None = None
+    device_t_us: int | None = None
+    device_seq: int | None = None
+    detail: dict[str, Any] | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class TrialRecord:
+    """One finished trial, committed by the store as soon as it is emitted."""
+
+    trial: int  # 1-based within the session
+    block: str
+    block_index: int  # 1-based count of blocks entered so far
+    trial_type: str
+    t_start: float
+    t_end: float
+    choice: str | None  # option label, None when no choice was made
+    response: str | None  # input that ended the response window, if any
+    latency_s: float | None
+    rewarded: bool
+    reward: float  # pellets delivered in this trial (0 when withheld or unrewarded)
+    correct: bool | None  # chose a best option under the current contingencies
+    omission: bool
+    interrupted: bool
+    iti_s: float  # intertrial interval that followed this trial
+    steps: tuple[tuple[str, float], ...] = ()  # (step name, entry time)
+    counts: dict[str, int] = field(default_factory=dict)  # responses per input in this trial
+    first_s: dict[str, float] = field(default_factory=dict)  # first response latency per input
+    extra: dict[str, Any] = field(default_factory=dict)
+
+
+@dataclass(frozen=True, slots=True)
+class BlockStarted:
+    t: float
+    block: str
+    block_index: int
+    contingencies: dict[str, float]  # option label -> reward probability now in force
+    outcomes_withheld: bool
+
+
+@dataclass(frozen=True, slots=True)
+class SessionEnded:
+    t: float
+    reason: str
+    trials: int
+    rewards: int
+
+
+Record = SessionStarted | EventLogged | TrialRecord | BlockStarted | SessionEnded
