@@ -1,0 +1,159 @@
+"""The compiled protocol: immutable data that the session core interprets.
+
+Everything here has been validated; references between parts are resolved names that are
+known to exist, so the engine never re-checks them.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+from server.protocol.wiring import Wiring
+
+END_TRIAL = "end"  # step target that ends the trial
+END_SESSION = "end_session"  # block target that ends the session
+
+SCHEDULE_KINDS = ("FR", "VR", "RR", "FI", "VI")
+ORDERS = ("shuffled", "in_turn")
+
+
+@dataclass(frozen=True, slots=True)
+class Duration:
+    """A duration in seconds: fixed, uniform, truncated exponential or drawn from a list."""
+
+    kind: str  # fixed | uniform | exponential | list
+    value: float = 0.0  # fixed
+    low: float = 0.0  # uniform bounds / exponential truncation
+    high: float = 0.0
+    mean: float = 0.0  # exponential mean before truncation
+    values: tuple[float, ...] = ()  # list
+    shuffled: bool = True  # list: draw without replacement (True) or cycle in order
+
+    @staticmethod
+    def fixed(seconds: float) -> "Duration":
+        return Duration("fixed", value=seconds)
+
+
+@dataclass(frozen=True, slots=True)
+class OutputActions:
+    activate: tuple[str, ...] = ()
+    deactivate: tuple[str, ...] = ()
+    pulse: tuple[str, ...] = ()
+
+    def __bool__(self) -> bool:
+        return bool(self.activate or self.deactivate or self.pulse)
+
+
+@dataclass(frozen=True, slots=True)
+class Schedule:
+    """A reinforcement schedule on one input (Ferster & Skinner 1957)."""
+
+    input: str
+    kind: str  # FR | VR | RR | FI | VI
+    value: float  # ratio n, probability p (RR) or interval seconds
+    intervals: int = 12  # VI: length of the Fleshler–Hoffman list
+    then: str = END_TRIAL
+
+
+@dataclass(frozen=True, slots=True)
+class Step:
+    name: str
+    on_enter: OutputActions = OutputActions()
+    on_leave: OutputActions = OutputActions()
+    wait: Duration | None = None  # None: no timeout (the session limit still applies)
+    next: str = END_TRIAL  # target when the wait runs out
+    respond: dict[str, str] = field(default_factory=dict)  # input -> target
+    choose: tuple[str, ...] = ()  # option labels offered
+    if_rewarded: str = END_TRIAL
+    if_unrewarded: str = END_TRIAL
+    schedule: Schedule | None = None
+    draw: tuple[tuple[str, float], ...] = ()  # (target, probability), taken on entry
+
+    @property
+    def awaits_response(self) -> bool:
+        return bool(self.respond or self.choose)
+
+
+@dataclass(frozen=True, slots=True)
+class TrialType:
+    name: str
+    steps: tuple[Step, ...]
+
+    def step_index(self, name: str) -> int:
+        for i, step in enumerate(self.steps):
+            if step.name == name:
+                return i
+        raise KeyError(name)
+
+
+@dataclass(frozen=True, slots=True)
+class Option:
+    label: str
+    input: str
+    reward_probability: float
+
+
+@dataclass(frozen=True, slots=True)
+class BlockEnd:
+    """A block ends when the first of its set conditions holds (checked after each trial)."""
+
+    trials: int | None = None
+    minutes: float | None = None
+    rewards: int | None = None
+    streak: int | None = None  # consecutive correct choices
+    accuracy: float | None = None  # fraction correct over the last `window` choice trials
+    window: int | None = None
+
+    def __bool__(self) -> bool:
+        return any(
+            v is not None for v in (self.trials, self.minutes, self.rewards, self.streak, self.accuracy)
+        )
+
+
+@dataclass(frozen=True, slots=True)
+class Block:
+    name: str
+    mix: tuple[tuple[str, float], ...]  # (trial type, weight)
+    order: str = "shuffled"
+    max_run: int | None = None
+    until: BlockEnd = BlockEnd()
+    next: str | None = None  # None: the following block, or end of session after the last
+    reward_probability: dict[str, float] = field(default_factory=dict)  # overrides per option
+    swap: tuple[tuple[str, str], ...] = ()  # reversal: exchange these options' contingencies
+    withhold_outcomes: bool = False  # extinction / probe: no pellet, no reward
+    iti: Duration | None = None  # overrides the protocol's ITI
+
+
+@dataclass(frozen=True, slots=True)
+class Limits:
+    max_minutes: float | None = None
+    max_rewards: int | None = None
+    max_trials: int | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class Protocol:
+    name: str
+    source: str  # file path it was loaded from
+    sha256: str  # of the file's bytes, stored with each session
+    wiring: Wiring
+    options: dict[str, Option]
+    trial_types: dict[str, TrialType]
+    blocks: tuple[Block, ...]
+    iti: Duration
+    limits: Limits
+    at_start: OutputActions = OutputActions()
+    description: str = ""
+    # Rules and other later additions hang off here as further fields.
+
+    def block(self, name: str) -> Block:
+        for b in self.blocks:
+            if b.name == name:
+                return b
+        raise KeyError(name)
+
+    def option_for_input(self, input_name: str) -> str | None:
+        for option in self.options.values():
+            if option.input == input_name:
+                return option.label
+        return None

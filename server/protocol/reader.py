@@ -1,0 +1,180 @@
+"""Typed reading of Marked YAML values that collects problems instead of stopping.
+
+Each accessor returns the value, or None after recording a problem, so one pass over a
+file reports everything wrong with it. Messages follow one shape: where, which key, what
+was expected, what was found.
+"""
+
+from __future__ import annotations
+
+import difflib
+import math
+from typing import Any, Iterable
+
+from server.protocol.marked import Mark, Marked
+from server.protocol.problems import Problem
+
+
+def describe(value: Any) -> str:
+    """How a found value is named in messages."""
+    if value is None:
+        return "nothing"
+    if isinstance(value, bool):
+        return f"{str(value).lower()} (a yes/no value)"
+    if isinstance(value, dict):
+        return "a mapping"
+    if isinstance(value, list):
+        return "a list"
+    if isinstance(value, str):
+        return f"'{value}'" if len(value) < 40 else "a long text"
+    return repr(value)
+
+
+def did_you_mean(word: str, choices: Iterable[str]) -> str:
+    close = difflib.get_close_matches(word, list(choices), n=1, cutoff=0.6)
+    return f"; did you mean '{close[0]}'?" if close else ""
+
+
+class Reader:
+    def __init__(self) -> None:
+        self.problems: list[Problem] = []
+
+    def error(self, mark: Mark, message: str) -> None:
+        self.problems.append(Problem(mark, message))
+
+    # ------------------------------------------------------------ structure
+
+    def mapping(
+        self,
+        node: Marked | None,
+        where: str,
+        allowed: Iterable[str],
+        required: Iterable[str] = (),
+    ) -> dict[str, Marked] | None:
+        """Check a mapping's keys: unknown keys (with did-you-mean) and missing ones."""
+        if node is None:
+            return None
+        if not node.is_mapping:
+            self.error(node.mark, f"{where}: expected a mapping, found {describe(node.value)}")
+            return None
+        allowed = list(allowed)
+        for key in node.value:
+            if key not in allowed:
+                assert node.keys is not None
+                self.error(
+                    node.keys[key],
+                    f"{where}: unknown key '{key}'{did_you_mean(key, allowed)}",
+                )
+        for key in required:
+            if key not in node.value:
+                self.error(node.mark, f"{where}: missing required key '{key}'")
+        return {k: v for k, v in node.value.items() if k in allowed}
+
+    def items(self, node: Marked | None, where: str) -> list[tuple[str, Marked, Mark]]:
+        """Entries of a name -> value mapping whose keys are free names."""
+        if node is None:
+            return []
+        if not node.is_mapping:
+            self.error(node.mark, f"{where}: expected a mapping, found {describe(node.value)}")
+            return []
+        assert node.keys is not None
+        return [(k, v, node.keys[k]) for k, v in node.value.items()]
+
+    def listing(self, node: Marked | None, where: str, *, allow_single: bool = False) -> list[Marked]:
+        if node is None:
+            return []
+        if allow_single and not node.is_list and not node.is_mapping:
+            return [node]
+        if not node.is_list:
+            self.error(node.mark, f"{where}: expected a list, found {describe(node.value)}")
+            return []
+        return node.value
+
+    # ------------------------------------------------------------ scalars
+
+    def text(self, node: Marked | None, where: str) -> str | None:
+        if node is None:
+            return None
+        if not isinstance(node.value, str) or not node.value.strip():
+            self.error(node.mark, f"{where}: expected a name or text, found {describe(node.value)}")
+            return None
+        return node.value
+
+    def flag(self, node: Marked | None, where: str) -> bool | None:
+        if node is None:
+            return None
+        if not isinstance(node.value, bool):
+            self.error(node.mark, f"{where}: expected true or false, found {describe(node.value)}")
+            return None
+        return node.value
+
+    def number(
+        self,
+        node: Marked | None,
+        where: str,
+        *,
+        low: float | None = None,
+        high: float | None = None,
+        low_open: bool = False,
+        integer: bool = False,
+    ) -> float | None:
+        """A number within [low, high] (or (low, high] when low_open)."""
+        if node is None:
+            return None
+        value = node.value
+        kind = "a whole number" if integer else "a number"
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            self.error(node.mark, f"{where}: expected {kind}, found {describe(value)}")
+            return None
+        if integer and not isinstance(value, int):
+            self.error(node.mark, f"{where}: expected {kind}, found {describe(value)}")
+            return None
+        if not math.isfinite(value):
+            self.error(node.mark, f"{where}: expected a finite number, found {describe(value)}")
+            return None
+        too_low = low is not None and (value <= low if low_open else value < low)
+        too_high = high is not None and value > high
+        if too_low or too_high:
+            self.error(node.mark, f"{where}: expected {_range(low, high, low_open)}, found {value}")
+            return None
+        return value
+
+    def probability(self, node: Marked | None, where: str) -> float | None:
+        return self.number(node, where, low=0.0, high=1.0)
+
+    def reference(
+        self, node: Marked | None, where: str, known: Iterable[str], what: str
+    ) -> str | None:
+        """A name that must refer to something defined elsewhere in the file."""
+        name = self.text(node, where)
+        if name is None:
+            return None
+        known = list(known)
+        if name not in known:
+            assert node is not None
+            self.error(node.mark, f"{where}: no {what} named '{name}'{did_you_mean(name, known)}")
+            return None
+        return name
+
+    def choice(self, node: Marked | None, where: str, allowed: Iterable[str]) -> str | None:
+        name = self.text(node, where)
+        if name is None:
+            return None
+        allowed = list(allowed)
+        if name not in allowed:
+            assert node is not None
+            options = ", ".join(allowed)
+            self.error(
+                node.mark,
+                f"{where}: expected one of {options}, found '{name}'{did_you_mean(name, allowed)}",
+            )
+            return None
+        return name
+
+
+def _range(low: float | None, high: float | None, low_open: bool) -> str:
+    if low is not None and high is not None:
+        return f"a value from {low:g} to {high:g}" if not low_open else f"a value above {low:g} up to {high:g}"
+    if low is not None:
+        return f"a value above {low:g}" if low_open else f"a value of at least {low:g}"
+    return f"a value of at most {high:g}"
