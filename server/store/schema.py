@@ -1,0 +1,170 @@
+"""The database layout, versioned with `PRAGMA user_version` and grown by ordered migrations.
+
+Migration N takes a database at version N-1 to N inside one transaction, so a crash or a
+failure mid-way leaves the previous version intact. Later issues append migrations; never
+edit one that has shipped.
+"""
+
+from __future__ import annotations
+
+import sqlite3
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+
+from server.store.errors import StoreError
+
+
+@dataclass(frozen=True, slots=True)
+class Migration:
+    version: int
+    summary: str
+    apply: Callable[[sqlite3.Connection], None]
+
+
+def statements(*sql: str) -> Callable[[sqlite3.Connection], None]:
+    """A migration body from SQL statements run one by one (executescript would commit)."""
+
+    def apply(conn: sqlite3.Connection) -> None:
+        for statement in sql:
+            conn.execute(statement)
+
+    return apply
+
+
+_V1 = statements(
+    """CREATE TABLE sessions (
+        id INTEGER PRIMARY KEY,
+        box TEXT NOT NULL,
+        animal TEXT NOT NULL,
+        protocol TEXT NOT NULL,
+        protocol_path TEXT,
+        protocol_sha256 TEXT,
+        started_at TEXT NOT NULL,      -- ISO 8601 wall clock with UTC offset, stored once
+        ended_at TEXT,
+        end_reason TEXT,               -- NULL while running (or until closed as interrupted)
+        seed INTEGER NOT NULL,
+        trials INTEGER NOT NULL DEFAULT 0,
+        rewards INTEGER NOT NULL DEFAULT 0,
+        settings TEXT NOT NULL DEFAULT '{}'  -- JSON: caps, agent, options
+    )""",
+    "CREATE INDEX sessions_animal ON sessions(animal, started_at)",
+    "CREATE INDEX sessions_box ON sessions(box, started_at)",
+    "CREATE INDEX sessions_running ON sessions(id) WHERE end_reason IS NULL",
+    """CREATE TABLE trials (
+        session_id INTEGER NOT NULL REFERENCES sessions(id),
+        trial INTEGER NOT NULL,
+        block TEXT NOT NULL,
+        block_index INTEGER NOT NULL,
+        trial_type TEXT NOT NULL,
+        t_start REAL NOT NULL,
+        t_end REAL NOT NULL,
+        choice TEXT,
+        response TEXT,
+        latency_s REAL,
+        rewarded INTEGER NOT NULL,
+        reward REAL NOT NULL,
+        correct INTEGER,
+        omission INTEGER NOT NULL,
+        interrupted INTEGER NOT NULL,
+        iti_s REAL NOT NULL,
+        steps TEXT NOT NULL,
+        counts TEXT NOT NULL,
+        first_s TEXT NOT NULL,
+        extra TEXT NOT NULL,
+        PRIMARY KEY (session_id, trial)
+    )""",
+    """CREATE TABLE events (
+        id INTEGER PRIMARY KEY,
+        session_id INTEGER NOT NULL REFERENCES sessions(id),
+        kind TEXT NOT NULL,
+        name TEXT NOT NULL,
+        value REAL,
+        t REAL NOT NULL,               -- seconds from session start
+        device_t_us INTEGER,           -- raw device clock, untouched
+        device_seq INTEGER,            -- device sequence number for device-originated events
+        detail TEXT
+    )""",
+    # A device event replayed after a reconnect must never be stored twice.
+    """CREATE UNIQUE INDEX events_device_seq ON events(session_id, device_seq)
+        WHERE device_seq IS NOT NULL""",
+    "CREATE INDEX events_session ON events(session_id, id)",
+    "CREATE INDEX events_kind ON events(session_id, kind, t)",
+    """CREATE TABLE blocks (
+        session_id INTEGER NOT NULL REFERENCES sessions(id),
+        block_index INTEGER NOT NULL,
+        block TEXT NOT NULL,
+        t_start REAL NOT NULL,
+        contingencies TEXT NOT NULL,
+        outcomes_withheld INTEGER NOT NULL,
+        PRIMARY KEY (session_id, block_index)
+    )""",
+    """CREATE TABLE estimates (
+        session_id INTEGER NOT NULL REFERENCES sessions(id),
+        trial INTEGER NOT NULL,
+        model TEXT NOT NULL,
+        data TEXT NOT NULL,
+        PRIMARY KEY (session_id, trial)
+    )""",
+    """CREATE TABLE annotations (
+        id INTEGER PRIMARY KEY,
+        session_id INTEGER NOT NULL REFERENCES sessions(id),
+        t REAL,                        -- seconds from session start, when known
+        wall_time TEXT NOT NULL,
+        origin TEXT NOT NULL,
+        text TEXT NOT NULL
+    )""",
+    "CREATE INDEX annotations_session ON annotations(session_id, t)",
+)
+
+MIGRATIONS: tuple[Migration, ...] = (
+    Migration(1, "sessions, trials, events, blocks, estimates, annotations", _V1),
+)
+
+
+def schema_version(conn: sqlite3.Connection) -> int:
+    return conn.execute("PRAGMA user_version").fetchone()[0]
+
+
+def latest_version(migrations: Sequence[Migration] = MIGRATIONS) -> int:
+    return migrations[-1].version if migrations else 0
+
+
+def migrate(conn: sqlite3.Connection, migrations: Sequence[Migration] = MIGRATIONS) -> int:
+    """Bring the database up to the newest version; return it.
+
+    `conn` must be in autocommit mode (isolation_level=None). Each step reads the version
+    under a write lock, so two processes opening a new database at once do not both apply it.
+    """
+    latest = latest_version(migrations)
+    for expected, migration in enumerate(migrations, start=1):
+        if migration.version != expected:
+            raise ValueError(f"migration {migration.version} is out of order (expected {expected})")
+    _refuse_unknown(conn, schema_version(conn), latest)
+    for migration in migrations:
+        conn.execute("BEGIN IMMEDIATE")
+        try:
+            current = schema_version(conn)
+            _refuse_unknown(conn, current, latest)
+            if current < migration.version:
+                migration.apply(conn)
+                conn.execute(f"PRAGMA user_version = {migration.version:d}")
+            conn.execute("COMMIT")
+        except BaseException:
+            if conn.in_transaction:
+                conn.execute("ROLLBACK")
+            raise
+    return schema_version(conn)
+
+
+def _refuse_unknown(conn: sqlite3.Connection, version: int, latest: int) -> None:
+    if version > latest:
+        raise StoreError(
+            f"database schema version {version} is newer than this vigil knows ({latest}); "
+            "upgrade vigil"
+        )
+    if version == 0:
+        others = conn.execute(
+            "SELECT count(*) FROM sqlite_schema WHERE name NOT LIKE 'sqlite_%'"
+        ).fetchone()[0]
+        if others:
+            raise StoreError("not a vigil database: it already holds tables of another program")

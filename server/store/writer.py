@@ -1,0 +1,408 @@
+"""The one writer of a Vigil database: sessions, their record streams, and crash recovery.
+
+Durability contract (DESIGN.md "Nothing lost"): a trial, a block and a session end are
+committed as soon as they are written; events are buffered and committed in batches by
+`flush_due`, which the caller must call at least every `batch_s` seconds, so every event is on
+disk within 2 x `batch_s` (1 s by default). Commits run with `synchronous=FULL`, which survives
+power loss as well as a killed process. When the disk is full or failing, nothing buffered is
+dropped: the records stay in memory, a `StoreError` says so, and the next flush retries.
+
+One process writes a database at a time; readers use `server.store.queries`.
+"""
+
+from __future__ import annotations
+
+import sqlite3
+from collections import Counter
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass
+from datetime import datetime, timedelta
+from pathlib import Path
+from typing import Any, TypeVar
+
+from server.engine.records import (
+    BlockStarted,
+    EventLogged,
+    Record,
+    SessionEnded,
+    SessionStarted,
+    TrialRecord,
+)
+from server.store import rows
+from server.store.errors import StoreError, diagnose_path, sqlite_reason
+from server.store.schema import migrate
+
+T = TypeVar("T")
+
+_INSERT_EVENT = (
+    "INSERT OR IGNORE INTO events (session_id, kind, name, value, t, device_t_us, device_seq,"
+    " detail) VALUES (?, ?, ?, ?, ?, ?, ?, ?)"
+)
+_INSERT_TRIAL = (
+    f"INSERT INTO trials ({', '.join(rows.TRIAL_COLUMNS)})"
+    f" VALUES ({', '.join('?' * len(rows.TRIAL_COLUMNS))})"
+)
+_COUNT_TRIAL = (
+    "UPDATE sessions SET trials = max(trials, ?), rewards = rewards + ? WHERE id = ?"
+)
+_INSERT_BLOCK = (
+    f"INSERT INTO blocks ({', '.join(rows.BLOCK_COLUMNS)})"
+    f" VALUES ({', '.join('?' * len(rows.BLOCK_COLUMNS))})"
+)
+_END_SESSION = (
+    "UPDATE sessions SET ended_at = ?, end_reason = ?, trials = ?, rewards = ? WHERE id = ?"
+)
+_UPSERT_ESTIMATE = (
+    "INSERT OR REPLACE INTO estimates (session_id, trial, model, data) VALUES (?, ?, ?, ?)"
+)
+_INSERT_SESSION = (
+    "INSERT INTO sessions (box, animal, protocol, protocol_path, protocol_sha256, started_at,"
+    " seed, settings) VALUES (?, ?, ?, ?, ?, ?, ?, ?)"
+)
+# Latest stored time of a session, whichever table holds it.
+_LAST_T = (
+    "SELECT max(t) FROM (SELECT max(t) AS t FROM events WHERE session_id = ?1"
+    " UNION ALL SELECT max(t_end) FROM trials WHERE session_id = ?1"
+    " UNION ALL SELECT max(t_start) FROM blocks WHERE session_id = ?1)"
+)
+
+
+@dataclass(frozen=True, slots=True)
+class _Pending:
+    """Statements for one record, not yet committed; `what` names it in error messages."""
+
+    session_id: int
+    what: str
+    statements: tuple[tuple[str, tuple], ...]
+    device_event: bool = False
+
+
+@dataclass(slots=True)
+class _Running:
+    started: datetime
+    last_trial: int = 0
+    ended: bool = False
+
+
+def local_now() -> datetime:
+    """The default wall clock: local time with its UTC offset."""
+    return datetime.now().astimezone()
+
+
+def iso(moment: datetime) -> str:
+    return moment.isoformat(timespec="milliseconds")
+
+
+class Store:
+    """Writes sessions and their records; open with `Store.open(path)`."""
+
+    def __init__(
+        self,
+        conn: sqlite3.Connection,
+        path: Path,
+        *,
+        wall_clock: Callable[[], datetime] = local_now,
+        batch_s: float = 0.5,
+        max_buffered: int = 10_000,
+    ):
+        self._conn = conn
+        self.path = path
+        self.batch_s = batch_s
+        self.max_buffered = max_buffered
+        self._wall_clock = wall_clock
+        self._pending: list[_Pending] = []
+        self._sessions: dict[int, _Running] = {}
+        self._duplicates: Counter[int] = Counter()
+        self._last_flush: float | None = None
+        self.failure: StoreError | None = None  # the last failed commit, None once one succeeds
+
+    # ------------------------------------------------------------------ opening
+
+    @classmethod
+    def open(
+        cls,
+        path: str | Path,
+        *,
+        wall_clock: Callable[[], datetime] = local_now,
+        batch_s: float = 0.5,
+        max_buffered: int = 10_000,
+    ) -> Store:
+        """Open or create the database, migrate it, and prove it is writable.
+
+        Every reason it cannot be used (missing folder, read-only, not a database, newer
+        schema, full disk) is a one-line `StoreError` here, before any session starts.
+        """
+        path = Path(path)
+        conn: sqlite3.Connection | None = None
+        try:
+            conn = sqlite3.connect(path, isolation_level=None, timeout=5.0)
+            mode = conn.execute("PRAGMA journal_mode = WAL").fetchone()[0]
+            if mode.lower() != "wal":
+                raise StoreError(f"write-ahead logging is not available (journal mode {mode})")
+            conn.execute("PRAGMA synchronous = FULL")
+            conn.execute("PRAGMA foreign_keys = ON")
+            version = migrate(conn)
+            # Writing proves what reading cannot: the file, its folder and the disk accept data.
+            conn.execute("BEGIN IMMEDIATE")
+            conn.execute(f"PRAGMA user_version = {version:d}")
+            conn.execute("COMMIT")
+        except sqlite3.Error as err:
+            if conn is not None:
+                conn.close()
+            raise StoreError(f"cannot use database {path}: {diagnose_path(path, err)}") from None
+        except StoreError as err:
+            if conn is not None:
+                conn.close()
+            raise StoreError(f"cannot use database {path}: {err}") from None
+        return cls(conn, path, wall_clock=wall_clock, batch_s=batch_s, max_buffered=max_buffered)
+
+    @property
+    def conn(self) -> sqlite3.Connection:
+        """The writing connection, for tests and maintenance; do not write through it."""
+        return self._conn
+
+    # ------------------------------------------------------------------ sessions
+
+    def begin_session(
+        self,
+        box: str,
+        animal: str,
+        protocol: str,
+        protocol_path: str | None,
+        protocol_sha256: str | None,
+        seed: int,
+        started_at: str | None = None,
+        settings: Mapping[str, Any] | None = None,
+    ) -> int:
+        """Store a new session and return its id; `started_at` defaults to the wall clock now."""
+        if started_at is None:
+            started_at = iso(self._wall_clock())
+        started = rows.parse_wall_time(started_at, "started_at")
+        params = (
+            str(box), str(animal), str(protocol),
+            None if protocol_path is None else str(protocol_path),
+            None if protocol_sha256 is None else str(protocol_sha256),
+            started_at, rows.integer(seed, "seed"),
+            rows.to_json(dict(settings or {}), "session settings"),
+        )
+        session_id = self._commit(lambda conn: conn.execute(_INSERT_SESSION, params).lastrowid)
+        self._sessions[session_id] = _Running(started)
+        return session_id
+
+    def write(self, session_id: int, record: Record, *, ended_at: str | None = None) -> None:
+        """Store one record of a session's stream.
+
+        Events (and the session-start note) wait for the next flush; trials, blocks and the
+        session end commit now, together with every event buffered before them. `ended_at`
+        (ISO 8601) applies to `SessionEnded`; by default it is started_at + record.t.
+        Raises `StoreError` for a record that cannot be stored, or when the commit fails
+        (the record is kept and retried).
+        """
+        running = self._running(session_id)
+        if isinstance(record, EventLogged):
+            self._pending.append(_Pending(
+                session_id, f"{record.kind} event of session {session_id}",
+                ((_INSERT_EVENT, rows.event_params(session_id, record)),),
+                device_event=record.device_seq is not None,
+            ))
+            if len(self._pending) >= self.max_buffered and self.failure is None:
+                self._commit()
+        elif isinstance(record, TrialRecord):
+            if record.trial <= running.last_trial:
+                raise StoreError(
+                    f"trial {record.trial} of session {session_id} is not after trial "
+                    f"{running.last_trial}"
+                )
+            params = rows.trial_params(session_id, record)
+            self._pending.append(_Pending(
+                session_id, f"trial {record.trial} of session {session_id}",
+                ((_INSERT_TRIAL, params),
+                 (_COUNT_TRIAL, (record.trial, int(bool(record.rewarded)), session_id))),
+            ))
+            running.last_trial = record.trial
+            self._commit()
+        elif isinstance(record, BlockStarted):
+            self._pending.append(_Pending(
+                session_id, f"block {record.block_index} of session {session_id}",
+                ((_INSERT_BLOCK, rows.block_params(session_id, record)),),
+            ))
+            self._commit()
+        elif isinstance(record, SessionStarted):
+            note = EventLogged(
+                t=record.t, kind="note", name="session_started",
+                detail={"protocol": record.protocol, "seed": record.seed,
+                        "first_block": record.first_block},
+            )
+            self.write(session_id, note)
+        elif isinstance(record, SessionEnded):
+            self._end(session_id, running, record, ended_at)
+        else:
+            raise StoreError(f"cannot store a {type(record).__name__} record")
+
+    def _end(
+        self, session_id: int, running: _Running, record: SessionEnded, ended_at: str | None
+    ) -> None:
+        t = rows.real(record.t, "session end t")
+        if ended_at is None:
+            ended_at = iso(running.started + timedelta(seconds=t))
+        else:
+            rows.parse_wall_time(ended_at, "ended_at")
+        params = (ended_at, str(record.reason), rows.integer(record.trials, "trials"),
+                  rows.integer(record.rewards, "rewards"), session_id)
+        self._pending.append(_Pending(
+            session_id, f"end of session {session_id}", ((_END_SESSION, params),)
+        ))
+        running.ended = True
+        self._commit()
+
+    def write_estimate(
+        self, session_id: int, trial: int, model: str, data: Mapping[str, Any]
+    ) -> None:
+        """Store (or replace) the learning-model estimate after `trial`; commits now."""
+        params = (
+            rows.integer(session_id, "session id"), rows.integer(trial, "trial"), str(model),
+            rows.to_json(dict(data), f"estimate after trial {trial}"),
+        )
+        self._pending.append(_Pending(
+            session_id, f"estimate after trial {trial} of session {session_id}",
+            ((_UPSERT_ESTIMATE, params),),
+        ))
+        self._commit()
+
+    def close_interrupted(self, now_iso: str | None = None) -> list[int]:
+        """End every session left without an end reason (a crash, a kill); return their ids.
+
+        ended_at is started_at plus the last stored time of the session; `now_iso` (default:
+        the wall clock) is kept in a note event saying when the session was closed.
+        Sessions begun by this store and still running are left alone.
+        """
+        closed_at = iso(self._wall_clock()) if now_iso is None else now_iso
+        rows.parse_wall_time(closed_at, "now_iso")
+        running_here = {sid for sid, s in self._sessions.items() if not s.ended}
+
+        def close(conn: sqlite3.Connection) -> list[int]:
+            closed = []
+            found = conn.execute(
+                "SELECT id, started_at FROM sessions WHERE end_reason IS NULL ORDER BY id"
+            ).fetchall()
+            for session_id, started_at in found:
+                if session_id in running_here:
+                    continue
+                last_t = conn.execute(_LAST_T, (session_id,)).fetchone()[0] or 0.0
+                trials, rewards = conn.execute(
+                    "SELECT count(*), coalesce(sum(rewarded), 0) FROM trials"
+                    " WHERE session_id = ?", (session_id,)
+                ).fetchone()
+                started = rows.parse_wall_time(started_at, f"started_at of session {session_id}")
+                conn.execute(_END_SESSION, (iso(started + timedelta(seconds=last_t)),
+                                            "interrupted", trials, rewards, session_id))
+                conn.execute(_INSERT_EVENT, (
+                    session_id, "note", "closed_interrupted", None, last_t, None, None,
+                    rows.to_json({"closed_at": closed_at}, "note"),
+                ))
+                closed.append(session_id)
+            return closed
+
+        return self._commit(close)
+
+    # ------------------------------------------------------------------ flushing
+
+    @property
+    def pending(self) -> int:
+        """Records written but not yet on disk."""
+        return len(self._pending)
+
+    def duplicate_events(self, session_id: int) -> int:
+        """Device events of the session ignored because their device_seq was already stored."""
+        return self._duplicates[session_id]
+
+    def flush_due(self, now_monotonic: float) -> bool:
+        """Commit buffered events if `batch_s` has passed since the last batch; True if it did.
+
+        Call at least every `batch_s` seconds with a monotonic clock reading.
+        """
+        if not self._pending:
+            return False
+        if self._last_flush is not None and now_monotonic - self._last_flush < self.batch_s:
+            return False
+        self._last_flush = now_monotonic
+        self._commit()
+        return True
+
+    def flush(self) -> None:
+        """Commit everything buffered now."""
+        self._commit()
+
+    def close(self) -> None:
+        """Commit what is buffered and close; if that fails the store stays open to retry."""
+        if self._pending:
+            self._commit()
+        self._conn.close()
+
+    def __enter__(self) -> Store:
+        return self
+
+    def __exit__(self, *exc_info: object) -> None:
+        self.close()
+
+    # ------------------------------------------------------------------ internals
+
+    def _running(self, session_id: int) -> _Running:
+        running = self._sessions.get(session_id)
+        if running is None:
+            raise StoreError(f"session {session_id} was not begun by this store")
+        if running.ended:
+            raise StoreError(f"session {session_id} has already ended")
+        return running
+
+    def _commit(self, then: Callable[[sqlite3.Connection], T] | None = None) -> T | None:
+        """One transaction: every pending record in order, then `then` (if given).
+
+        A record the database refuses (a constraint) is dropped and reported; a failure of
+        the database itself (full disk, i/o error) rolls back and keeps everything pending.
+        """
+        batch = list(self._pending)
+        if not batch and then is None:
+            return None
+        conn = self._conn
+        duplicates: Counter[int] = Counter()
+        refused: list[str] = []
+        try:
+            conn.execute("BEGIN IMMEDIATE")
+            for item in batch:
+                try:
+                    first, *rest = item.statements
+                    cursor = conn.execute(*first)
+                    for statement in rest:
+                        conn.execute(*statement)
+                except sqlite3.IntegrityError as err:
+                    refused.append(f"{item.what} ({str(err).lower()})")
+                    continue
+                if item.device_event and cursor.rowcount == 0:
+                    duplicates[item.session_id] += 1
+            result = then(conn) if then is not None else None
+            conn.execute("COMMIT")
+        except sqlite3.Error as err:
+            self._rollback()
+            kept = (f"; {len(batch)} record(s) kept in memory, retried at the next flush"
+                    if batch else "")
+            self.failure = StoreError(f"could not write to {self.path}: {sqlite_reason(err)}{kept}")
+            raise self.failure from None
+        except BaseException:
+            self._rollback()
+            raise
+        del self._pending[: len(batch)]
+        self.failure = None
+        self._duplicates.update(duplicates)
+        if refused:
+            more = f" and {len(refused) - 1} more" if len(refused) > 1 else ""
+            raise StoreError(f"database refused {refused[0]}{more}")
+        return result
+
+    def _rollback(self) -> None:
+        # SQLite rolls back by itself after some errors (a full disk among them).
+        if self._conn.in_transaction:
+            try:
+                self._conn.execute("ROLLBACK")
+            except sqlite3.Error:
+                pass
