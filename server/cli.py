@@ -1,0 +1,226 @@
+"""`vigil` command line: check, run, demo, rehearse, fit.
+
+Exit codes: 0 success, 1 invalid input or a failed run, 2 usage error. Problems with
+files are printed as `file:line:col: message`; a traceback never reaches the user.
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import json
+import sys
+from pathlib import Path
+
+from server.protocol.problems import InvalidFile
+
+REPO_ROOT = Path(__file__).resolve().parent.parent
+DEMO_CONFIG = REPO_ROOT / "config.example.yaml"
+DEMO_DB = "vigil-demo.sqlite"
+
+
+def _err(message: str) -> None:
+    sys.stderr.write(f"vigil: {message}\n")
+
+
+# ---------------------------------------------------------------- check
+
+
+def cmd_check(args: argparse.Namespace) -> int:
+    from server.protocol.load import load_protocol
+
+    bad = 0
+    for file in args.files:
+        try:
+            protocol = load_protocol(file)
+        except InvalidFile as exc:
+            bad += 1
+            for problem in exc.problems:
+                sys.stderr.write(f"{problem}\n")
+            continue
+        if not args.quiet:
+            print(
+                f"{file}: ok ('{protocol.name}': {len(protocol.trial_types)} trial types, "
+                f"{len(protocol.blocks)} blocks)"
+            )
+    return 1 if bad else 0
+
+
+# ---------------------------------------------------------------- run / demo
+
+
+def _run_lab(config, db_path: str, minutes: float | None) -> int:
+    from server.lab import Lab, summary_table
+    from server.store.errors import StoreError
+    from server.store.writer import Store
+
+    try:
+        store = Store.open(db_path)
+    except StoreError as exc:
+        _err(str(exc))
+        return 1
+    print(f"database: {Path(db_path).resolve()}")
+    lab = Lab(config, store)
+    try:
+        runs = asyncio.run(lab.run(minutes))
+    except Exception as exc:
+        _err(f"run failed: {exc}")
+        return 1
+    finally:
+        store.close()
+    print()
+    print(summary_table(runs))
+    return 0 if all(run.ended is not None for run in runs) else 1
+
+
+def cmd_run(args: argparse.Namespace) -> int:
+    from server.lab_config import load_lab
+
+    try:
+        config = load_lab(args.config)
+    except InvalidFile as exc:
+        for problem in exc.problems:
+            sys.stderr.write(f"{problem}\n")
+        return 1
+    return _run_lab(config, args.db or str(config.database), args.minutes)
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    from server.demo import demo_lab
+
+    try:
+        config = demo_lab(DEMO_CONFIG, args.boxes)
+    except InvalidFile as exc:
+        for problem in exc.problems:
+            sys.stderr.write(f"{problem}\n")
+        return 1
+    minutes = args.minutes
+    print(
+        f"Vigil demo: {len(config.boxes)} emulated boxes with virtual animals"
+        + (f", {minutes:g} min" if minutes else "; press Ctrl-C to stop")
+    )
+    return _run_lab(config, args.db, minutes)
+
+
+# ---------------------------------------------------------------- rehearse
+
+
+def cmd_rehearse(args: argparse.Namespace) -> int:
+    from hardware_stubs.agents import AGENTS
+    from server.engine.caps import HardCaps
+    from server.protocol.load import load_protocol
+    from server.rehearsal import human_report, progress_bar, rehearse
+
+    try:
+        protocol = load_protocol(args.protocol)
+    except InvalidFile as exc:
+        for problem in exc.problems:
+            sys.stderr.write(f"{problem}\n")
+        return 1
+    if args.agent not in AGENTS:
+        _err(f"unknown agent '{args.agent}'; choose from {', '.join(sorted(AGENTS))}")
+        return 2
+    result = rehearse(
+        protocol, args.animals, args.seed, args.agent, caps=HardCaps(),
+        progress=progress_bar(), workers=args.workers,
+    )  # fmt: skip
+    if args.json:
+        sys.stdout.write(json.dumps(result, sort_keys=True) + "\n")
+    else:
+        print(human_report(result))
+    return 0
+
+
+# ---------------------------------------------------------------- parser
+
+
+def _positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, found '{text}'") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected at least 1, found {value}")
+    return value
+
+
+def _seed(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, found '{text}'") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"expected a seed of at least 0, found {value}")
+    return value
+
+
+def _minutes(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected minutes as a number, found '{text}'") from None
+    if not value > 0:
+        raise argparse.ArgumentTypeError(f"expected a positive number of minutes, found {text}")
+    return value
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="vigil", description="Closed-loop trial scheduler for operant conditioning boxes."
+    )
+    verbs = parser.add_subparsers(dest="verb", metavar="VERB")
+    verbs.required = True
+
+    p = verbs.add_parser("check", help="validate protocol files")
+    p.add_argument("files", nargs="+", metavar="FILE")
+    p.add_argument("-q", "--quiet", action="store_true", help="print only problems")
+    p.set_defaults(func=cmd_check)
+
+    p = verbs.add_parser("run", help="run every box of a lab config")
+    p.add_argument("config", metavar="CONFIG")
+    p.add_argument("--db", metavar="PATH", help="SQLite database (default: the config's)")
+    p.add_argument("--minutes", type=_minutes, metavar="M", help="end sessions after M minutes")
+    p.set_defaults(func=cmd_run)
+
+    p = verbs.add_parser("demo", help="run emulated boxes with virtual animals")
+    p.add_argument("--boxes", type=_positive_int, default=4, metavar="N")
+    p.add_argument("--db", default=DEMO_DB, metavar="PATH")
+    p.add_argument("--minutes", type=_minutes, metavar="M")
+    p.add_argument("--port", type=_positive_int, default=8642, metavar="P", help="status page port")
+    p.set_defaults(func=cmd_demo)
+
+    p = verbs.add_parser("rehearse", help="run a protocol over virtual animals in virtual time")
+    p.add_argument("protocol", metavar="PROTOCOL")
+    p.add_argument("--animals", type=_positive_int, default=10, metavar="N")
+    p.add_argument("--seed", type=_seed, default=0, metavar="S")
+    p.add_argument("--agent", default="q_learner", metavar="NAME")
+    p.add_argument("--workers", type=_positive_int, default=None, metavar="W",
+                   help="worker processes (default: all cores for large cohorts)")  # fmt: skip
+    p.add_argument("--json", action="store_true", help="print JSON instead of a table")
+    p.set_defaults(func=cmd_rehearse)
+
+    try:
+        from server.models import fit_cli
+    except ImportError:
+        fit_cli = None
+    if fit_cli is not None:
+        p = verbs.add_parser("fit", help="fit learning models to recorded choices")
+        fit_cli.add_arguments(p)
+        p.set_defaults(func=fit_cli.run)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return args.func(args)
+    except KeyboardInterrupt:
+        _err("interrupted")
+        return 130
+    except BrokenPipeError:
+        return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

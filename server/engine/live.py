@@ -1,0 +1,91 @@
+"""Live driver: runs one session against a box link on the asyncio loop's monotonic clock.
+
+The link owns the box (serial or in-process emulator). It pushes `(InputEvent, t)` pairs
+onto `events` with t already in session seconds, and accepts commands through `send`. The
+driver only decides *when* to call the core: at each input, and at each deadline.
+"""
+
+from __future__ import annotations
+
+import asyncio
+from typing import Callable, Protocol as TypingProtocol
+
+from server.engine.records import Command, InputEvent, Record
+from server.engine.session import Session
+
+
+class BoxLink(TypingProtocol):
+    events: "asyncio.Queue[tuple[InputEvent, float] | StopRequest]"
+
+    def send(self, commands: list[Command]) -> None: ...
+
+
+class StopRequest:
+    """Queued to wake the driver when the session must end from outside."""
+
+    __slots__ = ("reason",)
+
+    def __init__(self, reason: str):
+        self.reason = reason
+
+
+class LiveSession:
+    def __init__(
+        self,
+        session: Session,
+        link: BoxLink,
+        clock: Callable[[], float],
+        publish: Callable[[list[Record]], None],
+    ):
+        self.session = session
+        self.link = link
+        self.clock = clock  # seconds since session start
+        self.publish = publish
+        self._last_t = 0.0
+
+    def request_stop(self, reason: str) -> None:
+        self.link.events.put_nowait(StopRequest(reason))
+
+    def _send(self, commands: list[Command]) -> None:
+        if commands:
+            self.link.send(commands)
+        records = self.session.take_records()
+        if records:
+            self.publish(records)
+
+    def _t(self, t: float) -> float:
+        # The core needs non-decreasing times; a device stamp can trail a deadline we ran.
+        self._last_t = max(self._last_t, t)
+        return self._last_t
+
+    async def run(self) -> None:
+        session = self.session
+        queue = self.link.events
+        try:
+            self._send(session.start(self._t(self.clock())))
+            while not session.finished:
+                delay = session.next_deadline - self.clock()
+                if delay > 0:
+                    try:
+                        item = await asyncio.wait_for(queue.get(), delay)
+                    except TimeoutError:
+                        self._send(session.advance(self._t(self.clock())))
+                        continue
+                    self._handle(item)
+                    while not queue.empty() and not session.finished:
+                        self._handle(queue.get_nowait())
+                else:
+                    self._send(session.advance(self._t(self.clock())))
+        except asyncio.CancelledError:
+            self._send(session.stop(self._t(self.clock()), "stopped: program shutting down"))
+            raise
+        except Exception as exc:  # a bug must still leave the box safe and the session closed
+            self._send(session.stop(self._t(self.clock()), f"error: {type(exc).__name__}: {exc}"))
+            raise
+
+    def _handle(self, item: "tuple[InputEvent, float] | StopRequest") -> None:
+        if isinstance(item, StopRequest):
+            self._send(self.session.stop(self._t(self.clock()), item.reason))
+            return
+        event, t = item
+        self._send(self.session.feed(event, self._t(t)))

@@ -1,0 +1,472 @@
+"""The session core: one animal's session as a pure state machine (sans-I/O).
+
+It is fed input events with their time and asked to advance to the current time; it
+answers with output commands, its next deadline, and a stream of records. It never reads a
+clock, touches a port or awaits anything, so the live driver, the virtual-time rehearsal and
+the tests all run exactly the same logic.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Callable
+
+import numpy as np
+
+from server.engine.block_progress import PERFORMANCE_CRITERIA, BlockProgress
+from server.engine.caps import EffectiveLimits, HardCaps, effective_limits
+from server.engine.records import (
+    BlockStarted,
+    Command,
+    EventLogged,
+    InputEvent,
+    PulseOutput,
+    Record,
+    SessionEnded,
+    SessionStarted,
+    SetOutput,
+    TrialRecord,
+)
+from server.engine.timing import DurationDraw, ScheduleState
+from server.protocol.model import END_SESSION, END_TRIAL, OutputActions, Protocol, Step, TrialType
+
+# A trial may pass through this many steps in one instant (draws, zero waits) before the
+# session declares the protocol stuck in a loop rather than spinning forever.
+MAX_STEPS_PER_INSTANT = 1000
+
+TrialObserver = Callable[["Session", TrialRecord], None]
+
+
+class ProtocolLoop(Exception):
+    pass
+
+
+class _Trial:
+    """Mutable state of the trial in progress."""
+
+    __slots__ = (
+        "index", "type", "t_start", "step_index", "step_t0", "deadline", "schedule",
+        "steps", "counts", "first_s", "choice", "response", "latency_s", "correct",
+        "omission", "pellets",
+    )  # fmt: skip
+
+    def __init__(self, index: int, trial_type: TrialType, t: float):
+        self.index = index
+        self.type = trial_type
+        self.t_start = t
+        self.step_index = -1
+        self.step_t0 = t
+        self.deadline = math.inf
+        self.schedule: ScheduleState | None = None
+        self.steps: list[tuple[str, float]] = []
+        self.counts: dict[str, int] = {}
+        self.first_s: dict[str, float] = {}
+        self.choice: str | None = None
+        self.response: str | None = None
+        self.latency_s: float | None = None
+        self.correct: bool | None = None
+        self.omission = False
+        self.pellets = 0
+
+    @property
+    def step(self) -> Step:
+        return self.type.steps[self.step_index]
+
+
+class Session:
+    """One session of one protocol on one box, driven by whoever owns the clock."""
+
+    def __init__(
+        self,
+        protocol: Protocol,
+        seed: int,
+        caps: HardCaps = HardCaps(),
+        *,
+        log_events: bool = True,
+    ):
+        self.protocol = protocol
+        self.seed = seed
+        self.rng = np.random.default_rng(seed)
+        self.limits: EffectiveLimits = effective_limits(protocol.limits, caps)
+        self.log_events = log_events
+        self.observers: list[TrialObserver] = []
+        self.finished = False
+        self.end_reason: str | None = None
+        self.ended_at: float | None = None  # session time of the end
+        self.trials_done = 0
+        self.rewards = 0
+        self.reversals = 0
+        self.iti_scale = 1.0
+        self.active_outputs: set[str] = set()  # held outputs the session has switched on
+        self.block: BlockProgress | None = None
+        self._trial: _Trial | None = None
+        self._iti_end = math.inf
+        self._t_limit = self.limits.max_minutes * 60.0
+        self._out: list[Command] = []
+        self._records: list[Record] = []
+        self._extra_swaps: list[tuple[str, str]] = []
+        self._blocks_entered = 0
+        # (block, trials, criterion met or None) for each block left; rehearsal reports it
+        self.block_log: list[tuple[str, int, str | None]] = []
+        self.first_criterion_trial: int | None = None
+        self._cap_reached = False
+        self._pending_end: str | None = None
+        self._itis = {
+            b.name: DurationDraw(b.iti or protocol.iti, self.rng) for b in protocol.blocks
+        }
+        self._waits: dict[int, DurationDraw] = {}
+        self._schedules: dict[int, ScheduleState] = {}
+        self._started = False
+
+    # ================================================================ driver interface
+
+    @property
+    def next_deadline(self) -> float:
+        """Session time at which `advance` must next be called (inf when finished)."""
+        if self.finished:
+            return math.inf
+        local = self._trial.deadline if self._trial is not None else self._iti_end
+        return min(local, self._t_limit)
+
+    @property
+    def trial_index(self) -> int:
+        return self._trial.index if self._trial is not None else self.trials_done
+
+    @property
+    def step_name(self) -> str | None:
+        return self._trial.step.name if self._trial is not None and self._trial.step_index >= 0 else None
+
+    def take_records(self) -> list[Record]:
+        records, self._records = self._records, []
+        return records
+
+    def start(self, t: float = 0.0) -> list[Command]:
+        if self._started:
+            raise RuntimeError("session already started")
+        self._started = True
+        first = self.protocol.blocks[0]
+        self._records.append(SessionStarted(t, self.protocol.name, self.seed, first.name))
+        self._apply(self.protocol.at_start, t)
+        self._enter_block(first.name, t, "session start")
+        self._begin_trial(t)
+        return self._flush()
+
+    def feed(self, event: InputEvent, t: float) -> list[Command]:
+        """An input edge at session time t (events must arrive in time order)."""
+        if self.log_events:
+            self._records.append(
+                EventLogged(t, "input", event.name, 1.0 if event.rising else 0.0,
+                            event.device_t_us, event.device_seq)  # fmt: skip
+            )
+        if self.finished:
+            return []
+        self._catch_up(t)
+        trial = self._trial
+        if event.rising and trial is not None and not self.finished:
+            self._respond(trial, event.name, t)
+        return self._flush()
+
+    def advance(self, t: float) -> list[Command]:
+        """Run every deadline that has passed by time t."""
+        if not self.finished:
+            self._catch_up(t)
+        return self._flush()
+
+    def stop(self, t: float, reason: str) -> list[Command]:
+        """End the session now (operator, time limit, link failure...): outputs to safe state."""
+        if not self.finished:
+            self._end_session(t, reason)
+        return self._flush()
+
+    def safe_state(self) -> list[Command]:
+        """Commands that put every held output in its safe (inactive) state."""
+        return [
+            SetOutput(line.name, line.channel, False)
+            for line in self.protocol.wiring.outputs.values()
+            if not line.pulsed
+        ]
+
+    # ================================================================ closed-loop actions
+
+    def reverse(self, a: str, b: str, t: float) -> None:
+        """Swap two options' contingencies for the rest of the session (a reversal)."""
+        self._extra_swaps.append((a, b))
+        if self.block is not None:
+            self.block.swap(a, b)
+        self.reversals += 1
+        self._log(t, "block", "reversal", detail={"swap": [a, b], "now": dict(self.block.contingencies) if self.block else {}})
+
+    def switch_block(self, name: str, t: float, why: str = "rule") -> None:
+        """Leave the current block after the trial in progress; the next trial starts `name`."""
+        self._enter_block(name, t, why)
+
+    def end_after_trial(self, reason: str) -> None:
+        self._pending_end = reason
+
+    # ================================================================ internals: time
+
+    def _catch_up(self, t: float) -> None:
+        guard = 0
+        while not self.finished:
+            if t >= self._t_limit:
+                self._end_session(self._t_limit, "session time limit")
+                return
+            trial = self._trial
+            if trial is not None:
+                if t < trial.deadline:
+                    return
+                self._timeout(trial, trial.deadline)
+            else:
+                if t < self._iti_end:
+                    return
+                self._begin_trial(self._iti_end)
+            guard += 1
+            if guard > MAX_STEPS_PER_INSTANT * 10:
+                self._end_session(t, "error: protocol does not advance in time")
+                return
+
+    # ================================================================ internals: trials
+
+    def _begin_trial(self, t: float) -> None:
+        assert self.block is not None
+        type_name = self.block.next_trial_type()
+        trial = _Trial(self.trials_done + 1, self.protocol.trial_types[type_name], t)
+        self._trial = trial
+        self._iti_end = math.inf
+        self._goto(trial, trial.type.steps[0].name, t)
+
+    def _goto(self, trial: _Trial, target: str, t: float) -> None:
+        hops = 0
+        while True:
+            if trial.step_index >= 0:
+                self._apply(trial.step.on_leave, t)
+            if target == END_TRIAL:
+                self._end_trial(trial, t, interrupted=False)
+                return
+            trial.step_index = trial.type.step_index(target)
+            step = trial.step
+            trial.step_t0 = t
+            trial.steps.append((step.name, t))
+            if self.log_events:
+                self._log(t, "step", step.name, detail={"trial": trial.index})
+            self._apply(step.on_enter, t)
+            if self._trial is not trial:  # the reward cap ended the session mid-step
+                return
+            if step.draw:
+                target = self._draw_target(step)
+                hops += 1
+                if hops > MAX_STEPS_PER_INSTANT:
+                    self._end_session(t, "error: protocol loops between steps without waiting")
+                    return
+                continue
+            trial.deadline = t + self._wait_draw(trial).draw() if step.wait is not None else math.inf
+            if step.schedule is not None:
+                state = self._schedules.get(id(step))
+                if state is None:
+                    state = self._schedules[id(step)] = ScheduleState(step.schedule, self.rng)
+                state.begin(t)
+                trial.schedule = state
+            else:
+                trial.schedule = None
+            if trial.deadline <= t and step.wait is not None:
+                # zero wait: move on now, but count it against the loop guard
+                hops += 1
+                if hops > MAX_STEPS_PER_INSTANT:
+                    self._end_session(t, "error: protocol loops between steps without waiting")
+                    return
+                if step.awaits_response:
+                    trial.omission = True
+                target = step.next
+                continue
+            return
+
+    def _wait_draw(self, trial: _Trial) -> DurationDraw:
+        step = trial.step
+        key = id(step)
+        draw = self._waits.get(key)
+        if draw is None:
+            assert step.wait is not None
+            draw = self._waits[key] = DurationDraw(step.wait, self.rng)
+        return draw
+
+    def _draw_target(self, step: Step) -> str:
+        u = self.rng.random()
+        edge = 0.0
+        for target, p in step.draw:
+            edge += p
+            if u < edge:
+                return target
+        return step.draw[-1][0]
+
+    def _timeout(self, trial: _Trial, t: float) -> None:
+        step = trial.step
+        if step.awaits_response:
+            trial.omission = True
+        self._goto(trial, step.next, t)
+
+    def _respond(self, trial: _Trial, input_name: str, t: float) -> None:
+        step = trial.step
+        key = f"{step.name}.{input_name}"
+        trial.counts[key] = trial.counts.get(key, 0) + 1
+        if key not in trial.first_s:
+            trial.first_s[key] = t - trial.step_t0
+        if step.choose:
+            label = self.protocol.option_for_input(input_name)
+            if label is not None and label in step.choose:
+                self._choose(trial, step, label, input_name, t)
+                return
+        target = step.respond.get(input_name)
+        if target is not None:
+            trial.response = input_name
+            trial.latency_s = t - trial.step_t0
+            self._goto(trial, target, t)
+            return
+        if trial.schedule is not None and trial.schedule.schedule.input == input_name:
+            if trial.schedule.respond(t):
+                if trial.response is None:
+                    trial.response = input_name
+                    trial.latency_s = t - trial.step_t0
+                self._goto(trial, trial.schedule.schedule.then, t)
+
+    def _choose(self, trial: _Trial, step: Step, label: str, input_name: str, t: float) -> None:
+        assert self.block is not None
+        trial.choice = label
+        trial.response = input_name
+        trial.latency_s = t - trial.step_t0
+        trial.correct = self.block.correct(label, step.choose)
+        # Draw even when outcomes are withheld, so a probe block does not shift later draws.
+        win = self.rng.random() < self.block.contingencies[label]
+        if self.block.block.withhold_outcomes:
+            win = False
+        self._goto(trial, step.if_rewarded if win else step.if_unrewarded, t)
+
+    def _end_trial(self, trial: _Trial, t: float, interrupted: bool) -> None:
+        assert self.block is not None
+        self._trial = None
+        self.trials_done = trial.index
+        block = self.block
+        block.record(None if interrupted else trial.correct, trial.pellets)
+        ending = self._session_end_due(t)
+        iti = 0.0
+        if ending is None and not interrupted:
+            iti = self.iti_scale * self._itis[block.block.name].draw()
+        record = TrialRecord(
+            trial=trial.index, block=block.block.name, block_index=block.index,
+            trial_type=trial.type.name, t_start=trial.t_start, t_end=t, choice=trial.choice,
+            response=trial.response, latency_s=trial.latency_s, rewarded=trial.pellets > 0,
+            reward=float(trial.pellets), correct=trial.correct,
+            omission=trial.omission and trial.choice is None and trial.response is None,
+            interrupted=interrupted, iti_s=iti, steps=tuple(trial.steps),
+            counts=trial.counts, first_s=trial.first_s,
+        )  # fmt: skip
+        self._records.append(record)
+        if interrupted:
+            return
+        for observer in self.observers:
+            observer(self, record)
+        ending = ending or self._pending_end
+        if ending is not None:
+            self._end_session(t, ending)
+            return
+        if self.block is block:  # no rule switched blocks
+            finished = block.finished(t)
+            if finished is not None:
+                which, met = finished
+                if self.first_criterion_trial is None and which in PERFORMANCE_CRITERIA:
+                    self.first_criterion_trial = self.trials_done
+                nxt = block.block.next or self._following_block(block.block.name)
+                if nxt == END_SESSION:
+                    self._end_session(t, f"protocol complete ({block.block.name}: {met})")
+                    return
+                self._enter_block(nxt, t, met)
+        self._iti_end = t + iti
+        if iti <= 0:
+            self._begin_trial(t)
+
+    def _session_end_due(self, t: float) -> str | None:
+        if self._cap_reached:
+            return "reward cap reached"
+        if self.limits.max_trials is not None and self.trials_done >= self.limits.max_trials:
+            return "trial limit reached"
+        return None
+
+    def _following_block(self, name: str) -> str:
+        names = [b.name for b in self.protocol.blocks]
+        i = names.index(name)
+        return names[i + 1] if i + 1 < len(names) else END_SESSION
+
+    def _enter_block(self, name: str, t: float, why: str) -> None:
+        if self.block is not None:
+            self.block_log.append((self.block.block.name, self.block.trials, why))
+        self._blocks_entered += 1
+        block = self.protocol.block(name)
+        self.block = BlockProgress(self.protocol, block, self._blocks_entered, t, self.rng, self._extra_swaps)
+        self._records.append(
+            BlockStarted(t, name, self._blocks_entered, dict(self.block.contingencies), block.withhold_outcomes)
+        )
+        self._log(t, "block", name, detail={"why": why})
+
+    def _end_session(self, t: float, reason: str) -> None:
+        if self.finished:
+            return
+        trial = self._trial
+        if trial is not None:
+            self._end_trial(trial, t, interrupted=True)
+        self.finished = True
+        self.end_reason = reason
+        self.ended_at = t
+        if self.block is not None:
+            self.block_log.append((self.block.block.name, self.block.trials, None))
+        self._out.extend(self.safe_state())
+        self.active_outputs.clear()
+        self._records.append(SessionEnded(t, reason, self.trials_done, self.rewards))
+
+    # ================================================================ internals: outputs
+
+    def _apply(self, actions: OutputActions, t: float) -> None:
+        if not actions:
+            return
+        outputs = self.protocol.wiring.outputs
+        for name in actions.deactivate:
+            self._set(outputs[name].name, outputs[name].channel, False, t)
+        for name in actions.activate:
+            self._set(outputs[name].name, outputs[name].channel, True, t)
+        for name in actions.pulse:
+            self._pulse(name, t)
+
+    def _set(self, name: str, channel: int, active: bool, t: float) -> None:
+        if active:
+            self.active_outputs.add(name)
+        else:
+            self.active_outputs.discard(name)
+        self._out.append(SetOutput(name, channel, active))
+        if self.log_events:
+            self._records.append(EventLogged(t, "output", name, 1.0 if active else 0.0))
+
+    def _pulse(self, name: str, t: float) -> None:
+        line = self.protocol.wiring.outputs[name]
+        if line.kind == "feeder":
+            if self.block is not None and self.block.block.withhold_outcomes:
+                self._log(t, "pulse", name, detail={"withheld": "outcomes withheld in this block"})
+                return
+            if self.rewards >= self.limits.max_rewards:
+                self._cap_reached = True
+                self._log(t, "cap", name, detail={"max_rewards": self.limits.max_rewards})
+                return
+            self.rewards += 1
+            if self._trial is not None:
+                self._trial.pellets += 1
+            if self.rewards >= self.limits.max_rewards:
+                self._cap_reached = True
+        self._out.append(PulseOutput(name, line.channel, line.pulse_ms))
+        if self.log_events:
+            self._records.append(EventLogged(t, "pulse", name, float(line.pulse_ms)))
+
+    def _log(self, t: float, kind: str, name: str, detail: dict | None = None) -> None:
+        if self.log_events:
+            self._records.append(EventLogged(t, kind, name, None, detail=detail))
+
+    def _flush(self) -> list[Command]:
+        out, self._out = self._out, []
+        return out
+

@@ -1,0 +1,41 @@
+"""A box link to an emulated box living in the same process, in real time.
+
+Used by tests and as a fallback when no serial path is wanted; the emulated box is the same
+object the virtual-time rehearsal uses, only paced by the asyncio clock.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import math
+from typing import Callable
+
+from server.engine.records import Command
+
+
+class InProcessLink:
+    def __init__(self, box, clock: Callable[[], float]):
+        self.box = box
+        self.clock = clock
+        self.events: asyncio.Queue = asyncio.Queue()
+        self._wake = asyncio.Event()
+        self.connected = True
+
+    def send(self, commands: list[Command]) -> None:
+        t = self.clock()
+        for command in commands:
+            self.box.apply(command, t)
+        self._wake.set()  # the animal may now plan something sooner
+
+    async def run(self) -> None:
+        while True:
+            delay = self.box.next_time() - self.clock()
+            if delay > 0:
+                self._wake.clear()
+                try:
+                    await asyncio.wait_for(self._wake.wait(), None if math.isinf(delay) else delay)
+                except TimeoutError:
+                    pass
+                continue
+            for t, event in self.box.pop_due(self.clock()):
+                self.events.put_nowait((event, t))
