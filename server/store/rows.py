@@ -39,6 +39,16 @@ BOOL_COLUMNS = frozenset(("rewarded", "correct", "omission", "interrupted", "out
 
 SQLITE_INT_MAX = 2**63 - 1
 
+# Shared by the writer and crash recovery. OR IGNORE + the partial unique index on
+# (session_id, device_seq) drops a replayed device event.
+INSERT_EVENT = (
+    "INSERT OR IGNORE INTO events (session_id, kind, name, value, t, device_t_us, device_seq,"
+    " detail) VALUES (?, ?, ?, ?, ?, ?, ?, ?)"
+)
+END_SESSION = (
+    "UPDATE sessions SET ended_at = ?, end_reason = ?, trials = ?, rewards = ? WHERE id = ?"
+)
+
 
 def to_json(value: Any, what: str) -> str:
     """Compact JSON; numpy scalars and tuples are accepted, anything else is an error."""
@@ -49,10 +59,7 @@ def to_json(value: Any, what: str) -> str:
 
 
 def _plain(value: Any) -> Any:
-    item = getattr(value, "item", None)  # numpy scalar
-    if callable(item):
-        return item()
-    tolist = getattr(value, "tolist", None)  # numpy array
+    tolist = getattr(value, "tolist", None)  # numpy arrays and scalars
     if callable(tolist):
         return tolist()
     raise TypeError(f"{type(value).__name__} is not json serialisable")
@@ -71,6 +78,10 @@ def parse_wall_time(text: str, what: str) -> datetime:
     if moment.utcoffset() is None:
         raise StoreError(f"{what} has no UTC offset: {text!r}")
     return moment
+
+
+def iso(moment: datetime) -> str:
+    return moment.isoformat(timespec="milliseconds")
 
 
 def real(value: Any, what: str) -> float:

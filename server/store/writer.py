@@ -30,14 +30,11 @@ from server.engine.records import (
 )
 from server.store import rows
 from server.store.errors import StoreError, diagnose_path, sqlite_reason
+from server.store.recovery import close_unended
 from server.store.schema import migrate
 
 T = TypeVar("T")
 
-_INSERT_EVENT = (
-    "INSERT OR IGNORE INTO events (session_id, kind, name, value, t, device_t_us, device_seq,"
-    " detail) VALUES (?, ?, ?, ?, ?, ?, ?, ?)"
-)
 _INSERT_TRIAL = (
     f"INSERT INTO trials ({', '.join(rows.TRIAL_COLUMNS)})"
     f" VALUES ({', '.join('?' * len(rows.TRIAL_COLUMNS))})"
@@ -49,21 +46,12 @@ _INSERT_BLOCK = (
     f"INSERT INTO blocks ({', '.join(rows.BLOCK_COLUMNS)})"
     f" VALUES ({', '.join('?' * len(rows.BLOCK_COLUMNS))})"
 )
-_END_SESSION = (
-    "UPDATE sessions SET ended_at = ?, end_reason = ?, trials = ?, rewards = ? WHERE id = ?"
-)
 _UPSERT_ESTIMATE = (
     "INSERT OR REPLACE INTO estimates (session_id, trial, model, data) VALUES (?, ?, ?, ?)"
 )
 _INSERT_SESSION = (
     "INSERT INTO sessions (box, animal, protocol, protocol_path, protocol_sha256, started_at,"
     " seed, settings) VALUES (?, ?, ?, ?, ?, ?, ?, ?)"
-)
-# Latest stored time of a session, whichever table holds it.
-_LAST_T = (
-    "SELECT max(t) FROM (SELECT max(t) AS t FROM events WHERE session_id = ?1"
-    " UNION ALL SELECT max(t_end) FROM trials WHERE session_id = ?1"
-    " UNION ALL SELECT max(t_start) FROM blocks WHERE session_id = ?1)"
 )
 
 
@@ -87,10 +75,6 @@ class _Running:
 def local_now() -> datetime:
     """The default wall clock: local time with its UTC offset."""
     return datetime.now().astimezone()
-
-
-def iso(moment: datetime) -> str:
-    return moment.isoformat(timespec="milliseconds")
 
 
 class Store:
@@ -176,7 +160,7 @@ class Store:
     ) -> int:
         """Store a new session and return its id; `started_at` defaults to the wall clock now."""
         if started_at is None:
-            started_at = iso(self._wall_clock())
+            started_at = rows.iso(self._wall_clock())
         started = rows.parse_wall_time(started_at, "started_at")
         params = (
             str(box), str(animal), str(protocol),
@@ -202,7 +186,7 @@ class Store:
         if isinstance(record, EventLogged):
             self._pending.append(_Pending(
                 session_id, f"{record.kind} event of session {session_id}",
-                ((_INSERT_EVENT, rows.event_params(session_id, record)),),
+                ((rows.INSERT_EVENT, rows.event_params(session_id, record)),),
                 device_event=record.device_seq is not None,
             ))
             if len(self._pending) >= self.max_buffered and self.failure is None:
@@ -244,13 +228,13 @@ class Store:
     ) -> None:
         t = rows.real(record.t, "session end t")
         if ended_at is None:
-            ended_at = iso(running.started + timedelta(seconds=t))
+            ended_at = rows.iso(running.started + timedelta(seconds=t))
         else:
             rows.parse_wall_time(ended_at, "ended_at")
         params = (ended_at, str(record.reason), rows.integer(record.trials, "trials"),
                   rows.integer(record.rewards, "rewards"), session_id)
         self._pending.append(_Pending(
-            session_id, f"end of session {session_id}", ((_END_SESSION, params),)
+            session_id, f"end of session {session_id}", ((rows.END_SESSION, params),)
         ))
         running.ended = True
         self._commit()
@@ -276,34 +260,10 @@ class Store:
         the wall clock) is kept in a note event saying when the session was closed.
         Sessions begun by this store and still running are left alone.
         """
-        closed_at = iso(self._wall_clock()) if now_iso is None else now_iso
+        closed_at = rows.iso(self._wall_clock()) if now_iso is None else now_iso
         rows.parse_wall_time(closed_at, "now_iso")
         running_here = {sid for sid, s in self._sessions.items() if not s.ended}
-
-        def close(conn: sqlite3.Connection) -> list[int]:
-            closed = []
-            found = conn.execute(
-                "SELECT id, started_at FROM sessions WHERE end_reason IS NULL ORDER BY id"
-            ).fetchall()
-            for session_id, started_at in found:
-                if session_id in running_here:
-                    continue
-                last_t = conn.execute(_LAST_T, (session_id,)).fetchone()[0] or 0.0
-                trials, rewards = conn.execute(
-                    "SELECT count(*), coalesce(sum(rewarded), 0) FROM trials"
-                    " WHERE session_id = ?", (session_id,)
-                ).fetchone()
-                started = rows.parse_wall_time(started_at, f"started_at of session {session_id}")
-                conn.execute(_END_SESSION, (iso(started + timedelta(seconds=last_t)),
-                                            "interrupted", trials, rewards, session_id))
-                conn.execute(_INSERT_EVENT, (
-                    session_id, "note", "closed_interrupted", None, last_t, None, None,
-                    rows.to_json({"closed_at": closed_at}, "note"),
-                ))
-                closed.append(session_id)
-            return closed
-
-        return self._commit(close)
+        return self._commit(lambda conn: close_unended(conn, closed_at, running_here))
 
     # ------------------------------------------------------------------ flushing
 

@@ -1,0 +1,48 @@
+"""Closing sessions that a crash or a kill left without an end reason."""
+
+from __future__ import annotations
+
+import sqlite3
+from collections.abc import Collection
+from datetime import timedelta
+
+from server.store import rows
+
+# Latest stored time of a session, whichever table holds it.
+_LAST_T = (
+    "SELECT max(t) FROM (SELECT max(t) AS t FROM events WHERE session_id = ?1"
+    " UNION ALL SELECT max(t_end) FROM trials WHERE session_id = ?1"
+    " UNION ALL SELECT max(t_start) FROM blocks WHERE session_id = ?1)"
+)
+
+
+def close_unended(
+    conn: sqlite3.Connection, closed_at: str, running: Collection[int] = ()
+) -> list[int]:
+    """End every session without an end reason, except `running`; return the ids closed.
+
+    Runs inside the caller's transaction. ended_at is started_at plus the last stored time
+    (the best evidence of when the session stopped); trials and rewards are counted from the
+    stored trials; a note event records `closed_at`, when the closing happened.
+    """
+    closed = []
+    found = conn.execute(
+        "SELECT id, started_at FROM sessions WHERE end_reason IS NULL ORDER BY id"
+    ).fetchall()
+    for session_id, started_at in found:
+        if session_id in running:
+            continue
+        last_t = conn.execute(_LAST_T, (session_id,)).fetchone()[0] or 0.0
+        trials, rewards = conn.execute(
+            "SELECT count(*), coalesce(sum(rewarded), 0) FROM trials WHERE session_id = ?",
+            (session_id,),
+        ).fetchone()
+        started = rows.parse_wall_time(started_at, f"started_at of session {session_id}")
+        ended_at = rows.iso(started + timedelta(seconds=last_t))
+        conn.execute(rows.END_SESSION, (ended_at, "interrupted", trials, rewards, session_id))
+        conn.execute(rows.INSERT_EVENT, (
+            session_id, "note", "closed_interrupted", None, last_t, None, None,
+            rows.to_json({"closed_at": closed_at}, "note"),
+        ))
+        closed.append(session_id)
+    return closed
