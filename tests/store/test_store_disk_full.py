@@ -79,3 +79,17 @@ def test_no_session_starts_on_a_full_disk(store, begin):
             begin(box=f"rack-{n}", settings={"pad": "y" * 500})
     free_disk(store, limit)
     assert isinstance(begin(box="rack-late"), int)
+
+
+def test_close_on_a_full_disk_keeps_the_store_open_to_retry(db_path, store, begin):
+    session_id = begin()
+    limit = fill_disk(store)
+    for event in many_events(300):
+        store.write(session_id, event)
+    with pytest.raises(StoreError, match="disk is full; 300 record"):
+        store.close()
+    free_disk(store, limit)
+    store.close()
+    reader = queries.open_readonly(db_path)
+    assert len(queries.session_events(reader, session_id)) == 300
+    reader.close()
