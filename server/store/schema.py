@@ -164,7 +164,7 @@ def _refuse_unknown(conn: sqlite3.Connection, version: int, latest: int) -> None
         )
     if version == 0:
         others = conn.execute(
-            "SELECT count(*) FROM sqlite_schema WHERE name NOT LIKE 'sqlite_%'"
+            "SELECT count(*) FROM sqlite_master WHERE name NOT LIKE 'sqlite_%'"
         ).fetchone()[0]
         if others:
             raise StoreError("not a vigil database: it already holds tables of another program")
