@@ -73,9 +73,9 @@ class EmulatedBox:
         self._sensor: str | None = sensors[0].name if sensors else None
         self._head_until = -math.inf
 
-        self.pellets_waiting = 0
-        self.pellets_delivered = 0
-        self.pellets_eaten = 0
+        self._waiting = 0
+        self._delivered = 0
+        self._eaten = 0
         agent.attach(self)
 
     # ------------------------------------------------------------ driver side
@@ -157,6 +157,19 @@ class EmulatedBox:
         return self._presented[input_name]
 
     @property
+    def pellets_waiting(self) -> int:
+        """Pellets in the magazine, not yet eaten."""
+        return self._waiting
+
+    @property
+    def pellets_delivered(self) -> int:
+        return self._delivered
+
+    @property
+    def pellets_eaten(self) -> int:
+        return self._eaten
+
+    @property
     def head_in(self) -> bool:
         """The animal's head is in the magazine now."""
         return self._now < self._head_until
@@ -205,10 +218,10 @@ class EmulatedBox:
             self._head_until = now + dwell_s
             if self.magazine is not None:
                 self._beam(self.magazine, dwell_s)
-        eaten = self.pellets_waiting
+        eaten = self._waiting
         if eaten:
-            self.pellets_waiting = 0
-            self.pellets_eaten += eaten
+            self._waiting = 0
+            self._eaten += eaten
             if self._sensor is not None:
                 self._edge(now, self._fall[self._sensor])
         return eaten
@@ -243,8 +256,8 @@ class EmulatedBox:
         self.presented_operants = tuple(n for n in self._operants if self._presented[n])
 
     def _drop_pellet(self) -> None:
-        self.pellets_delivered += 1
-        self.pellets_waiting += 1
-        if self.pellets_waiting == 1 and self._sensor is not None:
+        self._delivered += 1
+        self._waiting += 1
+        if self._waiting == 1 and self._sensor is not None:
             self._edge(self._now, self._rise[self._sensor])
         self._agent.on_pellet(self._now)

@@ -6,7 +6,7 @@ import math
 
 import numpy as np
 import pytest
-from conftest import TrialLoop, new_box, two_lever_wiring
+from box_trials import TrialLoop, new_box, two_lever_wiring
 
 from hardware_stubs.agents import AGENTS, make_agent
 from hardware_stubs.emulated_box import EmulatedBox

@@ -1,4 +1,4 @@
-"""Shared pieces for emulated-box tests: a small wiring and a hand-written trial loop.
+"""Shared pieces for the emulated-box tests: a small wiring and a hand-written trial loop.
 
 The loop below is deliberately tiny and independent of the session core, so these tests
 check the emulator and the agents on their own.
@@ -10,7 +10,6 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
-import pytest
 
 from hardware_stubs.emulated_box import EmulatedBox
 from server.engine.records import PulseOutput, SetOutput
@@ -87,11 +86,6 @@ class TrialLoop:
 
     def run(self, n: int) -> list[tuple[str | None, float | None]]:
         return [self.trial(i) for i in range(n)]
-
-
-@pytest.fixture
-def wiring() -> Wiring:
-    return two_lever_wiring()
 
 
 def new_box(agent, seed: int = 7, wiring: Wiring | None = None) -> EmulatedBox:
