@@ -111,8 +111,8 @@ def test_q_update_follows_the_delta_rule():
     for i in range(4):
         loop.trial(i)
         seen.append(agent.values.get("press_west", 0.0))
-    # Q <- Q + alpha (r - Q), Q0 = 0 (Sutton & Barto 2018, eq. 2.5): rewards 1, 1, 0 give
-    # 0.3, 0.51, 0.357; the third trial's zero is only known when the next trial starts.
+    # Q <- Q + alpha (r - Q), Q0 = 0 (Sutton & Barto 2018, eq. 2.5, from memory): rewards 1, 1, 0
+    # give 0.3, 0.51, 0.357; the third trial's zero is only known when the next trial starts.
     assert seen[:2] == pytest.approx([0.3, 0.51])
     assert seen[3] == pytest.approx(0.357)
 
