@@ -11,6 +11,7 @@ resent command cannot tell which send it answers (Karn & Partridge 1987).
 
 from __future__ import annotations
 
+import statistics
 from collections import deque
 from dataclasses import dataclass
 
@@ -59,8 +60,9 @@ class ClockSync:
 
     The newest `window` samples are cut, in time order, into groups of about 1/`keep`
     samples; the fastest round trip of each group is kept, so the kept samples are both the
-    cleanest and spread over the window (which is what pins the drift). Until the kept
-    samples span `min_span_s` of device time the rate is taken as exactly 1.
+    cleanest and spread over the window (which is what pins the drift); a kept sample slower
+    than twice their median is dropped, since a midpoint can be off by up to half its round
+    trip. Until the kept samples span `min_span_s` of device time the rate is taken as 1.
     """
 
     def __init__(self, window: int = 120, keep: float = 0.25, min_span_s: float = 2.0) -> None:
@@ -82,14 +84,19 @@ class ClockSync:
         return len(self._samples)
 
     def selected(self) -> list[Sample]:
-        """The minimum-delay sample of each group of the window, in time order."""
+        """The minimum-delay sample of each group of the window, in time order, less any
+        that took over twice the median of those (a group caught in a burst of congestion)."""
         samples = list(self._samples)
+        if not samples:
+            return []
         groups = max(1, round(len(samples) * self.keep))
         size = len(samples) / groups
-        return [
+        fastest = [
             min(samples[round(g * size) : round((g + 1) * size)], key=lambda s: s.delay_s)
             for g in range(groups)
-        ] if samples else []
+        ]
+        limit = 2.0 * statistics.median(s.delay_s for s in fastest)
+        return [s for s in fastest if s.delay_s <= limit]
 
     def fit(self) -> ClockFit | None:
         """The current estimate, None before the first sample."""
