@@ -1,0 +1,189 @@
+/*
+ * Vigil reference firmware: ATmega328P board layer (16 MHz, e.g. an Uno-class board).
+ *
+ * Pin map (PROTOCOL.md channel numbers; kinds in channels.c)
+ *
+ *   inputs, active low (internal pull-up; a switch or open-collector sensor pulls to GND)
+ *     1  PD2 (D2)   left lever switch          5  PD6 (D6)   right nose-poke beam
+ *     2  PD3 (D3)   right lever switch         6  PD7 (D7)   lickometer
+ *     3  PD4 (D4)   magazine head-entry beam   7  PC4 (A4)   pellet sensor
+ *     4  PD5 (D5)   left nose-poke beam        8  PC5 (A5)   centre nose-poke beam
+ *   outputs, active high (to driver transistors or relay boards; low at reset = safe)
+ *     1  PB0 (D8)   left lever                 6  PB5 (D13)  tone gate (board LED too)
+ *     2  PB1 (D9)   right lever                7  PC0 (A0)   pellet feeder
+ *     3  PB2 (D10)  left cue light             8  PC1 (A1)   sync TTL
+ *     4  PB3 (D11)  right cue light            9  PC2 (A2)   aversive gate
+ *     5  PB4 (D12)  house light               10  PC3 (A3)   magazine light
+ *   serial: PD0 RX, PD1 TX (USB bridge), 8N1 at BAUD (default 115200)
+ *   PB3-PB5 double as the ISP programming pins: unplug their loads while programming.
+ *
+ * Timing: Timer1 runs free at F_CPU / 8 (0.5 us ticks); its overflow count gives a 32-bit
+ * microsecond clock that wraps every 2^32 us. Pin-change interrupts stamp every raw input
+ * change; the main loop debounces, times pulses, and writes lines while the transmit ring
+ * has room for a whole one, so it never waits on the UART.
+ */
+#include <avr/eeprom.h>
+#include <avr/interrupt.h>
+#include <avr/io.h>
+#include <avr/wdt.h>
+#include <util/atomic.h>
+/* 115200 baud from 16 MHz is 117647 (+2.1 %), within what UARTs tolerate at 8N1. */
+#define BAUD_TOL 3
+#include <util/setbaud.h>
+
+#include "channels.h"
+#include "vproto.h"
+
+/* Inputs whose sensor drives high when active (none on the reference box). */
+#define INPUT_ACTIVE_HIGH 0x00u
+
+static vp_device box;
+
+static volatile uint32_t timer_overflows;
+static volatile uint8_t rx_ring[64];
+static volatile uint8_t rx_head, rx_tail; /* ISR writes head, main reads tail */
+static volatile uint8_t tx_ring[256];     /* uint8_t indices wrap with the ring */
+static volatile uint8_t tx_head, tx_tail; /* main writes head, ISR reads tail */
+static uint8_t last_pind, last_pinc;
+
+/* Output channel n -> port (0 B, 1 C) in bit 4, pin in bits 0-2. */
+static const uint8_t output_pins[BOX_OUTPUTS] PROGMEM = {
+    0x00, 0x01, 0x02, 0x03, 0x04, 0x05, 0x10, 0x11, 0x12, 0x13};
+
+/* The watchdog survives a reset it caused: stop it before anything else runs. */
+void early_watchdog_off(void) __attribute__((naked, used, section(".init3")));
+void early_watchdog_off(void) {
+    MCUSR = 0;
+    wdt_disable();
+}
+
+ISR(TIMER1_OVF_vect) { timer_overflows++; }
+
+/* Microseconds since boot, mod 2^32; call with interrupts disabled. */
+static uint32_t clock_us_locked(void) {
+    uint16_t ticks = TCNT1;
+    uint32_t overflows = timer_overflows;
+    if ((TIFR1 & _BV(TOV1)) && ticks < 0x8000u) overflows++; /* overflow not yet serviced */
+    return (overflows << 15) + (ticks >> 1);
+}
+
+static uint32_t clock_us(void) {
+    uint32_t t;
+    ATOMIC_BLOCK(ATOMIC_RESTORESTATE) { t = clock_us_locked(); }
+    return t;
+}
+
+/* Bit i = input i + 1 active. */
+static uint8_t input_levels(void) {
+    uint8_t raw = (uint8_t)((PIND >> 2) | ((PINC & 0x30u) << 2));
+    return (uint8_t)(~raw ^ INPUT_ACTIVE_HIGH);
+}
+
+static void note_changes(uint8_t changed, uint8_t first_index) {
+    uint32_t now = clock_us_locked();
+    for (uint8_t i = 0; changed; i++, changed >>= 1)
+        if (changed & 1u) vp_input_changed(&box, (uint8_t)(first_index + i), now);
+}
+
+ISR(PCINT2_vect) { /* PD2..PD7 -> inputs 1..6 */
+    uint8_t pins = PIND;
+    note_changes((uint8_t)((pins ^ last_pind) >> 2), 0);
+    last_pind = pins;
+}
+
+ISR(PCINT1_vect) { /* PC4..PC5 -> inputs 7..8 */
+    uint8_t pins = PINC;
+    note_changes((uint8_t)(((pins ^ last_pinc) >> 4) & 0x03u), 6);
+    last_pinc = pins;
+}
+
+ISR(USART_RX_vect) {
+    uint8_t byte = UDR0;
+    uint8_t next = (uint8_t)((rx_head + 1) % sizeof rx_ring);
+    if (next != rx_tail) { /* a full ring drops the byte; the line's CRC then fails */
+        rx_ring[rx_head] = byte;
+        rx_head = next;
+    }
+}
+
+ISR(USART_UDRE_vect) {
+    if (tx_tail == tx_head) {
+        UCSR0B &= (uint8_t)~_BV(UDRIE0);
+        return;
+    }
+    UDR0 = tx_ring[tx_tail++];
+}
+
+static void transmit(uint8_t byte) {
+    tx_ring[tx_head++] = byte; /* the caller checked there is room */
+    UCSR0B |= _BV(UDRIE0);
+}
+
+static uint8_t tx_free(void) { return (uint8_t)(255u - (uint8_t)(tx_head - tx_tail)); }
+
+static void set_output(uint8_t channel, uint8_t on) {
+    if (channel < 1 || channel > BOX_OUTPUTS) return;
+    uint8_t pin = pgm_read_byte(&output_pins[channel - 1]);
+    uint8_t mask = (uint8_t)_BV(pin & 0x07u);
+    volatile uint8_t *port = (pin & 0x10u) ? &PORTC : &PORTB;
+    ATOMIC_BLOCK(ATOMIC_RESTORESTATE) {
+        if (on)
+            *port |= mask;
+        else
+            *port &= (uint8_t)~mask;
+    }
+}
+
+static void setup(void) {
+    DDRB |= 0x3Fu; /* PB0..PB5 outputs */
+    DDRC |= 0x0Fu; /* PC0..PC3 outputs */
+    DDRD &= (uint8_t)~0xFCu;
+    PORTD |= 0xFCu; /* pull-ups on PD2..PD7 */
+    DDRC &= (uint8_t)~0x30u;
+    PORTC |= 0x30u; /* pull-ups on PC4..PC5 */
+
+    UBRR0H = UBRRH_VALUE;
+    UBRR0L = UBRRL_VALUE;
+#if USE_2X
+    UCSR0A |= _BV(U2X0);
+#else
+    UCSR0A &= (uint8_t)~_BV(U2X0);
+#endif
+    UCSR0C = _BV(UCSZ01) | _BV(UCSZ00);
+    UCSR0B = _BV(RXEN0) | _BV(TXEN0) | _BV(RXCIE0);
+
+    TCCR1A = 0;
+    TCCR1B = _BV(CS11); /* F_CPU / 8 */
+    TIMSK1 = _BV(TOIE1);
+
+    last_pind = PIND;
+    last_pinc = PINC;
+    PCMSK2 = 0xFCu;
+    PCMSK1 = 0x30u;
+    PCICR = _BV(PCIE2) | _BV(PCIE1);
+
+    /* A boot counter in EEPROM tells the host that a restart emptied the event ring. */
+    uint16_t boot = (uint16_t)(eeprom_read_word((uint16_t *)0) + 1u);
+    eeprom_update_word((uint16_t *)0, boot);
+
+    vp_init(&box, &box_channels, set_output, boot, input_levels(), 0);
+    wdt_enable(WDTO_500MS);
+    sei();
+}
+
+int main(void) {
+    setup();
+    for (;;) {
+        wdt_reset();
+        uint32_t now = clock_us();
+        while (rx_tail != rx_head && vp_can_receive(&box)) {
+            vp_receive(&box, rx_ring[rx_tail], now);
+            rx_tail = (uint8_t)((rx_tail + 1) % sizeof rx_ring);
+        }
+        ATOMIC_BLOCK(ATOMIC_RESTORESTATE) { /* the pin-change ISRs share the debouncers */
+            vp_poll_inputs(&box, input_levels(), clock_us_locked());
+        }
+        vp_tick(&box, clock_us());
+        if (tx_free() >= VP_LINE_MAX) vp_write_next(&box, clock_us(), transmit);
+    }
+}

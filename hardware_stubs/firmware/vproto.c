@@ -1,0 +1,423 @@
+/* Vigil reference firmware: protocol core. See vproto.h and hardware_stubs/PROTOCOL.md. */
+#include "vproto.h"
+
+#include <string.h>
+
+static const char firmware_id[] VP_FLASH = VP_FIRMWARE_ID;
+static const char result_words[4][12] VP_FLASH = {"ok", "lost", "no-channel", "bad-value"};
+static const uint32_t powers_of_ten[10] VP_FLASH = {
+    1000000000UL, 100000000UL, 10000000UL, 1000000UL, 100000UL,
+    10000UL, 1000UL, 100UL, 10UL, 1UL};
+
+/* True once `now` has reached `deadline` on a wrapping 32-bit counter (half-range rule). */
+static uint8_t reached(uint32_t now, uint32_t deadline) {
+    return (int32_t)(now - deadline) >= 0;
+}
+
+/* CRC-16/CCITT-FALSE when started from 0xFFFF: poly 0x1021, MSB first, no final xor
+ * (the CRC catalogue's check value for "123456789" is 0x29B1). */
+uint16_t vp_crc16(uint16_t crc, const uint8_t *data, uint16_t len) {
+    while (len--) {
+        crc ^= (uint16_t)(*data++) << 8;
+        for (uint8_t bit = 0; bit < 8; bit++)
+            crc = (crc & 0x8000u) ? (uint16_t)((crc << 1) ^ 0x1021u) : (uint16_t)(crc << 1);
+    }
+    return crc;
+}
+
+/* ------------------------------------------------------------------ writing lines */
+
+typedef struct {
+    vp_put_fn put;
+    uint16_t crc;
+    uint8_t len;
+} line_writer;
+
+static void w_byte(line_writer *w, uint8_t c) {
+    w->crc = vp_crc16(w->crc, &c, 1);
+    w->put(c);
+    w->len++;
+}
+
+static void w_ram(line_writer *w, const char *s) {
+    while (*s) w_byte(w, (uint8_t)*s++);
+}
+
+static void w_flash(line_writer *w, const char *s) {
+    uint8_t c;
+    while ((c = VP_FLASH_BYTE(s++)) != 0) w_byte(w, c);
+}
+
+/* Decimal by repeated subtraction: far cheaper than 32-bit division on an 8-bit core. */
+static void w_u32(line_writer *w, uint32_t v) {
+    uint8_t started = 0;
+    for (uint8_t i = 0; i < 10; i++) {
+        uint32_t p = VP_FLASH_DWORD(&powers_of_ten[i]);
+        uint8_t digit = 0;
+        while (v >= p) {
+            v -= p;
+            digit++;
+        }
+        if (digit || started || i == 9) {
+            w_byte(w, (uint8_t)('0' + digit));
+            started = 1;
+        }
+    }
+}
+
+static void w_space(line_writer *w) { w_byte(w, ' '); }
+
+/* Start every line with its sequence field and verb. */
+static void w_start(line_writer *w, vp_put_fn put, uint32_t seq, const char *verb) {
+    w->put = put;
+    w->crc = 0xFFFFu;
+    w->len = 0;
+    w_u32(w, seq);
+    w_space(w);
+    w_ram(w, verb);
+}
+
+/* Close a line: " XXXX\n" with the CRC of everything written so far. */
+static uint8_t w_finish(line_writer *w) {
+    static const char hex[] = "0123456789ABCDEF";
+    uint16_t crc = w->crc;
+    w->put(' ');
+    for (int8_t shift = 12; shift >= 0; shift -= 4) w->put((uint8_t)hex[(crc >> shift) & 0xF]);
+    w->put('\n');
+    return (uint8_t)(w->len + 6);
+}
+
+static void w_channels(line_writer *w, uint8_t n, const char (*codes)[3]) {
+    if (n == 0) {
+        w_byte(w, '-');
+        return;
+    }
+    for (uint8_t i = 0; i < n; i++) {
+        if (i) w_byte(w, ',');
+        w_u32(w, (uint32_t)i + 1);
+        w_byte(w, ':');
+        w_byte(w, VP_FLASH_BYTE(&codes[i][0]));
+        w_byte(w, VP_FLASH_BYTE(&codes[i][1]));
+    }
+}
+
+/* ------------------------------------------------------------------ state */
+
+void vp_init(vp_device *d, const vp_channel_map *map, vp_output_fn set_output, uint16_t boot,
+             uint8_t input_levels, uint32_t now_us) {
+    memset(d, 0, sizeof *d);
+    d->map = map;
+    d->set_output = set_output;
+    d->boot = boot;
+    d->cursor = 1;
+    d->want_identity = 1; /* announce ourselves after every boot */
+    d->beat_due_us = now_us + VP_BEAT_US;
+    d->host_silent = 1; /* outputs start off: already safe */
+    for (uint8_t i = 0; i < map->n_inputs && i < VP_MAX_INPUTS; i++)
+        d->inputs[i].stable = (input_levels >> i) & 1u;
+    for (uint8_t ch = 1; ch <= map->n_outputs; ch++) set_output(ch, 0);
+}
+
+static uint32_t oldest_held(const vp_device *d) {
+    return d->last_seq >= VP_RING ? d->last_seq - VP_RING + 1 : 1;
+}
+
+void vp_add_event(vp_device *d, uint8_t channel, uint8_t rising, uint32_t t_us) {
+    d->last_seq++;
+    vp_event *e = &d->ring[d->last_seq & (VP_RING - 1)];
+    e->t_us = t_us;
+    e->channel_edge = (uint8_t)((channel & 0x7F) | (rising ? 0x80 : 0));
+    if (d->cursor < oldest_held(d)) d->cursor = oldest_held(d); /* never written: lost */
+}
+
+/* ------------------------------------------------------------------ inputs */
+
+void vp_input_changed(vp_device *d, uint8_t index, uint32_t when_us) {
+    if (index >= VP_MAX_INPUTS) return;
+    vp_debounce *in = &d->inputs[index];
+    if (!in->pending) {
+        in->pending = 1;
+        in->first_us = when_us;
+    }
+    in->last_us = when_us;
+}
+
+void vp_poll_inputs(vp_device *d, uint8_t levels, uint32_t now_us) {
+    for (uint8_t i = 0; i < d->map->n_inputs && i < VP_MAX_INPUTS; i++) {
+        vp_debounce *in = &d->inputs[i];
+        uint8_t level = (levels >> i) & 1u;
+        if (!in->pending) {
+            if (level != in->stable) vp_input_changed(d, i, now_us); /* a change missed */
+            continue;
+        }
+        if (!reached(now_us, in->last_us + VP_DEBOUNCE_US)) continue;
+        in->pending = 0;
+        if (level == in->stable) continue; /* a flicker that came back: no edge */
+        in->stable = level;
+        vp_add_event(d, (uint8_t)(i + 1), level, in->first_us);
+    }
+}
+
+/* ------------------------------------------------------------------ outputs */
+
+static void drive(vp_device *d, uint8_t ch, uint8_t on) {
+    uint16_t bit = (uint16_t)(1u << (ch - 1));
+    d->outputs_on = on ? (uint16_t)(d->outputs_on | bit) : (uint16_t)(d->outputs_on & ~bit);
+    d->set_output(ch, on);
+}
+
+static void all_off(vp_device *d) {
+    for (uint8_t ch = 1; ch <= d->map->n_outputs; ch++) drive(d, ch, 0);
+    d->pulsing = 0;
+}
+
+void vp_tick(vp_device *d, uint32_t now_us) {
+    if (d->pulsing) {
+        for (uint8_t ch = 1; ch <= d->map->n_outputs; ch++) {
+            uint16_t bit = (uint16_t)(1u << (ch - 1));
+            if ((d->pulsing & bit) && reached(now_us, d->pulse_end_us[ch - 1])) {
+                d->pulsing &= (uint16_t)~bit;
+                drive(d, ch, 0);
+            }
+        }
+    }
+    if (!d->host_silent && reached(now_us, d->host_seen_us + VP_HOST_SILENCE_US)) {
+        d->host_silent = 1;
+        all_off(d);
+    }
+}
+
+/* ------------------------------------------------------------------ receiving */
+
+uint8_t vp_can_receive(const vp_device *d) { return d->ack_count < VP_ACK_QUEUE; }
+
+static void queue_ack(vp_device *d, uint32_t id, uint8_t result, uint32_t value, uint8_t before) {
+    vp_pending_ack *a = &d->acks[(d->ack_head + d->ack_count) % VP_ACK_QUEUE];
+    a->id = id;
+    a->result = result;
+    a->value = value;
+    a->before = before;
+    d->ack_count++;
+}
+
+/* Strict decimal: digits only, no leading zero, at most 2^32 - 1. Returns 0 when not. */
+static uint8_t parse_u32(const char *s, uint8_t len, uint32_t *out) {
+    if (len == 0 || len > 10 || (s[0] == '0' && len > 1)) return 0;
+    uint32_t v = 0;
+    for (uint8_t i = 0; i < len; i++) {
+        uint8_t digit = (uint8_t)(s[i] - '0');
+        if (digit > 9) return 0;
+        if (v > 429496729UL || (v == 429496729UL && digit > 5)) return 0;
+        v = v * 10 + digit;
+    }
+    *out = v;
+    return 1;
+}
+
+static uint8_t is_word(const char *s, uint8_t len, const char *word) {
+    return strlen(word) == len && memcmp(s, word, len) == 0;
+}
+
+static uint8_t hex_digit(char c) {
+    if (c >= '0' && c <= '9') return (uint8_t)(c - '0');
+    if (c >= 'A' && c <= 'F') return (uint8_t)(c - 'A' + 10);
+    return 0xFF;
+}
+
+static const vp_memo *remembered(const vp_device *d, uint32_t id, uint16_t crc) {
+    for (uint8_t i = 0; i < VP_MEMORY; i++)
+        if (d->memo[i].id == id && d->memo[i].crc == crc) return &d->memo[i];
+    return 0;
+}
+
+static void remember(vp_device *d, uint32_t id, uint16_t crc, uint8_t result) {
+    vp_memo *m = &d->memo[d->memo_next];
+    m->id = id;
+    m->crc = crc;
+    m->result = result;
+    d->memo_next = (uint8_t)((d->memo_next + 1) % VP_MEMORY);
+}
+
+/* set / pulse: carried out once per (id, line CRC); repeats only get their ack again. */
+static uint8_t actuate(vp_device *d, uint8_t pulse, uint32_t ch, uint32_t arg, uint32_t now_us) {
+    if (ch < 1 || ch > d->map->n_outputs) return VP_NO_CHANNEL;
+    uint16_t bit = (uint16_t)(1u << (ch - 1));
+    if (pulse) {
+        d->pulse_end_us[ch - 1] = now_us + arg * 1000UL;
+        d->pulsing |= bit;
+        drive(d, (uint8_t)ch, 1);
+    } else {
+        d->pulsing &= (uint16_t)~bit;
+        drive(d, (uint8_t)ch, (uint8_t)arg);
+    }
+    return VP_OK;
+}
+
+static void replay(vp_device *d, uint32_t id, uint32_t from) {
+    uint32_t oldest = oldest_held(d);
+    if (from > d->last_seq + 1) {
+        queue_ack(d, id, VP_BAD_VALUE, d->last_seq + 1, 0);
+    } else if (from < oldest) {
+        d->cursor = oldest;
+        queue_ack(d, id, VP_LOST, oldest, 0);
+    } else {
+        d->cursor = from;
+        queue_ack(d, id, VP_OK, from, 0);
+    }
+}
+
+/* A whole line (no LF) is in d->rx: check it, then carry it out. Returns 0 if rejected. */
+static uint8_t take_line(vp_device *d, uint32_t now_us) {
+    uint8_t n = d->rx_len;
+    if (n && d->rx[n - 1] == '\r') n--;
+    if (n < 6) return 0;
+    for (uint8_t i = 0; i < n; i++)
+        if (d->rx[i] < 0x20 || d->rx[i] > 0x7E) return 0;
+    /* " XXXX" at the end, CRC over everything before the space. */
+    if (d->rx[n - 5] != ' ') return 0;
+    uint16_t crc_sent = 0;
+    for (uint8_t i = n - 4; i < n; i++) {
+        uint8_t h = hex_digit(d->rx[i]);
+        if (h > 15) return 0;
+        crc_sent = (uint16_t)((crc_sent << 4) | h);
+    }
+    uint8_t body = (uint8_t)(n - 5);
+    uint16_t crc = vp_crc16(0xFFFFu, (const uint8_t *)d->rx, body);
+    if (crc != crc_sent) return 0;
+
+    /* Fields: id verb [a [b]] separated by exactly one space. */
+    const char *field[4];
+    uint8_t flen[4], count = 0, start = 0;
+    for (uint8_t i = 0; i <= body; i++) {
+        if (i == body || d->rx[i] == ' ') {
+            if (i == start || count == 4) return 0;
+            field[count] = &d->rx[start];
+            flen[count++] = (uint8_t)(i - start);
+            start = (uint8_t)(i + 1);
+        }
+    }
+    uint32_t id, a = 0, b = 0;
+    if (count < 3 || !parse_u32(field[0], flen[0], &id) || id == 0) return 0;
+
+    if (is_word(field[1], flen[1], "set") || is_word(field[1], flen[1], "pulse")) {
+        uint8_t pulse = field[1][0] == 'p';
+        if (count != 4 || !parse_u32(field[2], flen[2], &a) || a > 255) return 0;
+        if (pulse) {
+            if (!parse_u32(field[3], flen[3], &b) || b < 1 || b > 65535UL) return 0;
+        } else {
+            if (flen[3] != 1 || (field[3][0] != '0' && field[3][0] != '1')) return 0;
+            b = (uint32_t)(field[3][0] - '0');
+        }
+        const vp_memo *m = remembered(d, id, crc);
+        uint8_t result = m ? m->result : actuate(d, pulse, a, b, now_us);
+        if (!m) remember(d, id, crc, result);
+        queue_ack(d, id, result, 0, 0);
+    } else if (is_word(field[1], flen[1], "ask")) {
+        if (count != 3 || flen[2] > 8) return 0;
+        for (uint8_t i = 0; i < flen[2]; i++)
+            if (field[2][i] < 'a' || field[2][i] > 'z') return 0;
+        if (is_word(field[2], flen[2], "iam"))
+            queue_ack(d, id, VP_OK, 0, 'i');
+        else if (is_word(field[2], flen[2], "beat"))
+            queue_ack(d, id, VP_OK, 0, 'b');
+        else
+            queue_ack(d, id, VP_BAD_VALUE, 0, 0);
+    } else if (is_word(field[1], flen[1], "replay")) {
+        if (count != 3 || !parse_u32(field[2], flen[2], &a) || a == 0) return 0;
+        replay(d, id, a);
+    } else {
+        return 0; /* unknown verb, or a device verb echoed back */
+    }
+    d->host_seen_us = now_us;
+    d->host_silent = 0;
+    return 1;
+}
+
+void vp_receive(vp_device *d, uint8_t byte, uint32_t now_us) {
+    if (byte != '\n') {
+        if (d->rx_len < VP_RX_MAX)
+            d->rx[d->rx_len++] = (char)byte;
+        else
+            d->rx_overlong = 1; /* keep dropping until the LF */
+        return;
+    }
+    if (d->rx_overlong || !take_line(d, now_us)) d->rx_rejected++;
+    d->rx_len = 0;
+    d->rx_overlong = 0;
+}
+
+/* ------------------------------------------------------------------ writing */
+
+static uint8_t write_identity(vp_device *d, vp_put_fn put) {
+    line_writer w;
+    w_start(&w, put, d->cursor - 1, "iam");
+    w_space(&w);
+    w_flash(&w, firmware_id);
+    w_space(&w);
+    w_u32(&w, VP_PROTOCOL_VERSION);
+    w_space(&w);
+    w_u32(&w, d->boot);
+    w_space(&w);
+    w_channels(&w, d->map->n_inputs, d->map->input_codes);
+    w_space(&w);
+    w_channels(&w, d->map->n_outputs, d->map->output_codes);
+    return w_finish(&w);
+}
+
+static uint8_t write_beat(vp_device *d, uint32_t now_us, vp_put_fn put) {
+    line_writer w;
+    d->beat_due_us = now_us + VP_BEAT_US;
+    w_start(&w, put, d->cursor - 1, "beat");
+    w_space(&w);
+    w_u32(&w, now_us);
+    w_space(&w);
+    w_u32(&w, d->boot);
+    w_space(&w);
+    w_u32(&w, d->rx_rejected);
+    return w_finish(&w);
+}
+
+uint8_t vp_write_next(vp_device *d, uint32_t now_us, vp_put_fn put) {
+    line_writer w;
+    if (d->ack_count) {
+        vp_pending_ack *a = &d->acks[d->ack_head];
+        if (a->before == 'i') {
+            a->before = 0;
+            return write_identity(d, put);
+        }
+        if (a->before == 'b') {
+            a->before = 0;
+            return write_beat(d, now_us, put);
+        }
+        w_start(&w, put, d->cursor - 1, "ack");
+        w_space(&w);
+        w_u32(&w, a->id);
+        w_space(&w);
+        w_flash(&w, result_words[a->result]);
+        w_space(&w);
+        w_u32(&w, now_us);
+        w_space(&w);
+        w_u32(&w, a->value);
+        d->ack_head = (uint8_t)((d->ack_head + 1) % VP_ACK_QUEUE);
+        d->ack_count--;
+        return w_finish(&w);
+    }
+    if (d->want_identity) {
+        d->want_identity = 0;
+        return write_identity(d, put);
+    }
+    if (reached(now_us, d->beat_due_us)) return write_beat(d, now_us, put);
+    if (d->cursor <= d->last_seq) {
+        const vp_event *e = &d->ring[d->cursor & (VP_RING - 1)];
+        w_start(&w, put, d->cursor, "edge");
+        w_space(&w);
+        w_u32(&w, e->channel_edge & 0x7Fu);
+        w_space(&w);
+        w_byte(&w, (e->channel_edge & 0x80u) ? '+' : '-');
+        w_space(&w);
+        w_u32(&w, e->t_us);
+        d->cursor++;
+        return w_finish(&w);
+    }
+    return 0;
+}
