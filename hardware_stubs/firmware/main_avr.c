@@ -22,6 +22,13 @@
  * change; the main loop debounces, times pulses, and writes lines while the transmit ring
  * has room for a whole one, so it never waits on the UART.
  */
+#ifndef F_CPU
+#define F_CPU 16000000UL
+#endif
+#ifndef BAUD
+#define BAUD 115200
+#endif
+
 #include <avr/eeprom.h>
 #include <avr/interrupt.h>
 #include <avr/io.h>

@@ -5,99 +5,24 @@
 
 static const char firmware_id[] VP_FLASH = VP_FIRMWARE_ID;
 static const char result_words[4][12] VP_FLASH = {"ok", "lost", "no-channel", "bad-value"};
-static const uint32_t powers_of_ten[10] VP_FLASH = {
-    1000000000UL, 100000000UL, 10000000UL, 1000000UL, 100000UL,
-    10000UL, 1000UL, 100UL, 10UL, 1UL};
 
 /* True once `now` has reached `deadline` on a wrapping 32-bit counter (half-range rule). */
 static uint8_t reached(uint32_t now, uint32_t deadline) {
     return (int32_t)(now - deadline) >= 0;
 }
 
-/* CRC-16/CCITT-FALSE when started from 0xFFFF: poly 0x1021, MSB first, no final xor
- * (the CRC catalogue's check value for "123456789" is 0x29B1). */
-uint16_t vp_crc16(uint16_t crc, const uint8_t *data, uint16_t len) {
-    while (len--) {
-        crc ^= (uint16_t)(*data++) << 8;
-        for (uint8_t bit = 0; bit < 8; bit++)
-            crc = (crc & 0x8000u) ? (uint16_t)((crc << 1) ^ 0x1021u) : (uint16_t)(crc << 1);
-    }
-    return crc;
-}
-
-/* ------------------------------------------------------------------ writing lines */
-
-typedef struct {
-    vp_put_fn put;
-    uint16_t crc;
-    uint8_t len;
-} line_writer;
-
-static void w_byte(line_writer *w, uint8_t c) {
-    w->crc = vp_crc16(w->crc, &c, 1);
-    w->put(c);
-    w->len++;
-}
-
-static void w_ram(line_writer *w, const char *s) {
-    while (*s) w_byte(w, (uint8_t)*s++);
-}
-
-static void w_flash(line_writer *w, const char *s) {
-    uint8_t c;
-    while ((c = VP_FLASH_BYTE(s++)) != 0) w_byte(w, c);
-}
-
-/* Decimal by repeated subtraction: far cheaper than 32-bit division on an 8-bit core. */
-static void w_u32(line_writer *w, uint32_t v) {
-    uint8_t started = 0;
-    for (uint8_t i = 0; i < 10; i++) {
-        uint32_t p = VP_FLASH_DWORD(&powers_of_ten[i]);
-        uint8_t digit = 0;
-        while (v >= p) {
-            v -= p;
-            digit++;
-        }
-        if (digit || started || i == 9) {
-            w_byte(w, (uint8_t)('0' + digit));
-            started = 1;
-        }
-    }
-}
-
-static void w_space(line_writer *w) { w_byte(w, ' '); }
-
-/* Start every line with its sequence field and verb. */
-static void w_start(line_writer *w, vp_put_fn put, uint32_t seq, const char *verb) {
-    w->put = put;
-    w->crc = 0xFFFFu;
-    w->len = 0;
-    w_u32(w, seq);
-    w_space(w);
-    w_ram(w, verb);
-}
-
-/* Close a line: " XXXX\n" with the CRC of everything written so far. */
-static uint8_t w_finish(line_writer *w) {
-    static const char hex[] = "0123456789ABCDEF";
-    uint16_t crc = w->crc;
-    w->put(' ');
-    for (int8_t shift = 12; shift >= 0; shift -= 4) w->put((uint8_t)hex[(crc >> shift) & 0xF]);
-    w->put('\n');
-    return (uint8_t)(w->len + 6);
-}
-
-static void w_channels(line_writer *w, uint8_t n, const char (*codes)[3]) {
+static void write_channels(vl_writer *w, uint8_t n, const char (*codes)[3]) {
+    vl_space(w);
     if (n == 0) {
-        w_byte(w, '-');
+        vl_byte(w, '-');
         return;
     }
     for (uint8_t i = 0; i < n; i++) {
-        if (i) w_byte(w, ',');
-        w_u32(w, (uint32_t)i + 1);
-        w_byte(w, ':');
-        w_byte(w, VP_FLASH_BYTE(&codes[i][0]));
-        w_byte(w, VP_FLASH_BYTE(&codes[i][1]));
+        if (i) vl_byte(w, ',');
+        vl_u32(w, (uint32_t)i + 1);
+        vl_byte(w, ':');
+        vl_byte(w, VP_FLASH_BYTE(&codes[i][0]));
+        vl_byte(w, VP_FLASH_BYTE(&codes[i][1]));
     }
 }
 
@@ -200,30 +125,6 @@ static void queue_ack(vp_device *d, uint32_t id, uint8_t result, uint32_t value,
     d->ack_count++;
 }
 
-/* Strict decimal: digits only, no leading zero, at most 2^32 - 1. Returns 0 when not. */
-static uint8_t parse_u32(const char *s, uint8_t len, uint32_t *out) {
-    if (len == 0 || len > 10 || (s[0] == '0' && len > 1)) return 0;
-    uint32_t v = 0;
-    for (uint8_t i = 0; i < len; i++) {
-        uint8_t digit = (uint8_t)(s[i] - '0');
-        if (digit > 9) return 0;
-        if (v > 429496729UL || (v == 429496729UL && digit > 5)) return 0;
-        v = v * 10 + digit;
-    }
-    *out = v;
-    return 1;
-}
-
-static uint8_t is_word(const char *s, uint8_t len, const char *word) {
-    return strlen(word) == len && memcmp(s, word, len) == 0;
-}
-
-static uint8_t hex_digit(char c) {
-    if (c >= '0' && c <= '9') return (uint8_t)(c - '0');
-    if (c >= 'A' && c <= 'F') return (uint8_t)(c - 'A' + 10);
-    return 0xFF;
-}
-
 static const vp_memo *remembered(const vp_device *d, uint32_t id, uint16_t crc) {
     for (uint8_t i = 0; i < VP_MEMORY; i++)
         if (d->memo[i].id == id && d->memo[i].crc == crc) return &d->memo[i];
@@ -277,7 +178,7 @@ static uint8_t take_line(vp_device *d, uint32_t now_us) {
     if (d->rx[n - 5] != ' ') return 0;
     uint16_t crc_sent = 0;
     for (uint8_t i = n - 4; i < n; i++) {
-        uint8_t h = hex_digit(d->rx[i]);
+        uint8_t h = vl_hex_digit(d->rx[i]);
         if (h > 15) return 0;
         crc_sent = (uint16_t)((crc_sent << 4) | h);
     }
@@ -297,13 +198,13 @@ static uint8_t take_line(vp_device *d, uint32_t now_us) {
         }
     }
     uint32_t id, a = 0, b = 0;
-    if (count < 3 || !parse_u32(field[0], flen[0], &id) || id == 0) return 0;
+    if (count < 3 || !vl_parse_u32(field[0], flen[0], &id) || id == 0) return 0;
 
-    if (is_word(field[1], flen[1], "set") || is_word(field[1], flen[1], "pulse")) {
+    if (vl_is_word(field[1], flen[1], "set") || vl_is_word(field[1], flen[1], "pulse")) {
         uint8_t pulse = field[1][0] == 'p';
-        if (count != 4 || !parse_u32(field[2], flen[2], &a) || a > 255) return 0;
+        if (count != 4 || !vl_parse_u32(field[2], flen[2], &a) || a > 255) return 0;
         if (pulse) {
-            if (!parse_u32(field[3], flen[3], &b) || b < 1 || b > 65535UL) return 0;
+            if (!vl_parse_u32(field[3], flen[3], &b) || b < 1 || b > 65535UL) return 0;
         } else {
             if (flen[3] != 1 || (field[3][0] != '0' && field[3][0] != '1')) return 0;
             b = (uint32_t)(field[3][0] - '0');
@@ -312,18 +213,18 @@ static uint8_t take_line(vp_device *d, uint32_t now_us) {
         uint8_t result = m ? m->result : actuate(d, pulse, a, b, now_us);
         if (!m) remember(d, id, crc, result);
         queue_ack(d, id, result, 0, 0);
-    } else if (is_word(field[1], flen[1], "ask")) {
+    } else if (vl_is_word(field[1], flen[1], "ask")) {
         if (count != 3 || flen[2] > 8) return 0;
         for (uint8_t i = 0; i < flen[2]; i++)
             if (field[2][i] < 'a' || field[2][i] > 'z') return 0;
-        if (is_word(field[2], flen[2], "iam"))
+        if (vl_is_word(field[2], flen[2], "iam"))
             queue_ack(d, id, VP_OK, 0, 'i');
-        else if (is_word(field[2], flen[2], "beat"))
+        else if (vl_is_word(field[2], flen[2], "beat"))
             queue_ack(d, id, VP_OK, 0, 'b');
         else
             queue_ack(d, id, VP_BAD_VALUE, 0, 0);
-    } else if (is_word(field[1], flen[1], "replay")) {
-        if (count != 3 || !parse_u32(field[2], flen[2], &a) || a == 0) return 0;
+    } else if (vl_is_word(field[1], flen[1], "replay")) {
+        if (count != 3 || !vl_parse_u32(field[2], flen[2], &a) || a == 0) return 0;
         replay(d, id, a);
     } else {
         return 0; /* unknown verb, or a device verb echoed back */
@@ -349,36 +250,29 @@ void vp_receive(vp_device *d, uint8_t byte, uint32_t now_us) {
 /* ------------------------------------------------------------------ writing */
 
 static uint8_t write_identity(vp_device *d, vp_put_fn put) {
-    line_writer w;
-    w_start(&w, put, d->cursor - 1, "iam");
-    w_space(&w);
-    w_flash(&w, firmware_id);
-    w_space(&w);
-    w_u32(&w, VP_PROTOCOL_VERSION);
-    w_space(&w);
-    w_u32(&w, d->boot);
-    w_space(&w);
-    w_channels(&w, d->map->n_inputs, d->map->input_codes);
-    w_space(&w);
-    w_channels(&w, d->map->n_outputs, d->map->output_codes);
-    return w_finish(&w);
+    vl_writer w;
+    vl_start(&w, put, d->cursor - 1, "iam");
+    vl_field_flash(&w, firmware_id);
+    vl_field_u32(&w, VP_PROTOCOL_VERSION);
+    vl_field_u32(&w, d->boot);
+    write_channels(&w, d->map->n_inputs, d->map->input_codes);
+    write_channels(&w, d->map->n_outputs, d->map->output_codes);
+    return vl_finish(&w);
 }
 
 static uint8_t write_beat(vp_device *d, uint32_t now_us, vp_put_fn put) {
-    line_writer w;
+    vl_writer w;
     d->beat_due_us = now_us + VP_BEAT_US;
-    w_start(&w, put, d->cursor - 1, "beat");
-    w_space(&w);
-    w_u32(&w, now_us);
-    w_space(&w);
-    w_u32(&w, d->boot);
-    w_space(&w);
-    w_u32(&w, d->rx_rejected);
-    return w_finish(&w);
+    vl_start(&w, put, d->cursor - 1, "beat");
+    vl_field_u32(&w, now_us);
+    vl_field_u32(&w, d->boot);
+    vl_field_u32(&w, d->rx_rejected);
+    return vl_finish(&w);
 }
 
+/* Order: a query's line, then acks, the boot identity, a due beat, then events in order. */
 uint8_t vp_write_next(vp_device *d, uint32_t now_us, vp_put_fn put) {
-    line_writer w;
+    vl_writer w;
     if (d->ack_count) {
         vp_pending_ack *a = &d->acks[d->ack_head];
         if (a->before == 'i') {
@@ -389,18 +283,14 @@ uint8_t vp_write_next(vp_device *d, uint32_t now_us, vp_put_fn put) {
             a->before = 0;
             return write_beat(d, now_us, put);
         }
-        w_start(&w, put, d->cursor - 1, "ack");
-        w_space(&w);
-        w_u32(&w, a->id);
-        w_space(&w);
-        w_flash(&w, result_words[a->result]);
-        w_space(&w);
-        w_u32(&w, now_us);
-        w_space(&w);
-        w_u32(&w, a->value);
+        vl_start(&w, put, d->cursor - 1, "ack");
+        vl_field_u32(&w, a->id);
+        vl_field_flash(&w, result_words[a->result]);
+        vl_field_u32(&w, now_us);
+        vl_field_u32(&w, a->value);
         d->ack_head = (uint8_t)((d->ack_head + 1) % VP_ACK_QUEUE);
         d->ack_count--;
-        return w_finish(&w);
+        return vl_finish(&w);
     }
     if (d->want_identity) {
         d->want_identity = 0;
@@ -409,15 +299,13 @@ uint8_t vp_write_next(vp_device *d, uint32_t now_us, vp_put_fn put) {
     if (reached(now_us, d->beat_due_us)) return write_beat(d, now_us, put);
     if (d->cursor <= d->last_seq) {
         const vp_event *e = &d->ring[d->cursor & (VP_RING - 1)];
-        w_start(&w, put, d->cursor, "edge");
-        w_space(&w);
-        w_u32(&w, e->channel_edge & 0x7Fu);
-        w_space(&w);
-        w_byte(&w, (e->channel_edge & 0x80u) ? '+' : '-');
-        w_space(&w);
-        w_u32(&w, e->t_us);
+        vl_start(&w, put, d->cursor, "edge");
+        vl_field_u32(&w, e->channel_edge & 0x7Fu);
+        vl_space(&w);
+        vl_byte(&w, (e->channel_edge & 0x80u) ? '+' : '-');
+        vl_field_u32(&w, e->t_us);
         d->cursor++;
-        return w_finish(&w);
+        return vl_finish(&w);
     }
     return 0;
 }

@@ -12,16 +12,7 @@
 
 #include <stdint.h>
 
-#ifdef __AVR__
-#include <avr/pgmspace.h>
-#define VP_FLASH PROGMEM
-#define VP_FLASH_BYTE(p) pgm_read_byte(p)
-#define VP_FLASH_DWORD(p) pgm_read_dword(p)
-#else
-#define VP_FLASH
-#define VP_FLASH_BYTE(p) (*(const uint8_t *)(p))
-#define VP_FLASH_DWORD(p) (*(const uint32_t *)(p))
-#endif
+#include "vline.h"
 
 #define VP_PROTOCOL_VERSION 1
 #define VP_FIRMWARE_ID "vigil-ref-1.0"
@@ -49,7 +40,6 @@ typedef struct {
 } vp_channel_map;
 
 typedef void (*vp_output_fn)(uint8_t channel, uint8_t on);
-typedef void (*vp_put_fn)(uint8_t byte);
 
 typedef struct {
     uint32_t t_us;
@@ -106,8 +96,6 @@ typedef struct {
 
     vp_debounce inputs[VP_MAX_INPUTS];
 } vp_device;
-
-uint16_t vp_crc16(uint16_t crc, const uint8_t *data, uint16_t len);
 
 void vp_init(vp_device *d, const vp_channel_map *map, vp_output_fn set_output, uint16_t boot,
              uint8_t input_levels, uint32_t now_us);
