@@ -9,7 +9,8 @@ from __future__ import annotations
 import binascii
 import re
 from collections import Counter
-from typing import Callable, Literal
+from collections.abc import Callable
+from typing import Literal
 
 from server.link.messages import (
     INPUT_KIND_CODES,
@@ -119,7 +120,12 @@ def _parse_edge(p: list[bytes]) -> Edge | None:
 def _parse_beat(p: list[bytes]) -> Beat | None:
     if len(p) != 5:
         return None
-    seq, us, boot, bad = _num(p[0], U32_MAX), _num(p[2], U32_MAX), _num(p[3], U16_MAX), _num(p[4], U32_MAX)
+    seq, us, boot, bad = (
+        _num(p[0], U32_MAX),
+        _num(p[2], U32_MAX),
+        _num(p[3], U16_MAX),
+        _num(p[4], U32_MAX),
+    )
     if seq < 0 or us < 0 or boot < 0 or bad < 0:
         return None
     return Beat(seq, us, boot, bad)
@@ -128,7 +134,12 @@ def _parse_beat(p: list[bytes]) -> Beat | None:
 def _parse_ack(p: list[bytes]) -> Ack | None:
     if len(p) != 6 or not _RESULT.fullmatch(p[3]):
         return None
-    seq, cid, us, value = _num(p[0], U32_MAX), _num(p[2], U32_MAX), _num(p[4], U32_MAX), _num(p[5], U32_MAX)
+    seq, cid, us, value = (
+        _num(p[0], U32_MAX),
+        _num(p[2], U32_MAX),
+        _num(p[4], U32_MAX),
+        _num(p[5], U32_MAX),
+    )
     if seq < 0 or cid < 1 or us < 0 or value < 0:
         return None
     return Ack(seq, cid, p[3].decode(), us, value)
@@ -303,59 +314,61 @@ def _channel_list(channels: tuple[Channel, ...], codes: dict[str, str]) -> str:
     return ",".join(items)
 
 
+def _u(name: str, value: int, lo: int = 0, hi: int = U32_MAX) -> str:
+    return str(_check(name, value, lo, hi))
+
+
 def _body_identity(m: Identity) -> str:
-    return (
-        f"{_check('seq', m.seq, 0, U32_MAX)} iam {_check_token('firmware id', m.firmware, _FIRMWARE)} "
-        f"{_check('version', m.version, 1, VERSION_MAX)} {_check('boot', m.boot, 0, U16_MAX)} "
-        f"{_channel_list(m.inputs, INPUT_KIND_CODES)} {_channel_list(m.outputs, OUTPUT_KIND_CODES)}"
-    )
+    return " ".join((
+        _u("seq", m.seq), "iam", _check_token("firmware id", m.firmware, _FIRMWARE),
+        _u("version", m.version, 1, VERSION_MAX), _u("boot", m.boot, 0, U16_MAX),
+        _channel_list(m.inputs, INPUT_KIND_CODES), _channel_list(m.outputs, OUTPUT_KIND_CODES),
+    ))  # fmt: skip
 
 
 def _body_edge(m: Edge) -> str:
-    return (
-        f"{_check('seq', m.seq, 1, U32_MAX)} edge {_check('channel', m.channel, 0, CHANNEL_MAX)} "
-        f"{'+' if m.rising else '-'} {_check('device_us', m.device_us, 0, U32_MAX)}"
-    )
+    return " ".join((
+        _u("seq", m.seq, 1), "edge", _u("channel", m.channel, 0, CHANNEL_MAX),
+        "+" if m.rising else "-", _u("device_us", m.device_us),
+    ))  # fmt: skip
 
 
 def _body_beat(m: Beat) -> str:
-    return (
-        f"{_check('seq', m.seq, 0, U32_MAX)} beat {_check('device_us', m.device_us, 0, U32_MAX)} "
-        f"{_check('boot', m.boot, 0, U16_MAX)} {_check('rx_rejected', m.rx_rejected, 0, U32_MAX)}"
-    )
+    return " ".join((
+        _u("seq", m.seq), "beat", _u("device_us", m.device_us), _u("boot", m.boot, 0, U16_MAX),
+        _u("rx_rejected", m.rx_rejected),
+    ))  # fmt: skip
 
 
 def _body_ack(m: Ack) -> str:
-    return (
-        f"{_check('seq', m.seq, 0, U32_MAX)} ack {_check('command id', m.command_id, 1, U32_MAX)} "
-        f"{_check_token('result', m.result, _RESULT)} {_check('device_us', m.device_us, 0, U32_MAX)} "
-        f"{_check('value', m.value, 0, U32_MAX)}"
-    )
+    return " ".join((
+        _u("seq", m.seq), "ack", _u("command id", m.command_id, 1),
+        _check_token("result", m.result, _RESULT), _u("device_us", m.device_us),
+        _u("value", m.value),
+    ))  # fmt: skip
 
 
 def _body_drive(m: DriveCommand) -> str:
-    return (
-        f"{_check('command id', m.command_id, 1, U32_MAX)} set "
-        f"{_check('channel', m.channel, 0, CHANNEL_MAX)} {'1' if m.on else '0'}"
-    )
+    return " ".join((
+        _u("command id", m.command_id, 1), "set", _u("channel", m.channel, 0, CHANNEL_MAX),
+        "1" if m.on else "0",
+    ))  # fmt: skip
 
 
 def _body_pulse(m: PulseCommand) -> str:
-    return (
-        f"{_check('command id', m.command_id, 1, U32_MAX)} pulse "
-        f"{_check('channel', m.channel, 0, CHANNEL_MAX)} {_check('pulse ms', m.ms, 1, U16_MAX)}"
-    )
+    return " ".join((
+        _u("command id", m.command_id, 1), "pulse", _u("channel", m.channel, 0, CHANNEL_MAX),
+        _u("pulse ms", m.ms, 1, U16_MAX),
+    ))  # fmt: skip
 
 
 def _body_query(m: QueryCommand) -> str:
-    return f"{_check('command id', m.command_id, 1, U32_MAX)} ask {_check_token('topic', m.topic, _TOPIC)}"
+    topic = _check_token("topic", m.topic, _TOPIC)
+    return " ".join((_u("command id", m.command_id, 1), "ask", topic))
 
 
 def _body_replay(m: ReplayCommand) -> str:
-    return (
-        f"{_check('command id', m.command_id, 1, U32_MAX)} replay "
-        f"{_check('replay seq', m.from_seq, 1, U32_MAX)}"
-    )
+    return " ".join((_u("command id", m.command_id, 1), "replay", _u("replay seq", m.from_seq, 1)))
 
 
 _BODIES: dict[type, Callable[..., str]] = {

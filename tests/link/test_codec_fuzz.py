@@ -51,7 +51,9 @@ def random_bytes(rng, n, lo, hi, alphabet=None) -> list[bytes]:
 def damaged(rng, lines: list[bytes]) -> list[bytes]:
     """One byte changed to another printable byte: a CRC-16 catches every such error."""
     out = []
-    for line, pos, new in zip(lines, rng.integers(0, 10**6, len(lines)), rng.choice(PRINTABLE, len(lines))):
+    for line, pos, new in zip(
+        lines, rng.integers(0, 10**6, len(lines)), rng.choice(PRINTABLE, len(lines))
+    ):
         pos = int(pos) % len(line)
         if line[pos] == new:
             new = 0x21 if new != 0x21 else 0x22
@@ -60,7 +62,9 @@ def damaged(rng, lines: list[bytes]) -> list[bytes]:
 
 
 def truncated(rng, lines: list[bytes]) -> list[bytes]:
-    return [ln[: int(k) % (len(ln) - 1) + 1] for ln, k in zip(lines, rng.integers(0, 10**6, len(lines)))]
+    return [
+        ln[: int(k) % (len(ln) - 1) + 1] for ln, k in zip(lines, rng.integers(0, 10**6, len(lines)))
+    ]
 
 
 def right_crc_wrong_grammar(rng, lines: list[bytes]) -> list[bytes]:
@@ -115,7 +119,15 @@ def test_hundred_thousand_bad_lines_are_all_counted_and_none_accepted():
     assert decoder.rejected_total == LINES
     assert set(decoder.rejected) <= set(REASONS)
     # Every layer of defence was exercised, not only the CRC.
-    for reason in ("empty", "overlong", "non_ascii", "no_crc", "bad_crc", "bad_syntax", "unknown_verb"):
+    for reason in (
+        "empty",
+        "overlong",
+        "non_ascii",
+        "no_crc",
+        "bad_crc",
+        "bad_syntax",
+        "unknown_verb",
+    ):
         assert decoder.rejected[reason] > 0, reason
 
 

@@ -43,7 +43,11 @@ def header_define(name: str) -> str:
 
 def channel_table(name: str) -> list[str]:
     """Kind codes of one table in channels.c, in channel order."""
-    block = re.search(rf"{name}\[BOX_\w+\]\[3\] VP_FLASH = \{{(.*?)\}};", (FIRMWARE / "channels.c").read_text(), re.S)
+    block = re.search(
+        rf"{name}\[BOX_\w+\]\[3\] VP_FLASH = \{{(.*?)\}};",
+        (FIRMWARE / "channels.c").read_text(),
+        re.S,
+    )
     assert block, name
     return re.findall(r'"([a-z]{2})"', block.group(1))
 
@@ -60,7 +64,10 @@ def make(target: str, build: Path) -> subprocess.CompletedProcess[str]:
 # ---------------------------------------------------------------- (a) the AVR image
 
 
-@pytest.mark.skipif(shutil.which("avr-gcc") is None, reason="avr-gcc not installed (Debian: gcc-avr avr-libc binutils-avr)")
+@pytest.mark.skipif(
+    shutil.which("avr-gcc") is None,
+    reason="avr-gcc not installed (Debian: gcc-avr avr-libc binutils-avr)",
+)
 @pytest.mark.skipif(shutil.which("make") is None, reason="make not installed")
 def test_avr_image_builds_with_warnings_as_errors_and_fits(tmp_path):
     done = make("all", tmp_path)
@@ -68,7 +75,16 @@ def test_avr_image_builds_with_warnings_as_errors_and_fits(tmp_path):
     # The issue's own command line builds it too, with no Makefile and no extra flags.
     sources = sorted(str(p) for p in FIRMWARE.glob("*.c") if p.name != "host_sim.c")
     plain = subprocess.run(
-        ["avr-gcc", "-mmcu=atmega328p", "-Os", "-Wall", "-Werror", "-o", str(tmp_path / "plain.elf"), *sources],
+        [
+            "avr-gcc",
+            "-mmcu=atmega328p",
+            "-Os",
+            "-Wall",
+            "-Werror",
+            "-o",
+            str(tmp_path / "plain.elf"),
+            *sources,
+        ],
         capture_output=True,
         text=True,
         timeout=120,
@@ -143,8 +159,12 @@ def test_boot_identity_decodes_and_matches_the_channel_table(box_program):
     assert ident.version == PROTOCOL_VERSION == int(header_define("VP_PROTOCOL_VERSION"))
     kind_of_input = {c: k for k, c in INPUT_KIND_CODES.items()}
     kind_of_output = {c: k for k, c in OUTPUT_KIND_CODES.items()}
-    assert ident.inputs == tuple(Channel(n, kind_of_input[c]) for n, c in enumerate(channel_table("input_codes"), 1))
-    assert ident.outputs == tuple(Channel(n, kind_of_output[c]) for n, c in enumerate(channel_table("output_codes"), 1))
+    assert ident.inputs == tuple(
+        Channel(n, kind_of_input[c]) for n, c in enumerate(channel_table("input_codes"), 1)
+    )
+    assert ident.outputs == tuple(
+        Channel(n, kind_of_output[c]) for n, c in enumerate(channel_table("output_codes"), 1)
+    )
     assert (beat.seq, beat.device_us, beat.boot, beat.rx_rejected) == (0, 1_000_000, ident.boot, 0)
     # Every output is driven to its safe (off) state at boot.
     assert run.outputs == [(ch.number, 0, 0) for ch in ident.outputs]
@@ -178,7 +198,9 @@ def test_python_commands_are_carried_out_and_acknowledged(box_program):
     # The ack follows the change, stamped with the device clock.
     assert acks[101][0].device_us == driven[0][2]
     # A query's line comes just before its ack.
-    order = [type(m).__name__ + (f":{m.command_id}" if isinstance(m, Ack) else "") for m in run.messages]
+    order = [
+        type(m).__name__ + (f":{m.command_id}" if isinstance(m, Ack) else "") for m in run.messages
+    ]
     assert order[order.index("Ack:104") - 1] == "Beat"
     assert order[order.index("Ack:105") - 1] == "Identity"
     assert run.of(Beat)[-1].rx_rejected == 0
@@ -213,7 +235,14 @@ def test_replay_resends_identical_events_and_reports_what_the_ring_lost(box_prog
         toggles += [b"@in 2 %d\n" % ((k + 1) % 2), wait(3_000)]
     run = run_box(
         box_program,
-        [*toggles, ReplayCommand(900, 150), wait(1_000), ReplayCommand(901, 1), wait(1_000), ReplayCommand(902, 202)],
+        [
+            *toggles,
+            ReplayCommand(900, 150),
+            wait(1_000),
+            ReplayCommand(901, 1),
+            wait(1_000),
+            ReplayCommand(902, 202),
+        ],
     )
     assert run.decoder.rejected_total == 0
     edges = run.of(Edge)
@@ -247,14 +276,23 @@ def test_device_clock_wrap_is_handled_on_both_sides(box_program):
 def bad_host_lines(rng: np.random.Generator, n: int) -> list[bytes]:
     good = [
         encode(c)[:-1]
-        for c in (DriveCommand(7, 1, True), PulseCommand(8, 7, 40), QueryCommand(9, "iam"), ReplayCommand(10, 1))
+        for c in (
+            DriveCommand(7, 1, True),
+            PulseCommand(8, 7, 40),
+            QueryCommand(9, "iam"),
+            ReplayCommand(10, 1),
+        )
     ]
     echo = encode(Ack(0, 7, "ok", 5, 0))[:-1]  # the device's own line fed back
     out = []
     for i in range(n):
         kind = i % 5
         if kind == 0:
-            line = rng.integers(0, 256, int(rng.integers(0, 60)), dtype=np.uint8).tobytes().replace(b"\n", b"\x0b")
+            line = (
+                rng.integers(0, 256, int(rng.integers(0, 60)), dtype=np.uint8)
+                .tobytes()
+                .replace(b"\n", b"\x0b")
+            )
         elif kind == 1:  # one byte changed
             line = bytearray(good[i % 4])
             pos = int(rng.integers(len(line)))
@@ -277,7 +315,9 @@ def test_bad_lines_are_dropped_by_the_box_and_counted(box_program):
     assert run.of(Beat)[-1].rx_rejected == len(lines)
     # The Python codec agrees that none of them is a valid host command.
     host_view = Decoder("host")
-    assert host_view.feed(b"\n".join(lines) + b"\n") == [] and host_view.rejected_total == len(lines)
+    assert host_view.feed(b"\n".join(lines) + b"\n") == [] and host_view.rejected_total == len(
+        lines
+    )
 
 
 def test_a_silent_host_gets_outputs_turned_off(box_program):
