@@ -67,7 +67,8 @@ class LiveSession:
                 delay = session.next_deadline - self.clock()
                 if delay > 0:
                     try:
-                        item = await asyncio.wait_for(queue.get(), delay)
+                        async with asyncio.timeout(delay):
+                            item = await queue.get()
                     except TimeoutError:
                         self._send(session.advance(self._t(self.clock())))
                         continue

@@ -364,10 +364,7 @@ class Session:
             return
         for observer in self.observers:
             observer(self, record)
-        ending = ending or self._pending_end
-        if ending is not None:
-            self._end_session(t, ending)
-            return
+        nxt = None
         if self.block is block:  # no rule switched blocks
             finished = block.finished(t)
             if finished is not None:
@@ -378,7 +375,12 @@ class Session:
                 if nxt == END_SESSION:
                     self._end_session(t, f"protocol complete ({block.block.name}: {met})")
                     return
-                self._enter_block(nxt, t, met)
+        ending = ending or self._pending_end
+        if ending is not None:
+            self._end_session(t, ending)
+            return
+        if nxt is not None:
+            self._enter_block(nxt, t, met)
         self._iti_end = t + iti
         if iti <= 0:
             self._begin_trial(t)

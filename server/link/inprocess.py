@@ -28,14 +28,17 @@ class InProcessLink:
         self._wake.set()  # the animal may now plan something sooner
 
     async def run(self) -> None:
+        loop = asyncio.get_running_loop()
         while True:
             delay = self.box.next_time() - self.clock()
             if delay > 0:
                 self._wake.clear()
+                timer = None if math.isinf(delay) else loop.call_later(delay, self._wake.set)
                 try:
-                    await asyncio.wait_for(self._wake.wait(), None if math.isinf(delay) else delay)
-                except TimeoutError:
-                    pass
+                    await self._wake.wait()
+                finally:
+                    if timer is not None:
+                        timer.cancel()
                 continue
             for t, event in self.box.pop_due(self.clock()):
                 self.events.put_nowait((event, t))
