@@ -79,6 +79,27 @@ class Lab:
             if run.live is not None and not run.session.finished:
                 run.live.request_stop(reason)
 
+    # ------------------------------------------------------------ operator controls
+
+    def find(self, box: str) -> BoxRun:
+        for run in self.runs:
+            if run.config.name == box:
+                return run
+        raise KeyError(box)
+
+    def control(self, box: str, action: str, origin: str) -> None:
+        """Pause, resume or stop one box's session (the status page's controls call this).
+
+        Raises KeyError for an unknown box and ValueError when the session has ended.
+        """
+        run = self.find(box)
+        if run.session.finished or run.live is None:
+            raise ValueError(f"session of box '{box}' has ended")
+        if action == "stop":
+            run.live.request("stop", f"stopped by operator ({origin})")
+        else:
+            run.live.request(action, origin)
+
     def _publisher(self, run: BoxRun) -> Callable[[list[Record]], None]:
         def publish(records: list[Record]) -> None:
             for record in records:

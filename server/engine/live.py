@@ -15,18 +15,22 @@ from server.engine.session import Session
 
 
 class BoxLink(TypingProtocol):
-    events: "asyncio.Queue[tuple[InputEvent, float] | StopRequest]"
+    events: "asyncio.Queue[tuple[InputEvent, float] | ControlRequest]"
 
     def send(self, commands: list[Command]) -> None: ...
 
 
-class StopRequest:
-    """Queued to wake the driver when the session must end from outside."""
+class ControlRequest:
+    """Queued to wake the driver when the session is told something from outside:
+    `stop` (argument: the end reason), `pause` or `resume` (argument: who asked)."""
 
-    __slots__ = ("reason",)
+    __slots__ = ("action", "argument")
 
-    def __init__(self, reason: str):
-        self.reason = reason
+    def __init__(self, action: str, argument: str):
+        if action not in ("stop", "pause", "resume"):
+            raise ValueError(f"unknown control action '{action}'")
+        self.action = action
+        self.argument = argument
 
 
 class LiveSession:
@@ -44,7 +48,10 @@ class LiveSession:
         self._last_t = 0.0
 
     def request_stop(self, reason: str) -> None:
-        self.link.events.put_nowait(StopRequest(reason))
+        self.link.events.put_nowait(ControlRequest("stop", reason))
+
+    def request(self, action: str, argument: str) -> None:
+        self.link.events.put_nowait(ControlRequest(action, argument))
 
     def _send(self, commands: list[Command]) -> None:
         if commands:
@@ -84,9 +91,15 @@ class LiveSession:
             self._send(session.stop(self._t(self.clock()), f"error: {type(exc).__name__}: {exc}"))
             raise
 
-    def _handle(self, item: "tuple[InputEvent, float] | StopRequest") -> None:
-        if isinstance(item, StopRequest):
-            self._send(self.session.stop(self._t(self.clock()), item.reason))
+    def _handle(self, item: "tuple[InputEvent, float] | ControlRequest") -> None:
+        if isinstance(item, ControlRequest):
+            t = self._t(self.clock())
+            if item.action == "stop":
+                self._send(self.session.stop(t, item.argument))
+            elif item.action == "pause":
+                self._send(self.session.pause(t, item.argument))
+            else:
+                self._send(self.session.resume(t, item.argument))
             return
         event, t = item
         self._send(self.session.feed(event, self._t(t)))

@@ -117,6 +117,8 @@ class Session:
         self._waits: dict[int, DurationDraw] = {}
         self._schedules: dict[int, ScheduleState] = {}
         self._started = False
+        self._paused_at: float | None = None
+        self._resume_outputs: set[str] = set()
 
     # ================================================================ driver interface
 
@@ -125,6 +127,8 @@ class Session:
         """Session time at which `advance` must next be called (inf when finished)."""
         if self.finished:
             return math.inf
+        if self._paused_at is not None:
+            return self._t_limit
         local = self._trial.deadline if self._trial is not None else self._iti_end
         return min(local, self._t_limit)
 
@@ -158,7 +162,7 @@ class Session:
                 EventLogged(t, "input", event.name, 1.0 if event.rising else 0.0,
                             event.device_t_us, event.device_seq)  # fmt: skip
             )
-        if self.finished:
+        if self.finished or self._paused_at is not None:
             return []
         self._catch_up(t)
         trial = self._trial
@@ -186,6 +190,50 @@ class Session:
             if not line.pulsed
         ]
 
+    @property
+    def paused(self) -> bool:
+        return self._paused_at is not None
+
+    def pause(self, t: float, origin: str = "operator") -> list[Command]:
+        """Freeze the session clock and put outputs in their safe state until `resume`.
+
+        Inputs during a pause are logged but change nothing. The session time limit keeps
+        running: it bounds the animal's time in the box, paused or not.
+        """
+        if self.finished or self._paused_at is not None:
+            return []
+        self._catch_up(t)
+        if self.finished:
+            return self._flush()
+        self._paused_at = t
+        self._resume_outputs = set(self.active_outputs)
+        for command in self.safe_state():
+            self._set(command.name, command.channel, False, t)
+        self._log(t, "pause", "session", detail={"origin": origin})
+        return self._flush()
+
+    def resume(self, t: float, origin: str = "operator") -> list[Command]:
+        """Continue where the pause left off: every pending deadline moves by the pause."""
+        if self.finished or self._paused_at is None:
+            return []
+        shift = t - self._paused_at
+        self._paused_at = None
+        trial = self._trial
+        if trial is not None:
+            trial.deadline += shift
+            trial.step_t0 += shift
+            if trial.schedule is not None:
+                trial.schedule.armed_at += shift
+        else:
+            self._iti_end += shift
+        if self.block is not None:
+            self.block.t0 += shift
+        outputs = self.protocol.wiring.outputs
+        for name in sorted(self._resume_outputs):
+            self._set(name, outputs[name].channel, True, t)
+        self._log(t, "resume", "session", detail={"origin": origin, "paused_s": shift})
+        return self._flush()
+
     # ================================================================ closed-loop actions
 
     def reverse(self, a: str, b: str, t: float) -> None:
@@ -210,6 +258,8 @@ class Session:
         while not self.finished:
             if t >= self._t_limit:
                 self._end_session(self._t_limit, "session time limit")
+                return
+            if self._paused_at is not None:
                 return
             trial = self._trial
             if trial is not None:
