@@ -144,6 +144,8 @@ class _Compiler(Reader):
                 self.error(value.mark, f"{where}: missing required key 'pulse_ms' for a {kind} output")
             if kind is not None and channel is not None:
                 outputs[name] = OutputLine(name, kind, channel, int(pulse_ms))
+            else:
+                self.broken.add(name)
         inputs: dict[str, InputLine] = {}
         channels = {}
         for name, value, key_mark in self.items(top.get("inputs"), "wiring.inputs"):
@@ -158,8 +160,10 @@ class _Compiler(Reader):
             presented_by = None
             if "presented_by" in fields:
                 presented_by = self.reference(fields["presented_by"], f"{where}.presented_by", declared_held, "held output")
-            if kind is not None and channel is not None:
+            if kind is not None and channel is not None and (presented_by or "presented_by" not in fields):
                 inputs[name] = InputLine(name, kind, channel, presented_by)
+            else:
+                self.broken.add(name)
         return Wiring(outputs, inputs)
 
     def channel(self, node: Marked | None, where: str, taken: dict[int, str], name: str) -> int | None:
@@ -217,6 +221,8 @@ class _Compiler(Reader):
             if input_name is not None and p is not None:
                 used[input_name] = label
                 options[label] = Option(label, input_name, float(p))
+            else:
+                self.broken.add(label)
         return options
 
     # ------------------------------------------------------------ trial types
@@ -278,7 +284,11 @@ class _Compiler(Reader):
         on_enter = self.action_fields(f, where, wiring)
         on_leave = self.actions(f.get("on_leave"), f"{where}.on_leave", wiring, ACTION_KEYS)
         wait = self.duration(f["wait_s"], f"{where}.wait_s") if "wait_s" in f else None
-        nxt = self.target(f["next"], f"{where}.next", names) if "next" in f else following
+        # A response window that runs out ends the trial unless told otherwise: falling through
+        # to the following step (often the reward) on an omission would be a dangerous default.
+        waits_for_animal = any(k in f for k in ("choose", "respond", "schedule"))
+        default_next = END_TRIAL if waits_for_animal else following
+        nxt = self.target(f["next"], f"{where}.next", names) if "next" in f else default_next
         respond: dict[str, str] = {}
         for input_name, target_node, key_mark in self.items(f.get("respond"), f"{where}.respond"):
             if input_name not in wiring.inputs:

@@ -38,6 +38,8 @@ def did_you_mean(word: str, choices: Iterable[str]) -> str:
 class Reader:
     def __init__(self) -> None:
         self.problems: list[Problem] = []
+        # Names declared but invalid: references to them are not reported again.
+        self.broken: set[str] = set()
 
     def error(self, mark: Mark, message: str) -> None:
         self.problems.append(Problem(mark, message))
@@ -151,6 +153,8 @@ class Reader:
             return None
         known = list(known)
         if name not in known:
+            if name in self.broken:
+                return None
             assert node is not None
             self.error(node.mark, f"{where}: no {what} named '{name}'{did_you_mean(name, known)}")
             return None
