@@ -469,8 +469,8 @@ class Session:
         self.ended_at = t
         if self.block is not None:
             self.block_log.append((self.block.block.name, self.block.trials, None))
-        self._out.extend(self.safe_state())
-        self.active_outputs.clear()
+        for command in self.safe_state():
+            self._set(command.name, command.channel, False, t)
         self._records.append(SessionEnded(t, reason, self.trials_done, self.rewards))
 
     # ================================================================ internals: outputs

@@ -135,3 +135,38 @@ def test_sigkill_loses_no_completed_trial_and_next_run_closes_the_session(tmp_pa
     rows = _sessions(db)
     assert all(reason is not None for _, _, reason, _ in rows)
     assert [r[2] for r in rows[:2]] == ["interrupted", "interrupted"]
+
+
+def test_ctrl_c_ends_sessions_cleanly_with_a_reason(tmp_path):
+    db = tmp_path / "sigint.sqlite"
+    proc = subprocess.Popen(VIGIL + ["demo", "--db", str(db), "--boxes", "2"], cwd=ROOT,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)  # fmt: skip
+    try:
+        deadline = time.monotonic() + 60
+        started = False
+        while time.monotonic() < deadline and not started:
+            time.sleep(0.5)
+            if db.exists():
+                conn = sqlite3.connect(db)
+                try:
+                    started = conn.execute("SELECT COUNT(*) FROM sessions").fetchone()[0] == 2
+                except sqlite3.OperationalError:
+                    pass
+                finally:
+                    conn.close()
+        time.sleep(2.0)
+        proc.send_signal(signal.SIGINT)
+        out, err = proc.communicate(timeout=60)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    assert proc.returncode == 0, out + err
+    reasons = [r[2] for r in _sessions(db)]
+    assert reasons == ["stopped by signal (SIGINT)"] * 2
+    conn = sqlite3.connect(db)
+    last_outputs = conn.execute(
+        "SELECT name, value FROM events WHERE kind = 'output' AND id IN "
+        "(SELECT MAX(id) FROM events WHERE kind = 'output' GROUP BY session_id, name)"
+    ).fetchall()
+    conn.close()
+    assert last_outputs and all(value == 0.0 for _, value in last_outputs), "outputs end in the safe state"
