@@ -115,4 +115,13 @@ class SessionEnded:
     rewards: int
 
 
-Record = SessionStarted | EventLogged | TrialRecord | BlockStarted | SessionEnded
+@dataclass(frozen=True, slots=True)
+class EstimateUpdated:
+    """The learning-model estimate after a trial (an object with `to_dict()`)."""
+
+    trial: int
+    model: str
+    estimate: Any
+
+
+Record = SessionStarted | EventLogged | TrialRecord | BlockStarted | SessionEnded | EstimateUpdated

@@ -18,6 +18,7 @@ from server.engine.caps import EffectiveLimits, HardCaps, effective_limits
 from server.engine.records import (
     BlockStarted,
     Command,
+    EstimateUpdated,
     EventLogged,
     InputEvent,
     PulseOutput,
@@ -47,7 +48,7 @@ class _Trial:
     __slots__ = (
         "index", "type", "t_start", "step_index", "step_t0", "deadline", "schedule",
         "steps", "counts", "first_s", "choice", "response", "latency_s", "correct",
-        "omission", "pellets",
+        "omission", "pellets", "offered_choice",
     )  # fmt: skip
 
     def __init__(self, index: int, trial_type: TrialType, t: float):
@@ -67,6 +68,7 @@ class _Trial:
         self.correct: bool | None = None
         self.omission = False
         self.pellets = 0
+        self.offered_choice = False  # went through a step with `choose`
 
     @property
     def step(self) -> Step:
@@ -83,6 +85,7 @@ class Session:
         caps: HardCaps = HardCaps(),
         *,
         log_events: bool = True,
+        estimator=None,
     ):
         self.protocol = protocol
         self.seed = seed
@@ -90,6 +93,10 @@ class Session:
         self.limits: EffectiveLimits = effective_limits(protocol.limits, caps)
         self.log_events = log_events
         self.observers: list[TrialObserver] = []
+        # Learning-model estimator (server.models): pure, fed (choice, reward) after each
+        # choice trial; its latest estimate is what rules and the status page read.
+        self.estimator = estimator
+        self.estimate = None
         self.finished = False
         self.end_reason: str | None = None
         self.ended_at: float | None = None  # session time of the end
@@ -299,6 +306,8 @@ class Session:
             trial.steps.append((step.name, t))
             if self.log_events:
                 self._log(t, "step", step.name, detail={"trial": trial.index})
+            if step.choose:
+                trial.offered_choice = True
             self._apply(step.on_enter, t)
             if self._trial is not trial:  # the reward cap ended the session mid-step
                 return
@@ -412,6 +421,9 @@ class Session:
         self._records.append(record)
         if interrupted:
             return
+        if self.estimator is not None and trial.offered_choice:
+            self.estimate = self.estimator.update(trial.choice, float(trial.pellets))
+            self._records.append(EstimateUpdated(trial.index, self.estimator.model.name, self.estimate))
         for observer in self.observers:
             observer(self, record)
         nxt = None
@@ -521,4 +533,5 @@ class Session:
     def _flush(self) -> list[Command]:
         out, self._out = self._out, []
         return out
+
 
