@@ -29,7 +29,7 @@ Theta = Mapping[str, np.ndarray | float]
 
 
 def _q_learning(theta: Theta, q: np.ndarray, chosen: np.ndarray, reward) -> tuple:
-    # Q(c) <- Q(c) + alpha (r - Q(c)) (Sutton & Barto 2018, eq. 2.5 with constant step)
+    # Q(c) <- Q(c) + alpha (r - Q(c)) (Sutton & Barto 2018, ch. 2, constant step size)
     delta = reward - (q * chosen).sum(0)
     return q + theta["alpha"] * delta * chosen, delta
 

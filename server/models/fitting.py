@@ -26,7 +26,7 @@ from .choice import ChoiceModel
 from .params import Param
 from .trials import AnimalTrials, TrialStack, stack_animals
 
-COARSE_POINTS = {1: 48, 2: 24, 3: 11}
+COARSE_POINTS = {1: 48, 2: 24, 3: 9}
 STARTS = 3  # local minima of the coarse grid refined per animal
 STENCIL_H = 1e-4  # finite-difference step on the unit cube
 MAX_STEPS = 40
@@ -81,18 +81,19 @@ class _Problem:
         self.model, self.stack, self.free = model, stack, list(free)
         self.fixed, self.use_prior, self.values = dict(fixed), use_prior, values
 
-    def _objective(self, theta: dict, qshape: tuple[int, ...]) -> tuple[np.ndarray, np.ndarray]:
-        ll = loglik(self.model, theta, self.stack, qshape, self.values)
+    def _objective(self, theta: dict, qshape: tuple[int, ...],
+                   stack: TrialStack) -> tuple[np.ndarray, np.ndarray]:
+        ll = loglik(self.model, theta, stack, qshape, self.values)
         f = -ll
         if self.use_prior:
             f = f - sum(p.prior.logpdf(theta[p.name]) for p in self.free)
         return np.where(np.isfinite(f), f, np.inf), ll
 
-    def at(self, u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Objective and log-likelihood at points u of shape (N, P, d)."""
+    def at(self, u: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Objective and log-likelihood at points u (M, P, d) of the animals `rows` (M,)."""
         theta = {p.name: p.from_unit(u[..., i]) for i, p in enumerate(self.free)}
         theta.update(self.fixed)
-        return self._objective(theta, (u.shape[1],))
+        return self._objective(theta, (u.shape[1],), self.stack.take(rows))
 
     def coarse(self, n: int) -> tuple[np.ndarray, np.ndarray]:
         """Objective on the product grid of cell centres: (N, n, ..., n), and the centres."""
@@ -104,7 +105,7 @@ class _Problem:
             shape[i + 1] = n
             theta[p.name] = p.from_unit(centres).reshape(shape)
         qshape = tuple(n if p.learning else 1 for p in self.free)
-        f, _ = self._objective(theta, qshape)
+        f, _ = self._objective(theta, qshape, self.stack)
         return np.broadcast_to(f, (self.stack.shape[2],) + (n,) * d), centres
 
 
@@ -145,34 +146,34 @@ def _stencil(d: int) -> np.ndarray:
     return np.array(rows)
 
 
-def _derivatives(problem: _Problem, u: np.ndarray) -> tuple[np.ndarray, ...]:
-    """Objective at u, and gradient and Hessian by central differences near u."""
-    n, s, d = u.shape
+def _derivatives(problem: _Problem, u: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, ...]:
+    """Objective and log-likelihood at u (M, d), and gradient and Hessian by central
+    differences near u."""
+    m, d = u.shape
     h = STENCIL_H
     offsets = _stencil(d) * h
     centre = np.clip(u, h, 1 - h)
-    pts = np.concatenate([u[:, :, None, :], centre[:, :, None, :] + offsets], axis=2)
-    f_all, ll_all = problem.at(pts.reshape(n, -1, d))
-    f_all = f_all.reshape(n, s, -1)
-    f0, fs = f_all[..., 1], f_all[..., 1:]
-    grad = np.empty((n, s, d))
-    hess = np.empty((n, s, d, d))
+    pts = np.concatenate([u[:, None, :], centre[:, None, :] + offsets], axis=1)
+    f_all, ll_all = problem.at(pts, rows)
+    f0, fs = f_all[:, 1], f_all[:, 1:]
+    grad = np.empty((m, d))
+    hess = np.empty((m, d, d))
     for i in range(d):
-        fp, fm = fs[..., 1 + 2 * i], fs[..., 2 + 2 * i]
-        grad[..., i] = (fp - fm) / (2 * h)
-        hess[..., i, i] = (fp - 2 * f0 + fm) / (h * h)
+        fp, fm = fs[:, 1 + 2 * i], fs[:, 2 + 2 * i]
+        grad[:, i] = (fp - fm) / (2 * h)
+        hess[:, i, i] = (fp - 2 * f0 + fm) / (h * h)
     col = 1 + 2 * d
     for i in range(d):
         for j in range(i + 1, d):
-            fpp, fpm, fmp, fmm = (fs[..., col + c] for c in range(4))
-            hess[..., i, j] = hess[..., j, i] = (fpp - fpm - fmp + fmm) / (4 * h * h)
+            fpp, fpm, fmp, fmm = (fs[:, col + c] for c in range(4))
+            hess[:, i, j] = hess[:, j, i] = (fpp - fpm - fmp + fmm) / (4 * h * h)
             col += 4
     # near a bound the stencil sits a step inside; carry the gradient back to u
     grad += np.einsum("...ij,...j->...i", hess, u - centre)
     bad = ~(np.isfinite(grad).all(-1) & np.isfinite(hess).all((-2, -1)))
     grad[bad] = 0.0
     hess[bad] = np.eye(d)
-    return f_all[..., 0], ll_all.reshape(n, s, -1)[..., 0], grad, hess
+    return f_all[:, 0], ll_all[:, 0], grad, hess
 
 
 def _damped_steps(u: np.ndarray, grad: np.ndarray, hess: np.ndarray) -> np.ndarray:
@@ -196,66 +197,85 @@ def _damped_steps(u: np.ndarray, grad: np.ndarray, hess: np.ndarray) -> np.ndarr
     return np.clip(u[..., None, :] + steps, 0.0, 1.0)
 
 
-def _refine(problem: _Problem, u: np.ndarray, fu: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    n, s, d = u.shape
-    done = np.zeros((n, s), dtype=bool)
+def _refine(problem: _Problem, u: np.ndarray, fu: np.ndarray,
+            rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Damped Newton from every start (u: (M, d)); only unconverged starts are evaluated."""
+    u, fu = u.copy(), fu.copy()
+    active = np.ones(len(u), dtype=bool)
     for _ in range(MAX_STEPS):
-        _, _, grad, hess = _derivatives(problem, u)
-        cands = _damped_steps(u, grad, hess)
-        fc, _ = problem.at(cands.reshape(n, -1, d))
-        fc = fc.reshape(n, s, -1)
-        best = fc.argmin(-1)
-        fb = np.take_along_axis(fc, best[..., None], -1)[..., 0]
-        gain = fu - fb
-        move = (gain > 0) & ~done
-        pick = np.take_along_axis(cands, best[..., None, None], -2)[..., 0, :]
-        u = np.where(move[..., None], pick, u)
-        fu = np.where(move, fb, fu)
-        done |= gain <= 1e-10 * np.maximum(1.0, np.abs(fu))
-        if done.all():
+        idx = np.flatnonzero(active)
+        if not len(idx):
             break
+        _, _, grad, hess = _derivatives(problem, u[idx], rows[idx])
+        cands = _damped_steps(u[idx], grad, hess)
+        fc, _ = problem.at(cands, rows[idx])
+        best = fc.argmin(1)
+        fb = fc[np.arange(len(idx)), best]
+        gain = fu[idx] - fb
+        move = gain > 0
+        u[idx[move]] = cands[np.flatnonzero(move), best[move]]
+        fu[idx[move]] = fb[move]
+        active[idx] = gain > 1e-10 * np.maximum(1.0, np.abs(fu[idx]))
     return u, fu
 
 
-def _intervals(free: Sequence[Param], u: np.ndarray, hess: np.ndarray) -> list[dict]:
+def _intervals(free: Sequence[Param], u: np.ndarray, grad: np.ndarray,
+               hess: np.ndarray) -> list[dict]:
+    """Wald 95 % intervals on the unit cube, mapped back to each parameter's scale.
+
+    A parameter held on a bound by its gradient gets no interval; the others use the
+    Hessian of the remaining coordinates.
+    """
     out = []
-    for ui, hi in zip(u, hess):
-        e = np.linalg.eigvalsh(hi)
-        ok = bool(np.all(e > 0) and np.all(np.isfinite(e)))
-        se = np.sqrt(np.diag(np.linalg.inv(hi))) if ok else None
-        row = {}
-        for i, p in enumerate(free):
-            if se is None or not np.isfinite(se[i]):
-                row[p.name] = None
-                continue
-            lo = float(p.from_unit(max(0.0, ui[i] - Z95 * se[i])))
-            hi_ = float(p.from_unit(min(1.0, ui[i] + Z95 * se[i])))
-            row[p.name] = (lo, hi_)
+    for ui, gi, hi in zip(u, grad, hess):
+        held = ((ui <= 0.0) & (gi > 0)) | ((ui >= 1.0) & (gi < 0))
+        keep = np.flatnonzero(~held)
+        row: dict = {p.name: None for p in free}
+        if len(keep):
+            sub = hi[np.ix_(keep, keep)]
+            e = np.linalg.eigvalsh(sub) if np.isfinite(sub).all() else np.array([-1.0])
+            if np.all(e > 0):
+                se = np.sqrt(np.diag(np.linalg.inv(sub)))
+                for j, i in enumerate(keep):
+                    p = free[i]
+                    lo = float(p.from_unit(max(0.0, ui[i] - Z95 * se[j])))
+                    up = float(p.from_unit(min(1.0, ui[i] + Z95 * se[j])))
+                    row[p.name] = (lo, up)
         out.append(row)
     return out
 
 
 def _fit_stack(model: ChoiceModel, animals: Sequence[AnimalTrials], free: list[Param],
-               fixed: dict, use_prior: bool, values: ValueSettings) -> list[FitResult]:
+               fixed: dict, use_prior: bool, values: ValueSettings,
+               chunk: int) -> list[FitResult]:
     problem = _Problem(model, stack_animals(animals), free, fixed, use_prior, values)
-    d = len(free)
-    f, centres = problem.coarse(COARSE_POINTS.get(d, 7))
-    u, fu = _starts(f, centres, STARTS)
-    u, fu = _refine(problem, u, fu)
-    best = fu.argmin(1)
-    u_best = u[np.arange(len(animals)), best][:, None, :]
-    f_best, ll_best, _, hess = _derivatives(problem, u_best)
-    intervals = _intervals(free, u_best[:, 0], hess[:, 0])
+    n, d = len(animals), len(free)
+    starts, f_starts = [], []
+    for c0 in range(0, n, chunk):  # the coarse grid is the memory-hungry stage
+        part = _Problem(model, problem.stack.take(np.arange(c0, min(n, c0 + chunk))), free,
+                        fixed, use_prior, values)
+        f, centres = part.coarse(COARSE_POINTS.get(d, 7))
+        u, fu = _starts(f, centres, STARTS)
+        starts.append(u)
+        f_starts.append(fu)
+    u = np.concatenate(starts).reshape(-1, d)
+    fu = np.concatenate(f_starts).ravel()
+    rows = np.repeat(np.arange(n), STARTS)
+    u, fu = _refine(problem, u, fu, rows)
+    best = fu.reshape(n, STARTS).argmin(1)
+    u_best = u.reshape(n, STARTS, d)[np.arange(n), best]
+    f_best, ll_best, grad, hess = _derivatives(problem, u_best, np.arange(n))
+    intervals = _intervals(free, u_best, grad, hess)
     results = []
     for i, a in enumerate(animals):
-        params = {p.name: float(p.from_unit(u_best[i, 0, j])) for j, p in enumerate(free)}
+        params = {p.name: float(p.from_unit(u_best[i, j])) for j, p in enumerate(free)}
         params.update(fixed)
         ordered = {name: params[name] for name in model.names}
-        ll = float(ll_best[i, 0])
+        ll = float(ll_best[i])
         results.append(FitResult(
             a.animal, model.name, ordered, intervals[i], ll, a.n_choices, d,
             "map" if use_prior else "ml",
-            float(-f_best[i, 0] - ll) if use_prior else None, tuple(sorted(fixed)),
+            float(-f_best[i] - ll) if use_prior else None, tuple(sorted(fixed)),
         ))
     return results
 
@@ -288,8 +308,7 @@ def fit_animals(model: ChoiceModel, animals: Sequence[AnimalTrials], *,
         t_max = max(len(animals[i].choice) for i in idx)
         per_animal = max(1, t_max * q_cells * k, n_coarse ** len(free) * k)
         chunk = max(1, _STACK_ELEMENTS // per_animal)
-        for c0 in range(0, len(idx), chunk):
-            part = idx[c0:c0 + chunk]
-            fits = _fit_stack(model, [animals[i] for i in part], free, fixed, use_prior, values)
-            out.update(zip(part, fits))
+        fits = _fit_stack(model, [animals[i] for i in idx], free, fixed, use_prior, values,
+                          chunk)
+        out.update(zip(idx, fits))
     return [out[i] for i in range(len(animals))]

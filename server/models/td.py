@@ -14,7 +14,7 @@ def td0_update(v: np.ndarray, state: int, reward: float, next_state: int | None,
                alpha: float, gamma: float = 1.0) -> float:
     """V(s) <- V(s) + alpha [r + gamma V(s') - V(s)] in place; returns the TD error.
 
-    Sutton & Barto (2018), eq. 6.2. `next_state` None means the episode ended (V = 0).
+    Sutton & Barto (2018), ch. 6. `next_state` None means the episode ended (V = 0).
     """
     ahead = 0.0 if next_state is None else gamma * v[next_state]
     delta = reward + ahead - v[state]
@@ -52,12 +52,12 @@ def random_walk_td0(episodes: int, alpha: float, rng: np.random.Generator,
 
 
 def sarsa_target(reward: float, gamma: float, q_next_action: float) -> float:
-    """R + gamma Q(S', A') (Sutton & Barto 2018, eq. 6.7)."""
+    """R + gamma Q(S', A') (SARSA; Sutton & Barto 2018, ch. 6)."""
     return reward + gamma * q_next_action
 
 
 def q_learning_target(reward: float, gamma: float, q_next: np.ndarray) -> float:
-    """R + gamma max_a Q(S', a) (Sutton & Barto 2018, eq. 6.8)."""
+    """R + gamma max_a Q(S', a) (Q-learning; Sutton & Barto 2018, ch. 6)."""
     return reward + gamma * float(np.max(q_next))
 
 

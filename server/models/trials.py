@@ -101,6 +101,18 @@ class TrialStack:
         """(options, trials, animals)"""
         return self.chosen.shape
 
+    def take(self, rows: np.ndarray) -> "TrialStack":
+        """The stack of the given animals (repeats allowed), in that order."""
+        return _stack(self.chosen[:, :, rows], self.reward[:, rows], self.start[:, rows],
+                      self.previous[:, :, rows])
+
+
+def _stack(chosen: np.ndarray, reward: np.ndarray, start: np.ndarray,
+           previous: np.ndarray) -> TrialStack:
+    start_any = start.any(1)
+    start_any[0] = False
+    return TrialStack(chosen, reward, start, previous, start_any, chosen.any((0, 2)))
+
 
 def stack_animals(animals: Sequence[AnimalTrials]) -> TrialStack:
     """Stack animals with the same number of options (pad shorter ones with omissions)."""
@@ -120,6 +132,4 @@ def stack_animals(animals: Sequence[AnimalTrials]) -> TrialStack:
         previous[:, :t, i] = a.previous().T
         reward[:t, i] = a.reward
         start[:t, i] = a.session_start
-    start_any = start.any(1)
-    start_any[0] = False
-    return TrialStack(chosen, reward, start, previous, start_any, chosen.any((0, 2)))
+    return _stack(chosen, reward, start, previous)
