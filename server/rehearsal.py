@@ -17,6 +17,7 @@ import numpy as np
 
 from server.engine.block_progress import PERFORMANCE_CRITERIA
 from server.engine.caps import HardCaps
+from server.closed_loop import build_session
 from server.engine.session import Session
 from server.engine.virtual import run_virtual
 from server.protocol.model import Protocol
@@ -48,7 +49,7 @@ def rehearse_one(protocol: Protocol, animal: Animal, agent: str, options: dict[s
     from hardware_stubs.agents import make_agent
     from hardware_stubs.emulated_box import EmulatedBox
 
-    session = Session(protocol, animal.session_seed, caps, log_events=False)
+    session = build_session(protocol, animal.session_seed, caps, log_events=False)
     box = EmulatedBox(protocol.wiring, make_agent(agent, **options), np.random.default_rng(animal.agent_seed))
     run_virtual(session, box)
     criterion = has_performance_criterion(protocol)

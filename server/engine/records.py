@@ -124,4 +124,17 @@ class EstimateUpdated:
     estimate: Any
 
 
-Record = SessionStarted | EventLogged | TrialRecord | BlockStarted | SessionEnded | EstimateUpdated
+@dataclass(frozen=True, slots=True)
+class RuleFired:
+    """A closed-loop rule fired after `trial`: what it did and every value its condition read."""
+
+    t: float
+    trial: int
+    rule: str
+    actions: tuple[dict[str, Any], ...]
+    values: dict[str, float | None]
+
+
+Record = (
+    SessionStarted | EventLogged | TrialRecord | BlockStarted | SessionEnded | EstimateUpdated | RuleFired
+)

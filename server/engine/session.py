@@ -9,6 +9,7 @@ the tests all run exactly the same logic.
 from __future__ import annotations
 
 import math
+from dataclasses import replace
 from typing import Callable
 
 import numpy as np
@@ -29,7 +30,7 @@ from server.engine.records import (
     TrialRecord,
 )
 from server.engine.timing import DurationDraw, ScheduleState
-from server.protocol.model import END_SESSION, END_TRIAL, OutputActions, Protocol, Step, TrialType
+from server.protocol.model import END_SESSION, END_TRIAL, Block, BlockEnd, OutputActions, Protocol, Step, TrialType
 
 # A trial may pass through this many steps in one instant (draws, zero waits) before the
 # session declares the protocol stuck in a loop rather than spinning forever.
@@ -104,6 +105,9 @@ class Session:
         self.rewards = 0
         self.reversals = 0
         self.iti_scale = 1.0
+        self.iti_fixed: float | None = None
+        self.alarms: list[tuple[float, str]] = []
+        self._probe_blocks: dict[str, Block] = {}
         self.active_outputs: set[str] = set()  # held outputs the session has switched on
         self.block: BlockProgress | None = None
         self._trial: _Trial | None = None
@@ -158,7 +162,7 @@ class Session:
         first = self.protocol.blocks[0]
         self._records.append(SessionStarted(t, self.protocol.name, self.seed, first.name))
         self._apply(self.protocol.at_start, t)
-        self._enter_block(first.name, t, "session start")
+        self._enter_block(first, t, "session start")
         self._begin_trial(t)
         return self._flush()
 
@@ -247,13 +251,44 @@ class Session:
         """Swap two options' contingencies for the rest of the session (a reversal)."""
         self._extra_swaps.append((a, b))
         if self.block is not None:
+            before = self._best_options()
             self.block.swap(a, b)
-        self.reversals += 1
+            self._count_reversal(before)
         self._log(t, "block", "reversal", detail={"swap": [a, b], "now": dict(self.block.contingencies) if self.block else {}})
 
     def switch_block(self, name: str, t: float, why: str = "rule") -> None:
         """Leave the current block after the trial in progress; the next trial starts `name`."""
-        self._enter_block(name, t, why)
+        self._enter_block(self.protocol.block(name), t, why)
+
+    def start_probe(self, minutes: float, then: str | None, t: float, why: str = "rule") -> None:
+        """An extinction probe: the current block's trials with every outcome withheld, for
+        `minutes`; then block `then`, or the end of the session when None."""
+        assert self.block is not None
+        base = self.block.block
+        probe = replace(
+            base, name=f"{base.name}:probe", until=BlockEnd(minutes=minutes),
+            next=then or END_SESSION, withhold_outcomes=True,
+        )  # fmt: skip
+        self._probe_blocks[probe.name] = probe
+        self._itis.setdefault(probe.name, self._itis[base.name])
+        self._enter_block(probe, t, why)
+
+    def set_iti(self, seconds: float) -> None:
+        """Every following ITI is `seconds` (within the protocol's iti_bounds)."""
+        self.iti_fixed = seconds
+        self.iti_scale = 1.0
+
+    def scale_iti(self, factor: float) -> None:
+        """Multiply following ITIs by `factor` (cumulative; the result stays within iti_bounds)."""
+        self.iti_scale *= factor
+
+    def alarm(self, message: str, t: float) -> None:
+        self._log(t, "alarm", "rule", detail={"message": message})
+        self.alarms.append((t, message))
+
+    def add_record(self, record: Record) -> None:
+        """Let an observer (the rules) put its own record into the session's stream."""
+        self._records.append(record)
 
     def end_after_trial(self, reason: str) -> None:
         self._pending_end = reason
@@ -408,7 +443,7 @@ class Session:
         ending = self._session_end_due(t)
         iti = 0.0
         if ending is None and not interrupted:
-            iti = self.iti_scale * self._itis[block.block.name].draw()
+            iti = self._next_iti(block.block.name)
         record = TrialRecord(
             trial=trial.index, block=block.block.name, block_index=block.index,
             trial_type=trial.type.name, t_start=trial.t_start, t_end=t, choice=trial.choice,
@@ -442,10 +477,30 @@ class Session:
             self._end_session(t, ending)
             return
         if nxt is not None:
-            self._enter_block(nxt, t, met)
+            self._enter_block(self._block_named(nxt), t, met)
         self._iti_end = t + iti
         if iti <= 0:
             self._begin_trial(t)
+
+    def _next_iti(self, block_name: str) -> float:
+        drawn = self._itis[block_name].draw()  # drawn even when overridden: keeps draws aligned
+        iti = self.iti_fixed if self.iti_fixed is not None else self.iti_scale * drawn
+        bounds = self.protocol.iti_bounds
+        if bounds is not None and (self.iti_fixed is not None or self.iti_scale != 1.0):
+            iti = min(max(iti, bounds[0]), bounds[1])
+        return iti
+
+    def _best_options(self) -> frozenset[str]:
+        if self.block is None or not self.block.contingencies:
+            return frozenset()
+        c = self.block.contingencies
+        top = max(c.values())
+        return frozenset(k for k, v in c.items() if v == top) if top > min(c.values()) else frozenset()
+
+    def _count_reversal(self, before: frozenset[str]) -> None:
+        after = self._best_options()
+        if before and after and after != before:
+            self.reversals += 1
 
     def _session_end_due(self, t: float) -> str | None:
         if self._cap_reached:
@@ -456,15 +511,22 @@ class Session:
 
     def _following_block(self, name: str) -> str:
         names = [b.name for b in self.protocol.blocks]
+        if name not in names:  # a probe made by a rule goes where the rule said
+            return self._probe_blocks[name].next or END_SESSION
         i = names.index(name)
         return names[i + 1] if i + 1 < len(names) else END_SESSION
 
-    def _enter_block(self, name: str, t: float, why: str) -> None:
+    def _block_named(self, name: str) -> Block:
+        return self._probe_blocks.get(name) or self.protocol.block(name)
+
+    def _enter_block(self, block: Block, t: float, why: str) -> None:
+        before = self._best_options()
         if self.block is not None:
             self.block_log.append((self.block.block.name, self.block.trials, why))
         self._blocks_entered += 1
-        block = self.protocol.block(name)
+        name = block.name
         self.block = BlockProgress(self.protocol, block, self._blocks_entered, t, self.rng, self._extra_swaps)
+        self._count_reversal(before)
         self._records.append(
             BlockStarted(t, name, self._blocks_entered, dict(self.block.contingencies), block.withhold_outcomes)
         )

@@ -6,6 +6,7 @@ import hashlib
 from pathlib import Path
 
 from server.protocol.durations import read_duration
+from server.protocol.load_rules import read_estimator, read_iti_bounds, read_pavlovian, read_rules
 from server.protocol.marked import Mark, Marked, load_marked
 from server.protocol.model import (
     END_SESSION,
@@ -15,6 +16,7 @@ from server.protocol.model import (
     Block,
     BlockEnd,
     Duration,
+    EstimatorSpec,
     Limits,
     Option,
     OutputActions,
@@ -38,7 +40,7 @@ from server.protocol.wiring import (
 FORMAT_VERSION = 1
 TOP_KEYS = (
     "vigil_protocol", "name", "about", "wiring", "options", "trial_types",
-    "blocks", "iti", "limits", "at_start",
+    "blocks", "iti", "limits", "at_start", "estimator", "rules", "iti_bounds", "pavlovian",
 )  # fmt: skip
 STEP_KEYS = (
     "step", "activate", "deactivate", "pulse", "on_leave", "wait_s", "next",
@@ -105,12 +107,20 @@ class _Compiler(Reader):
         iti = self.duration(top.get("iti"), "iti") if "iti" in top else Duration.fixed(0.0)
         limits = self.limits(top.get("limits"))
         at_start = self.actions(top.get("at_start"), "at_start", wiring, allowed=ACTION_KEYS)
+        estimator = read_estimator(self, top.get("estimator"))
+        if estimator is None and "estimator" not in top and options:
+            estimator = EstimatorSpec()  # choice protocols get the default estimator
+        iti_bounds = read_iti_bounds(self, top.get("iti_bounds"))
+        bounds_mark = top["iti_bounds"].mark if "iti_bounds" in top else None
+        rules = read_rules(self, top.get("rules"), blocks, options, iti_bounds, bounds_mark)
+        pavlovian = read_pavlovian(self, top.get("pavlovian"), wiring, trial_types) if "pavlovian" in top else None
         if self.problems or wiring is None or iti is None:
             return None
         return Protocol(
             name=name, source=self.file, sha256=sha256, wiring=wiring, options=options,
             trial_types=trial_types, blocks=tuple(blocks), iti=iti, limits=limits,
-            at_start=at_start, description=about or "",
+            at_start=at_start, description=about or "", estimator=estimator, rules=rules,
+            iti_bounds=iti_bounds, pavlovian=pavlovian,
         )  # fmt: skip
 
     def duration(self, node: Marked | None, where: str) -> Duration | None:

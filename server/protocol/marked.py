@@ -34,6 +34,7 @@ class Marked:
     value: Any
     mark: Mark
     keys: dict[str, Mark] | None = None  # for mappings: where each key was written
+    quoted: bool = False  # a quoted scalar: its text starts one column after the mark
 
     @property
     def is_mapping(self) -> bool:
@@ -72,7 +73,7 @@ class _Converter:
         mark = _mark(self.file, node)
         if isinstance(node, yaml.ScalarNode):
             try:
-                return Marked(_scalar(node), mark)
+                return Marked(_scalar(node), mark, quoted=node.style in ("'", '"'))
             except yaml.YAMLError as exc:
                 self.problems.append(Problem(mark, f"unreadable value: {_first_line(exc)}"))
                 return Marked(None, mark)

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
+from server.protocol.expressions import Node, Quantity
 from server.protocol.wiring import Wiring
 
 END_TRIAL = "end"  # step target that ends the trial
@@ -124,6 +125,52 @@ class Block:
     iti: Duration | None = None  # overrides the protocol's ITI
 
 
+# Learning models the estimator offers, and the parameters a rule can read (name.mean ...).
+# server.models declares the same names; a conformance test keeps the two in step.
+ESTIMATOR_MODELS = ("q_learning", "q_dual_rate", "q_sticky", "q_forgetting")
+ESTIMATE_PARAMETERS = ("alpha", "beta", "alpha_pos", "alpha_neg", "kappa", "decay")
+ACTION_KINDS = ("switch_block", "reverse", "probe", "set_iti", "scale_iti", "end_session", "alarm")
+
+
+@dataclass(frozen=True, slots=True)
+class EstimatorSpec:
+    model: str = "q_learning"
+    drift: float = 0.0  # random-walk step of log beta between trials (0: static)
+
+
+@dataclass(frozen=True, slots=True)
+class RuleAction:
+    kind: str  # one of ACTION_KINDS
+    block: str | None = None  # switch_block; probe: where to go after (None: end session)
+    options: tuple[str, str] | None = None  # reverse
+    minutes: float | None = None  # probe length
+    seconds: float | None = None  # set_iti
+    factor: float | None = None  # scale_iti
+    message: str | None = None  # end_session reason / alarm text
+
+
+@dataclass(frozen=True, slots=True)
+class Rule:
+    name: str
+    text: str  # the condition as written
+    condition: Node
+    reads: tuple[Quantity, ...]
+    actions: tuple[RuleAction, ...]
+    hold_for: int = 1  # consecutive trial evaluations the condition must hold (hysteresis)
+    cooldown: int = 0  # trials after a firing during which the rule cannot fire again
+    max_firings: int | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class Pavlovian:
+    """Which step is the CS and which inputs count as lever and magazine, for the PCA index."""
+
+    cs_step: str
+    lever: str
+    magazine: str
+    cs_seconds: float
+
+
 @dataclass(frozen=True, slots=True)
 class Limits:
     max_minutes: float | None = None
@@ -144,7 +191,10 @@ class Protocol:
     limits: Limits
     at_start: OutputActions = OutputActions()
     description: str = ""
-    # Rules and other later additions hang off here as further fields.
+    estimator: EstimatorSpec | None = None
+    rules: tuple[Rule, ...] = ()
+    iti_bounds: tuple[float, float] | None = None  # rules may set/scale the ITI within these
+    pavlovian: Pavlovian | None = None
 
     def block(self, name: str) -> Block:
         for b in self.blocks:

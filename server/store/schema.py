@@ -116,8 +116,22 @@ _V1 = statements(
     "CREATE INDEX annotations_session ON annotations(session_id, t)",
 )
 
+_V2 = statements(
+    """CREATE TABLE rule_firings (
+        id INTEGER PRIMARY KEY,
+        session_id INTEGER NOT NULL REFERENCES sessions(id),
+        trial INTEGER NOT NULL,         -- the trial after which the rule fired
+        t REAL NOT NULL,                -- seconds from session start
+        rule TEXT NOT NULL,
+        actions TEXT NOT NULL,          -- JSON list: what the rule did
+        reads TEXT NOT NULL             -- JSON: every quantity its condition read, and its value
+    )""",
+    "CREATE INDEX rule_firings_session ON rule_firings(session_id, trial)",
+)
+
 MIGRATIONS: tuple[Migration, ...] = (
     Migration(1, "sessions, trials, events, blocks, estimates, annotations", _V1),
+    Migration(2, "rule firings", _V2),
 )
 
 

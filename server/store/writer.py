@@ -22,7 +22,9 @@ from typing import Any, TypeVar
 
 from server.engine.records import (
     BlockStarted,
+    EstimateUpdated,
     EventLogged,
+    RuleFired,
     Record,
     SessionEnded,
     SessionStarted,
@@ -42,12 +44,18 @@ _INSERT_TRIAL = (
 _COUNT_TRIAL = (
     "UPDATE sessions SET trials = max(trials, ?), rewards = rewards + ? WHERE id = ?"
 )
+_INSERT_RULE_FIRING = (
+    "INSERT INTO rule_firings (session_id, trial, t, rule, actions, reads) VALUES (?, ?, ?, ?, ?, ?)"
+)
 _INSERT_BLOCK = (
     f"INSERT INTO blocks ({', '.join(rows.BLOCK_COLUMNS)})"
     f" VALUES ({', '.join('?' * len(rows.BLOCK_COLUMNS))})"
 )
 _UPSERT_ESTIMATE = (
     "INSERT OR REPLACE INTO estimates (session_id, trial, model, data) VALUES (?, ?, ?, ?)"
+)
+_INSERT_ANNOTATION = (
+    "INSERT INTO annotations (session_id, t, wall_time, origin, text) VALUES (?, ?, ?, ?, ?)"
 )
 _INSERT_SESSION = (
     "INSERT INTO sessions (box, animal, protocol, protocol_path, protocol_sha256, started_at,"
@@ -220,6 +228,19 @@ class Store:
             self.write(session_id, note)
         elif isinstance(record, SessionEnded):
             self._end(session_id, running, record, ended_at)
+        elif isinstance(record, EstimateUpdated):
+            self.write_estimate(session_id, record.trial, record.model, record.estimate.to_dict())
+        elif isinstance(record, RuleFired):
+            params = (
+                session_id, rows.integer(record.trial, "trial"), rows.real(record.t, "rule t"),
+                str(record.rule), rows.to_json(list(record.actions), f"actions of rule {record.rule}"),
+                rows.to_json(dict(record.values), f"values read by rule {record.rule}"),
+            )
+            self._pending.append(_Pending(
+                session_id, f"firing of rule {record.rule} in session {session_id}",
+                ((_INSERT_RULE_FIRING, params),),
+            ))
+            self._commit()
         else:
             raise StoreError(f"cannot store a {type(record).__name__} record")
 
@@ -252,6 +273,30 @@ class Store:
             ((_UPSERT_ESTIMATE, params),),
         ))
         self._commit()
+
+    def write_annotation(
+        self, session_id: int, text: str, origin: str, *, t: float | None = None,
+        wall_time: str | None = None,
+    ) -> int:
+        """Store an operator's note on a session (running or ended); commits now, returns its id.
+
+        `t` is seconds from session start when known; `wall_time` (ISO 8601 with offset)
+        defaults to the wall clock now; `origin` says who wrote it (e.g. a client address).
+        """
+        session_id = rows.integer(session_id, "session id")
+        text = str(text)
+        if not text.strip():
+            raise StoreError("an annotation needs some text")
+        wall = rows.iso(self._wall_clock()) if wall_time is None else wall_time
+        rows.parse_wall_time(wall, "wall_time")
+        params = (session_id, rows.opt_real(t, "annotation t"), wall, str(origin), text)
+
+        def insert(conn: sqlite3.Connection) -> int:
+            if conn.execute("SELECT 1 FROM sessions WHERE id = ?", (session_id,)).fetchone() is None:
+                raise StoreError(f"no session {session_id} to annotate")
+            return conn.execute(_INSERT_ANNOTATION, params).lastrowid
+
+        return self._commit(insert)
 
     def close_interrupted(self, now_iso: str | None = None) -> list[int]:
         """End every session left without an end reason (a crash, a kill); return their ids.

@@ -63,7 +63,7 @@ def test_newer_schema_is_refused_with_a_clear_message(db_path):
     conn.execute("PRAGMA user_version = 99")
     conn.close()
     with pytest.raises(StoreError, match=r"^cannot use database .*schema version 99 is newer "
-                                         r"than this vigil knows \(1\); upgrade vigil$"):
+                                         rf"than this vigil knows \({len(MIGRATIONS)}\); upgrade vigil$"):
         Store.open(db_path)
 
 
@@ -83,30 +83,32 @@ def _autocommit(path) -> sqlite3.Connection:
 def test_appended_migration_upgrades_an_existing_database(db_path, begin, store):
     begin()
     store.close()
-    add_stage = Migration(2, "training stage per session",
-                          statements("ALTER TABLE sessions ADD COLUMN stage TEXT"))
+    nxt = len(MIGRATIONS) + 1
+    add_stage = Migration(nxt, "training stage per session",
+                          statements("ALTER TABLE sessions ADD COLUMN stage_x TEXT"))
     conn = _autocommit(db_path)
-    assert migrate(conn, (*MIGRATIONS, add_stage)) == 2
-    assert "stage" in columns(conn, "sessions")
+    assert migrate(conn, (*MIGRATIONS, add_stage)) == nxt
+    assert "stage_x" in columns(conn, "sessions")
     assert conn.execute("SELECT count(*) FROM sessions").fetchone() == (1,)
     conn.close()
 
 
 def test_failing_migration_leaves_the_previous_version_intact(db_path):
     Store.open(db_path).close()
-    broken = Migration(2, "half done", statements(
-        "CREATE TABLE stages (animal TEXT)", "ALTER TABLE no_such_table ADD COLUMN x"))
+    broken = Migration(len(MIGRATIONS) + 1, "half done", statements(
+        "CREATE TABLE half_done (animal TEXT)", "ALTER TABLE no_such_table ADD COLUMN x"))
     conn = _autocommit(db_path)
     with pytest.raises(sqlite3.OperationalError):
         migrate(conn, (*MIGRATIONS, broken))
-    assert schema_version(conn) == 1
-    assert "stages" not in {r[0] for r in conn.execute("SELECT name FROM sqlite_schema")}
+    assert schema_version(conn) == len(MIGRATIONS)
+    assert "half_done" not in {r[0] for r in conn.execute("SELECT name FROM sqlite_schema")}
     conn.close()
 
 
 def test_migrations_must_be_numbered_in_order(db_path):
     conn = _autocommit(db_path)
-    skipped = Migration(3, "gap", statements("SELECT 1"))
-    with pytest.raises(ValueError, match="migration 3 is out of order"):
+    gap = len(MIGRATIONS) + 2
+    skipped = Migration(gap, "gap", statements("SELECT 1"))
+    with pytest.raises(ValueError, match=f"migration {gap} is out of order"):
         migrate(conn, (*MIGRATIONS, skipped))
     conn.close()

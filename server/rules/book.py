@@ -1,0 +1,146 @@
+"""Closed-loop rules: after every trial, evaluate each rule's condition and act on the session.
+
+Evaluation is a pure function of (metrics, estimate, rule state); the only effects are the
+session's own action methods and a `RuleFired` record carrying every value the condition
+read. Hysteresis (`hold_for`), cooldown and a cap on firings keep a noisy metric from
+flapping the schedule.
+"""
+
+from __future__ import annotations
+
+import operator
+from dataclasses import dataclass
+
+from server.engine.records import RuleFired, TrialRecord
+from server.engine.session import Session
+from server.protocol.expressions import Arithmetic, Compare, Logic, Negate, Node, Not, Number, Quantity
+from server.protocol.model import Protocol, Rule, RuleAction
+from server.rules.metrics import SessionMetrics
+
+_COMPARE = {"<": operator.lt, "<=": operator.le, ">": operator.gt, ">=": operator.ge,
+            "==": operator.eq, "!=": operator.ne}  # fmt: skip
+_ARITH = {"+": operator.add, "-": operator.sub, "*": operator.mul}
+
+
+def evaluate(node: Node, values: dict[str, float | None]) -> float | bool | None:
+    """Value of a condition tree; None propagates through arithmetic, comparisons with an
+    unknown value are False, so a rule never fires on a quantity not known yet."""
+    if isinstance(node, Number):
+        return node.value
+    if isinstance(node, Quantity):
+        return values[node.label]
+    if isinstance(node, Negate):
+        inner = evaluate(node.operand, values)
+        return None if inner is None else -inner
+    if isinstance(node, Arithmetic):
+        left, right = evaluate(node.left, values), evaluate(node.right, values)
+        if left is None or right is None:
+            return None
+        if node.op == "/":
+            return None if right == 0 else left / right
+        return _ARITH[node.op](left, right)
+    if isinstance(node, Compare):
+        left, right = evaluate(node.left, values), evaluate(node.right, values)
+        return False if left is None or right is None else _COMPARE[node.op](left, right)
+    if isinstance(node, Not):
+        return not evaluate(node.operand, values)
+    assert isinstance(node, Logic)
+    if node.op == "and":
+        return all(evaluate(part, values) for part in node.parts)
+    return any(evaluate(part, values) for part in node.parts)
+
+
+def quantity_value(q: Quantity, metrics: SessionMetrics, session: Session, trial: TrialRecord) -> float | None:
+    estimate = session.estimate
+    name = q.name
+    if q.field is not None:
+        if estimate is None or name not in estimate.params:
+            return None
+        return float(getattr(estimate.params[name], q.field))
+    if q.window is not None:
+        return getattr(metrics, name)(q.window)
+    if name == "streak":
+        return float(metrics.streak)
+    if name == "rewards":
+        return float(session.rewards)
+    if name == "rewarded_responses":
+        return float(metrics.rewarded_trials)
+    if name == "minutes":
+        return trial.t_end / 60.0
+    if name == "trials":
+        return float(session.trials_done)
+    if name == "block_trials":
+        return float(session.block.trials) if session.block is not None else None
+    if name == "reversals":
+        return float(session.reversals)
+    if name == "pca":
+        return metrics.pca()
+    if estimate is None:
+        return None
+    value = getattr(estimate, name)
+    return None if value is None else float(value)
+
+
+@dataclass
+class _RuleState:
+    run: int = 0  # consecutive evaluations the condition has held
+    fired: int = 0
+    last_fired_trial: int | None = None
+
+
+class RuleBook:
+    """A session observer that runs the protocol's rules after every finished trial."""
+
+    def __init__(self, protocol: Protocol):
+        self.rules = protocol.rules
+        self.metrics = SessionMetrics(protocol)
+        self.state = {rule.name: _RuleState() for rule in self.rules}
+
+    def __call__(self, session: Session, trial: TrialRecord) -> None:
+        self.metrics.add(trial)
+        for rule in self.rules:
+            if session.finished:
+                return
+            self._consider(rule, self.state[rule.name], session, trial)
+
+    def _consider(self, rule: Rule, state: _RuleState, session: Session, trial: TrialRecord) -> None:
+        values = {q.label: quantity_value(q, self.metrics, session, trial) for q in rule.reads}
+        state.run = state.run + 1 if evaluate(rule.condition, values) else 0
+        if state.run < rule.hold_for:
+            return
+        if rule.max_firings is not None and state.fired >= rule.max_firings:
+            return
+        if state.last_fired_trial is not None and trial.trial - state.last_fired_trial <= rule.cooldown:
+            return
+        state.fired += 1
+        state.last_fired_trial = trial.trial
+        state.run = 0
+        done = tuple(apply_action(action, session, trial.t_end, rule.name) for action in rule.actions)
+        session.add_record(RuleFired(trial.t_end, trial.trial, rule.name, done, values))
+
+
+def apply_action(action: RuleAction, session: Session, t: float, rule: str) -> dict:
+    """Carry out one action on the session; returns what was done, for the firing record."""
+    kind = action.kind
+    why = f"rule {rule}"
+    if kind == "switch_block":
+        session.switch_block(action.block, t, why)
+        return {"switch_block": action.block}
+    if kind == "reverse":
+        a, b = action.options
+        session.reverse(a, b, t)
+        return {"reverse": [a, b]}
+    if kind == "probe":
+        session.start_probe(action.minutes, action.block, t, why)
+        return {"probe": {"minutes": action.minutes, "then": action.block or "end_session"}}
+    if kind == "set_iti":
+        session.set_iti(action.seconds)
+        return {"set_iti": action.seconds}
+    if kind == "scale_iti":
+        session.scale_iti(action.factor)
+        return {"scale_iti": action.factor, "scale_now": session.iti_scale}
+    if kind == "end_session":
+        session.end_after_trial(f"{why}: {action.message}")
+        return {"end_session": action.message}
+    session.alarm(action.message, t)
+    return {"alarm": action.message}

@@ -1,0 +1,135 @@
+"""Windowed behavioural metrics of a session, updated trial by trial (pure, no I/O)."""
+
+from __future__ import annotations
+
+from collections import deque
+from statistics import median
+
+from server.engine.records import TrialRecord
+from server.protocol.model import Protocol
+from server.protocol.wiring import OPERANT_INPUT_KINDS
+
+HISTORY = 500  # trials kept for windowed metrics; rules cannot ask for a longer window
+
+
+def pca_index(
+    lever_presses: int,
+    magazine_entries: int,
+    p_lever: float,
+    p_magazine: float,
+    lever_latency_s: float,
+    magazine_latency_s: float,
+    cs_s: float,
+) -> float:
+    """Pavlovian conditioned approach index, Meyer et al. (2012), PLoS ONE 7:e38987.
+
+    Mean of response bias (LP - CE)/(LP + CE), probability difference P(lever) - P(magazine),
+    and latency score (magazine latency - lever latency) / CS duration. +1 sign-tracking,
+    -1 goal-tracking. With no response of either kind the bias is taken as 0.
+    """
+    total = lever_presses + magazine_entries
+    bias = (lever_presses - magazine_entries) / total if total else 0.0
+    difference = p_lever - p_magazine
+    latency = (magazine_latency_s - lever_latency_s) / cs_s
+    return (bias + difference + latency) / 3.0
+
+
+def win_stay_lose_shift(choices: list[str | None], rewarded: list[bool]) -> tuple[float | None, float | None]:
+    """WS = P(same choice | previous rewarded), LS = P(switch | previous unrewarded), over
+    successive choice trials with omissions skipped (common practice)."""
+    pairs = [(c, r) for c, r in zip(choices, rewarded) if c is not None]
+    wins = stays = losses = shifts = 0
+    for (prev, prev_rewarded), (cur, _) in zip(pairs, pairs[1:]):
+        if prev_rewarded:
+            wins += 1
+            stays += cur == prev
+        else:
+            losses += 1
+            shifts += cur != prev
+    return (stays / wins if wins else None, shifts / losses if losses else None)
+
+
+class SessionMetrics:
+    def __init__(self, protocol: Protocol):
+        self.pavlovian = protocol.pavlovian
+        self.operant = {n for n, line in protocol.wiring.inputs.items() if line.kind in OPERANT_INPUT_KINDS}
+        self.recent: deque[TrialRecord] = deque(maxlen=HISTORY)
+        self.streak = 0
+        self.rewarded_trials = 0
+        # running sums for the PCA index
+        self._cs_trials = 0
+        self._lever = self._magazine = 0
+        self._lever_trials = self._magazine_trials = 0
+        self._lever_latency = self._magazine_latency = 0.0
+
+    def add(self, trial: TrialRecord) -> None:
+        if trial.interrupted:
+            return
+        self.recent.append(trial)
+        self.rewarded_trials += trial.rewarded
+        if trial.correct is not None:
+            self.streak = self.streak + 1 if trial.correct else 0
+        if self.pavlovian is not None:
+            self._add_pavlovian(trial, self.pavlovian)
+
+    def _add_pavlovian(self, trial: TrialRecord, pav) -> None:
+        if not any(name == pav.cs_step for name, _ in trial.steps):
+            return
+        lever_key, magazine_key = f"{pav.cs_step}.{pav.lever}", f"{pav.cs_step}.{pav.magazine}"
+        self._cs_trials += 1
+        self._lever += trial.counts.get(lever_key, 0)
+        self._magazine += trial.counts.get(magazine_key, 0)
+        self._lever_trials += lever_key in trial.counts
+        self._magazine_trials += magazine_key in trial.counts
+        # A trial without the response scores the whole CS as its latency (from memory).
+        self._lever_latency += min(trial.first_s.get(lever_key, pav.cs_seconds), pav.cs_seconds)
+        self._magazine_latency += min(trial.first_s.get(magazine_key, pav.cs_seconds), pav.cs_seconds)
+
+    def pca(self) -> float | None:
+        pav = self.pavlovian
+        n = self._cs_trials
+        if pav is None or n == 0:
+            return None
+        return pca_index(
+            self._lever, self._magazine, self._lever_trials / n, self._magazine_trials / n,
+            self._lever_latency / n, self._magazine_latency / n, pav.cs_seconds,
+        )  # fmt: skip
+
+    def window(self, n: int) -> list[TrialRecord] | None:
+        if len(self.recent) < n:
+            return None
+        return list(self.recent)[-n:]
+
+    def accuracy(self, n: int) -> float | None:
+        scored = [t.correct for t in self.recent if t.correct is not None]
+        if len(scored) < n:
+            return None
+        last = scored[-n:]
+        return sum(last) / n
+
+    def omission_rate(self, n: int) -> float | None:
+        trials = self.window(n)
+        return None if trials is None else sum(t.omission for t in trials) / n
+
+    def win_stay(self, n: int) -> float | None:
+        trials = self.window(n)
+        return None if trials is None else win_stay_lose_shift([t.choice for t in trials], [t.rewarded for t in trials])[0]
+
+    def lose_shift(self, n: int) -> float | None:
+        trials = self.window(n)
+        return None if trials is None else win_stay_lose_shift([t.choice for t in trials], [t.rewarded for t in trials])[1]
+
+    def median_latency(self, n: int) -> float | None:
+        trials = self.window(n)
+        if trials is None:
+            return None
+        latencies = [t.latency_s for t in trials if t.latency_s is not None]
+        return median(latencies) if latencies else None
+
+    def responses_per_minute(self, n: int) -> float | None:
+        trials = self.window(n)
+        if trials is None:
+            return None
+        span = trials[-1].t_end - trials[0].t_start
+        responses = sum(n for t in trials for key, n in t.counts.items() if key.rpartition(".")[2] in self.operant)
+        return responses / (span / 60.0) if span > 0 else None
