@@ -9,21 +9,29 @@ from __future__ import annotations
 
 import asyncio
 import json
+import re
 import secrets
+import shutil
 import signal
 import sys
+import tempfile
 import time
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
+from pathlib import Path
 from typing import Callable
 
 import numpy as np
 
 from server.engine.live import LiveSession
-from server.engine.records import Record, SessionEnded, TrialRecord
+from server.engine.records import EventLogged, Record, SessionEnded, TrialRecord
+from server.closed_loop import build_session
 from server.engine.session import Session
 from server.lab_config import BoxConfig, LabConfig
+from server.link.emulator_process import EmulatorProcess, emulator_command
+from server.link.handshake import LinkError
 from server.link.inprocess import InProcessLink
+from server.link.serial_link import SerialLink
 from server.store.writer import Store
 
 FLUSH_EVERY_S = 0.25
@@ -41,21 +49,75 @@ class BoxRun:
     last_trial: TrialRecord | None = None
     ended: SessionEnded | None = None
     tasks: list[asyncio.Task] = field(default_factory=list)
+    # What the status page shows, kept up to date by `observe` from the record stream.
+    last_input_t: float | None = None  # session time of the last input onset
+    last_rule: Record | None = None  # the last rule firing (a record with .rule, .t, .actions)
+    last_alarm: EventLogged | None = None  # the last alarm a rule raised
+    link_lost: bool = False
+    cap_reached: bool = False
+    scored: int = 0  # trials where correctness applies
+    correct: int = 0
+
+    def observe(self, record: Record) -> None:
+        """Remember what a status view needs from one record (constant time per record)."""
+        if isinstance(record, TrialRecord):
+            self.last_trial = record
+            if record.correct is not None:
+                self.scored += 1
+                self.correct += bool(record.correct)
+        elif isinstance(record, EventLogged):
+            kind = record.kind
+            if kind == "input":
+                if record.value:
+                    self.last_input_t = record.t
+            elif kind == "alarm":
+                self.last_alarm = record
+            elif kind in ("link_lost", "link_restored"):
+                self.link_lost = kind == "link_lost"
+            elif kind == "cap":
+                self.cap_reached = True
+        elif isinstance(record, SessionEnded):
+            self.ended = record
+        elif hasattr(record, "rule"):  # a rule firing
+            self.last_rule = record
 
 
 def wall_now() -> str:
     return datetime.now(timezone.utc).astimezone().isoformat(timespec="milliseconds")
 
 
-def make_box(box: BoxConfig, clock: Callable[[], float]):
-    """The link for one box: an in-process emulated box for `emulate` entries."""
+EMULATOR_STARTUP_S = 30.0  # a child process importing numpy on a busy machine
+
+
+def make_box(
+    box: BoxConfig,
+    clock: Callable[[], float],
+    *,
+    folder: Path | None = None,
+    say: Callable[[str], None] = print,
+    in_process: bool = False,
+):
+    """The link for one box: a serial link to its `port`, or for an `emulate` entry a serial
+    link to an emulated box started as a child process on a pty in `folder` (the same path
+    as a real box); `in_process` keeps emulated boxes inside this process instead (tests)."""
     from hardware_stubs.agents import make_agent
     from hardware_stubs.emulated_box import EmulatedBox
 
-    if box.emulate is None:
-        raise LabError(
-            f"box '{box.name}': serial ports are not supported by this build; use 'emulate'"
+    if box.port is not None:
+        return SerialLink(box.name, box.port, box.protocol.wiring, clock, say=say)
+    assert box.emulate is not None
+    if not in_process:
+        if folder is None:
+            raise LabError(f"box '{box.name}': no folder for the emulated box's pty")
+        path = folder / (re.sub(r"[^A-Za-z0-9._-]", "_", box.name) + ".tty")  # names are unique
+        emu = box.emulate
+        command = emulator_command(
+            path, box.protocol.source, emu.agent, emu.seed, emu.options, emu.faults
         )
+        child = EmulatorProcess(box.name, path, command)
+        return SerialLink(box.name, str(path), box.protocol.wiring, clock, say=say,
+                          on_close=child.stop, gone=child.failure,
+                          startup_s=EMULATOR_STARTUP_S)  # fmt: skip
     agent = make_agent(box.emulate.agent, **box.emulate.options)
     emulated = EmulatedBox(box.protocol.wiring, agent, np.random.default_rng(box.emulate.seed))
     return InProcessLink(emulated, clock)
@@ -66,10 +128,18 @@ class LabError(Exception):
 
 
 class Lab:
-    def __init__(self, config: LabConfig, store: Store, *, say: Callable[[str], None] = print):
+    def __init__(
+        self,
+        config: LabConfig,
+        store: Store,
+        *,
+        say: Callable[[str], None] = print,
+        in_process_boxes: bool = False,
+    ):
         self.config = config
         self.store = store
         self.say = say
+        self.in_process_boxes = in_process_boxes  # emulated boxes without serial (tests)
         self.runs: list[BoxRun] = []
         self._stop_reason: str | None = None
 
@@ -100,13 +170,20 @@ class Lab:
         else:
             run.live.request(action, origin)
 
+    def annotate(self, box: str, text: str, origin: str) -> int:
+        """Store a free-text note on the box's current session at the session time now.
+
+        Raises KeyError for an unknown box; returns the annotation's id.
+        """
+        run = self.find(box)
+        t = run.ended.t if run.ended is not None else (run.live.clock() if run.live else None)
+        return self.store.write_annotation(run.session_id, text, origin, t=t, wall_time=wall_now())
+
     def _publisher(self, run: BoxRun) -> Callable[[list[Record]], None]:
         def publish(records: list[Record]) -> None:
             for record in records:
-                if isinstance(record, TrialRecord):
-                    run.last_trial = record
-                elif isinstance(record, SessionEnded):
-                    run.ended = record
+                run.observe(record)
+                if isinstance(record, SessionEnded):
                     self.say(
                         f"{run.config.name}: session {run.session_id} ended ({record.reason}); "
                         f"{record.trials} trials, {record.rewards} rewards"
@@ -125,16 +202,28 @@ class Lab:
         def clock() -> float:
             return loop.time() - t0
 
-        for box in self.config.boxes:
+        folder = Path(tempfile.mkdtemp(prefix="vigil-boxes-"))
+        try:
+            links = await self._connect(clock, folder)
+        except BaseException:
+            shutil.rmtree(folder, ignore_errors=True)
+            raise
+        t0 = loop.time()  # session time starts once every box has answered
+        for box, link in zip(self.config.boxes, links):
             seed = box.seed if box.seed is not None else secrets.randbits(63)
-            session = Session(box.protocol, seed, self.config.caps)
-            link = make_box(box, clock)
+            session = build_session(box.protocol, seed, self.config.caps)
             settings = {
                 "caps": {"max_rewards": self.config.caps.max_rewards, "max_minutes": self.config.caps.max_minutes},
                 "emulate": None if box.emulate is None else {
                     "agent": box.emulate.agent, "seed": box.emulate.seed, "options": box.emulate.options,
+                    "faults": box.emulate.faults,
                 },
                 "port": box.port,
+                # Line kinds let a reader of the store tell a feeder pulse from a sync pulse.
+                "wiring": {
+                    "inputs": {n: line.kind for n, line in box.protocol.wiring.inputs.items()},
+                    "outputs": {n: line.kind for n, line in box.protocol.wiring.outputs.items()},
+                },
             }  # fmt: skip
             session_id = self.store.begin_session(
                 box.name, box.animal, box.protocol.name, box.protocol.source,
@@ -142,6 +231,8 @@ class Lab:
             )  # fmt: skip
             run = BoxRun(box, session, session_id, link)
             run.live = LiveSession(session, link, clock, self._publisher(run))
+            if isinstance(link, SerialLink):
+                link.bind(session, self._publisher(run))
             self.runs.append(run)
             self.say(f"{box.name}: animal {box.animal}, protocol '{box.protocol.name}', session {session_id}")
 
@@ -155,12 +246,33 @@ class Lab:
                 if isinstance(result, BaseException):
                     self.say(f"{run.config.name}: session {run.session_id} failed: {result!r}")
         finally:
+            # Sessions end with outputs off: wait for the box to acknowledge, then close.
+            await _close_links([run.link for run in self.runs])
+            shutil.rmtree(folder, ignore_errors=True)
             for task in link_tasks + [flusher] + ([limit] if limit else []):
                 task.cancel()
             await asyncio.gather(*link_tasks, flusher, *([limit] if limit else []), return_exceptions=True)
             _remove_signals(loop, signals)
             self.store.flush()
         return self.runs
+
+    async def _connect(self, clock: Callable[[], float], folder: Path) -> list:
+        """A link per box, each greeted and checked against its protocol's wiring before
+        any session starts; every box's problem is reported at once."""
+        links = [
+            make_box(box, clock, folder=folder, say=self.say, in_process=self.in_process_boxes)
+            for box in self.config.boxes
+        ]
+        serial_links = [link for link in links if isinstance(link, SerialLink)]
+        results = await asyncio.gather(*(link.connect() for link in serial_links), return_exceptions=True)
+        failures = [r for r in results if isinstance(r, BaseException)]
+        if failures:
+            await _close_links(links)
+            bugs = [r for r in failures if not isinstance(r, LinkError)]
+            if bugs:
+                raise bugs[0]
+            raise LabError("\n".join(str(r) for r in failures))
+        return links
 
     async def _flush_loop(self) -> None:
         while True:
@@ -174,6 +286,11 @@ class Lab:
         await asyncio.sleep(minutes * 60.0)
         self.say(f"time limit of {minutes:g} min reached; ending sessions")
         self.stop_all("time limit")
+
+
+async def _close_links(links: list) -> None:
+    closing = [link.close() for link in links if isinstance(link, SerialLink)]
+    await asyncio.gather(*closing, return_exceptions=True)
 
 
 def _install_signals(loop: asyncio.AbstractEventLoop, stop_all: Callable[[str], None]) -> list[int]:
