@@ -1,0 +1,246 @@
+"""The host side of one box's wire conversation, sans-I/O: bytes and time in, lines to write
+and accepted input edges out. The asyncio link (serial_link.py) owns the port and the clock.
+
+It ties the pure helpers together: the codec, the sequence tracker (gaps -> replay request,
+duplicates dropped), pending commands (resend until acknowledged), the clock unwrapper and
+clock sync (ping round trips). It lives as long as the session, across reconnects, so event
+numbering and the clock estimate survive a dropped cable.
+"""
+
+from __future__ import annotations
+
+import math
+import secrets
+from dataclasses import dataclass
+
+from server.link.clock_sync import ClockSync
+from server.link.codec import Decoder, encode
+from server.link.messages import (
+    RESULT_LOST,
+    TOPIC_BEAT,
+    TOPIC_IDENTITY,
+    Ack,
+    Beat,
+    DriveCommand,
+    Edge,
+    HostCommand,
+    Identity,
+    PulseCommand,
+    QueryCommand,
+    ReplayCommand,
+)
+from server.link.pending import Pending, PendingCommands
+from server.link.sequence import SequenceTracker, Verdict
+from server.link.wrap import DeviceClockUnwrapper
+
+PING_EVERY_S = 1.0  # PROTOCOL.md section 9: `ask beat` every second
+SILENCE_S = 3.0  # no valid line this long: the link is lost
+
+
+# ---------------------------------------------------------------- what the host side reports
+
+
+@dataclass(frozen=True, slots=True)
+class EdgeArrived:
+    """An input edge accepted in device order; `host_s` on the link's clock."""
+
+    edge: Edge
+    host_s: float
+    seq: int  # number to store: the device's, continued across a device restart
+
+
+@dataclass(frozen=True, slots=True)
+class IdentitySeen:
+    identity: Identity
+
+
+@dataclass(frozen=True, slots=True)
+class DeviceRestarted:
+    """A new boot id: the device's held events, ring and clock started again."""
+
+    old_boot: int
+    new_boot: int
+
+
+@dataclass(frozen=True, slots=True)
+class EventsLost:
+    """The device no longer held events first..first+count-1 when asked to replay them."""
+
+    first: int
+    count: int
+
+
+@dataclass(frozen=True, slots=True)
+class CommandFailed:
+    """A command went unacknowledged through every resend."""
+
+    pending: Pending
+
+
+Happening = EdgeArrived | IdentitySeen | DeviceRestarted | EventsLost | CommandFailed
+
+
+class HostSide:
+    """One box's protocol state on the host; feed it bytes and time, write `take_output()`."""
+
+    def __init__(self, first_id: int | None = None, *, clock_window: int = 120) -> None:
+        self.decoder = Decoder("device")
+        self.pending = PendingCommands(first_id or 1 + secrets.randbelow(1 << 31))
+        self.clock = ClockSync(window=clock_window)
+        self.unwrap = DeviceClockUnwrapper()
+        self.tracker: SequenceTracker | None = None  # set by the first identity
+        self.identity: Identity | None = None
+        self.boot: int | None = None
+        self.seq_base = 0  # added to device numbers after a device restart
+        self.last_line_s: float | None = None
+        self.rx_rejected_by_device = 0
+        self._next_ping_s = 0.0
+        self._replay_asked_s: float | None = None
+        self._clock_window = clock_window
+        self._out = bytearray()
+
+    # ------------------------------------------------------------ sending
+
+    def _send(self, command: HostCommand, now: float) -> HostCommand:
+        self._out += encode(command)
+        self.pending.sent(command, now)
+        return command
+
+    def drive(self, channel: int, on: bool, now: float) -> HostCommand:
+        return self._send(DriveCommand(self.pending.next_id(), channel, on), now)
+
+    def pulse(self, channel: int, ms: int, now: float) -> HostCommand:
+        return self._send(PulseCommand(self.pending.next_id(), channel, ms), now)
+
+    def ask(self, topic: str, now: float) -> HostCommand:
+        return self._send(QueryCommand(self.pending.next_id(), topic), now)
+
+    def take_output(self) -> bytes:
+        """Bytes to write to the port now (each line at most once)."""
+        out, self._out = bytes(self._out), bytearray()
+        return out
+
+    # ------------------------------------------------------------ connection
+
+    def connection_opened(self, now: float) -> None:
+        """A fresh port: forget half-read lines, wait for an identity, ask a replay after it."""
+        self.decoder = Decoder("device")
+        self.last_line_s = now
+        self._next_ping_s = now
+        if self.tracker is not None:
+            self.tracker.reconnected()
+
+    def connection_lost(self) -> tuple[Pending, ...]:
+        """Forget what was in flight (the caller restores held outputs after reconnecting);
+        returns the commands that were never acknowledged."""
+        unacked: list[Pending] = []
+        while len(self.pending):  # run every command through its resends at once
+            unacked.extend(self.pending.due(math.inf).given_up)
+        self._out.clear()
+        return tuple(unacked)
+
+    # ------------------------------------------------------------ receiving
+
+    def receive(self, data: bytes, now: float) -> list[Happening]:
+        out: list[Happening] = []
+        for msg in self.decoder.feed(data):
+            self.last_line_s = now
+            if isinstance(msg, Edge):
+                self._edge(msg, out)
+            elif isinstance(msg, Ack):
+                self._ack(msg, now, out)
+            elif isinstance(msg, Beat):
+                self.rx_rejected_by_device = msg.rx_rejected
+                if self._boot_seen(msg.boot, msg.seq, out):
+                    self.unwrap.unwrap(msg.device_us)
+            elif isinstance(msg, Identity):
+                self._identity(msg, out)
+        self._ask_replay(now)
+        return out
+
+    def _identity(self, msg: Identity, out: list[Happening]) -> None:
+        self.identity = msg
+        if self.tracker is None:
+            # PROTOCOL.md section 5: follow numbers from seq + 1 of the identity line.
+            self.tracker = SequenceTracker(msg.seq + 1)
+            self.boot = msg.boot
+        else:
+            self._boot_seen(msg.boot, msg.seq, out)
+        out.append(IdentitySeen(msg))
+
+    def _boot_seen(self, boot: int, seq: int, out: list[Happening]) -> bool:
+        """Note a line's boot id and its last-written mark; False before any identity."""
+        if self.tracker is None:
+            return False
+        if boot != self.boot:
+            out.append(DeviceRestarted(self.boot if self.boot is not None else -1, boot))
+            self.seq_base += self.tracker.expected - 1
+            self.tracker = SequenceTracker(1)
+            self.boot = boot
+            self.unwrap.reset()
+            self.clock = ClockSync(window=self._clock_window)
+        self.tracker.on_mark(seq)
+        return True
+
+    def _edge(self, msg: Edge, out: list[Happening]) -> None:
+        if self.tracker is None:
+            return  # before the identity we cannot tell where numbering starts
+        if self.tracker.on_event(msg.seq) is not Verdict.ACCEPT:
+            return
+        device_us = self.unwrap.unwrap(msg.device_us)
+        fit = self.clock.fit()
+        host_s = fit.to_host(device_us) if fit is not None else self.last_line_s or 0.0
+        out.append(EdgeArrived(msg, host_s, self.seq_base + msg.seq))
+
+    def _ack(self, msg: Ack, now: float, out: list[Happening]) -> None:
+        if self.tracker is not None:
+            self.tracker.on_mark(msg.seq)
+        done = self.pending.acknowledge(msg.command_id)
+        if done is None:
+            return  # an ack repeated for a resend we already had answered
+        if done.attempts == 1 and self.tracker is not None:
+            # Karn & Partridge (1987): only a command sent once gives a clean round trip.
+            self.clock.add(done.first_sent_s, self.unwrap.unwrap(msg.device_us), now)
+        if isinstance(done.command, ReplayCommand) and msg.result == RESULT_LOST:
+            gone = self.tracker.skip_to(msg.value) if self.tracker is not None else 0
+            if gone:
+                out.append(EventsLost(self.seq_base + msg.value - gone, gone))
+
+    def _ask_replay(self, now: float) -> None:
+        if self.tracker is None:
+            return
+        start = self.tracker.replay_from(now)
+        if start is not None:
+            self._send(ReplayCommand(self.pending.next_id(), start), now)
+            self._replay_asked_s = now
+
+    # ------------------------------------------------------------ time
+
+    def poll(self, now: float) -> list[Happening]:
+        """Resends, replay requests and pings due by `now`."""
+        out: list[Happening] = []
+        plan = self.pending.due(now)
+        for command in plan.resend:
+            self._out += encode(command)
+        out.extend(CommandFailed(p) for p in plan.given_up)
+        self._ask_replay(now)
+        if self.tracker is not None and now >= self._next_ping_s:
+            self.ask(TOPIC_BEAT, now)
+            self._next_ping_s = now + PING_EVERY_S
+        return out
+
+    def next_deadline(self) -> float:
+        """When `poll` next has something to do."""
+        due = [self._next_ping_s] if self.tracker is not None else []
+        resend = self.pending.next_deadline()
+        if resend is not None:
+            due.append(resend)
+        if self.tracker is not None and self.tracker.missing and self._replay_asked_s is not None:
+            due.append(self._replay_asked_s + self.tracker.holdoff_s)
+        return min(due) if due else float("inf")
+
+    def silent_for(self, now: float) -> float:
+        return 0.0 if self.last_line_s is None else now - self.last_line_s
+
+    def ask_identity(self, now: float) -> HostCommand:
+        return self.ask(TOPIC_IDENTITY, now)
