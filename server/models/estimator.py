@@ -223,8 +223,9 @@ class OnlineEstimator:
             top = self._q >= self._q.max(0) - _TIE
             share = (top / top.sum(0)).reshape(k, -1) @ w_learn
             values = dict(zip(self.options, q_mean.tolist()))
-            p_choice = dict(zip(self.options, probs.tolist()))
-            p_prefers = dict(zip(self.options, share.tolist()))
+            # sums of weights can overshoot 1 by a rounding step; keep them probabilities
+            p_choice = dict(zip(self.options, np.clip(probs, 0.0, 1.0).tolist()))
+            p_prefers = dict(zip(self.options, np.clip(share, 0.0, 1.0).tolist()))
             order = np.argsort(-q_mean, kind="stable")
             if k == 1 or q_mean[order[0]] - q_mean[order[1]] > _TIE:
                 best = self.options[int(order[0])]
