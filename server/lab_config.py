@@ -15,11 +15,27 @@ from server.protocol.load import load_protocol
 from server.protocol.marked import Mark, Marked, load_marked
 from server.protocol.model import Protocol
 from server.protocol.problems import InvalidFile, Problem
-from server.protocol.reader import Reader
+from server.protocol.reader import Reader, did_you_mean
+
+
+def _url_handlers():
+    """pyserial's URL handlers (modules serial.urlhandler.protocol_<scheme>)."""
+    import pkgutil
+
+    import serial.urlhandler
+
+    return [m for m in pkgutil.iter_modules(serial.urlhandler.__path__) if m.name.startswith("protocol_")]
 
 TOP_KEYS = ("lab", "database", "caps", "boxes")
 BOX_KEYS = ("name", "animal", "protocol", "port", "emulate", "seed")
-EMULATE_KEYS = ("agent", "seed", "options")
+EMULATE_KEYS = ("agent", "seed", "options", "faults")
+# Faults an emulated box can inject (hardware_stubs/box.py): key -> (low, high, low excluded).
+FAULT_RANGES = {
+    "unplug_every_s": (0.0, 24 * 3600.0, True),
+    "unplug_for_s": (0.0, 3600.0, True),
+    "drop_rate": (0.0, 0.5, False),
+    "garbage_rate": (0.0, 0.5, False),
+}
 
 
 @dataclass(frozen=True)
@@ -27,6 +43,7 @@ class Emulation:
     agent: str
     seed: int
     options: dict[str, Any] = field(default_factory=dict)
+    faults: dict[str, float] = field(default_factory=dict)  # keys of FAULT_RANGES
 
 
 @dataclass(frozen=True)
@@ -117,7 +134,7 @@ class _LabReader(Reader):
         name = self.text(f.get("name"), f"{where}.name")
         animal = self.text(f.get("animal"), f"{where}.animal")
         protocol = self.protocol(f.get("protocol"), f"{where}.protocol")
-        port = self.text(f["port"], f"{where}.port") if "port" in f else None
+        port = self.port(f["port"], f"{where}.port") if "port" in f else None
         emulate = self.emulation(f["emulate"], f"{where}.emulate") if "emulate" in f else None
         if ("port" in f) == ("emulate" in f):
             self.error(node.mark, f"{where}: give exactly one of 'port' (a serial port) or 'emulate' (a virtual animal)")
@@ -161,6 +178,40 @@ class _LabReader(Reader):
             except AgentError as exc:
                 self.error(f["options"].mark, f"{where}.options: {exc}")
                 return None
-        if agent is None or seed is None:
+        faults = self.faults(f.get("faults"), f"{where}.faults")
+        if agent is None or seed is None or faults is None:
             return None
-        return Emulation(agent, int(seed), options)
+        return Emulation(agent, int(seed), options, faults)
+
+    def faults(self, node: Marked | None, where: str) -> dict[str, float] | None:
+        f = self.mapping(node, where, FAULT_RANGES)
+        if f is None:
+            return {} if node is None else None
+        faults: dict[str, float] = {}
+        bad = False
+        for key, (low, high, low_open) in FAULT_RANGES.items():
+            if key in f:
+                value = self.number(f[key], f"{where}.{key}", low=low, high=high, low_open=low_open)
+                bad = bad or value is None
+                faults[key] = float(value or 0.0)
+        if bad:
+            return None
+        if ("unplug_every_s" in faults) != ("unplug_for_s" in faults):
+            self.error(node.mark, f"{where}: give both unplug_every_s and unplug_for_s, or neither")
+            return None
+        if faults.get("unplug_for_s", 0.0) >= faults.get("unplug_every_s", 1.0):
+            self.error(f["unplug_for_s"].mark, f"{where}.unplug_for_s: expected less than unplug_every_s ({faults['unplug_every_s']:g}), found {faults['unplug_for_s']:g}")
+            return None
+        return faults
+
+    def port(self, node: Marked, where: str) -> str | None:
+        """A device path, or a pyserial URL whose scheme this pyserial knows."""
+        text = self.text(node, where)
+        if text is None or "://" not in text:
+            return text
+        scheme = text.split("://", 1)[0]
+        known = sorted(m.name.removeprefix("protocol_") for m in _url_handlers())
+        if scheme not in known:
+            self.error(node.mark, f"{where}: unknown serial URL scheme '{scheme}' (pyserial knows {', '.join(known)}){did_you_mean(scheme, known)}")
+            return None
+        return text
