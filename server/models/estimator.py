@@ -75,10 +75,12 @@ class Estimate:
         }
 
 
-def _normalise(logw: np.ndarray) -> tuple[np.ndarray, float]:
-    top = logw.max()
+def _normalise(logw: np.ndarray) -> tuple[np.ndarray, np.ndarray, float]:
+    """Normalised log weights (floored), the weights themselves, and the log normaliser."""
+    top = float(logw.max())
     lse = top + math.log(float(np.exp(logw - top).sum()))
-    return np.maximum(logw - lse, LOG_FLOOR), lse
+    out = np.maximum(logw - lse, LOG_FLOOR)
+    return out, np.exp(out), lse  # weights always exp(log weights): state is logw alone
 
 
 class OnlineEstimator:
@@ -119,6 +121,7 @@ class OnlineEstimator:
         self.options: list[str] = list(options)
         self._index = {lab: i for i, lab in enumerate(self.options)}
         self._logw = self.grid.log_prior.copy()
+        self._w = np.exp(self._logw)  # always exp(self._logw)
         self._q = np.full((len(self.options),) + self.grid.qshape, self.config["q0"])
         self._ones = (1,) * len(self.grid.qshape)
         self._previous: int | None = None
@@ -165,11 +168,11 @@ class OnlineEstimator:
         self._log_probs()
         lp = self._shifted[idx] - self._log_norm
         joint = self._logw + lp
-        self._logw, log_pred = _normalise(joint)
+        self._logw, self._w, log_pred = _normalise(joint)
         self._last_surprise = -log_pred
         chosen = self._one_hot(idx)
         self._q, delta = self.model.learn(self.grid.theta, self._q, chosen, reward)
-        w_learn = self._learning_weights()
+        w_learn = self._w.sum(axis=self._choice_axes, keepdims=True)
         self._last_pe = float((w_learn * delta).sum())
         self._previous = idx
         self._p = None
@@ -194,22 +197,19 @@ class OnlineEstimator:
             out[idx] = 1.0
         return out
 
-    def _learning_weights(self) -> np.ndarray:
-        return np.exp(self._logw).sum(axis=self._choice_axes, keepdims=True)
-
     def _diffuse(self) -> None:
-        w = np.exp(self._logw)
+        w = self._w
         sizes = self.grid.sizes
         b = self._beta_axis
         before, after = int(np.prod(sizes[:b])), int(np.prod(sizes[b + 1:]))
         moved = self._kernel @ w.reshape(before, sizes[b], after)
         with np.errstate(divide="ignore"):
-            self._logw, _ = _normalise(np.log(moved.reshape(sizes)))
+            self._logw, self._w, _ = _normalise(np.log(moved.reshape(sizes)))
 
     # ------------------------------------------------------------------ summaries
 
     def estimate(self) -> Estimate:
-        w = np.exp(self._logw)
+        w = self._w
         params = {p.name: ParamEstimate(*row)
                   for p, row in zip(self.model.params, self.grid.marginal_summaries(w))}
         k = len(self.options)
@@ -242,7 +242,8 @@ class OnlineEstimator:
     def new_session(self) -> None:
         """Start the next session: broaden the posterior, reset values and history."""
         prior = self.grid.log_prior
-        self._logw, _ = _normalise(prior + self.config["temper"] * (self._logw - prior))
+        self._logw, self._w, _ = _normalise(
+            prior + self.config["temper"] * (self._logw - prior))
         if not self.config["carry_values"]:
             self._q = np.full(self._q.shape, self.config["q0"])
         self._previous = None
@@ -278,6 +279,7 @@ class OnlineEstimator:
         if logw.size != est._logw.size or q.size != est._q.size:
             raise ValueError("estimator state does not match its grid")
         est._logw = logw.reshape(est._logw.shape)
+        est._w = np.exp(est._logw)
         est._q = q.reshape(est._q.shape)
         est._previous = state["previous"]
         est._session_trial = int(state["session_trial"])

@@ -225,3 +225,16 @@ def test_state_from_another_format_is_refused():
         OnlineEstimator.from_state({**state, "format": 99})
     with pytest.raises(ValueError, match="does not match its grid"):
         OnlineEstimator.from_state({**state, "log_weights": [0.0]})
+
+
+def test_resuming_mid_session_continues_identically():
+    trials = _session_trials(8, n=50)
+    whole = OnlineEstimator("q_sticky", options=["L", "R", "C"], drift=0.05)
+    half = OnlineEstimator("q_sticky", options=["L", "R", "C"], drift=0.05)
+    for c, r in trials[:25]:
+        whole.update(c, r)
+        half.update(c, r)
+    resumed = OnlineEstimator.from_state(json.loads(json.dumps(half.state_dict())))
+    assert resumed.estimate().to_dict() == whole.estimate().to_dict()
+    for c, r in trials[25:]:
+        assert resumed.update(c, r).to_dict() == whole.update(c, r).to_dict()
