@@ -20,7 +20,8 @@ from server.engine.caps import HardCaps
 from server.closed_loop import build_session
 from server.engine.session import Session
 from server.engine.virtual import run_virtual
-from server.protocol.model import Protocol
+from server.protocol.model import SCHEDULE_ACTIONS, Protocol
+from server.rules.book import RuleBook
 
 PARALLEL_FROM = 40  # animals; below this a process pool costs more than it saves
 
@@ -42,7 +43,11 @@ def cohort(seed: int, n: int) -> list[Animal]:
 
 
 def has_performance_criterion(protocol: Protocol) -> bool:
-    return any(b.until.streak is not None or b.until.accuracy is not None for b in protocol.blocks)
+    """Whether the protocol can reach a criterion: a block ending on performance, or a rule
+    that changes the schedule (reversal, block switch, probe, end of session)."""
+    blocks = any(b.until.streak is not None or b.until.accuracy is not None for b in protocol.blocks)
+    rules = any(a.kind in SCHEDULE_ACTIONS for r in protocol.rules for a in r.actions)
+    return blocks or rules
 
 
 def rehearse_one(protocol: Protocol, animal: Animal, agent: str, options: dict[str, Any], caps: HardCaps) -> dict:
@@ -67,7 +72,17 @@ def rehearse_one(protocol: Protocol, animal: Animal, agent: str, options: dict[s
         "criterion_reached": (session.first_criterion_trial is not None) if criterion else None,
         "trials_to_criterion": session.first_criterion_trial,
         "end_reason": session.end_reason,
+        "reversals": session.reversals,
+        "rule_firings": rule_firings(session),
     }
+
+
+def rule_firings(session: Session) -> dict[str, int]:
+    counts: dict[str, int] = {}
+    for observer in session.observers:
+        if isinstance(observer, RuleBook):
+            counts.update(observer.firings())
+    return counts
 
 
 def _end_time(session: Session) -> float:

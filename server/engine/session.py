@@ -141,7 +141,14 @@ class Session:
         if self._paused_at is not None:
             return self._t_limit
         local = self._trial.deadline if self._trial is not None else self._iti_end
-        return min(local, self._t_limit)
+        return min(local, self._t_limit, self._block_deadline())
+
+    def _block_deadline(self) -> float:
+        """When a block with a time criterion runs out, even in the middle of a trial."""
+        block = self.block
+        if block is None or block.block.until.minutes is None:
+            return math.inf
+        return block.t0 + block.block.until.minutes * 60.0
 
     @property
     def trial_index(self) -> int:
@@ -251,7 +258,7 @@ class Session:
         """Swap two options' contingencies for the rest of the session (a reversal)."""
         self._extra_swaps.append((a, b))
         if self.block is not None:
-            before = self._best_options()
+            before = self.best_options()
             self.block.swap(a, b)
             self._count_reversal(before)
         self._log(t, "block", "reversal", detail={"swap": [a, b], "now": dict(self.block.contingencies) if self.block else {}})
@@ -282,9 +289,12 @@ class Session:
         """Multiply following ITIs by `factor` (cumulative; the result stays within iti_bounds)."""
         self.iti_scale *= factor
 
-    def alarm(self, message: str, t: float) -> None:
-        self._log(t, "alarm", "rule", detail={"message": message})
+    def alarm(self, message: str, t: float, source: str = "rule") -> None:
+        self._log(t, "alarm", source, detail={"message": message})
         self.alarms.append((t, message))
+
+    def note(self, text: str, t: float, source: str = "rule") -> None:
+        self._log(t, "note", source, detail={"text": text})
 
     def add_record(self, record: Record) -> None:
         """Let an observer (the rules) put its own record into the session's stream."""
@@ -303,6 +313,11 @@ class Session:
                 return
             if self._paused_at is not None:
                 return
+            block_end = self._block_deadline()
+            if t >= block_end and block_end < (self._trial.deadline if self._trial else self._iti_end):
+                self._block_time_up(block_end)
+                guard += 1
+                continue
             trial = self._trial
             if trial is not None:
                 if t < trial.deadline:
@@ -434,7 +449,7 @@ class Session:
             win = False
         self._goto(trial, step.if_rewarded if win else step.if_unrewarded, t)
 
-    def _end_trial(self, trial: _Trial, t: float, interrupted: bool) -> None:
+    def _end_trial(self, trial: _Trial, t: float, interrupted: bool, cut: str | None = None) -> None:
         assert self.block is not None
         self._trial = None
         self.trials_done = trial.index
@@ -451,7 +466,7 @@ class Session:
             reward=float(trial.pellets), correct=trial.correct,
             omission=trial.omission and trial.choice is None and trial.response is None,
             interrupted=interrupted, iti_s=iti, steps=tuple(trial.steps),
-            counts=trial.counts, first_s=trial.first_s,
+            counts=trial.counts, first_s=trial.first_s, extra={"cut_by": cut} if cut else {},
         )  # fmt: skip
         self._records.append(record)
         if interrupted:
@@ -461,17 +476,12 @@ class Session:
             self._records.append(EstimateUpdated(trial.index, self.estimator.model.name, self.estimate))
         for observer in self.observers:
             observer(self, record)
-        nxt = None
+        nxt = met = None
         if self.block is block:  # no rule switched blocks
-            finished = block.finished(t)
-            if finished is not None:
-                which, met = finished
-                if self.first_criterion_trial is None and which in PERFORMANCE_CRITERIA:
-                    self.first_criterion_trial = self.trials_done
-                nxt = block.block.next or self._following_block(block.block.name)
-                if nxt == END_SESSION:
-                    self._end_session(t, f"protocol complete ({block.block.name}: {met})")
-                    return
+            nxt, met = self._block_criterion(block, t)
+            if nxt == END_SESSION:
+                self._end_session(t, f"protocol complete ({block.block.name}: {met})")
+                return
         ending = ending or self._pending_end
         if ending is not None:
             self._end_session(t, ending)
@@ -482,6 +492,31 @@ class Session:
         if iti <= 0:
             self._begin_trial(t)
 
+    def _block_criterion(self, block: BlockProgress, t: float) -> tuple[str | None, str | None]:
+        """(next block, what was met) when the block's criterion holds, else (None, None)."""
+        finished = block.finished(t)
+        if finished is None:
+            return None, None
+        which, met = finished
+        if self.first_criterion_trial is None and which in PERFORMANCE_CRITERIA:
+            self.first_criterion_trial = self.trials_done
+        return block.block.next or self._following_block(block.block.name), met
+
+    def _block_time_up(self, t: float) -> None:
+        """A timed block ran out: cut the trial in progress short and move to the next block."""
+        assert self.block is not None
+        trial = self._trial
+        if trial is not None:
+            self._apply(trial.step.on_leave, t)
+            trial.step_index = -1  # already left
+            self._end_trial(trial, t, interrupted=False, cut="block time")
+            return  # _end_trial ran the block criterion
+        nxt, met = self._block_criterion(self.block, t)
+        if nxt == END_SESSION:
+            self._end_session(t, f"protocol complete ({self.block.block.name}: {met})")
+        elif nxt is not None:
+            self._enter_block(self._block_named(nxt), t, met)
+
     def _next_iti(self, block_name: str) -> float:
         drawn = self._itis[block_name].draw()  # drawn even when overridden: keeps draws aligned
         iti = self.iti_fixed if self.iti_fixed is not None else self.iti_scale * drawn
@@ -490,7 +525,8 @@ class Session:
             iti = min(max(iti, bounds[0]), bounds[1])
         return iti
 
-    def _best_options(self) -> frozenset[str]:
+    def best_options(self) -> frozenset[str]:
+        """Options with the highest reward probability now (empty when all are equal)."""
         if self.block is None or not self.block.contingencies:
             return frozenset()
         c = self.block.contingencies
@@ -498,7 +534,7 @@ class Session:
         return frozenset(k for k, v in c.items() if v == top) if top > min(c.values()) else frozenset()
 
     def _count_reversal(self, before: frozenset[str]) -> None:
-        after = self._best_options()
+        after = self.best_options()
         if before and after and after != before:
             self.reversals += 1
 
@@ -520,7 +556,7 @@ class Session:
         return self._probe_blocks.get(name) or self.protocol.block(name)
 
     def _enter_block(self, block: Block, t: float, why: str) -> None:
-        before = self._best_options()
+        before = self.best_options()
         if self.block is not None:
             self.block_log.append((self.block.block.name, self.block.trials, why))
         self._blocks_entered += 1

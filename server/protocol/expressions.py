@@ -4,8 +4,9 @@
     accuracy(20) >= 0.8 or streak >= 8
     not (omission_rate(10) > 0.5) and beta.mean < 2
 
-Names are metrics of the session or fields of the learning-model estimate; some take a
-window in trials, `name(N)`; estimate parameters take `.mean`, `.low` or `.high`. A value
+Names are metrics of the session, fields of the learning-model estimate, or the protocol's
+settings (named numbers a lab config may change per animal); some metrics take a window in
+trials, `name(N)`; estimate parameters take `.mean`, `.low` or `.high`. A value
 that is not known yet (no estimate, window not filled) makes its comparison false.
 """
 
@@ -31,7 +32,8 @@ METRICS: dict[str, tuple[bool, str]] = {
     "reversals": (False, "reversals so far this session"),
     "pca": (False, "Pavlovian conditioned approach index so far (Meyer et al. 2012)"),
     "exploration": (False, "estimated probability of not choosing the best-valued option"),
-    "p_prefers_best": (False, "estimated probability the animal prefers the best option"),
+    "p_prefers_best": (False, "estimated probability the animal prefers its best-valued option"),
+    "p_prefers_correct": (False, "estimated probability the animal prefers the option that is best now"),
     "reward_rate": (False, "exponentially filtered reward rate from the estimator"),
     "prediction_error": (False, "prediction error of the last trial"),
 }
@@ -58,6 +60,7 @@ class Quantity:
     name: str
     window: int | None = None
     field: str | None = None  # for parameters: mean | low | high
+    setting: bool = False  # a named number from the protocol's settings (per animal)
 
     @property
     def label(self) -> str:
@@ -123,10 +126,11 @@ def _tokens(text: str) -> list[tuple[str, str, int]]:
 
 
 class _Parser:
-    def __init__(self, text: str, parameters: tuple[str, ...]):
+    def __init__(self, text: str, parameters: tuple[str, ...], settings: tuple[str, ...]):
         self.tokens = _tokens(text)
         self.i = 0
         self.parameters = parameters
+        self.settings = settings
         self.quantities: list[Quantity] = []
 
     def peek(self) -> tuple[str, str, int]:
@@ -213,7 +217,9 @@ class _Parser:
         raise ExpressionError(f"expected a number or a name, found {_show(kind, value)}", offset)
 
     def quantity(self, name: str, offset: int) -> Quantity:
-        if name in self.parameters:
+        if name in self.settings:
+            q = Quantity(name, setting=True)
+        elif name in self.parameters:
             if self.peek()[1] != ".":
                 raise ExpressionError(f"parameter '{name}' needs .mean, .low or .high", offset)
             self.take()
@@ -237,7 +243,7 @@ class _Parser:
         else:
             from server.protocol.reader import did_you_mean
 
-            known = list(METRICS) + list(self.parameters)
+            known = list(METRICS) + list(self.parameters) + list(self.settings)
             raise ExpressionError(f"unknown quantity '{name}'{did_you_mean(name, known)}", offset)
         self.quantities.append(q)
         return q
@@ -247,11 +253,13 @@ def _show(kind: str, value: str) -> str:
     return "the end" if kind == "end" else f"'{value}'"
 
 
-def parse_condition(text: str, parameters: tuple[str, ...] = ()) -> tuple[Node, tuple[Quantity, ...]]:
+def parse_condition(
+    text: str, parameters: tuple[str, ...] = (), settings: tuple[str, ...] = ()
+) -> tuple[Node, tuple[Quantity, ...]]:
     """Parse a condition; returns the tree and every quantity it reads (in order, unique)."""
     if len(text) > MAX_LENGTH:
         raise ExpressionError(f"condition longer than {MAX_LENGTH} characters", 0)
-    parser = _Parser(text, parameters)
+    parser = _Parser(text, parameters, settings)
     try:
         node = parser.parse()
     except RecursionError:

@@ -6,7 +6,7 @@ import hashlib
 from pathlib import Path
 
 from server.protocol.durations import read_duration
-from server.protocol.load_rules import read_estimator, read_iti_bounds, read_pavlovian, read_rules
+from server.protocol.load_rules import read_estimator, read_iti_bounds, read_pavlovian, read_rules, read_settings
 from server.protocol.marked import Mark, Marked, load_marked
 from server.protocol.model import (
     END_SESSION,
@@ -41,6 +41,7 @@ FORMAT_VERSION = 1
 TOP_KEYS = (
     "vigil_protocol", "name", "about", "wiring", "options", "trial_types",
     "blocks", "iti", "limits", "at_start", "estimator", "rules", "iti_bounds", "pavlovian",
+    "settings",
 )  # fmt: skip
 STEP_KEYS = (
     "step", "activate", "deactivate", "pulse", "on_leave", "wait_s", "next",
@@ -111,8 +112,8 @@ class _Compiler(Reader):
         if estimator is None and "estimator" not in top and options:
             estimator = EstimatorSpec()  # choice protocols get the default estimator
         iti_bounds = read_iti_bounds(self, top.get("iti_bounds"))
-        bounds_mark = top["iti_bounds"].mark if "iti_bounds" in top else None
-        rules = read_rules(self, top.get("rules"), blocks, options, iti_bounds, bounds_mark)
+        settings = read_settings(self, top.get("settings"))
+        rules = read_rules(self, top.get("rules"), blocks, options, iti_bounds, settings)
         pavlovian = read_pavlovian(self, top.get("pavlovian"), wiring, trial_types) if "pavlovian" in top else None
         if self.problems or wiring is None or iti is None:
             return None
@@ -120,7 +121,7 @@ class _Compiler(Reader):
             name=name, source=self.file, sha256=sha256, wiring=wiring, options=options,
             trial_types=trial_types, blocks=tuple(blocks), iti=iti, limits=limits,
             at_start=at_start, description=about or "", estimator=estimator, rules=rules,
-            iti_bounds=iti_bounds, pavlovian=pavlovian,
+            iti_bounds=iti_bounds, pavlovian=pavlovian, settings=settings,
         )  # fmt: skip
 
     def duration(self, node: Marked | None, where: str) -> Duration | None:

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from typing import TYPE_CHECKING
 
-from server.protocol.expressions import ExpressionError, parse_condition
+from server.protocol.expressions import METRICS, ExpressionError, parse_condition
 from server.protocol.marked import Mark, Marked
 from server.protocol.model import (
     ACTION_KINDS,
@@ -73,13 +73,25 @@ def read_pavlovian(
     return Pavlovian(cs, lever, magazine, wait.value)
 
 
+def read_settings(r: "Reader", node: Marked | None) -> dict[str, float]:
+    settings: dict[str, float] = {}
+    for name, value, key_mark in r.items(node, "settings"):
+        if name in METRICS or name in ESTIMATE_PARAMETERS:
+            r.error(key_mark, f"settings.{name}: '{name}' is already a metric or parameter name")
+            continue
+        number = r.number(value, f"settings.{name}")
+        if number is not None:
+            settings[name] = float(number)
+    return settings
+
+
 def read_rules(
     r: "Reader",
     node: Marked | None,
     blocks: list[Block],
     options: dict[str, Option],
     iti_bounds: tuple[float, float] | None,
-    iti_bounds_mark: Mark | None,
+    settings: dict[str, float],
 ) -> tuple[Rule, ...]:
     rules: list[Rule] = []
     seen: set[str] = set()
@@ -96,7 +108,7 @@ def read_rules(
                 r.error(f["rule"].mark, f"{where}.rule: rule name '{name}' is used twice")
             seen.add(name)
             where = f"rules.{name}"
-        condition = _condition(r, f.get("when"), f"{where}.when")
+        condition = _condition(r, f.get("when"), f"{where}.when", tuple(settings))
         actions = []
         then = f.get("then")
         for item in r.listing(then, f"{where}.then", allow_single=True) if then is not None and not then.is_mapping else ([then] if then is not None else []):
@@ -117,12 +129,12 @@ def read_rules(
     return tuple(rules)
 
 
-def _condition(r: "Reader", node: Marked | None, where: str):
+def _condition(r: "Reader", node: Marked | None, where: str, settings: tuple[str, ...]):
     text = r.text(node, where)
     if text is None:
         return None
     try:
-        tree, reads = parse_condition(text, ESTIMATE_PARAMETERS)
+        tree, reads = parse_condition(text, ESTIMATE_PARAMETERS, settings)
     except ExpressionError as exc:
         assert node is not None
         # Point at the character: plain and quoted scalars start one column later when quoted.

@@ -129,7 +129,9 @@ class Block:
 # server.models declares the same names; a conformance test keeps the two in step.
 ESTIMATOR_MODELS = ("q_learning", "q_dual_rate", "q_sticky", "q_forgetting")
 ESTIMATE_PARAMETERS = ("alpha", "beta", "alpha_pos", "alpha_neg", "kappa", "decay")
-ACTION_KINDS = ("switch_block", "reverse", "probe", "set_iti", "scale_iti", "end_session", "alarm")
+ACTION_KINDS = ("switch_block", "reverse", "probe", "set_iti", "scale_iti", "end_session", "alarm", "note")
+# Actions that change the schedule: at most one rule doing these fires after a trial.
+SCHEDULE_ACTIONS = ("switch_block", "reverse", "probe", "end_session")
 
 
 @dataclass(frozen=True, slots=True)
@@ -195,6 +197,7 @@ class Protocol:
     rules: tuple[Rule, ...] = ()
     iti_bounds: tuple[float, float] | None = None  # rules may set/scale the ITI within these
     pavlovian: Pavlovian | None = None
+    settings: dict[str, float] = field(default_factory=dict)  # named numbers rules may read
 
     def block(self, name: str) -> Block:
         for b in self.blocks:

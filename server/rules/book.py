@@ -14,7 +14,7 @@ from dataclasses import dataclass
 from server.engine.records import RuleFired, TrialRecord
 from server.engine.session import Session
 from server.protocol.expressions import Arithmetic, Compare, Logic, Negate, Node, Not, Number, Quantity
-from server.protocol.model import Protocol, Rule, RuleAction
+from server.protocol.model import SCHEDULE_ACTIONS, Protocol, Rule, RuleAction
 from server.rules.metrics import SessionMetrics
 
 _COMPARE = {"<": operator.lt, "<=": operator.le, ">": operator.gt, ">=": operator.ge,
@@ -53,6 +53,8 @@ def evaluate(node: Node, values: dict[str, float | None]) -> float | bool | None
 def quantity_value(q: Quantity, metrics: SessionMetrics, session: Session, trial: TrialRecord) -> float | None:
     estimate = session.estimate
     name = q.name
+    if q.setting:
+        return session.protocol.settings[name]
     if q.field is not None:
         if estimate is None or name not in estimate.params:
             return None
@@ -77,6 +79,9 @@ def quantity_value(q: Quantity, metrics: SessionMetrics, session: Session, trial
         return metrics.pca()
     if estimate is None:
         return None
+    if name == "p_prefers_correct":
+        best = session.best_options()
+        return max((estimate.p_prefers.get(o, 0.0) for o in best), default=None) if best else None
     value = getattr(estimate, name)
     return None if value is None else float(value)
 
@@ -97,26 +102,42 @@ class RuleBook:
         self.state = {rule.name: _RuleState() for rule in self.rules}
 
     def __call__(self, session: Session, trial: TrialRecord) -> None:
+        """Evaluate every rule in order after `trial`. Only the first rule that changes the
+        schedule (reverse, switch_block, probe, end_session) fires; later ones that would
+        are held back to the next trial, so two rules can never undo each other's reversal."""
         self.metrics.add(trial)
+        reversals = session.reversals
+        schedule_changed = False
         for rule in self.rules:
             if session.finished:
                 return
-            self._consider(rule, self.state[rule.name], session, trial)
+            changes = any(a.kind in SCHEDULE_ACTIONS for a in rule.actions)
+            fired = self._consider(rule, self.state[rule.name], session, trial, allowed=not (changes and schedule_changed))
+            if fired and changes:
+                schedule_changed = True
+                if session.first_criterion_trial is None:  # what rehearsal reports as criterion
+                    session.first_criterion_trial = trial.trial
+        if session.reversals != reversals:
+            self.metrics.streak = 0  # correctness is judged against the new contingencies
 
-    def _consider(self, rule: Rule, state: _RuleState, session: Session, trial: TrialRecord) -> None:
+    def _consider(self, rule: Rule, state: _RuleState, session: Session, trial: TrialRecord, allowed: bool) -> bool:
         values = {q.label: quantity_value(q, self.metrics, session, trial) for q in rule.reads}
         state.run = state.run + 1 if evaluate(rule.condition, values) else 0
-        if state.run < rule.hold_for:
-            return
+        if not allowed or state.run < rule.hold_for:
+            return False
         if rule.max_firings is not None and state.fired >= rule.max_firings:
-            return
+            return False
         if state.last_fired_trial is not None and trial.trial - state.last_fired_trial <= rule.cooldown:
-            return
+            return False
         state.fired += 1
         state.last_fired_trial = trial.trial
         state.run = 0
         done = tuple(apply_action(action, session, trial.t_end, rule.name) for action in rule.actions)
         session.add_record(RuleFired(trial.t_end, trial.trial, rule.name, done, values))
+        return True
+
+    def firings(self) -> dict[str, int]:
+        return {name: state.fired for name, state in self.state.items()}
 
 
 def apply_action(action: RuleAction, session: Session, t: float, rule: str) -> dict:
@@ -142,5 +163,8 @@ def apply_action(action: RuleAction, session: Session, t: float, rule: str) -> d
     if kind == "end_session":
         session.end_after_trial(f"{why}: {action.message}")
         return {"end_session": action.message}
-    session.alarm(action.message, t)
+    if kind == "note":
+        session.note(action.message, t, source=rule)
+        return {"note": action.message}
+    session.alarm(action.message, t, source=rule)
     return {"alarm": action.message}
