@@ -130,9 +130,13 @@ class DeviceWire:
                 self._drive(channel, False)
         if not self._host_silent and reached(now_us, (self._host_seen + HOST_SILENCE_US) % U32):
             self._host_silent = True
-            for ch in self.outputs:
-                self._drive(ch.number, False)
-            self._pulse_end.clear()
+            self.safe_state()
+
+    def safe_state(self) -> None:
+        """Every output off, pulses cancelled (the firmware's all_off)."""
+        for ch in self.outputs:
+            self._drive(ch.number, False)
+        self._pulse_end.clear()
 
     @property
     def host_silent(self) -> bool:

@@ -71,6 +71,7 @@ class SerialLink:
         on_close: Callable[[], None] | None = None,
         gone: Callable[[], str | None] | None = None,
         startup_s: float = GREET_WITHIN_S,
+        greet_s: float = GREET_WITHIN_S,
     ) -> None:
         self.box = box
         self.url = url
@@ -86,6 +87,7 @@ class SerialLink:
         self.losses = 0
         self._on_close = on_close
         self.startup_s = startup_s  # how long `connect` waits for the port to appear
+        self.greet_s = greet_s  # how long a device may take to answer after the port opens
         self._gone = gone  # why the device behind the port cannot come (an exited emulator)
         self._inputs = {line.channel: line for line in wiring.inputs.values()}
         self._held = sorted((o for o in wiring.outputs.values() if not o.pulsed), key=lambda o: o.channel)
@@ -117,10 +119,13 @@ class SerialLink:
         exclusive = {"exclusive": True} if "://" not in self.url else {}
         port = serial.serial_for_url(self.url, baudrate=self.baudrate, timeout=0, **exclusive)
         self._port, self._failure, self._pending_write = port, None, b""
+        # A plain port is read and written on its descriptor directly (the fastest path);
+        # other handlers (spy://, socket://, ...) keep their own read and write.
+        self._raw = type(port) is serial.Serial
         loop = asyncio.get_running_loop()
         try:
             self._fd = port.fileno()
-        except (AttributeError, NotImplementedError, serial.SerialException):
+        except (AttributeError, OSError, ValueError, serial.SerialException):
             self._fd = None
         if self._fd is not None:
             loop.add_reader(self._fd, self._readable)
@@ -145,7 +150,12 @@ class SerialLink:
 
     def _readable(self) -> None:
         try:
-            data = os.read(self._fd, 65536)  # type: ignore[arg-type]
+            if self._raw:
+                data = os.read(self._fd, 65536)  # type: ignore[arg-type]
+            else:
+                data = self._port.read(max(1, self._port.in_waiting))
+                if not data:
+                    return  # the descriptor woke for the handler's own traffic
         except BlockingIOError:
             return
         except OSError as exc:
@@ -173,7 +183,7 @@ class SerialLink:
         if not data or self._port is None:
             return
         try:
-            if self._fd is None:
+            if not self._raw or self._fd is None:
                 self._port.write(data)
                 return
             written = os.write(self._fd, data)
@@ -314,7 +324,7 @@ class SerialLink:
                     raise LinkError(f"box '{self.box}': cannot open {self.url}: {_reason(exc)}") from None
                 await asyncio.sleep(0.05)
         try:
-            identity = await self._greet(GREET_WITHIN_S)
+            identity = await self._greet(self.greet_s)
             check_identity(self.box, identity, self.wiring)
         except BaseException:
             self._close_port()
@@ -378,7 +388,7 @@ class SerialLink:
         while not self._closing:
             try:
                 self._open()
-                identity = await self._greet(GREET_WITHIN_S)
+                identity = await self._greet(self.greet_s)
                 problems = identity_problems(identity, self.wiring)
                 if problems:  # another device on this port: never drive it
                     raise LinkError("; ".join(problems))
