@@ -280,6 +280,10 @@ class Session:
         self._itis.setdefault(probe.name, self._itis[base.name])
         self._enter_block(probe, t, why)
 
+    @property
+    def in_probe(self) -> bool:
+        return self.block is not None and self.block.block.name in self._probe_blocks
+
     def set_iti(self, seconds: float) -> None:
         """Every following ITI is `seconds` (within the protocol's iti_bounds)."""
         self.iti_fixed = seconds
@@ -456,18 +460,16 @@ class Session:
         block = self.block
         block.record(None if interrupted else trial.correct, trial.pellets)
         ending = self._session_end_due(t)
-        iti = 0.0
-        if ending is None and not interrupted:
-            iti = self._next_iti(block.block.name)
         record = TrialRecord(
             trial=trial.index, block=block.block.name, block_index=block.index,
             trial_type=trial.type.name, t_start=trial.t_start, t_end=t, choice=trial.choice,
             response=trial.response, latency_s=trial.latency_s, rewarded=trial.pellets > 0,
             reward=float(trial.pellets), correct=trial.correct,
             omission=trial.omission and trial.choice is None and trial.response is None,
-            interrupted=interrupted, iti_s=iti, steps=tuple(trial.steps),
+            interrupted=interrupted, iti_s=0.0, steps=tuple(trial.steps),
             counts=trial.counts, first_s=trial.first_s, extra={"cut_by": cut} if cut else {},
         )  # fmt: skip
+        at = len(self._records)
         self._records.append(record)
         if interrupted:
             return
@@ -486,6 +488,10 @@ class Session:
         if ending is not None:
             self._end_session(t, ending)
             return
+        # Drawn after the rules ran, so an ITI change applies to the interval right after
+        # the trial that triggered it; the record then carries the ITI actually used.
+        iti = self._next_iti(block.block.name)
+        self._records[at] = replace(record, iti_s=iti)
         if nxt is not None:
             self._enter_block(self._block_named(nxt), t, met)
         self._iti_end = t + iti
@@ -521,7 +527,7 @@ class Session:
         drawn = self._itis[block_name].draw()  # drawn even when overridden: keeps draws aligned
         iti = self.iti_fixed if self.iti_fixed is not None else self.iti_scale * drawn
         bounds = self.protocol.iti_bounds
-        if bounds is not None and (self.iti_fixed is not None or self.iti_scale != 1.0):
+        if bounds is not None:
             iti = min(max(iti, bounds[0]), bounds[1])
         return iti
 

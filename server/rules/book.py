@@ -125,6 +125,8 @@ class RuleBook:
         state.run = state.run + 1 if evaluate(rule.condition, values) else 0
         if not allowed or state.run < rule.hold_for:
             return False
+        if session.in_probe and any(a.kind == "probe" for a in rule.actions):
+            return False  # a probe already runs: starting it again would never let it end
         if rule.max_firings is not None and state.fired >= rule.max_firings:
             return False
         if state.last_fired_trial is not None and trial.trial - state.last_fired_trial <= rule.cooldown:
