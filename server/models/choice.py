@@ -81,9 +81,6 @@ class ChoiceModel:
     def check(self, values: Mapping[str, object]) -> dict[str, float]:
         return check_params(self.name, self.params, values)
 
-    def log_prior(self, theta: Theta) -> np.ndarray:
-        return sum(p.prior.logpdf(theta[p.name]) for p in self.params)
-
 
 CHOICE_MODELS: dict[str, ChoiceModel] = {
     m.name: m

@@ -17,7 +17,6 @@ from typing import Mapping
 import numpy as np
 
 from .choice import ChoiceModel
-from .params import Param
 
 
 @dataclass(frozen=True, eq=False)

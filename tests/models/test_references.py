@@ -6,10 +6,13 @@ import math
 
 import numpy as np
 import pytest
+from scipy import stats
 from scipy.special import expit, softmax
 
 from server.models.choice import CHOICE_MODELS, log_softmax
-from server.models.pavlovian import RESCORLA_WAGNER, response_probability, rw_session, rw_update
+from server.models.pavlovian import (
+    RESCORLA_WAGNER, response_probability, rw_loglik, rw_session, rw_update,
+)
 from server.models.td import (
     q_learning_target, random_walk_td0, sarsa_target, td0_episode, td_step,
 )
@@ -53,6 +56,17 @@ def test_anticipatory_responding_is_logistic_in_summed_strength():
     present = np.array([[1, 1], [1, 0]])
     got = response_probability(v, present, slope=4.0, bias=-2.0)
     assert got == pytest.approx(expit(-2.0 + 4.0 * np.array([0.7, 0.9])), rel=1e-12)
+
+
+def test_anticipatory_responding_log_likelihood_is_bernoulli():
+    # each trial a Bernoulli draw with the model's P(response) (scipy.stats.bernoulli)
+    params = {"alpha": 0.4, "beta": 0.5, "slope": 6.0, "bias": -2.5}
+    present = [[1]] * 12
+    lam = [1.0] * 8 + [0.0] * 4  # acquisition, then extinction
+    responded = [0, 0, 1, 0, 1, 1, 1, 1, 1, 0, 1, 0]
+    p = rw_session(params, present, lam)["p_response"]
+    expected = stats.bernoulli.logpmf(responded, p).sum()
+    assert rw_loglik(params, present, lam, responded) == pytest.approx(expected, rel=1e-12)
 
 
 def test_rescorla_wagner_declares_valid_parameters():
