@@ -129,9 +129,24 @@ _V2 = statements(
     "CREATE INDEX rule_firings_session ON rule_firings(session_id, trial)",
 )
 
+_V3 = statements(
+    """CREATE TABLE stage_log (
+        id INTEGER PRIMARY KEY,
+        animal TEXT NOT NULL,
+        stage INTEGER NOT NULL,         -- 1-based position in the animal's list of stages
+        protocol TEXT NOT NULL,
+        at TEXT NOT NULL,               -- ISO 8601 wall clock with UTC offset
+        session_id INTEGER REFERENCES sessions(id),  -- the session whose end decided it
+        reason TEXT NOT NULL,           -- 'start' or 'advanced'
+        evidence TEXT NOT NULL DEFAULT '{}'  -- JSON: the criterion and each session's figures
+    )""",
+    "CREATE INDEX stage_log_animal ON stage_log(animal, id)",
+)
+
 MIGRATIONS: tuple[Migration, ...] = (
     Migration(1, "sessions, trials, events, blocks, estimates, annotations", _V1),
     Migration(2, "rule firings", _V2),
+    Migration(3, "training stages per animal", _V3),
 )
 
 

@@ -274,6 +274,21 @@ class Store:
         ))
         self._commit()
 
+    def write_stage(
+        self, animal: str, stage: int, protocol: str, at: str, reason: str,
+        session_id: int | None = None, evidence: Mapping[str, Any] | None = None,
+    ) -> None:
+        """Record that `animal` is now at `stage` (1-based); commits now."""
+        rows.parse_wall_time(at, "stage time")
+        params = (str(animal), rows.integer(stage, "stage"), str(protocol), at, session_id,
+                  str(reason), rows.to_json(dict(evidence or {}), "stage evidence"))
+        self._pending.append(_Pending(
+            session_id if session_id is not None else 0, f"stage {stage} of animal {animal}",
+            (("INSERT INTO stage_log (animal, stage, protocol, at, session_id, reason, evidence)"
+              " VALUES (?, ?, ?, ?, ?, ?, ?)", params),),
+        ))
+        self._commit()
+
     def write_annotation(
         self, session_id: int, text: str, origin: str, *, t: float | None = None,
         wall_time: str | None = None,
