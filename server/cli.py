@@ -1,4 +1,4 @@
-"""`vigil` command line: check, run, demo, rehearse, fit.
+"""`vigil` command line: check, run, demo, serve, rehearse, fit.
 
 Exit codes: 0 success, 1 invalid input or a failed run, 2 usage error. Problems with
 files are printed as `file:line:col: message`; a traceback never reaches the user.
@@ -49,10 +49,11 @@ def cmd_check(args: argparse.Namespace) -> int:
 # ---------------------------------------------------------------- run / demo
 
 
-def _run_lab(config, db_path: str, minutes: float | None) -> int:
+def _run_lab(config, db_path: str, minutes: float | None, port: int | None = None) -> int:
     from server.lab import Lab, summary_table
     from server.store.errors import StoreError
     from server.store.writer import Store
+    from server.web.launch import run_lab_with_page
 
     try:
         store = Store.open(db_path)
@@ -62,7 +63,7 @@ def _run_lab(config, db_path: str, minutes: float | None) -> int:
     print(f"database: {Path(db_path).resolve()}")
     lab = Lab(config, store)
     try:
-        runs = asyncio.run(lab.run(minutes))
+        runs = asyncio.run(run_lab_with_page(lab, db_path, config.web, minutes=minutes, port=port))
     except Exception as exc:
         _err(f"run failed: {exc}")
         return 1
@@ -82,7 +83,7 @@ def cmd_run(args: argparse.Namespace) -> int:
         for problem in exc.problems:
             sys.stderr.write(f"{problem}\n")
         return 1
-    return _run_lab(config, args.db or str(config.database), args.minutes)
+    return _run_lab(config, args.db or str(config.database), args.minutes, args.port)
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
@@ -99,10 +100,46 @@ def cmd_demo(args: argparse.Namespace) -> int:
         f"Vigil demo: {len(config.boxes)} emulated boxes with virtual animals"
         + (f", {minutes:g} min" if minutes else "; press Ctrl-C to stop")
     )
-    return _run_lab(config, args.db, minutes)
+    return _run_lab(config, args.db, minutes, args.port)
+
+
+def cmd_serve(args: argparse.Namespace) -> int:
+    from server.web.launch import serve_store
+
+    return serve_store(args.db, host=args.host, port=args.port)
 
 
 # ---------------------------------------------------------------- rehearse
+
+
+def cmd_stages(args: argparse.Namespace) -> int:
+    from server.stages import stage_history
+    from server.store.queries import open_readonly
+
+    try:
+        conn = open_readonly(args.db)
+        history = stage_history(conn)
+    except Exception as exc:  # a missing or foreign file is a user error, not a crash
+        _err(f"cannot read {args.db}: {exc}")
+        return 1
+    if args.json:
+        sys.stdout.write(json.dumps(history, sort_keys=True) + "\n")
+        return 0
+    if not history:
+        print("no training stages recorded")
+        return 0
+    for row in history:
+        line = f"{row['animal']:<12} stage {row['stage']:<3} {row['at'][:19]}  {row['reason']:<9} {row['protocol']}"
+        sessions = row["evidence"].get("sessions") if row["evidence"] else None
+        if sessions:
+            figures = ", ".join(
+                f"session {s['session']}: {s['trials']} trials"
+                + (f", {s['accuracy']:.0%} correct" if s["accuracy"] is not None else "")
+                for s in sessions
+            )
+            line += f"  ({figures})"
+        print(line)
+    return 0
 
 
 def cmd_rehearse(args: argparse.Namespace) -> int:
@@ -164,6 +201,16 @@ def _minutes(text: str) -> float:
     return value
 
 
+def _port(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a port number, found '{text}'") from None
+    if not 0 <= value <= 65535:
+        raise argparse.ArgumentTypeError(f"expected a port from 0 (any free port) to 65535, found {value}")
+    return value
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="vigil", description="Closed-loop trial scheduler for operant conditioning boxes."
@@ -180,14 +227,27 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("config", metavar="CONFIG")
     p.add_argument("--db", metavar="PATH", help="SQLite database (default: the config's)")
     p.add_argument("--minutes", type=_minutes, metavar="M", help="end sessions after M minutes")
+    p.add_argument("--port", type=_port, metavar="P", help="status page port (default: the config's)")
     p.set_defaults(func=cmd_run)
 
     p = verbs.add_parser("demo", help="run emulated boxes with virtual animals")
     p.add_argument("--boxes", type=_positive_int, default=4, metavar="N")
     p.add_argument("--db", default=DEMO_DB, metavar="PATH")
     p.add_argument("--minutes", type=_minutes, metavar="M")
-    p.add_argument("--port", type=_positive_int, default=8642, metavar="P", help="status page port")
+    p.add_argument("--port", type=_port, default=8642, metavar="P", help="status page port")
     p.set_defaults(func=cmd_demo)
+
+    p = verbs.add_parser("serve", help="the status page over a database, read-only")
+    p.add_argument("--db", required=True, metavar="PATH", help="SQLite database to show")
+    p.add_argument("--port", type=_port, default=8642, metavar="P")
+    p.add_argument("--host", default="127.0.0.1", metavar="H",
+                   help="address to listen on (beyond this computer needs VIGIL_VIEWER_TOKEN)")
+    p.set_defaults(func=cmd_serve)
+
+    p = verbs.add_parser("stages", help="each animal's training-stage history")
+    p.add_argument("--db", required=True, metavar="PATH")
+    p.add_argument("--json", action="store_true")
+    p.set_defaults(func=cmd_stages)
 
     p = verbs.add_parser("rehearse", help="run a protocol over virtual animals in virtual time")
     p.add_argument("protocol", metavar="PROTOCOL")

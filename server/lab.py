@@ -16,7 +16,7 @@ import signal
 import sys
 import tempfile
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Callable
@@ -26,6 +26,7 @@ import numpy as np
 from server.engine.live import LiveSession
 from server.engine.records import EventLogged, Record, SessionEnded, TrialRecord
 from server.closed_loop import build_session
+from server.stages import advancement, current_stage, stage_for_box
 from server.engine.session import Session
 from server.lab_config import BoxConfig, LabConfig
 from server.link.emulator_process import EmulatorProcess, emulator_command
@@ -141,6 +142,7 @@ class Lab:
         self.say = say
         self.in_process_boxes = in_process_boxes  # emulated boxes without serial (tests)
         self.runs: list[BoxRun] = []
+        self._stages: dict[str, int] = {}  # box name -> 1-based stage running today
         self._stop_reason: str | None = None
 
     def stop_all(self, reason: str) -> None:
@@ -189,14 +191,51 @@ class Lab:
                         f"{record.trials} trials, {record.rewards} rewards"
                     )
                 self.store.write(run.session_id, record)
+                if isinstance(record, SessionEnded):
+                    self._after_session(run)
 
         return publish
+
+    # ------------------------------------------------------------ training stages
+
+    def _today(self, box: BoxConfig) -> BoxConfig:
+        """The box with the protocol its animal runs today: its current training stage, with
+        the animal's own settings applied."""
+        protocol = box.protocol
+        if box.stages:
+            stage = stage_for_box(self.store.conn, box)
+            protocol = box.stages[stage - 1].protocol
+            if current_stage(self.store.conn, box.animal) is None:
+                self.store.write_stage(box.animal, stage, protocol.name, wall_now(), "start")
+            self._stages[box.name] = stage
+            self.say(f"{box.name}: animal {box.animal} at stage {stage} of {len(box.stages)}")
+        if box.settings:
+            mine = {k: v for k, v in box.settings.items() if k in protocol.settings}
+            protocol = replace(protocol, settings={**protocol.settings, **mine})
+        return replace(box, protocol=protocol)
+
+    def _after_session(self, run: BoxRun) -> None:
+        box = run.config
+        stage = self._stages.get(box.name)
+        if stage is None or stage >= len(box.stages):
+            return
+        advance = box.stages[stage - 1].advance
+        if advance is None:
+            return
+        self.store.flush()
+        evidence = advancement(self.store.conn, box.animal, stage, advance)
+        if evidence is None:
+            return
+        nxt = box.stages[stage].protocol
+        self.store.write_stage(box.animal, stage + 1, nxt.name, wall_now(), "advanced", run.session_id, evidence)
+        self.say(f"{box.name}: animal {box.animal} advances to stage {stage + 1} ('{nxt.name}') next session")
 
     async def run(self, minutes: float | None = None) -> list[BoxRun]:
         loop = asyncio.get_running_loop()
         closed = self.store.close_interrupted(wall_now())
         if closed:
             self.say(f"closed {len(closed)} interrupted session(s) from an earlier run: {closed}")
+        self.config = replace(self.config, boxes=tuple(self._today(box) for box in self.config.boxes))
         t0 = loop.time()
 
         def clock() -> float:
@@ -219,6 +258,8 @@ class Lab:
                     "faults": box.emulate.faults,
                 },
                 "port": box.port,
+                "stage": self._stages.get(box.name),
+                "protocol_settings": box.protocol.settings,
                 # Line kinds let a reader of the store tell a feeder pulse from a sync pulse.
                 "wiring": {
                     "inputs": {n: line.kind for n, line in box.protocol.wiring.inputs.items()},

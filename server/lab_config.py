@@ -6,6 +6,7 @@ Protocols named by a box are loaded and validated here, before anything starts.
 
 from __future__ import annotations
 
+import ipaddress
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -15,7 +16,7 @@ from server.protocol.load import load_protocol
 from server.protocol.marked import Mark, Marked, load_marked
 from server.protocol.model import Protocol
 from server.protocol.problems import InvalidFile, Problem
-from server.protocol.reader import Reader, did_you_mean
+from server.protocol.reader import Reader, did_you_mean, did_you_mean
 
 
 def _url_handlers():
@@ -26,8 +27,10 @@ def _url_handlers():
 
     return [m for m in pkgutil.iter_modules(serial.urlhandler.__path__) if m.name.startswith("protocol_")]
 
-TOP_KEYS = ("lab", "database", "caps", "boxes")
-BOX_KEYS = ("name", "animal", "protocol", "port", "emulate", "seed")
+TOP_KEYS = ("lab", "database", "caps", "boxes", "web")
+BOX_KEYS = ("name", "animal", "protocol", "stages", "settings", "port", "emulate", "seed")
+STAGE_KEYS = ("protocol", "advance")
+ADVANCE_KEYS = ("sessions", "min_accuracy", "min_trials", "min_rewards", "max_omission_rate")
 EMULATE_KEYS = ("agent", "seed", "options", "faults")
 # Faults an emulated box can inject (hardware_stubs/box.py): key -> (low, high, low excluded).
 FAULT_RANGES = {
@@ -36,6 +39,33 @@ FAULT_RANGES = {
     "drop_rate": (0.0, 0.5, False),
     "garbage_rate": (0.0, 0.5, False),
 }
+WEB_KEYS = ("host", "port", "operator_token", "viewer_token", "no_response_minutes")
+MIN_TOKEN_CHARS = 16
+
+
+def is_loopback(host: str) -> bool:
+    """True when `host` only accepts connections from this computer."""
+    if host == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False
+
+
+@dataclass(frozen=True)
+class WebSettings:
+    """The status page: where it listens and the tokens that guard it (config key `web`).
+
+    Listening beyond this computer needs both tokens: the viewer token to read, the
+    operator token to pause, stop or annotate.
+    """
+
+    host: str = "127.0.0.1"
+    port: int = 8642
+    operator_token: str | None = None
+    viewer_token: str | None = None
+    no_response_minutes: float = 5.0  # alarm when a running box saw no input this long
 
 
 @dataclass(frozen=True)
@@ -47,13 +77,33 @@ class Emulation:
 
 
 @dataclass(frozen=True)
+class Advance:
+    """When an animal moves on from a stage: every condition set holds in each of the last
+    `sessions` sessions at that stage."""
+
+    sessions: int = 1
+    min_accuracy: float | None = None  # fraction correct of the session's scored trials
+    min_trials: int | None = None
+    min_rewards: int | None = None
+    max_omission_rate: float | None = None
+
+
+@dataclass(frozen=True)
+class Stage:
+    protocol: Protocol
+    advance: Advance | None  # None: the last stage, or one the animal stays on
+
+
+@dataclass(frozen=True)
 class BoxConfig:
     name: str
     animal: str
-    protocol: Protocol
+    protocol: Protocol  # with stages: the first stage's; the lab picks the current one
     port: str | None = None
     emulate: Emulation | None = None
     seed: int | None = None  # session seed; drawn fresh (and stored) when absent
+    stages: tuple[Stage, ...] = ()
+    settings: dict[str, float] = field(default_factory=dict)  # per-animal protocol settings
 
 
 @dataclass(frozen=True)
@@ -63,6 +113,7 @@ class LabConfig:
     database: Path
     caps: HardCaps
     boxes: tuple[BoxConfig, ...]
+    web: WebSettings = WebSettings()
 
 
 def load_lab(path: str | Path) -> LabConfig:
@@ -115,7 +166,28 @@ class _LabReader(Reader):
                 seen[box.name] = i + 1
                 animals[box.animal] = box.name
                 boxes.append(box)
-        return LabConfig(file, name or "lab", database, caps, tuple(boxes))
+        web = self.web(top.get("web"))
+        return LabConfig(file, name or "lab", database, caps, tuple(boxes), web)
+
+    def web(self, node: Marked | None) -> WebSettings:
+        f = self.mapping(node, "web", WEB_KEYS)
+        default = WebSettings()
+        if not f:
+            return default
+        host = self.text(f["host"], "web.host") if "host" in f else default.host
+        port = self.number(f["port"], "web.port", low=1, high=65535, integer=True) if "port" in f else default.port
+        tokens = {}
+        for key in ("operator_token", "viewer_token"):
+            token = self.text(f[key], f"web.{key}") if key in f else None
+            if token is not None and len(token) < MIN_TOKEN_CHARS:
+                self.error(f[key].mark, f"web.{key}: expected at least {MIN_TOKEN_CHARS} characters, found {len(token)}")
+                token = None
+            tokens[key] = token
+        quiet = self.number(f["no_response_minutes"], "web.no_response_minutes", low=0, low_open=True) if "no_response_minutes" in f else default.no_response_minutes
+        host = host or default.host
+        if "host" in f and not is_loopback(host) and not (tokens["operator_token"] and tokens["viewer_token"]):
+            self.error(f["host"].mark, f"web.host: listening on '{host}' reaches other computers; set web.operator_token and web.viewer_token first, or use 127.0.0.1")
+        return WebSettings(host, int(port or default.port), tokens["operator_token"], tokens["viewer_token"], float(quiet or default.no_response_minutes))
 
     def caps(self, node: Marked | None) -> HardCaps:
         f = self.mapping(node, "caps", ("max_rewards", "max_minutes"))
@@ -128,12 +200,21 @@ class _LabReader(Reader):
 
     def box(self, node: Marked, where: str) -> BoxConfig | None:
         before = len(self.problems)
-        f = self.mapping(node, where, BOX_KEYS, required=("name", "animal", "protocol"))
+        f = self.mapping(node, where, BOX_KEYS, required=("name", "animal"))
         if f is None:
             return None
         name = self.text(f.get("name"), f"{where}.name")
         animal = self.text(f.get("animal"), f"{where}.animal")
-        protocol = self.protocol(f.get("protocol"), f"{where}.protocol")
+        stages: tuple[Stage, ...] = ()
+        if ("protocol" in f) == ("stages" in f):
+            self.error(node.mark, f"{where}: give exactly one of 'protocol' or 'stages' (a list of protocols to advance through)")
+            protocol = None
+        elif "protocol" in f:
+            protocol = self.protocol(f.get("protocol"), f"{where}.protocol")
+        else:
+            stages = self.stages(f["stages"], f"{where}.stages")
+            protocol = stages[0].protocol if stages else None
+        settings = self.box_settings(f.get("settings"), f"{where}.settings", [protocol] if protocol and not stages else [s.protocol for s in stages])
         port = self.port(f["port"], f"{where}.port") if "port" in f else None
         emulate = self.emulation(f["emulate"], f"{where}.emulate") if "emulate" in f else None
         if ("port" in f) == ("emulate" in f):
@@ -141,7 +222,56 @@ class _LabReader(Reader):
         seed = self.number(f["seed"], f"{where}.seed", low=0, integer=True) if "seed" in f else None
         if len(self.problems) > before or name is None or animal is None or protocol is None:
             return None
-        return BoxConfig(name, animal, protocol, port, emulate, int(seed) if seed is not None else None)
+        return BoxConfig(name, animal, protocol, port, emulate, int(seed) if seed is not None else None, stages, settings)
+
+    def stages(self, node: Marked, where: str) -> tuple[Stage, ...]:
+        items = self.listing(node, where)
+        if node.is_list and not items:
+            self.error(node.mark, f"{where}: needs at least one stage")
+        stages = []
+        for i, item in enumerate(items):
+            here = f"{where}[{i + 1}]"
+            f = self.mapping(item, here, STAGE_KEYS, required=("protocol",))
+            if f is None:
+                continue
+            protocol = self.protocol(f.get("protocol"), f"{here}.protocol")
+            advance = self.advance(f["advance"], f"{here}.advance") if "advance" in f else None
+            if "advance" not in f and i + 1 < len(items):
+                self.error(item.mark, f"{here}: every stage but the last needs 'advance' (when the animal moves on)")
+            if protocol is not None:
+                stages.append(Stage(protocol, advance))
+        return tuple(stages) if len(stages) == len(items) else ()
+
+    def advance(self, node: Marked, where: str) -> Advance | None:
+        f = self.mapping(node, where, ADVANCE_KEYS)
+        if f is None:
+            return None
+        if not (set(f) - {"sessions"}):
+            self.error(node.mark, f"{where}: give at least one of {', '.join(ADVANCE_KEYS[1:])}")
+            return None
+        values: dict[str, Any] = {}
+        for key in ("sessions", "min_trials", "min_rewards"):
+            if key in f:
+                values[key] = self.number(f[key], f"{where}.{key}", low=1 if key == "sessions" else 0, integer=True)
+        for key in ("min_accuracy", "max_omission_rate"):
+            if key in f:
+                values[key] = self.probability(f[key], f"{where}.{key}")
+        if any(v is None for v in values.values()):
+            return None
+        return Advance(**{k: (int(v) if k in ("sessions", "min_trials", "min_rewards") else float(v)) for k, v in values.items()})
+
+    def box_settings(self, node: Marked | None, where: str, protocols: list[Protocol]) -> dict[str, float]:
+        known = sorted({name for p in protocols for name in p.settings})
+        settings: dict[str, float] = {}
+        for name, value, key_mark in self.items(node, where):
+            if name not in known:
+                hint = did_you_mean(name, known) if known else "; its protocols declare no settings"
+                self.error(key_mark, f"{where}: no protocol setting named '{name}'{hint}")
+                continue
+            number = self.number(value, f"{where}.{name}")
+            if number is not None:
+                settings[name] = float(number)
+        return settings
 
     def protocol(self, node: Marked | None, where: str) -> Protocol | None:
         rel = self.text(node, where)
