@@ -211,3 +211,95 @@ def export_choices_csv(
         params = (animal,)
     cursor = conn.execute(sql + " ORDER BY s.animal, s.started_at, t.session_id, t.trial", params)
     return _write_csv(cursor, CHOICE_COLUMNS, fileobj)
+
+
+# ---------------------------------------------------------------- status page
+
+
+def table_exists(conn: sqlite3.Connection, name: str) -> bool:
+    """True when the database holds table `name` (tables added by later migrations)."""
+    found = conn.execute(
+        "SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = ?", (name,)
+    ).fetchone()
+    return found is not None
+
+
+def latest_sessions_per_box(conn: sqlite3.Connection) -> list[dict[str, Any]]:
+    """The newest session of every box, ordered by box name."""
+    return _dicts(conn, (
+        "SELECT s.* FROM sessions s WHERE s.id = (SELECT s2.id FROM sessions s2"
+        " WHERE s2.box = s.box ORDER BY s2.started_at DESC, s2.id DESC LIMIT 1)"
+        " ORDER BY s.box"
+    ))
+
+
+def session_status(conn: sqlite3.Connection, session_id: int) -> dict[str, Any]:
+    """What a status tile needs from the store about one session.
+
+    accuracy (None without scored trials), last_input_t and last_t (session seconds of the
+    last input onset and of the last stored event; None when there is none), block (the block entered last), link_lost (the last link event
+    was a loss), cap_events (count of cap events), paused (the last pause/resume was a pause),
+    alarm (the last alarm event raised by a rule, with its t and detail, or None).
+    """
+    one = conn.execute
+    accuracy = one(
+        "SELECT avg(correct) FROM trials WHERE session_id = ? AND correct IS NOT NULL",
+        (session_id,),
+    ).fetchone()[0]
+    last_input = one(
+        "SELECT max(t) FROM events WHERE session_id = ? AND kind = 'input' AND value > 0",
+        (session_id,),
+    ).fetchone()[0]
+    last = one(
+        "SELECT t FROM events WHERE session_id = ? ORDER BY id DESC LIMIT 1", (session_id,)
+    ).fetchone()
+    last_t = last[0] if last else None
+    block = one(
+        "SELECT block FROM blocks WHERE session_id = ? ORDER BY block_index DESC LIMIT 1",
+        (session_id,),
+    ).fetchone()
+    link = one(
+        "SELECT kind FROM events WHERE session_id = ? AND kind IN ('link_lost', 'link_restored')"
+        " ORDER BY id DESC LIMIT 1", (session_id,),
+    ).fetchone()
+    caps = one(
+        "SELECT count(*) FROM events WHERE session_id = ? AND kind = 'cap'", (session_id,)
+    ).fetchone()[0]
+    pause = one(
+        "SELECT kind FROM events WHERE session_id = ? AND kind IN ('pause', 'resume')"
+        " ORDER BY id DESC LIMIT 1", (session_id,),
+    ).fetchone()
+    alarm = one(
+        "SELECT t, detail FROM events WHERE session_id = ? AND kind = 'alarm'"
+        " ORDER BY id DESC LIMIT 1", (session_id,),
+    ).fetchone()
+    return {
+        "alarm": None if alarm is None else {"t": alarm[0], "detail": rows.from_json(alarm[1])},
+        "accuracy": accuracy, "last_input_t": last_input, "last_t": last_t,
+        "block": block[0] if block else None,
+        "link_lost": bool(link) and link[0] == "link_lost", "cap_events": caps,
+        "paused": bool(pause) and pause[0] == "pause",
+    }
+
+
+def last_estimate(conn: sqlite3.Connection, session_id: int) -> dict[str, Any] | None:
+    """The estimate after the session's last estimated trial, or None."""
+    found = _dicts(
+        conn, "SELECT * FROM estimates WHERE session_id = ? ORDER BY trial DESC LIMIT 1",
+        (session_id,),
+    )
+    return found[0] if found else None
+
+
+def session_rule_firings(conn: sqlite3.Connection, session_id: int) -> list[dict[str, Any]]:
+    """Rule firings of a session in time order (t, trial, rule, actions, reads; JSON decoded);
+    empty when the database predates the rule_firings table."""
+    if not table_exists(conn, "rule_firings"):  # a database from before rules existed
+        return []
+    found = _dicts(conn, "SELECT * FROM rule_firings WHERE session_id = ? ORDER BY t, id",
+                   (session_id,))
+    for row in found:
+        for key in ("actions", "reads"):
+            if isinstance(row.get(key), str):
+                row[key] = rows.from_json(row[key])
+    return found

@@ -1,0 +1,125 @@
+"""The overview page: the lab-wide alarm strip and one tile per box.
+
+The first render and every live update carry the same texts (`tiles.shown`); the page
+script only swaps texts and flags, it never builds markup from data.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+from urllib.parse import quote
+
+from server.web.board import Snapshot, strip_of
+from server.web.layout import icon, icon_templates
+from server.web.markup import Safe, el
+from server.web.tiles import shown
+
+# (field key, label, size) in the order a tile shows them: big figures, one-column facts,
+# and wide rows for texts that run long
+FIELDS = (
+    ("trial", "trial", "big"),
+    ("rewards", "pellets", "big"),
+    ("accuracy", "correct", "big"),
+    ("protocol", "protocol", "wide"),
+    ("block", "block", ""),
+    ("elapsed", "elapsed", ""),
+    ("remaining", "time left", ""),
+    ("since_input", "last input", ""),
+    ("link", "box link", ""),
+    ("step", "step", ""),
+    ("last_rule", "last rule", "wide"),
+)
+
+
+def animal_href(animal: str) -> str:
+    return "/animals/" + quote(animal, safe="")
+
+
+def alarm_item(alarm: dict[str, str], box: str | None = None) -> Safe:
+    parts = [icon(alarm["kind"])]
+    if box is not None:
+        parts.append(el("b", box))
+    parts.append(el("span", alarm["text"]))
+    return el("li", parts, class_=f"al al-{alarm['kind']}", data_kind=alarm["kind"])
+
+
+def strip(tiles: list[dict[str, Any]]) -> Safe:
+    items = strip_of(tiles)
+    quiet = el("p", icon("ok"), el("span", "No alarms: every box within limits"),
+               class_="quiet", hidden=bool(items))
+    return el(
+        "section",
+        el("h2", "Alarms", class_="sr"),
+        quiet,
+        el("ul", [alarm_item(a, a["box"]) for a in items], class_="alarmlist"),
+        id="strip", class_="strip", data_count=str(len(items)), role="status",
+        aria_live="polite",
+    )
+
+
+def controls(tile: dict[str, Any]) -> Safe:
+    running = tile["state"] != "ended"
+    return el(
+        "div",
+        el("button", icon("paused"), "pause", type="button", data_act="pause",
+           hidden=tile["state"] != "running"),
+        el("button", icon("running"), "resume", type="button", data_act="resume",
+           hidden=tile["state"] != "paused"),
+        el("button", icon("ended_early"), "stop", type="button", data_act="stop",
+           class_="danger", hidden=not running),
+        class_="acts",
+    )
+
+
+def tile_markup(tile: dict[str, Any], *, with_controls: bool) -> Safe:
+    texts = shown(tile)
+    figs = [
+        el("div", el("dt", label), el("dd", texts[key], data_f=key), class_=f"fig {size}".strip())
+        for key, label, size in FIELDS
+    ]
+    state_icon = "running" if tile["state"] == "running" else tile["state"]
+    return el(
+        "article",
+        el("header",
+           el("h2", tile["box"], class_="boxname"),
+           el("a", tile["animal"], href=animal_href(tile["animal"]), class_="animal"),
+           el("p", el("span", icon(state_icon), data_icon_slot="state"),
+              el("span", texts["state"], data_f="state"), class_="state"),
+           class_="tile-head"),
+        el("ul", [alarm_item(a) for a in tile["alarms"]], class_="alarmlist", data_alarms=True),
+        el("dl", figs, class_="figs"),
+        el("footer",
+           el("a", f"session {tile['session_id']} ›", href=f"/sessions/{tile['session_id']}"),
+           controls(tile) if with_controls else None),
+        class_="tile", data_box=tile["box"], data_session=str(tile["session_id"]),
+        data_state=tile["state"], data_alarmed="yes" if tile["alarms"] else "no",
+    )
+
+
+def operator_key() -> Safe:
+    return el(
+        "form",
+        el("label", "Operator token ",
+           el("input", type="password", id="optoken", autocomplete="off",
+              placeholder="needed to pause, stop or annotate")),
+        el("output", id="opsay", aria_live="polite"),
+        class_="opkey", id="opkey",
+    )
+
+
+def overview_body(snap: Snapshot, *, with_controls: bool) -> Safe:
+    if snap.tiles:
+        grid = el("div", [tile_markup(t, with_controls=with_controls) for t in snap.tiles],
+                  class_="grid", id="board", data_boxes="\n".join(t["box"] for t in snap.tiles))
+    else:
+        grid = el("p", "No sessions yet.", class_="empty", id="board", data_boxes="")
+    return el(
+        "div",
+        strip(snap.tiles),
+        operator_key() if with_controls else None,
+        grid,
+        el("p", "as of ", el("time", snap.wall_time, id="asof"),
+           el("span", " · live updates", id="feed"), class_="asof"),
+        icon_templates(),
+        class_="overview",
+    )

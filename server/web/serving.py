@@ -1,0 +1,86 @@
+"""Serving the status page with uvicorn on the caller's asyncio loop, beside the lab.
+
+uvicorn installs its own SIGINT/SIGTERM handlers while it serves; here they are switched
+off so the lab's handlers (which end every session safely) stay in charge, and the
+server stops when told to (DESIGN.md, "uvicorn in our loop"). The socket is bound before
+anything starts, so a busy port is a one-line error rather than an exit from inside uvicorn.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import errno
+import socket
+
+import uvicorn
+from fastapi import FastAPI
+
+from server.web.app import close_app, stop_live_updates
+
+
+class WebError(Exception):
+    pass
+
+
+def bind_socket(host: str, port: int) -> socket.socket:
+    """A listening-ready TCP socket on host:port (port 0 picks a free one)."""
+    family = socket.AF_INET6 if ":" in host else socket.AF_INET
+    sock = socket.socket(family, socket.SOCK_STREAM)
+    try:
+        sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+        sock.bind((host, port))
+    except OSError as exc:
+        sock.close()
+        why = "the port is already in use" if exc.errno == errno.EADDRINUSE else (
+            exc.strerror or str(exc)).lower()
+        raise WebError(f"cannot listen on {host}:{port}: {why}") from None
+    sock.set_inheritable(True)
+    return sock
+
+
+class _KeepOurSignals(uvicorn.Server):
+    @contextlib.contextmanager
+    def capture_signals(self):
+        yield
+
+
+class StatusServer:
+    """The status page on one socket; `serve()` until `stop()`."""
+
+    def __init__(self, app: FastAPI, host: str = "127.0.0.1", port: int = 8642, *,
+                 sock: socket.socket | None = None):
+        self.app = app
+        self.sock = sock if sock is not None else bind_socket(host, port)
+        self.host = host
+        self.port = self.sock.getsockname()[1]
+        config = uvicorn.Config(
+            app, host=host, port=self.port, log_config=None, log_level="warning",
+            access_log=False, lifespan="off", ws="none", http="h11", server_header=False,
+            timeout_graceful_shutdown=3,
+        )
+        self._server = _KeepOurSignals(config)
+
+    @property
+    def url(self) -> str:
+        host = f"[{self.host}]" if ":" in self.host else self.host
+        return f"http://{host}:{self.port}/"
+
+    @property
+    def started(self) -> bool:
+        return self._server.started
+
+    async def serve(self) -> None:
+        try:
+            await self._server.serve(sockets=[self.sock])
+        finally:
+            close_app(self.app)
+
+    def stop(self) -> None:
+        stop_live_updates(self.app)
+        self._server.should_exit = True
+
+
+async def serve(app: FastAPI, host: str = "127.0.0.1", port: int = 8642) -> None:
+    """Serve `app` on the running loop until the task is cancelled or the app is stopped;
+    the caller's signal handlers stay in place."""
+    await StatusServer(app, host, port).serve()

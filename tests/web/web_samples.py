@@ -1,0 +1,74 @@
+"""A stored lab of our own for the status page tests: sessions run in virtual time on
+emulated boxes with virtual animals, written by the real store, with estimates from the
+real online estimator."""
+
+from __future__ import annotations
+
+import warnings
+from pathlib import Path
+
+import numpy as np
+
+from hardware_stubs.agents import make_agent
+from hardware_stubs.emulated_box import EmulatedBox
+from server.engine.caps import HardCaps
+from server.engine.records import TrialRecord
+from server.engine.session import Session
+from server.engine.virtual import run_virtual
+from server.models.estimator import OnlineEstimator
+from server.protocol.load import load_protocol
+from server.store.writer import Store
+
+with warnings.catch_warnings():  # starlette prefers a newer client; httpx is what we have
+    warnings.simplefilter("ignore")
+    from fastapi.testclient import TestClient  # noqa: F401  (re-exported for the tests)
+
+REPO = Path(__file__).resolve().parents[2]
+REVERSAL = REPO / "protocols" / "reversal.yaml"
+AUTOSHAPING = REPO / "protocols" / "autoshaping.yaml"
+STARTED = "2031-05-12T09:00:00.000+02:00"
+
+OPERATOR = "op-7f3c9a1e5b2d4c6e"
+VIEWER = "view-2b8e4f6a9c1d3e5f"
+
+# Names that would run script if a page pasted them in raw.
+EVIL_BOX = '<script>alert("box")</script>'
+EVIL_ANIMAL = '"><img src=x onerror=alert(1)>'
+
+
+def wiring_settings(protocol) -> dict:
+    return {
+        "caps": {"max_rewards": 250, "max_minutes": 12},
+        "wiring": {
+            "inputs": {n: line.kind for n, line in protocol.wiring.inputs.items()},
+            "outputs": {n: line.kind for n, line in protocol.wiring.outputs.items()},
+        },
+    }
+
+
+def record_session(store: Store, *, box: str, animal: str, protocol_path: Path, agent: str,
+                   seed: int, minutes: float = 12.0, estimates: bool = False,
+                   started_at: str = STARTED, end: bool = True, **agent_options) -> int:
+    """Run one session in virtual time and store every record; returns the session id."""
+    protocol = load_protocol(protocol_path)
+    session = Session(protocol, seed, HardCaps(max_rewards=250, max_minutes=minutes))
+    box_ = EmulatedBox(protocol.wiring, make_agent(agent, **agent_options),
+                       np.random.default_rng(seed))
+    sid = store.begin_session(box, animal, protocol.name, str(protocol_path), protocol.sha256,
+                              seed, started_at, wiring_settings(protocol))
+    estimator = OnlineEstimator("q_learning", list(protocol.options)) if estimates else None
+    held = []
+
+    def on_records(records):
+        for record in records:
+            if not end and type(record).__name__ == "SessionEnded":
+                held.append(record)
+                continue
+            store.write(sid, record)
+            if estimator is not None and isinstance(record, TrialRecord):
+                est = estimator.update(record.choice, record.reward)
+                store.write_estimate(sid, record.trial, est.model, est.to_dict())
+
+    run_virtual(session, box_, on_records)
+    store.flush()
+    return sid
