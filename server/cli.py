@@ -145,26 +145,39 @@ def cmd_stages(args: argparse.Namespace) -> int:
 def cmd_rehearse(args: argparse.Namespace) -> int:
     from hardware_stubs.agents import AGENTS
     from server.engine.caps import HardCaps
+    from server.population import load_population, parse_vary
     from server.protocol.load import load_protocol
-    from server.rehearsal import human_report, progress_bar, rehearse
+    from server.rehearsal import criterion_figure_svg, human_report, progress_bar, rehearse
 
+    if args.agent not in AGENTS:
+        _err(f"unknown agent '{args.agent}'; choose from {', '.join(sorted(AGENTS))}")
+        return 2
     try:
         protocol = load_protocol(args.protocol)
+        if args.population:
+            population = load_population(args.population, args.agent)
+        else:
+            population = parse_vary(args.vary or [], args.agent)
     except InvalidFile as exc:
         for problem in exc.problems:
             sys.stderr.write(f"{problem}\n")
         return 1
-    if args.agent not in AGENTS:
-        _err(f"unknown agent '{args.agent}'; choose from {', '.join(sorted(AGENTS))}")
-        return 2
     result = rehearse(
-        protocol, args.animals, args.seed, args.agent, caps=HardCaps(),
-        progress=progress_bar(), workers=args.workers,
+        protocol, args.animals, args.seed, caps=HardCaps(), progress=progress_bar(),
+        workers=args.workers, sessions=args.sessions, population=population,
     )  # fmt: skip
+    if args.figure:
+        try:
+            Path(args.figure).write_text(criterion_figure_svg(result), encoding="utf-8")
+        except OSError as exc:
+            _err(f"cannot write figure {args.figure}: {exc.strerror}")
+            return 1
     if args.json:
         sys.stdout.write(json.dumps(result, sort_keys=True) + "\n")
     else:
         print(human_report(result))
+        if args.figure:
+            print(f"figure: {args.figure}")
     return 0
 
 
@@ -256,6 +269,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--agent", default="q_learner", metavar="NAME")
     p.add_argument("--workers", type=_positive_int, default=None, metavar="W",
                    help="worker processes (default: all cores for large cohorts)")  # fmt: skip
+    p.add_argument("--sessions", type=_positive_int, default=1, metavar="K",
+                   help="sessions (days) per animal; learning carries over")
+    p.add_argument("--population", metavar="FILE", help="YAML: agent and how its options vary")
+    p.add_argument("--vary", action="append", metavar="NAME=SPEC",
+                   help="vary an agent option: NAME=LOW:HIGH, NAME=lognormal:MEDIAN:SIGMA, NAME=VALUE")
+    p.add_argument("--figure", metavar="FILE.svg", help="write a histogram of trials to criterion")
     p.add_argument("--json", action="store_true", help="print JSON instead of a table")
     p.set_defaults(func=cmd_rehearse)
 

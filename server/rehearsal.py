@@ -21,6 +21,7 @@ from server.closed_loop import build_session
 from server.engine.session import Session
 from server.engine.virtual import run_virtual
 from server.protocol.model import SCHEDULE_ACTIONS, Protocol
+from server.population import Population, Spread
 from server.rules.book import RuleBook
 
 PARALLEL_FROM = 40  # animals; below this a process pool costs more than it saves
@@ -31,14 +32,15 @@ class Animal:
     index: int
     session_seed: int
     agent_seed: int
+    params_seed: int
 
 
 def cohort(seed: int, n: int) -> list[Animal]:
     children = np.random.SeedSequence(seed).spawn(n)
     animals = []
     for i, child in enumerate(children):
-        a, b = child.generate_state(2, dtype=np.uint64)
-        animals.append(Animal(i, int(a >> np.uint64(1)), int(b >> np.uint64(1))))
+        a, b, c = (int(x >> np.uint64(1)) for x in child.generate_state(3, dtype=np.uint64))
+        animals.append(Animal(i, a, b, c))
     return animals
 
 
@@ -50,31 +52,63 @@ def has_performance_criterion(protocol: Protocol) -> bool:
     return blocks or rules
 
 
-def rehearse_one(protocol: Protocol, animal: Animal, agent: str, options: dict[str, Any], caps: HardCaps) -> dict:
+def rehearse_one(
+    protocol: Protocol, animal: Animal, population: Population, caps: HardCaps, sessions: int = 1
+) -> dict:
+    """One virtual animal over `sessions` days: its learned values and the estimator's
+    posterior carry from day to day, as they would for a real animal."""
     from hardware_stubs.agents import make_agent
     from hardware_stubs.emulated_box import EmulatedBox
 
-    session = build_session(protocol, animal.session_seed, caps, log_events=False)
-    box = EmulatedBox(protocol.wiring, make_agent(agent, **options), np.random.default_rng(animal.agent_seed))
-    run_virtual(session, box)
+    params = population.draw(np.random.default_rng(animal.params_seed))
+    learned: dict = {}
+    estimator_state = None
+    days = []
+    firings: dict[str, int] = {}
+    trials_before = 0
+    to_criterion = sessions_to_criterion = None
+    for day in range(sessions):
+        agent = make_agent(population.agent, **params)
+        agent.restore(learned)
+        session = build_session(protocol, animal.session_seed + day, caps, log_events=False, estimator_state=estimator_state)
+        box = EmulatedBox(protocol.wiring, agent, np.random.default_rng(animal.agent_seed + day))
+        run_virtual(session, box)
+        learned = agent.learned_state()
+        if session.estimator is not None:
+            estimator_state = session.estimator.state_dict()
+        for name, count in rule_firings(session).items():
+            firings[name] = firings.get(name, 0) + count
+        if to_criterion is None and session.first_criterion_trial is not None:
+            to_criterion = trials_before + session.first_criterion_trial
+            sessions_to_criterion = day + 1
+        trials_before += session.trials_done
+        days.append({
+            "trials": session.trials_done,
+            "rewards": session.rewards,
+            "duration_s": round(_end_time(session), 3),
+            "reversals": session.reversals,
+            "end_reason": session.end_reason,
+            "blocks": [{"block": n, "trials": t, "ended_by": why} for n, t, why in session.block_log],
+        })  # fmt: skip
     criterion = has_performance_criterion(protocol)
-    blocks = [
-        {"block": name, "trials": trials, "ended_by": why}
-        for name, trials, why in session.block_log
-    ]
-    return {
+    result = {
         "animal": f"virtual-{animal.index + 1:04d}",
-        "agent": agent,
-        "trials": session.trials_done,
-        "rewards": session.rewards,
-        "duration_s": round(_end_time(session), 3),
-        "blocks": blocks,
-        "criterion_reached": (session.first_criterion_trial is not None) if criterion else None,
-        "trials_to_criterion": session.first_criterion_trial,
-        "end_reason": session.end_reason,
-        "reversals": session.reversals,
-        "rule_firings": rule_firings(session),
+        "agent": population.agent,
+        "params": params,
+        "trials": sum(d["trials"] for d in days),
+        "rewards": sum(d["rewards"] for d in days),
+        "duration_s": round(sum(d["duration_s"] for d in days), 3),
+        "blocks": days[0]["blocks"] if sessions == 1 else [b for d in days for b in d["blocks"]],
+        "criterion_reached": (to_criterion is not None) if criterion else None,
+        "trials_to_criterion": to_criterion,
+        "sessions_to_criterion": sessions_to_criterion,
+        "end_reason": days[-1]["end_reason"],
+        "reversals": sum(d["reversals"] for d in days),
+        "rule_firings": firings,
     }
+    if sessions > 1:
+        result["sessions"] = [{k: v for k, v in d.items() if k != "blocks"} for d in days]
+    return result
 
 
 def rule_firings(session: Session) -> dict[str, int]:
@@ -90,8 +124,8 @@ def _end_time(session: Session) -> float:
 
 
 def _run_chunk(args) -> list[dict]:
-    protocol, animals, agent, options, caps = args
-    return [rehearse_one(protocol, a, agent, options, caps) for a in animals]
+    protocol, animals, population, caps, sessions = args
+    return [rehearse_one(protocol, a, population, caps, sessions) for a in animals]
 
 
 def rehearse(
@@ -104,29 +138,34 @@ def rehearse(
     *,
     workers: int | None = None,
     progress: Callable[[int, int], None] | None = None,
+    sessions: int = 1,
+    population: Population | None = None,
 ) -> dict:
-    options = options or {}
+    if population is None:
+        population = Population(agent, {k: Spread("fixed", float(v)) for k, v in (options or {}).items()})
     animals = cohort(seed, n_animals)
-    workers = workers or (min(os.cpu_count() or 1, 8) if n_animals >= PARALLEL_FROM else 1)
+    workers = workers or (min(os.cpu_count() or 1, 8) if n_animals * sessions >= PARALLEL_FROM else 1)
     results: list[dict] = []
     if workers <= 1:
         for animal in animals:
-            results.append(rehearse_one(protocol, animal, agent, options, caps))
+            results.append(rehearse_one(protocol, animal, population, caps, sessions))
             if progress:
                 progress(len(results), n_animals)
     else:
         size = max(1, min(25, n_animals // (workers * 4) or 1))
         chunks = [animals[i : i + size] for i in range(0, n_animals, size)]
         with ProcessPoolExecutor(workers) as pool:
-            for part in pool.map(_run_chunk, [(protocol, c, agent, options, caps) for c in chunks]):
+            jobs = [(protocol, c, population, caps, sessions) for c in chunks]
+            for part in pool.map(_run_chunk, jobs):
                 results.extend(part)
                 if progress:
                     progress(len(results), n_animals)
     return {
         "protocol": protocol.name,
         "seed": seed,
+        "sessions_per_animal": sessions,
         "animals": results,
-        "summary": summarise(results, has_performance_criterion(protocol)),
+        "summary": summarise(results, has_performance_criterion(protocol), sessions),
     }
 
 
@@ -137,14 +176,25 @@ def _spread(values: list[float]) -> dict[str, float | None]:
     return {"median": round(float(med), 3), "q1": round(float(q1), 3), "q3": round(float(q3), 3)}
 
 
-def summarise(results: list[dict], criterion: bool) -> dict:
+def summarise(results: list[dict], criterion: bool, sessions: int = 1) -> dict:
     reached = [r["trials_to_criterion"] for r in results if r["trials_to_criterion"] is not None]
+    days = [d for r in results for d in r.get("sessions", [r])]
+    firings: dict[str, int] = {}
+    for r in results:
+        for name, count in r["rule_firings"].items():
+            firings[name] = firings.get(name, 0) + count
     return {
         "animals": len(results),
-        "trials": _spread([r["trials"] for r in results]),
-        "rewards": _spread([r["rewards"] for r in results]),
-        "duration_s": _spread([r["duration_s"] for r in results]),
+        "trials": _spread([d["trials"] for d in days]),
+        "rewards": _spread([d["rewards"] for d in days]),
+        "duration_s": _spread([d["duration_s"] for d in days]),
+        "reversals_per_session": _spread([d["reversals"] for d in days]),
+        "rule_firings": dict(sorted(firings.items())),
         "trials_to_criterion": _spread(reached) if criterion else None,
+        "sessions_to_criterion": (
+            _spread([r["sessions_to_criterion"] for r in results if r["sessions_to_criterion"] is not None])
+            if criterion else None
+        ),
         "fraction_never_reaching_criterion": (
             round(1 - len(reached) / len(results), 4) if criterion and results else None
         ),
@@ -168,12 +218,20 @@ def progress_bar(stream=sys.stderr) -> Callable[[int, int], None] | None:
 
 def human_report(result: dict) -> str:
     s = result["summary"]
-    lines = [f"protocol '{result['protocol']}', seed {result['seed']}, {s['animals']} virtual animals", ""]
-    lines.append(f"{'animal':<14}{'trials':>7}{'rewards':>9}{'minutes':>9}  criterion  end")
+    k = result.get("sessions_per_animal", 1)
+    days = f", {k} sessions each" if k > 1 else ""
+    lines = [f"protocol '{result['protocol']}', seed {result['seed']}, {s['animals']} virtual animals{days}", ""]
+    lines.append(f"{'animal':<14}{'trials':>7}{'rewards':>9}{'minutes':>9}{'reversals':>10}  criterion    end")
     for r in result["animals"]:
-        crit = "-" if r["criterion_reached"] is None else (f"trial {r['trials_to_criterion']}" if r["criterion_reached"] else "never")
+        if r["criterion_reached"] is None:
+            crit = "-"
+        elif r["criterion_reached"]:
+            crit = f"trial {r['trials_to_criterion']}" + (f" (s{r['sessions_to_criterion']})" if k > 1 else "")
+        else:
+            crit = "never"
         lines.append(
-            f"{r['animal']:<14}{r['trials']:>7}{r['rewards']:>9}{r['duration_s'] / 60:>9.1f}  {crit:<10} {r['end_reason']}"
+            f"{r['animal']:<14}{r['trials']:>7}{r['rewards']:>9}{r['duration_s'] / 60:>9.1f}"
+            f"{r['reversals']:>10}  {crit:<12} {r['end_reason']}"
         )
     lines.append("")
 
@@ -182,10 +240,49 @@ def human_report(result: dict) -> str:
             return "-"
         return f"median {spread['median'] / scale:.1f} (IQR {spread['q1'] / scale:.1f}-{spread['q3'] / scale:.1f})"
 
-    lines.append(f"trials per session   {fmt(s['trials'])}")
-    lines.append(f"rewards per session  {fmt(s['rewards'])}")
-    lines.append(f"session minutes      {fmt(s['duration_s'], 60.0)}")
+    lines.append(f"trials per session     {fmt(s['trials'])}")
+    lines.append(f"rewards per session    {fmt(s['rewards'])}   (for food-restriction planning)")
+    lines.append(f"session minutes        {fmt(s['duration_s'], 60.0)}")
+    lines.append(f"reversals per session  {fmt(s['reversals_per_session'])}")
     if s["trials_to_criterion"] is not None:
-        lines.append(f"trials to criterion  {fmt(s['trials_to_criterion'])}")
-        lines.append(f"never reached        {s['fraction_never_reaching_criterion']:.0%} of animals")
+        lines.append(f"trials to criterion    {fmt(s['trials_to_criterion'])}")
+        if k > 1:
+            lines.append(f"sessions to criterion  {fmt(s['sessions_to_criterion'])}")
+        lines.append(f"never reached          {s['fraction_never_reaching_criterion']:.0%} of animals")
+    if s["rule_firings"]:
+        lines.append("rule firings           " + ", ".join(f"{n}: {c}" for n, c in s["rule_firings"].items()))
     return "\n".join(lines)
+
+
+def criterion_figure_svg(result: dict) -> str:
+    """A histogram of trials to criterion across the cohort, as a standalone SVG."""
+    from xml.sax.saxutils import escape
+
+    values = [r["trials_to_criterion"] for r in result["animals"] if r["trials_to_criterion"] is not None]
+    never = sum(1 for r in result["animals"] if r["criterion_reached"] is False)
+    width, height, left, bottom = 640, 360, 60, 50
+    plot_w, plot_h = width - left - 20, height - bottom - 40
+    title = escape(f"{result['protocol']}: trials to criterion, {len(result['animals'])} virtual animals")
+    parts = [
+        f'<svg xmlns="http://www.w3.org/2000/svg" width="{width}" height="{height}" viewBox="0 0 {width} {height}" font-family="sans-serif" font-size="12">',
+        f'<rect width="{width}" height="{height}" fill="white"/>',
+        f'<text x="{left}" y="22" font-size="14">{title}</text>',
+    ]
+    if values:
+        counts, edges = np.histogram(values, bins=min(20, max(1, len(set(values)))))
+        top = max(counts) or 1
+        bar_w = plot_w / len(counts)
+        for i, c in enumerate(counts):
+            h = plot_h * c / top
+            x = left + i * bar_w
+            parts.append(f'<rect x="{x:.1f}" y="{40 + plot_h - h:.1f}" width="{bar_w - 2:.1f}" height="{h:.1f}" fill="#4a6fa5"/>')
+        for i in (0, len(edges) // 2, len(edges) - 1):
+            x = left + plot_w * i / (len(edges) - 1)
+            parts.append(f'<text x="{x:.1f}" y="{height - bottom + 18}" text-anchor="middle">{edges[i]:.0f}</text>')
+        parts.append(f'<text x="{left - 8}" y="{40 + 4}" text-anchor="end">{top}</text>')
+        parts.append(f'<text x="{left - 8}" y="{40 + plot_h}" text-anchor="end">0</text>')
+    parts.append(f'<line x1="{left}" y1="{40 + plot_h}" x2="{left + plot_w}" y2="{40 + plot_h}" stroke="black"/>')
+    parts.append(f'<text x="{left + plot_w / 2}" y="{height - 12}" text-anchor="middle">trials to criterion (animals)</text>')
+    parts.append(f'<text x="{left + plot_w}" y="{height - 12}" text-anchor="end">never reached: {never}</text>')
+    parts.append("</svg>")
+    return "\n".join(parts) + "\n"

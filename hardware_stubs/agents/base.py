@@ -26,6 +26,13 @@ class Agent(Protocol):
 
     name: ClassVar[str]
 
+    def learned_state(self) -> dict[str, object]:
+        """What the animal carries to its next session (a new agent per session restores it)."""
+        return {}
+
+    def restore(self, state: Mapping[str, object]) -> None:
+        pass
+
     def attach(self, box: EmulatedBox) -> None: ...
     def on_presented(self, t: float, line: InputLine, presented: bool) -> None: ...
     def on_pellet(self, t: float) -> None: ...
@@ -81,6 +88,13 @@ class VirtualAnimal:
     def cross_check(cls, values: Mapping[str, object]) -> list[str]:
         """Problems that involve several options at once (none by default)."""
         return []
+
+    def learned_state(self) -> dict[str, object]:
+        """What the animal carries to its next session (a new agent per session restores it)."""
+        return {}
+
+    def restore(self, state: Mapping[str, object]) -> None:
+        pass
 
     def attach(self, box: EmulatedBox) -> None:
         if self.box is not None:

@@ -80,6 +80,13 @@ class PavlovianApproacher(VirtualAnimal):
         self._lever: int | None = None
         self._goal: int | None = None
 
+    def learned_state(self) -> dict[str, object]:
+        return {"v": self.v, "cs_trials": self.cs_trials}
+
+    def restore(self, state) -> None:
+        self.v = float(state.get("v", 0.0))
+        self.cs_trials = int(state.get("cs_trials", 0))
+
     def on_presented(self, t: float, line: InputLine, presented: bool) -> None:
         if line.kind not in OPERANT_INPUT_KINDS:
             return

@@ -138,6 +138,12 @@ class QLearner(RandomResponder):
         self._last: str | None = None
         self._last_t = -math.inf
 
+    def learned_state(self) -> dict[str, object]:
+        return {"values": dict(self.values)}
+
+    def restore(self, state) -> None:
+        self.values = dict(state.get("values", {}))
+
     def choice_probabilities(self, options: tuple[str, ...]) -> tuple[float, ...]:
         """Softmax P(a) = exp(beta Q(a)) / sum_b exp(beta Q(b)) (Sutton & Barto 2018, eq. 2.11)."""
         values = self.values

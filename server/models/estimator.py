@@ -237,6 +237,15 @@ class OnlineEstimator:
             self._last_pe, self._last_surprise, best, exploration, p_best, p_prefers, rate,
         )
 
+    def p_choice_at_least(self, label: str, level: float) -> float | None:
+        """Posterior probability that the animal's next-trial probability of choosing
+        `label` is at least `level`: how sure we are that it clearly prefers that option."""
+        idx = self._index.get(label)
+        if idx is None:
+            return None
+        self._log_probs()
+        return float(np.clip(((self._p[idx] >= level) * self._w).sum(), 0.0, 1.0))
+
     # ------------------------------------------------------------------ sessions and state
 
     def new_session(self) -> None:

@@ -33,7 +33,7 @@ METRICS: dict[str, tuple[bool, str]] = {
     "pca": (False, "Pavlovian conditioned approach index so far (Meyer et al. 2012)"),
     "exploration": (False, "estimated probability of not choosing the best-valued option"),
     "p_prefers_best": (False, "estimated probability the animal prefers its best-valued option"),
-    "p_prefers_correct": (False, "estimated probability the animal prefers the option that is best now"),
+    "p_prefers_correct": (False, "posterior probability the animal chooses the option that is best now with probability >= 0.75"),
     "reward_rate": (False, "exponentially filtered reward rate from the estimator"),
     "prediction_error": (False, "prediction error of the last trial"),
 }

@@ -20,6 +20,8 @@ from server.rules.metrics import SessionMetrics
 _COMPARE = {"<": operator.lt, "<=": operator.le, ">": operator.gt, ">=": operator.ge,
             "==": operator.eq, "!=": operator.ne}  # fmt: skip
 _ARITH = {"+": operator.add, "-": operator.sub, "*": operator.mul}
+# "Prefers" an option: chooses it with probability at least this on the next trial.
+PREFERENCE_LEVEL = 0.75
 
 
 def evaluate(node: Node, values: dict[str, float | None]) -> float | bool | None:
@@ -81,7 +83,11 @@ def quantity_value(q: Quantity, metrics: SessionMetrics, session: Session, trial
         return None
     if name == "p_prefers_correct":
         best = session.best_options()
-        return max((estimate.p_prefers.get(o, 0.0) for o in best), default=None) if best else None
+        if not best or session.estimator is None:
+            return None
+        found = [session.estimator.p_choice_at_least(o, PREFERENCE_LEVEL) for o in best]
+        found = [p for p in found if p is not None]
+        return max(found) if found else 0.0
     value = getattr(estimate, name)
     return None if value is None else float(value)
 

@@ -243,3 +243,45 @@ def test_expression_errors(when, message):
 def test_iti_actions_need_declared_bounds():
     with pytest.raises(InvalidFile, match="declare iti_bounds"):
         protocol_with('rules:\n  - rule: r\n    when: "trials > 1"\n    then: {scale_iti: 2}\n')
+
+
+# ------------------------------------------------------------------ rehearsal with rules on
+
+
+def test_rehearsal_with_rules_is_deterministic_and_reports_firings(tmp_path):
+    from server.population import parse_vary
+    from server.protocol.load import load_protocol
+    from server.rehearsal import criterion_figure_svg, rehearse
+
+    protocol = load_protocol(ROOT / "protocols" / "reversal.yaml")
+    population = parse_vary(["alpha=0.2:0.5", "beta=lognormal:5:0.3"], "q_learner")
+    one = rehearse(protocol, 4, 21, sessions=2, population=population, workers=1)
+    two = rehearse(protocol, 4, 21, sessions=2, population=population, workers=2)
+    assert one == two
+    for animal in one["animals"]:
+        assert set(animal["rule_firings"]) == {"learned", "streak_backstop", "disengaged"}
+        assert animal["reversals"] == sum(animal["rule_firings"][r] for r in ("learned", "streak_backstop"))
+        assert animal["reversals"] > 0 and len(animal["sessions"]) == 2
+        assert 0.2 <= animal["params"]["alpha"] <= 0.5
+    assert one["summary"]["rule_firings"]["learned"] > 0
+    svg = criterion_figure_svg(one)
+    assert svg.startswith("<svg") and "trials to criterion" in svg
+
+
+def test_reversal_rule_records_every_value_it_read(tmp_path):
+    """A live-style session with the estimator on: each firing carries the quantities read."""
+    import numpy as np
+
+    from hardware_stubs.agents import make_agent
+    from hardware_stubs.emulated_box import EmulatedBox
+    from server.engine.virtual import run_virtual
+    from server.protocol.load import load_protocol
+
+    protocol = load_protocol(ROOT / "protocols" / "reversal.yaml")
+    session = build_session(protocol, 5)
+    records = []
+    run_virtual(session, EmulatedBox(protocol.wiring, make_agent("q_learner"), np.random.default_rng(5)), records.extend)
+    learned = firings(records, "learned")
+    assert learned, "the estimator-driven reversal fired"
+    assert all(set(f.values) == {"p_prefers_correct"} and f.values["p_prefers_correct"] >= 0.95 for f in learned)
+    assert all(f.actions == ({"reverse": ["west", "east"]},) for f in learned)
