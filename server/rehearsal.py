@@ -53,7 +53,8 @@ def has_performance_criterion(protocol: Protocol) -> bool:
 
 
 def rehearse_one(
-    protocol: Protocol, animal: Animal, population: Population, caps: HardCaps, sessions: int = 1
+    protocol: Protocol, animal: Animal, population: Population, caps: HardCaps, sessions: int = 1,
+    closed_loop: bool = True,
 ) -> dict:
     """One virtual animal over `sessions` days: its learned values and the estimator's
     posterior carry from day to day, as they would for a real animal."""
@@ -70,7 +71,10 @@ def rehearse_one(
     for day in range(sessions):
         agent = make_agent(population.agent, **params)
         agent.restore(learned)
-        session = build_session(protocol, animal.session_seed + day, caps, log_events=False, estimator_state=estimator_state)
+        if closed_loop:
+            session = build_session(protocol, animal.session_seed + day, caps, log_events=False, estimator_state=estimator_state)
+        else:  # the schedule alone: no estimator, no rules (a speed baseline)
+            session = Session(protocol, animal.session_seed + day, caps, log_events=False)
         box = EmulatedBox(protocol.wiring, agent, np.random.default_rng(animal.agent_seed + day))
         run_virtual(session, box)
         learned = agent.learned_state()
@@ -124,8 +128,8 @@ def _end_time(session: Session) -> float:
 
 
 def _run_chunk(args) -> list[dict]:
-    protocol, animals, population, caps, sessions = args
-    return [rehearse_one(protocol, a, population, caps, sessions) for a in animals]
+    protocol, animals, population, caps, sessions, closed_loop = args
+    return [rehearse_one(protocol, a, population, caps, sessions, closed_loop) for a in animals]
 
 
 def rehearse(
@@ -140,6 +144,7 @@ def rehearse(
     progress: Callable[[int, int], None] | None = None,
     sessions: int = 1,
     population: Population | None = None,
+    closed_loop: bool = True,
 ) -> dict:
     if population is None:
         population = Population(agent, {k: Spread("fixed", float(v)) for k, v in (options or {}).items()})
@@ -148,14 +153,14 @@ def rehearse(
     results: list[dict] = []
     if workers <= 1:
         for animal in animals:
-            results.append(rehearse_one(protocol, animal, population, caps, sessions))
+            results.append(rehearse_one(protocol, animal, population, caps, sessions, closed_loop))
             if progress:
                 progress(len(results), n_animals)
     else:
         size = max(1, min(25, n_animals // (workers * 4) or 1))
         chunks = [animals[i : i + size] for i in range(0, n_animals, size)]
         with ProcessPoolExecutor(workers) as pool:
-            jobs = [(protocol, c, population, caps, sessions) for c in chunks]
+            jobs = [(protocol, c, population, caps, sessions, closed_loop) for c in chunks]
             for part in pool.map(_run_chunk, jobs):
                 results.extend(part)
                 if progress:

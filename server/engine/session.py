@@ -97,7 +97,8 @@ class Session:
         # Learning-model estimator (server.models): pure, fed (choice, reward) after each
         # choice trial; its latest estimate is what rules and the status page read.
         self.estimator = estimator
-        self.estimate = None
+        self._estimate = None
+        self._estimate_stale = False
         self.finished = False
         self.end_reason: str | None = None
         self.ended_at: float | None = None  # session time of the end
@@ -149,6 +150,14 @@ class Session:
         if block is None or block.block.until.minutes is None:
             return math.inf
         return block.t0 + block.block.until.minutes * 60.0
+
+    @property
+    def estimate(self):
+        """The estimator's latest Estimate (None before the first choice trial)."""
+        if self._estimate_stale:
+            self._estimate = self.estimator.estimate()
+            self._estimate_stale = False
+        return self._estimate
 
     @property
     def trial_index(self) -> int:
@@ -474,8 +483,13 @@ class Session:
         if interrupted:
             return
         if self.estimator is not None and trial.offered_choice:
-            self.estimate = self.estimator.update(trial.choice, float(trial.pellets))
-            self._records.append(EstimateUpdated(trial.index, self.estimator.model.name, self.estimate))
+            if self.log_events:
+                self._estimate = self.estimator.update(trial.choice, float(trial.pellets))
+                self._records.append(EstimateUpdated(trial.index, self.estimator.model.name, self._estimate))
+            else:  # rehearsal: summarise only if a rule asks for the estimate
+                self.estimator.update(trial.choice, float(trial.pellets), summarise=False)
+                self._estimate = None
+                self._estimate_stale = True
         for observer in self.observers:
             observer(self, record)
         nxt = met = None

@@ -135,8 +135,11 @@ class OnlineEstimator:
 
     # ------------------------------------------------------------------ trial by trial
 
-    def update(self, choice: str | None, reward: float) -> Estimate:
-        """Take one finished trial (choice label, or None for an omission) and its reward."""
+    def update(self, choice: str | None, reward: float, *, summarise: bool = True) -> Estimate | None:
+        """Take one finished trial (choice label, or None for an omission) and its reward.
+
+        With summarise=False the posterior is updated but no Estimate is built (the caller
+        asks for `estimate()` only when it needs one: rehearsal of many animals)."""
         reward = float(reward)
         if not math.isfinite(reward):
             raise ValueError(f"reward must be a finite number, got {reward!r}")
@@ -150,7 +153,7 @@ class OnlineEstimator:
         self._session_trial += 1
         if self._kernel is not None:
             self._diffuse()
-        return self.estimate()
+        return self.estimate() if summarise else None
 
     def _option(self, label: str) -> int:
         idx = self._index.get(label)
