@@ -6,11 +6,16 @@ alarm reads the same to someone who cannot tell the colours apart or stands acro
 
 from __future__ import annotations
 
+import hashlib
+from pathlib import Path
 from typing import Any
 
 from server.web.markup import Safe, el, join
 
-ASSET_VERSION = "1"  # bump when vigil.css / vigil.js change, so browsers refetch them
+# Changes with the vendored files' contents, so a browser never keeps a stale copy.
+ASSET_VERSION = hashlib.sha256(b"".join(
+    (Path(__file__).parent / "assets" / name).read_bytes() for name in ("vigil.css", "vigil.js")
+)).hexdigest()[:10]
 
 _ICON_PATHS = {
     # two chain halves pulled apart, with a slash

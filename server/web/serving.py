@@ -23,12 +23,14 @@ class WebError(Exception):
 
 
 def bind_socket(host: str, port: int) -> socket.socket:
-    """A listening-ready TCP socket on host:port (port 0 picks a free one)."""
+    """A listening TCP socket on host:port (port 0 picks a free one), so the URL can be
+    printed, and used, before the server's loop gets to it."""
     family = socket.AF_INET6 if ":" in host else socket.AF_INET
     sock = socket.socket(family, socket.SOCK_STREAM)
     try:
         sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
         sock.bind((host, port))
+        sock.listen(128)  # connections wait in the backlog until uvicorn starts accepting
     except OSError as exc:
         sock.close()
         why = "the port is already in use" if exc.errno == errno.EADDRINUSE else (

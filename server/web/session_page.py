@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import json
 import sqlite3
+from datetime import datetime
 from typing import Any
 
 from server.store import queries
@@ -24,6 +25,17 @@ def _fmt(value: Any, digits: int = 3) -> str:
     if isinstance(value, float):
         return f"{value:.{digits}g}"
     return str(value)
+
+
+def _when(iso: str | None) -> str:
+    """An ISO 8601 time as people read it: date, time to the second, UTC offset."""
+    if not iso:
+        return "–"
+    try:
+        moment = datetime.fromisoformat(iso)
+    except ValueError:
+        return iso
+    return moment.isoformat(sep=" ", timespec="seconds")
 
 
 def _table(header: list[str], rows: list[list[Any]], *, cls: str = "tbl") -> Safe:
@@ -108,7 +120,7 @@ def session_body(conn: sqlite3.Connection, session: dict[str, Any], *,
     facts = [
         ("box", session["box"]), ("animal", el("a", session["animal"],
                                                href=animal_href(session["animal"]))),
-        ("protocol", session["protocol"]), ("started", session["started_at"]),
+        ("protocol", session["protocol"]), ("started", _when(session["started_at"])),
         ("state", "running" if running else f"ended – {session['end_reason']}"),
         ("trials", session["trials"]), ("pellets", session["rewards"]),
         ("correct", "–" if status["accuracy"] is None else f"{100 * status['accuracy']:.0f} %"),
@@ -120,7 +132,7 @@ def session_body(conn: sqlite3.Connection, session: dict[str, Any], *,
                    "" if ev["detail"] is None else json.dumps(ev["detail"], sort_keys=True)]
                   for ev in reversed(events)]
     notes = queries.session_annotations(conn, sid)
-    note_rows = [[n["wall_time"], clock_text(n["t"]), n["origin"], n["text"]] for n in notes]
+    note_rows = [[_when(n["wall_time"]), clock_text(n["t"]), n["origin"], n["text"]] for n in notes]
     return el(
         "div",
         el("h1", f"Session {sid}: ", el("span", session["box"]), " · ",
@@ -169,7 +181,7 @@ def animal_rows(conn: sqlite3.Connection, animal: str) -> list[dict[str, Any]]:
 
 
 def animal_body(animal: str, history: list[dict[str, Any]]) -> Safe:
-    rows = [[el("a", str(s["id"]), href=f"/sessions/{s['id']}"), s["started_at"], s["box"],
+    rows = [[el("a", str(s["id"]), href=f"/sessions/{s['id']}"), _when(s["started_at"]), s["box"],
              s["protocol"], s["stage"] or "–", s["trials"], s["rewards"],
              "–" if s["accuracy"] is None else f"{100 * s['accuracy']:.0f} %",
              s["omissions"], s["end_reason"] or "running", s["fitted_text"]] for s in history]
@@ -184,7 +196,7 @@ def animal_body(animal: str, history: list[dict[str, Any]]) -> Safe:
 
 
 def sessions_body(sessions: list[dict[str, Any]]) -> Safe:
-    rows = [[el("a", str(s["id"]), href=f"/sessions/{s['id']}"), s["started_at"], s["box"],
+    rows = [[el("a", str(s["id"]), href=f"/sessions/{s['id']}"), _when(s["started_at"]), s["box"],
              el("a", s["animal"], href=animal_href(s["animal"])), s["protocol"], s["trials"],
              s["rewards"], s["end_reason"] or "running"] for s in sessions]
     return el("div", el("h1", "Sessions"),

@@ -136,3 +136,36 @@ def test_live_updates_stream_the_board(read_only):
     board = json.loads(lines[-1][len("data:"):])
     assert {t["box"] for t in board["tiles"]} == set(board["boxes"])
     assert board["tiles"][0]["shown"]["trial"].isdigit()
+
+
+def test_cumulative_record_counts_every_response_and_marks_every_pellet(lab_db):
+    import xml.etree.ElementTree as ET
+
+    from server.store import queries
+    from server.web import plots
+    from server.web.svg import Plot
+
+    svg_ns = "{http://www.w3.org/2000/svg}"
+    sid = lab_db["second"]
+    conn = queries.open_readonly(lab_db["path"])
+    session = queries.get_session(conn, sid)
+    inputs = queries.session_events(conn, sid, kind="input")
+    pulses = queries.session_events(conn, sid, kind="pulse")
+    trials = queries.session_trials(conn, sid)
+    end_t = max(e["t"] for e in inputs + pulses)
+    svg = plots.cumulative_record(session=session, inputs=inputs, pulses=pulses, trials=trials,
+                                  blocks=[], firings=[], pauses=[], end_t=end_t)
+    root = ET.fromstring(svg)
+    # counted straight from the events table: lever presses (onsets) per lever
+    counts = dict(sqlite3.connect(lab_db["path"]).execute(
+        "SELECT name, count(*) FROM events WHERE session_id = ? AND kind = 'input' AND value > 0"
+        " AND name LIKE 'press%' GROUP BY name ORDER BY name", (sid,)).fetchall())
+    assert list(counts) == plots.response_inputs(session["settings"], inputs, trials)
+    geometry = Plot((0.0, end_t / 60), (0.0, max(counts.values()) * 1.05), title="")
+    lines = [el for el in root.iter(svg_ns + "polyline") if "ln" in el.get("class").split()]
+    assert len(lines) == len(counts)
+    for line, (name, count) in zip(lines, counts.items()):
+        last_y = float(line.get("points").split()[-1].split(",")[1])
+        assert abs(last_y - geometry.py(count)) < 0.06, name  # points are rounded to 0.1 px
+    pellets = [g for g in root.iter(svg_ns + "g") if "pellet" in (g.get("class") or "").split()]
+    assert len(list(pellets[0])) == session["rewards"] > 0
