@@ -351,14 +351,18 @@ def _remove_signals(loop: asyncio.AbstractEventLoop, installed: list[int]) -> No
 
 
 def summary_table(runs: list[BoxRun]) -> str:
-    rows = [("box", "animal", "session", "trials", "rewards", "end reason")]
+    """The end-of-run summary: one row per box, with the rules that fired and how often."""
+    from server.rules.book import firing_counts as rule_firings
+
+    rows = [("box", "animal", "session", "trials", "rewards", "end reason", "rule firings")]
     for run in runs:
         end = run.ended
+        fired = ", ".join(f"{name} x{n}" for name, n in rule_firings(run.session).items() if n) or "-"
         rows.append((
             run.config.name, run.config.animal, str(run.session_id),
             str(end.trials if end else run.session.trials_done),
             str(end.rewards if end else run.session.rewards),
-            end.reason if end else "not ended",
+            end.reason if end else "not ended", fired,
         ))  # fmt: skip
     widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]))]
     return "\n".join("  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip() for r in rows)

@@ -22,7 +22,7 @@ from server.engine.session import Session
 from server.engine.virtual import run_virtual
 from server.protocol.model import SCHEDULE_ACTIONS, Protocol
 from server.population import Population, Spread
-from server.rules.book import RuleBook
+from server.rules.book import firing_counts as rule_firings
 
 PARALLEL_FROM = 40  # animals; below this a process pool costs more than it saves
 
@@ -113,14 +113,6 @@ def rehearse_one(
     if sessions > 1:
         result["sessions"] = [{k: v for k, v in d.items() if k != "blocks"} for d in days]
     return result
-
-
-def rule_firings(session: Session) -> dict[str, int]:
-    counts: dict[str, int] = {}
-    for observer in session.observers:
-        if isinstance(observer, RuleBook):
-            counts.update(observer.firings())
-    return counts
 
 
 def _end_time(session: Session) -> float:

@@ -148,6 +148,15 @@ class RuleBook:
         return {name: state.fired for name, state in self.state.items()}
 
 
+def firing_counts(session: Session) -> dict[str, int]:
+    """How often each of the session's rules has fired so far."""
+    counts: dict[str, int] = {}
+    for observer in session.observers:
+        if isinstance(observer, RuleBook):
+            counts.update(observer.firings())
+    return counts
+
+
 def apply_action(action: RuleAction, session: Session, t: float, rule: str) -> dict:
     """Carry out one action on the session; returns what was done, for the firing record."""
     kind = action.kind
