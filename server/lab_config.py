@@ -16,7 +16,7 @@ from server.protocol.load import load_protocol
 from server.protocol.marked import Mark, Marked, load_marked
 from server.protocol.model import Protocol
 from server.protocol.problems import InvalidFile, Problem
-from server.protocol.reader import Reader, did_you_mean, did_you_mean
+from server.protocol.reader import Reader, did_you_mean
 
 
 def _url_handlers():

@@ -15,7 +15,6 @@ from typing import Any, Callable
 
 import numpy as np
 
-from server.engine.block_progress import PERFORMANCE_CRITERIA
 from server.engine.caps import HardCaps
 from server.closed_loop import build_session
 from server.engine.session import Session

@@ -13,7 +13,7 @@ import pytest
 
 from server.closed_loop import build_session
 from server.engine.caps import HardCaps
-from server.engine.records import EventLogged, InputEvent, PulseOutput, RuleFired, TrialRecord
+from server.engine.records import EventLogged, InputEvent, RuleFired, TrialRecord
 from server.protocol.load import parse_protocol
 from server.protocol.problems import InvalidFile
 from server.rules.metrics import pca_index, win_stay_lose_shift
