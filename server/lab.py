@@ -25,7 +25,7 @@ import numpy as np
 
 from server.engine.live import LiveSession
 from server.engine.records import EventLogged, Record, SessionEnded, TrialRecord
-from server.closed_loop import build_session
+from server.closed_loop import animal_estimator_state, build_session
 from server.stages import advancement, current_stage, stage_for_box
 from server.engine.session import Session
 from server.lab_config import BoxConfig, LabConfig
@@ -250,7 +250,8 @@ class Lab:
         t0 = loop.time()  # session time starts once every box has answered
         for box, link in zip(self.config.boxes, links):
             seed = box.seed if box.seed is not None else secrets.randbits(63)
-            session = build_session(box.protocol, seed, self.config.caps)
+            state = animal_estimator_state(self.store.conn, box.animal, box.protocol)
+            session = build_session(box.protocol, seed, self.config.caps, estimator_state=state)
             settings = {
                 "caps": {"max_rewards": self.config.caps.max_rewards, "max_minutes": self.config.caps.max_minutes},
                 "emulate": None if box.emulate is None else {
