@@ -6,6 +6,7 @@ alarm reads the same to someone who cannot tell the colours apart or stands acro
 
 from __future__ import annotations
 
+import functools
 import hashlib
 from pathlib import Path
 from typing import Any
@@ -36,12 +37,14 @@ _ICON_PATHS = {
 }
 
 
+@functools.cache
 def icon(kind: str) -> Safe:
     paths = _ICON_PATHS.get(kind, _ICON_PATHS["ended_early"])
     return el("svg", Safe(paths), viewBox="0 0 24 24", class_=f"ic ic-{kind}",
               aria_hidden="true", focusable="false")
 
 
+@functools.cache
 def icon_templates() -> Safe:
     """Hidden copies of every icon, cloned by the page script for live updates."""
     return el("template", [el("span", icon(k), data_icon=k) for k in _ICON_PATHS],

@@ -68,3 +68,31 @@ def el(tag: str, *children: Any, **attributes: Any) -> Safe:
 
 def join(*parts: Any) -> Safe:
     return Safe(_children(parts))
+
+
+class Template:
+    """Markup built once with `el`, with named slots filled many times (a hot page).
+
+    `build` receives a `slot(name)` function and returns markup; each slot may sit in text
+    or in an attribute value, and its value is escaped at `fill` time like any other text
+    (a `Safe` value goes in as it is).
+    """
+
+    _MARK = "\x00"  # never produced by escaping, so it only appears where a slot was put
+
+    def __init__(self, build):
+        text = build(lambda name: Safe(f"{self._MARK}{name}{self._MARK}"))
+        parts = text.split(self._MARK)
+        self._literals = parts[0::2]
+        self._slots = parts[1::2]
+
+    @property
+    def slots(self) -> tuple[str, ...]:
+        return tuple(self._slots)
+
+    def fill(self, values: dict[str, Any]) -> Safe:
+        out = [self._literals[0]]
+        for slot, literal in zip(self._slots, self._literals[1:]):
+            out.append(esc(values[slot]))
+            out.append(literal)
+        return Safe("".join(out))

@@ -127,7 +127,9 @@ class Chromium:
         result = self.call("Runtime.evaluate", session=True, expression=expression,
                            returnByValue=True, awaitPromise=True)
         if "exceptionDetails" in result:
-            raise BrowserError(f"script failed: {result['exceptionDetails'].get('text')}")
+            details = result["exceptionDetails"]
+            why = (details.get("exception") or {}).get("description") or details.get("text")
+            raise BrowserError(f"script failed: {why}")
         return result["result"].get("value")
 
     def wait_for(self, expression: str, *, timeout: float = 30.0, every: float = 0.25):

@@ -35,6 +35,7 @@ def test_overview_updates_live_and_session_page_has_plots(tmp_path, shots):
     browser = None
     try:
         url = demo.wait_for("status page: ")
+        token = demo.wait_for("operator token for this run (pause, stop, notes): ")
         browser = Chromium(tmp_path / "profile")
         browser.navigate(url)
         browser.wait_for("document.querySelectorAll('.tile').length === 4", timeout=60)
@@ -46,6 +47,18 @@ def test_overview_updates_live_and_session_page_has_plots(tmp_path, shots):
         assert browser.evaluate("window.vigilMark") == "same page"
         assert browser.evaluate("document.getElementById('feed').textContent").strip() == (
             "· live updates")  # server-sent events, not the polling fallback
+        # the operator pauses a box from its tile: token typed once, then the button
+        box = browser.evaluate(
+            "(() => { document.getElementById('optoken').value = " + repr(token) + ";"
+            " const tile = document.querySelector('.tile[data-state=\"running\"]');"
+            " tile.querySelector('button[data-act=\"pause\"]').click();"
+            " return tile.dataset.box; })()")
+        paused_tile = f"document.querySelector('.tile[data-box=\"{box}\"]')"
+        browser.wait_for(f"{paused_tile}.dataset.state === 'paused'", timeout=15)
+        assert browser.evaluate("document.getElementById('opsay').textContent") == (
+            f"{box}: pause requested")
+        assert browser.evaluate(
+            f"{paused_tile}.querySelector('button[data-act=\"resume\"]').hidden") is False
         overview_png = browser.screenshot(shots / "overview.png")
 
         busiest = browser.evaluate(
