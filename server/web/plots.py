@@ -175,6 +175,8 @@ def choice_panel(trials: Sequence[dict[str, Any]],
         plot.legend(f"ch {shape}", label)
     omitted = [t["trial"] for t in trials if t.get("omission")]
     plot.marks(omitted, [0.5] * len(omitted), "omit", shape="tick", size=5)
+    if omitted:
+        plot.legend("omit", "omission")
     return plot.render()
 
 

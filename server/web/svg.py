@@ -47,9 +47,14 @@ def nice_ticks(lo: float, hi: float, count: int = 5, *, whole: bool = False) -> 
     return ticks
 
 
-def tick_label(value: float, step: float) -> str:
-    decimals = max(0, -math.floor(math.log10(step) + 1e-9)) if step < 1 else 0
-    return f"{value:.{decimals}f}"
+def tick_texts(values: Sequence[float]) -> list[str]:
+    """Tick labels with the fewest decimals that show every tick exactly (0.25 stays 0.25),
+    the same count for the whole axis."""
+    decimals = 0
+    for value in values:
+        while decimals < 6 and abs(float(f"{value:.{decimals}f}") - value) > 1e-9 * max(1.0, abs(value)):
+            decimals += 1
+    return [f"{value:.{decimals}f}" for value in values]
 
 
 def padded(lo: float, hi: float, *, floor: float | None = None) -> tuple[float, float]:
@@ -173,15 +178,23 @@ class Plot:
             self._layers.append(el("g", Safe("".join(parts)), class_=f"sp {cls}"))
 
     def rules(self, xs: Sequence[float], labels: Sequence[str], cls: str) -> None:
-        """Vertical lines across the panel with a short label at the top (events in time)."""
+        """Vertical lines across the panel, each labelled at the top in the first of three
+        rows where the label does not run into the previous one (else left unlabelled)."""
         parts = []
+        row_free = [-math.inf] * 3  # x where each label row is free again
         for x, label in zip(xs, labels):
             if not math.isfinite(x):
                 continue
             cx = self.px(x)
             parts.append(el("line", x1=f"{cx:.1f}", x2=f"{cx:.1f}", y1=f"{self.top:.1f}",
                             y2=f"{self.height - self.bottom:.1f}"))
-            parts.append(el("text", label[:28], x=f"{cx + 3:.1f}", y=f"{self.top + 12:.1f}"))
+            text = label[:28]
+            for row, free in enumerate(row_free):
+                if cx >= free:
+                    row_free[row] = cx + 7.5 * len(text) + 10  # ~7.5 px per 12 px glyph
+                    parts.append(el("text", text, x=f"{cx + 3:.1f}",
+                                    y=f"{self.top + 12 + 13 * row:.1f}"))
+                    break
         if parts:
             self._layers.append(el("g", parts, class_=f"vr {cls}"))
 
@@ -193,23 +206,23 @@ class Plot:
         parts = [el("rect", x=left, y=top, width=right - left, height=bottom - top,
                     class_="frame")]
         xt = nice_ticks(self.x0, self.x1, 8, whole=self.whole_x)
-        xstep = 1.0 if self.whole_x else nice_step(self.x1 - self.x0, 8)
-        for v in xt:
+        for v, text in zip(xt, tick_texts(xt)):
             x = f"{self.px(v):.1f}"
             parts.append(el("line", x1=x, x2=x, y1=bottom, y2=bottom + 6, class_="tk"))
-            parts.append(el("text", tick_label(v, xstep), x=x, y=bottom + 22, class_="tl x"))
+            parts.append(el("text", text, x=x, y=bottom + 22, class_="tl x"))
         yt = self._y_ticks if self._y_ticks is not None else nice_ticks(self.y0, self.y1, 4)
-        ystep = nice_step(self.y1 - self.y0, 4)
-        for v in yt:
+        for v, text in zip(yt, tick_texts(yt)):
             y = f"{self.py(v):.1f}"
             parts.append(el("line", x1=left - 6, x2=right, y1=y, y2=y, class_="grid"))
-            text = self._y_tick_text.get(v, tick_label(v, ystep))
+            text = self._y_tick_text.get(v, text)
             parts.append(el("text", text, x=left - 10, y=y, class_="tl y"))
         parts.append(el("text", self.title, x=left, y=22, class_="pt"))
         if self.x_label:
             parts.append(el("text", self.x_label, x=right, y=self.height - 8, class_="al x"))
-        if self.y_label:
-            parts.append(el("text", self.y_label, x=left + 6, y=top + 14, class_="al y"))
+        if self.y_label:  # along the left edge, turned to read upwards
+            mid = (top + bottom) / 2
+            parts.append(el("text", self.y_label, x=16, y=f"{mid:.0f}", class_="al y",
+                            transform=f"rotate(-90 16 {mid:.0f})"))
         return join(*parts)
 
     def _legend_svg(self) -> Safe:

@@ -34,6 +34,11 @@ def test_boxes_lists_the_latest_session_of_every_box(read_only, lab_db):
         (lab_db["second"],)).fetchall()
     assert by_box["rack-1"]["accuracy"] == sum(r[0] for r in scored) / len(scored)
     assert by_box["rack-2"]["accuracy"] is None  # autoshaping has no correct choice
+    t, rule = conn.execute("SELECT t, rule FROM rule_firings WHERE session_id = ?"
+                           " ORDER BY t DESC LIMIT 1", (lab_db["second"],)).fetchone()
+    assert by_box["rack-1"]["last_rule"]["t"] == t
+    assert by_box["rack-1"]["last_rule"]["text"].startswith(f"{rule}: ")
+    assert by_box["rack-2"]["last_rule"] is None
 
 
 def test_session_trials_estimates_and_events(read_only, lab_db):
@@ -49,8 +54,14 @@ def test_session_trials_estimates_and_events(read_only, lab_db):
     assert [t["trial"] for t in trials] == list(range(1, detail["session"]["trials"] + 1))
     assert read_only.get(f"/api/sessions/{sid}/trials?after=5").json()[0]["trial"] == 6
     estimates = read_only.get(f"/api/sessions/{sid}/estimates").json()
-    assert len(estimates) == len(trials)
+    stored = [r[0] for r in conn.execute(
+        "SELECT trial FROM estimates WHERE session_id = ? ORDER BY trial", (sid,))]
+    assert [e["trial"] for e in estimates] == stored and len(stored) >= len(trials) - 1
     assert set(estimates[-1]["data"]["params"]) == {"alpha", "beta"}
+    firings = conn.execute("SELECT t, rule FROM rule_firings WHERE session_id = ? ORDER BY t",
+                           (sid,)).fetchall()
+    assert firings, "the reversal protocol's rules fire within a 12-minute session"
+    assert [(f["t"], f["rule"]) for f in detail["rule_firings"]] == [tuple(f) for f in firings]
     tail = read_only.get(f"/api/sessions/{sid}/events?tail=5").json()
     last_ids = [r[0] for r in conn.execute(
         "SELECT id FROM events WHERE session_id = ? ORDER BY id DESC LIMIT 5", (sid,))]
@@ -116,6 +127,10 @@ def test_pages_render_with_plots(read_only, lab_db):
     # cumulative record, choices, two parameters with bands, exploration, timeline
     assert session.text.count('class="plot"') == 6
     assert session.text.count('class="band ci"') == 2
+    # rule firings: on the time axis of the cumulative record and the timeline, and listed
+    firings = read_only.get(f"/api/sessions/{lab_db['second']}").json()["rule_firings"]
+    assert session.text.count('class="vr rulefire"') == 2
+    assert session.text.count(f"{firings[0]['rule']}: reverse") >= 1
     assert 'action="/sessions/' not in session.text  # read-only: no control form
     pav = read_only.get(f"/sessions/{lab_db['pav']}").text
     assert "No learning-model estimates stored" in pav and "No choice trials" in pav

@@ -8,7 +8,7 @@ import xml.etree.ElementTree as ET
 from hypothesis import given, strategies as st
 
 from server.web.markup import Safe, el, esc
-from server.web.svg import Plot, nice_step, nice_ticks
+from server.web.svg import Plot, nice_step, nice_ticks, tick_texts
 
 SVG = "{http://www.w3.org/2000/svg}"
 
@@ -45,6 +45,21 @@ def test_nice_steps_are_one_two_or_five_times_a_power_of_ten():
     assert nice_ticks(0, 97, 5) == [0, 20, 40, 60, 80]
     assert nice_ticks(0, 1, 4) == [0, 0.25, 0.5, 0.75, 1.0]
     assert nice_ticks(0.5, 7.5, 8, whole=True) == [1, 2, 3, 4, 5, 6, 7]
+    assert tick_texts([0, 0.25, 0.5, 0.75, 1.0]) == ["0.00", "0.25", "0.50", "0.75", "1.00"]
+    assert tick_texts([0, 20, 40]) == ["0", "20", "40"]
+    assert tick_texts([0.0, 0.1, 0.2]) == ["0.0", "0.1", "0.2"]
+
+
+def test_rule_labels_do_not_overlap():
+    plot = Plot((0, 10), (0, 1), title="t")
+    plot.rules([1.0, 1.1, 1.2, 1.3, 6.0], ["streak_backstop"] * 4 + ["learned"], "rulefire")
+    root = ET.fromstring(plot.render())
+    group = next(g for g in root.iter(SVG + "g") if g.get("class") == "vr rulefire")
+    lines = list(group.iter(SVG + "line"))
+    labels = [(float(t.get("x")), float(t.get("y"))) for t in group.iter(SVG + "text")]
+    assert len(lines) == 5
+    assert len(labels) == 4  # three rows for the crowded four; the fourth goes unlabelled
+    assert len({y for _, y in labels[:3]}) == 3
 
 
 @given(st.floats(-1e6, 1e6), st.floats(1e-3, 1e6), st.integers(2, 10))

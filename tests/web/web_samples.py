@@ -1,6 +1,6 @@
 """A stored lab of our own for the status page tests: sessions run in virtual time on
-emulated boxes with virtual animals, written by the real store, with estimates from the
-real online estimator."""
+emulated boxes with virtual animals, closed loop (the session's own estimator and rules),
+written by the real store."""
 
 from __future__ import annotations
 
@@ -11,11 +11,10 @@ import numpy as np
 
 from hardware_stubs.agents import make_agent
 from hardware_stubs.emulated_box import EmulatedBox
+from server.closed_loop import build_session
 from server.engine.caps import HardCaps
-from server.engine.records import TrialRecord
-from server.engine.session import Session
+from server.engine.records import SessionEnded
 from server.engine.virtual import run_virtual
-from server.models.estimator import OnlineEstimator
 from server.protocol.load import load_protocol
 from server.store.writer import Store
 
@@ -49,25 +48,21 @@ def wiring_settings(protocol) -> dict:
 def record_session(store: Store, *, box: str, animal: str, protocol_path: Path, agent: str,
                    seed: int, minutes: float = 12.0, estimates: bool = False,
                    started_at: str = STARTED, end: bool = True, **agent_options) -> int:
-    """Run one session in virtual time and store every record; returns the session id."""
+    """Run one session in virtual time, closed loop as the lab runs it (estimator and rules
+    when asked for estimates), and store every record; returns the session id. With
+    `end=False` the session's end is not stored, as if it were still running."""
     protocol = load_protocol(protocol_path)
-    session = Session(protocol, seed, HardCaps(max_rewards=250, max_minutes=minutes))
+    session = build_session(protocol, seed, HardCaps(max_rewards=250, max_minutes=minutes),
+                            estimate=estimates)
     box_ = EmulatedBox(protocol.wiring, make_agent(agent, **agent_options),
                        np.random.default_rng(seed))
     sid = store.begin_session(box, animal, protocol.name, str(protocol_path), protocol.sha256,
                               seed, started_at, wiring_settings(protocol))
-    estimator = OnlineEstimator("q_learning", list(protocol.options)) if estimates else None
-    held = []
 
     def on_records(records):
         for record in records:
-            if not end and type(record).__name__ == "SessionEnded":
-                held.append(record)
-                continue
-            store.write(sid, record)
-            if estimator is not None and isinstance(record, TrialRecord):
-                est = estimator.update(record.choice, record.reward)
-                store.write_estimate(sid, record.trial, est.model, est.to_dict())
+            if end or not isinstance(record, SessionEnded):
+                store.write(sid, record)
 
     run_virtual(session, box_, on_records)
     store.flush()
