@@ -205,9 +205,13 @@ class OnlineEstimator:
         sizes = self.grid.sizes
         b = self._beta_axis
         before, after = int(np.prod(sizes[:b])), int(np.prod(sizes[b + 1:]))
-        moved = self._kernel @ w.reshape(before, sizes[b], after)
+        # The kernel is column-stochastic, so the moved weights still sum to one: renormalise
+        # against rounding and take one log, instead of a log-sum-exp round trip.
+        moved = (self._kernel @ w.reshape(before, sizes[b], after)).reshape(sizes)
+        moved /= moved.sum()
         with np.errstate(divide="ignore"):
-            self._logw, self._w, _ = _normalise(np.log(moved.reshape(sizes)))
+            self._logw = np.maximum(np.log(moved), LOG_FLOOR)
+        self._w = np.exp(self._logw)  # weights are always exp(log weights): state is logw alone
 
     # ------------------------------------------------------------------ summaries
 

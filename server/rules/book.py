@@ -53,11 +53,11 @@ def evaluate(node: Node, values: dict[str, float | None]) -> float | bool | None
 
 
 def quantity_value(q: Quantity, metrics: SessionMetrics, session: Session, trial: TrialRecord) -> float | None:
-    estimate = session.estimate
     name = q.name
     if q.setting:
         return session.protocol.settings[name]
     if q.field is not None:
+        estimate = session.estimate  # summarised on demand: costly, so only when read
         if estimate is None or name not in estimate.params:
             return None
         return float(getattr(estimate.params[name], q.field))
@@ -79,15 +79,16 @@ def quantity_value(q: Quantity, metrics: SessionMetrics, session: Session, trial
         return float(session.reversals)
     if name == "pca":
         return metrics.pca()
-    if estimate is None:
-        return None
     if name == "p_prefers_correct":
         best = session.best_options()
-        if not best or session.estimator is None:
+        if not best or session.estimator is None or session.trials_done == 0:
             return None
         found = [session.estimator.p_choice_at_least(o, PREFERENCE_LEVEL) for o in best]
         found = [p for p in found if p is not None]
         return max(found) if found else 0.0
+    estimate = session.estimate
+    if estimate is None:
+        return None
     value = getattr(estimate, name)
     return None if value is None else float(value)
 
