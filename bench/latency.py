@@ -242,6 +242,8 @@ def main() -> int:
     p.add_argument("--boxes", type=int, default=1)
     p.add_argument("--samples", type=int, default=2000, help="at least this many, all boxes together")
     p.add_argument("--rate", type=float, default=200.0, help="presses per second, all boxes together")
+    p.add_argument("--db-dir", default=None, metavar="DIR",
+                   help="folder for the bench database (default: the system's temporary folder)")
     p.add_argument("--device", action="store_true", help=argparse.SUPPRESS)
     p.add_argument("--per-box", type=int, default=0, help=argparse.SUPPRESS)
     p.add_argument("--pause", type=float, default=0.005, help=argparse.SUPPRESS)
@@ -250,14 +252,15 @@ def main() -> int:
     if args.device:
         device_main(args.boxes, args.per_box, args.pause, args.protocol)
         return 0
-    with tempfile.TemporaryDirectory(prefix="vigil-bench-") as tmp:
+    load = os.getloadavg()[0]  # the machine is shared: a busy one stretches the tail
+    with tempfile.TemporaryDirectory(prefix="vigil-bench-", dir=args.db_dir) as tmp:
         folder = Path(tmp)
         base = summary(asyncio.run(phase("echo", args.boxes, args.samples, args.rate, folder)))
         stack = summary(asyncio.run(phase("lab", args.boxes, args.samples, args.rate, folder)))
     if args.json:
         print(json.dumps(stack))
         return 0
-    print(f"machine: {where_run()}")
+    print(f"machine: {where_run()}; load average before the run {load:.2f}")
     print(f"{args.boxes} box(es), {args.rate:g} presses/s in all; press line written -> pulse line read")
     print(f"{'':28}{'n':>6}{'p50 ms':>9}{'p99 ms':>9}{'max ms':>9}")
     for name, s in (("baseline (pty + echo)", base), ("vigil (link+session+store)", stack)):

@@ -49,8 +49,11 @@ class EmulatorProcess:
         self.name = name
         self.link = link
         self._stderr = tempfile.TemporaryFile()
+        # Its own session: a Ctrl-C at the terminal reaches the lab, which ends the sessions
+        # cleanly and then stops its boxes, instead of pulling every box's cable at once.
         self.process = subprocess.Popen(
-            command, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=self._stderr
+            command, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=self._stderr,
+            start_new_session=True,
         )
 
     def failure(self) -> str | None:

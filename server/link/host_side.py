@@ -198,8 +198,9 @@ class HostSide:
         done = self.pending.acknowledge(msg.command_id)
         if done is None:
             return  # an ack repeated for a resend we already had answered
-        if done.attempts == 1 and self.tracker is not None:
-            # Karn & Partridge (1987): only a command sent once gives a clean round trip.
+        if isinstance(done.command, QueryCommand) and done.attempts == 1 and self.tracker:
+            # Round trips of pings only (PROTOCOL.md section 9): about one a second keeps the
+            # fit cheap; Karn & Partridge (1987): only a command sent once gives a clean one.
             self.clock.add(done.first_sent_s, self.unwrap.unwrap(msg.device_us), now)
         if isinstance(done.command, ReplayCommand) and msg.result == RESULT_LOST:
             gone = self.tracker.skip_to(msg.value) if self.tracker is not None else 0

@@ -19,13 +19,9 @@ from __future__ import annotations
 
 import asyncio
 import math
-import os
-import threading
 import time
 from collections.abc import Callable, Iterable
 from typing import Any
-
-import serial
 
 from server.engine.records import Command, EventLogged, InputEvent, PulseOutput, SetOutput
 from server.link.handshake import LinkError, check_identity, identity_problems
@@ -41,6 +37,7 @@ from server.link.host_side import (
 )
 from server.link.latency_timer import latency_warning
 from server.link.messages import Identity, PulseCommand
+from server.link.serial_port import PORT_ERRORS, SerialPort, reason_of
 from server.protocol.wiring import Wiring
 
 BAUDRATE = 115_200  # the reference firmware's default (PROTOCOL.md section 9)
@@ -48,12 +45,6 @@ ASK_IDENTITY_EVERY_S = 0.5  # PROTOCOL.md section 5
 GREET_WITHIN_S = 5.0  # boards that reset on open answer within 1-2 s
 SYNC_PINGS = 12  # round trips taken at once after a greeting, to start the clock estimate
 RETRY_FIRST_S, RETRY_MAX_S = 0.25, 2.0  # reconnect backoff
-PORT_ERRORS = (serial.SerialException, OSError, ValueError)
-
-
-def _reason(exc: BaseException) -> str:
-    text = getattr(exc, "strerror", None) or str(exc) or type(exc).__name__
-    return text[:1].lower() + text[1:]
 
 
 class SerialLink:
@@ -92,9 +83,7 @@ class SerialLink:
         self._inputs = {line.channel: line for line in wiring.inputs.values()}
         self._held = sorted((o for o in wiring.outputs.values() if not o.pulsed), key=lambda o: o.channel)
         self._pulsed = {o.channel: o.name for o in wiring.outputs.values() if o.pulsed}
-        self._port: Any = None
-        self._fd: int | None = None
-        self._pending_write = b""
+        self._port: SerialPort | None = None
         self._failure: str | None = None
         self._wake = asyncio.Event()
         self._greeting: asyncio.Future | None = None
@@ -102,6 +91,7 @@ class SerialLink:
         self._lost_at: float | None = None
         self._lost_trial = 0
         self._warned = False
+        self._sleep_until = 0.0  # when the serve loop next wakes by itself
         self._closing = False
         self._record: Callable[[EventLogged], None] = lambda record: None
         self._expected_outputs: Callable[[], Iterable[str]] = tuple
@@ -116,90 +106,19 @@ class SerialLink:
     # ------------------------------------------------------------ the port
 
     def _open(self) -> None:
-        exclusive = {"exclusive": True} if "://" not in self.url else {}
-        port = serial.serial_for_url(self.url, baudrate=self.baudrate, timeout=0, **exclusive)
-        self._port, self._failure, self._pending_write = port, None, b""
-        # A plain port is read and written on its descriptor directly (the fastest path);
-        # other handlers (spy://, socket://, ...) keep their own read and write.
-        self._raw = type(port) is serial.Serial
-        loop = asyncio.get_running_loop()
-        try:
-            self._fd = port.fileno()
-        except (AttributeError, OSError, ValueError, serial.SerialException):
-            self._fd = None
-        if self._fd is not None:
-            loop.add_reader(self._fd, self._readable)
-        else:  # a URL handler with no descriptor: a thread reads and hands bytes to the loop
-            port.timeout = 0.05
-            threading.Thread(target=self._read_thread, args=(port, loop), daemon=True).start()
+        self._port = SerialPort(self.url, self.baudrate, self._take, self._fail)
+        self._failure = None
         self.side.connection_opened(self._host())
 
     def _close_port(self) -> None:
         port, self._port = self._port, None
-        if port is None:
-            return
-        if self._fd is not None:
-            loop = asyncio.get_running_loop()
-            loop.remove_reader(self._fd)
-            loop.remove_writer(self._fd)
-            self._fd = None
-        try:
+        if port is not None:
             port.close()
-        except PORT_ERRORS:
-            pass
-
-    def _readable(self) -> None:
-        try:
-            if self._raw:
-                data = os.read(self._fd, 65536)  # type: ignore[arg-type]
-            else:
-                data = self._port.read(max(1, self._port.in_waiting))
-                if not data:
-                    return  # the descriptor woke for the handler's own traffic
-        except BlockingIOError:
-            return
-        except OSError as exc:
-            self._fail(f"port error: {_reason(exc)}")
-            return
-        if not data:
-            self._fail("port closed: the device is gone")
-            return
-        self._take(data)
-
-    def _read_thread(self, port: Any, loop: asyncio.AbstractEventLoop) -> None:
-        while self._port is port:
-            try:
-                data = port.read(max(1, port.in_waiting))
-            except Exception as exc:  # any failure of a foreign handler means a lost port
-                if self._port is port:
-                    loop.call_soon_threadsafe(self._fail, f"port error: {_reason(exc)}")
-                return
-            if data and self._port is port:
-                loop.call_soon_threadsafe(self._take, data)
 
     def _flush(self) -> None:
-        data = self._pending_write + self.side.take_output()
-        self._pending_write = b""
-        if not data or self._port is None:
-            return
-        try:
-            if not self._raw or self._fd is None:
-                self._port.write(data)
-                return
-            written = os.write(self._fd, data)
-        except BlockingIOError:
-            written = 0
-        except PORT_ERRORS as exc:
-            self._fail(f"port error: {_reason(exc)}")
-            return
-        if written < len(data):  # the line discipline is full: finish when it drains
-            self._pending_write = data[written:]
-            asyncio.get_running_loop().add_writer(self._fd, self._writable)
-
-    def _writable(self) -> None:
-        if self._fd is not None:
-            asyncio.get_running_loop().remove_writer(self._fd)
-        self._flush()
+        data = self.side.take_output()
+        if data and self._port is not None:
+            self._port.write(data)
 
     def _fail(self, reason: str) -> None:
         if self._failure is None:
@@ -261,7 +180,8 @@ class SerialLink:
             else:
                 self.side.pulse(command.channel, command.ms, now)
         self._flush()
-        self._wake.set()
+        if now + self.side.pending.resend_after_s < self._sleep_until:
+            self._wake.set()  # the serve loop sleeps past this command's resend time
 
     def _drive_held(self, expected: set[str]) -> None:
         now = self._host()
@@ -321,7 +241,7 @@ class SerialLink:
                 if why:
                     raise LinkError(f"box '{self.box}': {why}") from None
                 if self._host() >= end:
-                    raise LinkError(f"box '{self.box}': cannot open {self.url}: {_reason(exc)}") from None
+                    raise LinkError(f"box '{self.box}': cannot open {self.url}: {reason_of(exc)}") from None
                 await asyncio.sleep(0.05)
         try:
             identity = await self._greet(self.greet_s)
@@ -361,6 +281,7 @@ class SerialLink:
                 self._fail(f"no line from the device for {SILENCE_S:g} s")
                 break
             deadline = min(side.next_deadline(), (side.last_line_s or now) + SILENCE_S)
+            self._sleep_until = deadline
             self._wake.clear()
             try:
                 async with asyncio.timeout(max(0.0, deadline - self._host())):
@@ -385,12 +306,18 @@ class SerialLink:
 
     async def _reconnect(self) -> None:
         delay = RETRY_FIRST_S
+        wrong_device = False
         while not self._closing:
             try:
                 self._open()
                 identity = await self._greet(self.greet_s)
                 problems = identity_problems(identity, self.wiring)
                 if problems:  # another device on this port: never drive it
+                    if not wrong_device:
+                        wrong_device = True
+                        self._note("alarm", {"wrong_device": problems})
+                        self.say(f"{self.box}: another device answers on {self.url}; waiting "
+                                 f"for the right one ({'; '.join(problems)})")  # fmt: skip
                     raise LinkError("; ".join(problems))
                 break
             except PORT_ERRORS + (LinkError,):
