@@ -151,6 +151,9 @@ def test_live_updates_stream_the_board(read_only):
     board = json.loads(lines[-1][len("data:"):])
     assert {t["box"] for t in board["tiles"]} == set(board["boxes"])
     assert board["tiles"][0]["shown"]["trial"].isdigit()
+    # the polling fallback gets the same payload
+    polled = read_only.get("/api/board").json()
+    assert polled["boxes"] == board["boxes"] and polled["strip"] == board["strip"] == []
 
 
 def test_cumulative_record_counts_every_response_and_marks_every_pellet(lab_db):
