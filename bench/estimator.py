@@ -16,8 +16,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
-import platform
 import statistics
 import sys
 import time
@@ -25,6 +23,8 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
+
+from machine import where_run  # noqa: E402  (bench/ is on sys.path when run as a script)
 
 import numpy as np  # noqa: E402
 from scipy import optimize  # noqa: E402
@@ -35,16 +35,6 @@ from server.models.trials import stack_animals  # noqa: E402
 
 OPTIONS = ["west", "east", "north", "south"]
 
-
-def where_run() -> str:
-    cpu = platform.machine()
-    cpuinfo = Path("/proc/cpuinfo")
-    if cpuinfo.exists():
-        names = [ln.split(":", 1)[1].strip() for ln in cpuinfo.read_text().splitlines()
-                 if ln.startswith("model name")]
-        cpu = names[0] if names else cpu
-    return (f"{cpu} ({os.cpu_count()} logical cores), {platform.system()}, "
-            f"Python {platform.python_version()}, numpy {np.__version__}")
 
 
 def bandit_animal(n: int, k: int, alpha: float, beta: float, seed: int,

@@ -14,8 +14,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
-import platform
 import statistics
 import sys
 import time
@@ -23,6 +21,8 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
+
+from machine import where_run  # noqa: E402  (bench/ is on sys.path when run as a script)
 
 import numpy as np  # noqa: E402
 
@@ -36,17 +36,6 @@ from server.engine.virtual import run_virtual  # noqa: E402
 from server.protocol.load import load_protocol  # noqa: E402
 from server.rehearsal import rehearse  # noqa: E402
 
-
-def machine() -> str:
-    cpu = platform.processor() or platform.machine()
-    try:
-        for line in Path("/proc/cpuinfo").read_text().splitlines():
-            if line.startswith("model name"):
-                cpu = line.split(":", 1)[1].strip()
-                break
-    except OSError:
-        pass
-    return f"{cpu}, {os.cpu_count()} cores, Python {platform.python_version()}, numpy {np.__version__}"
 
 
 def one_session(protocol, seed: int, closed_loop: bool = False) -> tuple[float, Session, list]:
@@ -151,7 +140,7 @@ def main() -> int:
     if args.json:
         print(json.dumps(figures))
         return 0
-    print(f"machine: {machine()}")
+    print(f"machine: {where_run()}")
     print(f"protocol '{protocol.name}', agent q_learner")
     print(f"one session: {virtual_s / 60:.0f} virtual min in {wall * 1000:.1f} ms "
           f"(median of {args.repeats}) = {virtual_s / wall:,.0f}x real time, "

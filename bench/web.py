@@ -25,9 +25,6 @@ import argparse
 import asyncio
 import http.client
 import json
-import os
-import platform
-import statistics
 import subprocess
 import sys
 import tempfile
@@ -39,17 +36,8 @@ from urllib.parse import urlsplit
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
+from machine import where_run  # noqa: E402  (bench/ is on sys.path when run as a script)
 
-def where_run() -> str:
-    cpu = platform.machine()
-    cpuinfo = Path("/proc/cpuinfo")
-    if cpuinfo.exists():
-        names = [ln.split(":", 1)[1].strip() for ln in cpuinfo.read_text().splitlines()
-                 if ln.startswith("model name")]
-        cpu = names[0] if names else cpu
-    load = " ".join(f"{x:.2f}" for x in os.getloadavg()) if hasattr(os, "getloadavg") else "?"
-    return (f"{cpu} ({os.cpu_count()} logical cores), {platform.system()} "
-            f"{platform.release()}, Python {platform.python_version()}, load average {load}")
 
 
 def pct(values: list[float], q: float) -> float:
