@@ -21,17 +21,58 @@ from server.link.serial_link import SerialLink
 from server.protocol.load import load_protocol
 from server.store.writer import Store
 
-PROTOCOLS = Path(__file__).resolve().parents[2] / "protocols"
+# Two boxes of our own: one with a lever, one with two nose-poke ports.
+LEVER_BOX = """\
+vigil_protocol: 1
+name: lever box
+wiring:
+  outputs:
+    lever: {kind: lever, channel: 0}
+    room_light: {kind: house_light, channel: 4}
+    pellet: {kind: feeder, channel: 5, pulse_ms: 20}
+  inputs:
+    press: {kind: lever_press, channel: 0, presented_by: lever}
+    magazine: {kind: head_entry, channel: 2}
+at_start: {activate: [room_light, lever]}
+trial_types:
+  earn:
+    steps:
+      - step: work
+        schedule: {input: press, kind: FR, value: 1, then: reward}
+      - step: reward
+        pulse: pellet
+        wait_s: 1
+blocks:
+  - block: training
+    trial_types: [earn]
+    until: {trials: 50}
+    next: end_session
+"""
+POKE_BOX = (LEVER_BOX.replace("name: lever box", "name: poke box")
+            .replace("lever: {kind: lever, channel: 0}", "poke_light: {kind: cue_light, channel: 0}")
+            .replace("press: {kind: lever_press, channel: 0, presented_by: lever}",
+                     "poke: {kind: nose_poke, channel: 0, presented_by: poke_light}")
+            .replace("magazine: {kind: head_entry, channel: 2}", "magazine: {kind: head_entry, channel: 4}")
+            .replace("[room_light, lever]", "[room_light, poke_light]")
+            .replace("input: press", "input: poke"))  # fmt: skip
 
 
 @pytest.fixture(scope="module")
-def bandit():
-    return load_protocol(PROTOCOLS / "bandit.yaml")
+def protocols(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("protocols")
+    (folder / "lever.yaml").write_text(LEVER_BOX)
+    (folder / "pokes.yaml").write_text(POKE_BOX)
+    return folder
 
 
 @pytest.fixture(scope="module")
-def lever_training():
-    return load_protocol(PROTOCOLS / "lever_training_devaluation.yaml")
+def poke_box(protocols):
+    return load_protocol(protocols / "pokes.yaml")
+
+
+@pytest.fixture(scope="module")
+def lever_box(protocols):
+    return load_protocol(protocols / "lever.yaml")
 
 
 def identity_for(wiring, version: int = 1) -> Identity:
@@ -42,12 +83,12 @@ def identity_for(wiring, version: int = 1) -> Identity:
 # ---------------------------------------------------------------- pure check
 
 
-def test_a_box_wired_as_the_protocol_passes(bandit):
-    assert identity_problems(identity_for(bandit.wiring), bandit.wiring) == []
+def test_a_box_wired_as_the_protocol_passes(poke_box):
+    assert identity_problems(identity_for(poke_box.wiring), poke_box.wiring) == []
 
 
-def test_every_missing_or_different_channel_is_named(lever_training):
-    wiring = lever_training.wiring  # lever 0, house light 4, feeder 5; press 0, magazine 2
+def test_every_missing_or_different_channel_is_named(lever_box):
+    wiring = lever_box.wiring  # lever 0, house light 4, feeder 5; press 0, magazine 2
     ident = Identity(0, "vigil-ref-1.0", 1, 3,
                      (Channel(0, "nose_poke"), Channel(2, "head_entry")),
                      (Channel(0, "lever"), Channel(5, "unknown:zz")))  # fmt: skip
@@ -59,8 +100,8 @@ def test_every_missing_or_different_channel_is_named(lever_training):
     ]
 
 
-def test_a_version_we_do_not_speak_is_refused_naming_both(bandit):
-    problems = identity_problems(identity_for(bandit.wiring, version=2), bandit.wiring)
+def test_a_version_we_do_not_speak_is_refused_naming_both(poke_box):
+    problems = identity_problems(identity_for(poke_box.wiring, version=2), poke_box.wiring)
     assert problems == [
         "device 'vigil-emu-1.0' speaks wire protocol version 2, this vigil speaks version 1"
     ]
@@ -70,11 +111,11 @@ def test_a_version_we_do_not_speak_is_refused_naming_both(bandit):
 
 
 @pytest.fixture
-def bandit_box(tmp_path):
-    """An emulated box process carrying the bandit protocol's wiring, linked in tmp_path."""
-    path = tmp_path / "bandit-box.tty"
-    child = EmulatorProcess("bench-b", path, emulator_command(
-        path, str(PROTOCOLS / "bandit.yaml"), "random", 5))  # fmt: skip
+def poke_device(tmp_path, protocols):
+    """An emulated box process carrying the poke box's wiring, linked in tmp_path."""
+    path = tmp_path / "poke-box.tty"
+    child = EmulatorProcess("poke-box", path, emulator_command(
+        path, str(protocols / "pokes.yaml"), "random", 5))  # fmt: skip
     yield path
     child.stop()
 
@@ -90,26 +131,27 @@ def connect(url: str, wiring, **kw) -> Identity:
     return asyncio.run(go())
 
 
-def test_the_wrong_box_is_refused_before_anything_is_driven(bandit_box, lever_training):
+def test_the_wrong_box_is_refused_before_anything_is_driven(poke_device, lever_box):
     with pytest.raises(HandshakeError) as caught:
-        connect(str(bandit_box), lever_training.wiring)
-    message = str(caught.value)
-    assert message.startswith("box 'box-7': input 'press' (lever_press) is wired to channel 0, "
-                              "which is a nose_poke on the device")  # fmt: skip
-    assert "output 'pellet' (feeder) is wired to channel 5, which is a feeder" not in message
-    assert "output 'lever' (lever) is wired to channel 0, which is a cue_light" in message
+        connect(str(poke_device), lever_box.wiring)
+    assert caught.value.problems == [
+        "input 'press' (lever_press) is wired to channel 0, which is a nose_poke on the device",
+        "input 'magazine' (head_entry) is wired to channel 2, which the device does not have",
+        "output 'lever' (lever) is wired to channel 0, which is a cue_light on the device",
+    ]
+    assert str(caught.value).startswith("box 'box-7': input 'press' (lever_press)")
 
 
-def test_a_pyserial_url_takes_the_same_path(bandit_box, bandit, tmp_path):
+def test_a_pyserial_url_takes_the_same_path(poke_device, poke_box, tmp_path):
     log = tmp_path / "traffic.txt"
-    ident = connect(f"spy://{bandit_box}?file={log}", bandit.wiring)
-    assert (ident.inputs, ident.outputs) == device_channels(bandit.wiring)
+    ident = connect(f"spy://{poke_device}?file={log}", poke_box.wiring)
+    assert (ident.inputs, ident.outputs) == device_channels(poke_box.wiring)
     traffic = log.read_text()  # the spy handler's hex dump: both directions went through it
     assert " TX " in traffic and " RX " in traffic and " iam vigil-emu-" in traffic
 
 
-def test_lab_reports_a_mismatch_before_any_session_is_stored(bandit_box, lever_training, tmp_path):
-    box = BoxConfig("rack-9", "RN-9001", lever_training, port=str(bandit_box))
+def test_lab_reports_a_mismatch_before_any_session_is_stored(poke_device, lever_box, tmp_path):
+    box = BoxConfig("rack-9", "RN-9001", lever_box, port=str(poke_device))
     config = LabConfig("lab.yaml", "test lab", tmp_path / "lab.sqlite", HardCaps(), (box,))
     store = Store.open(tmp_path / "lab.sqlite")
     try:
@@ -120,17 +162,17 @@ def test_lab_reports_a_mismatch_before_any_session_is_stored(bandit_box, lever_t
         store.close()
 
 
-def test_a_port_nobody_answers_on_is_a_clear_error(bandit):
+def test_a_port_nobody_answers_on_is_a_clear_error(poke_box):
     # loop:// echoes our own lines back (no descriptor: read by a thread); they are host
     # lines, never taken for the device's.
     with pytest.raises(LinkError, match=r"^box 'box-7' is not answering on loop:// "
                                         r"\(no identity within 1 s\)$"):  # fmt: skip
-        connect("loop://", bandit.wiring, greet_s=1.0)
+        connect("loop://", poke_box.wiring, greet_s=1.0)
 
 
-def test_a_missing_port_is_a_clear_error(bandit, tmp_path):
+def test_a_missing_port_is_a_clear_error(poke_box, tmp_path):
     async def go():
-        link = SerialLink("box-7", str(tmp_path / "none.tty"), bandit.wiring, time.monotonic)
+        link = SerialLink("box-7", str(tmp_path / "none.tty"), poke_box.wiring, time.monotonic)
         await link.connect(startup_s=0.2)
 
     with pytest.raises(LinkError, match=r"^box 'box-7': cannot open .*none\.tty: "):
