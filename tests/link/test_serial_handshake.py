@@ -20,35 +20,11 @@ from server.link.messages import Channel, Identity
 from server.link.serial_link import SerialLink
 from server.protocol.load import load_protocol
 from server.store.writer import Store
+from test_pty_link import FR1  # tests/link is on the import path under pytest
 
-# Two boxes of our own: one with a lever, one with two nose-poke ports.
-LEVER_BOX = """\
-vigil_protocol: 1
-name: lever box
-wiring:
-  outputs:
-    lever: {kind: lever, channel: 0}
-    room_light: {kind: house_light, channel: 4}
-    pellet: {kind: feeder, channel: 5, pulse_ms: 20}
-  inputs:
-    press: {kind: lever_press, channel: 0, presented_by: lever}
-    magazine: {kind: head_entry, channel: 2}
-at_start: {activate: [room_light, lever]}
-trial_types:
-  earn:
-    steps:
-      - step: work
-        schedule: {input: press, kind: FR, value: 1, then: reward}
-      - step: reward
-        pulse: pellet
-        wait_s: 1
-blocks:
-  - block: training
-    trial_types: [earn]
-    until: {trials: 50}
-    next: end_session
-"""
-POKE_BOX = (LEVER_BOX.replace("name: lever box", "name: poke box")
+# Two boxes of our own: the lever box of the pty link test, and one with a nose-poke port.
+LEVER_BOX = FR1
+POKE_BOX = (LEVER_BOX.replace("name: continuous reinforcement check", "name: poke box")
             .replace("lever: {kind: lever, channel: 0}", "poke_light: {kind: cue_light, channel: 0}")
             .replace("press: {kind: lever_press, channel: 0, presented_by: lever}",
                      "poke: {kind: nose_poke, channel: 0, presented_by: poke_light}")
