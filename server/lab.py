@@ -241,11 +241,14 @@ class Lab:
         def clock() -> float:
             return loop.time() - t0
 
-        folder = Path(tempfile.mkdtemp(prefix="vigil-boxes-"))
+        # A folder for the emulated boxes' pty links, only when some box needs one.
+        emulated = not self.in_process_boxes and any(b.emulate is not None for b in self.config.boxes)
+        folder = Path(tempfile.mkdtemp(prefix="vigil-boxes-")) if emulated else None
         try:
             links = await self._connect(clock, folder)
         except BaseException:
-            shutil.rmtree(folder, ignore_errors=True)
+            if folder is not None:
+                shutil.rmtree(folder, ignore_errors=True)
             raise
         t0 = loop.time()  # session time starts once every box has answered
         for box, link in zip(self.config.boxes, links):
@@ -290,7 +293,8 @@ class Lab:
         finally:
             # Sessions end with outputs off: wait for the box to acknowledge, then close.
             await _close_links([run.link for run in self.runs])
-            shutil.rmtree(folder, ignore_errors=True)
+            if folder is not None:
+                shutil.rmtree(folder, ignore_errors=True)
             for task in link_tasks + [flusher] + ([limit] if limit else []):
                 task.cancel()
             await asyncio.gather(*link_tasks, flusher, *([limit] if limit else []), return_exceptions=True)
@@ -298,7 +302,7 @@ class Lab:
             self.store.flush()
         return self.runs
 
-    async def _connect(self, clock: Callable[[], float], folder: Path) -> list:
+    async def _connect(self, clock: Callable[[], float], folder: Path | None) -> list:
         """A link per box, each greeted and checked against its protocol's wiring before
         any session starts; every box's problem is reported at once."""
         links = [
