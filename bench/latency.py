@@ -21,7 +21,6 @@ import argparse
 import asyncio
 import json
 import os
-import platform
 import selectors
 import sys
 import tempfile
@@ -36,6 +35,7 @@ import numpy as np  # noqa: E402
 import serial  # noqa: E402
 
 from hardware_stubs.box_wire import U32, DeviceWire  # noqa: E402
+from machine import where_run  # noqa: E402  (bench/ is this script's folder)
 from server.link.codec import encode  # noqa: E402
 from server.link.handshake import device_channels  # noqa: E402
 from server.link.messages import DriveCommand, PulseCommand  # noqa: E402
@@ -71,17 +71,6 @@ blocks:
 LEVER, PRESS, FEEDER = 0, 0, 5
 # Presses per box left out at the start: they meet the lab still starting every session.
 WARMUP = 3
-
-
-def where_run() -> str:
-    cpu = platform.machine()
-    cpuinfo = Path("/proc/cpuinfo")
-    if cpuinfo.exists():
-        names = [ln.split(":", 1)[1].strip() for ln in cpuinfo.read_text().splitlines()
-                 if ln.startswith("model name")]  # fmt: skip
-        cpu = names[0] if names else cpu
-    return (f"{cpu} ({os.cpu_count()} logical cores), {platform.system()} {platform.release()}, "
-            f"Python {platform.python_version()}, pyserial {serial.__version__}")  # fmt: skip
 
 
 # ---------------------------------------------------------------- the device process
@@ -263,7 +252,8 @@ def main() -> int:
     if args.json:
         print(json.dumps(stack))
         return 0
-    print(f"machine: {where_run()}; load average before the run {load:.2f}")
+    print(f"machine: {where_run()}, pyserial {serial.__version__}; "
+          f"load average before the run {load:.2f}")
     print(f"{args.boxes} box(es), {args.rate:g} presses/s in all; press line written -> pulse line read")
     print(f"{'':28}{'n':>6}{'p50 ms':>9}{'p99 ms':>9}{'max ms':>9}")
     for name, s in (("baseline (pty + echo)", base), ("vigil (link+session+store)", stack)):
