@@ -50,7 +50,7 @@ class _Trial:
     __slots__ = (
         "index", "type", "t_start", "step_index", "step_t0", "deadline", "schedule",
         "steps", "counts", "first_s", "choice", "response", "latency_s", "correct",
-        "omission", "pellets", "offered_choice",
+        "omission", "pellets", "offered_choice", "cut_reason",
     )  # fmt: skip
 
     def __init__(self, index: int, trial_type: TrialType, t: float):
@@ -71,6 +71,7 @@ class _Trial:
         self.omission = False
         self.pellets = 0
         self.offered_choice = False  # went through a step with `choose`
+        self.cut_reason: str | None = None  # set when something outside cut the trial short
 
     @property
     def step(self) -> Step:
@@ -369,7 +370,11 @@ class Session(SessionControls):
         self._trial = None
         self.trials_done = trial.index
         block = self.block
-        block.record(None if interrupted else trial.correct, trial.pellets)
+        # A trial the link cut (the box was unreachable part of it) is stored as interrupted
+        # and teaches neither the criteria nor the estimator, but the session goes on.
+        cut_outside = trial.cut_reason is not None
+        cut = cut or trial.cut_reason
+        block.record(None if interrupted or cut_outside else trial.correct, trial.pellets)
         ending = self._session_end_due(t)
         record = TrialRecord(
             trial=trial.index, block=block.block.name, block_index=block.index,
@@ -377,14 +382,14 @@ class Session(SessionControls):
             response=trial.response, latency_s=trial.latency_s, rewarded=trial.pellets > 0,
             reward=float(trial.pellets), correct=trial.correct,
             omission=trial.omission and trial.choice is None and trial.response is None,
-            interrupted=interrupted, iti_s=0.0, steps=tuple(trial.steps),
+            interrupted=interrupted or cut_outside, iti_s=0.0, steps=tuple(trial.steps),
             counts=trial.counts, first_s=trial.first_s, extra={"cut_by": cut} if cut else {},
         )  # fmt: skip
         at = len(self._records)
         self._records.append(record)
         if interrupted:
             return
-        if self.estimator is not None and trial.offered_choice:
+        if self.estimator is not None and trial.offered_choice and not cut_outside:
             if self.log_events:
                 self._estimate = self.estimator.update(trial.choice, float(trial.pellets))
                 self._records.append(EstimateUpdated(trial.index, self.estimator.model.name, self._estimate))

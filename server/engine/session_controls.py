@@ -111,5 +111,11 @@ class SessionControls:
         """Let an observer (the rules) put its own record into the session's stream."""
         self._records.append(record)
 
+    def mark_interrupted(self, reason: str) -> None:
+        """Flag the trial in progress as interrupted (e.g. the box link was lost during it);
+        it runs to its end as usual and is stored with interrupted = true."""
+        if self._trial is not None:
+            self._trial.cut_reason = reason
+
     def end_after_trial(self, reason: str) -> None:
         self._pending_end = reason

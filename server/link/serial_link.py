@@ -96,11 +96,13 @@ class SerialLink:
         self._record: Callable[[EventLogged], None] = lambda record: None
         self._expected_outputs: Callable[[], Iterable[str]] = tuple
         self._trial_index: Callable[[], int] = lambda: 0
+        self._cut_trial: Callable[[str], None] = lambda reason: None
 
     def bind(self, session: Any, publish: Callable[[list], None]) -> None:
         """Follow a session: what its outputs should be, its trial, and where records go."""
         self._expected_outputs = lambda: session.active_outputs
         self._trial_index = lambda: session.trial_index
+        self._cut_trial = session.mark_interrupted
         self._record = lambda record: publish([record])
 
     # ------------------------------------------------------------ the port
@@ -296,6 +298,7 @@ class SerialLink:
         self._close_port()
         unacked = self.side.connection_lost()
         self._lost_at, self._lost_trial = now, self._trial_index()
+        self._cut_trial("link lost")  # the trial in progress is stored as interrupted
         self._restored_at = math.inf  # until the link returns, every edge is a missed one
         pulses = [p.command.command_id for p in unacked if isinstance(p.command, PulseCommand)]
         detail: dict[str, Any] = {"reason": reason, "trial": self._lost_trial}

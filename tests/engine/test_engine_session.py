@@ -288,3 +288,24 @@ def test_same_seed_same_records_different_seed_differs():
     assert isinstance(a[-1], SessionEnded)
     inputs = [r for r in a if isinstance(r, EventLogged) and r.kind == "input"]
     assert inputs and all(x.t <= y.t for x, y in zip(inputs, inputs[1:]))
+
+
+def test_a_trial_cut_by_the_link_is_stored_interrupted_and_the_session_goes_on():
+    protocol = choice_protocol("blocks:\n  - block: one\n    trial_types: [pick]\n    until: {trials: 3}\n")
+    from server.closed_loop import build_session
+
+    session = build_session(protocol, 4)
+    session.start(0.0)
+    session.mark_interrupted("link lost")  # the box went quiet during trial 1
+    session.feed(InputEvent("press_a"), 2.0)
+    session.advance(3.0)
+    session.advance(session.next_deadline)  # ITI over: trial 2
+    session.feed(InputEvent("press_a"), session._trial.step_t0 + 1.0)
+    session.advance(session._trial.step_t0 + 2.0)
+    records = session.take_records()
+    trials = [r for r in records if isinstance(r, TrialRecord)]
+    assert [t.interrupted for t in trials] == [True, False]
+    assert trials[0].extra == {"cut_by": "link lost"} and trials[0].iti_s > 0
+    estimates = [r for r in records if type(r).__name__ == "EstimateUpdated"]
+    assert [e.trial for e in estimates] == [2], "the cut trial does not teach the estimator"
+    assert not session.finished

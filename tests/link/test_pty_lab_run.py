@@ -35,6 +35,7 @@ def test_vigil_run_with_faults_on_every_box_loses_nothing(tmp_path):
     conn = sqlite3.connect(db)
     sessions = conn.execute("SELECT id, box, end_reason FROM sessions ORDER BY id").fetchall()
     assert [box for _, box, _ in sessions] == [b["name"] for b in config["boxes"]]
+    cut_trials = 0
     for session_id, box, reason in sessions:
         assert reason == "time limit", box
         kinds = [k for (k,) in conn.execute(
@@ -54,3 +55,14 @@ def test_vigil_run_with_faults_on_every_box_loses_nothing(tmp_path):
             "SELECT count(*) FROM events WHERE session_id = ? AND kind = 'alarm' AND detail LIKE"
             " '%events_lost%'", (session_id,)).fetchone()[0]  # fmt: skip
         assert alarms == 0, box  # the ring held everything across each 2 s outage
+        # A trial in progress when the link went is stored as interrupted, and only such trials.
+        losses = [t for (t,) in conn.execute(
+            "SELECT t FROM events WHERE session_id = ? AND kind = 'link_lost'", (session_id,))]  # fmt: skip
+        cut = conn.execute(
+            "SELECT t_start, t_end, extra FROM trials WHERE session_id = ? AND interrupted = 1"
+            " AND extra LIKE '%link lost%'", (session_id,)).fetchall()  # fmt: skip
+        for t_start, t_end, _ in cut:
+            assert any(t_start <= t <= t_end for t in losses), box
+        cut_trials += len(cut)
+    # 4 boxes x 3-4 outages: the lever-training box is always mid-trial, so some trial was cut
+    assert cut_trials > 0
