@@ -15,7 +15,6 @@ import shutil
 import signal
 import sys
 import tempfile
-import time
 from dataclasses import dataclass, field, replace
 from datetime import datetime, timezone
 from pathlib import Path
@@ -33,9 +32,9 @@ from server.link.emulator_process import EmulatorProcess, emulator_command
 from server.link.handshake import LinkError
 from server.link.inprocess import InProcessLink
 from server.link.serial_link import SerialLink
+from server.store.background import BackgroundWriter
 from server.store.writer import Store
 
-FLUSH_EVERY_S = 0.25
 
 
 @dataclass
@@ -139,6 +138,7 @@ class Lab:
     ):
         self.config = config
         self.store = store
+        self.writer = BackgroundWriter(store, say)  # commits off the event loop
         self.say = say
         self.in_process_boxes = in_process_boxes  # emulated boxes without serial (tests)
         self.runs: list[BoxRun] = []
@@ -179,7 +179,8 @@ class Lab:
         """
         run = self.find(box)
         t = run.ended.t if run.ended is not None else (run.live.clock() if run.live else None)
-        return self.store.write_annotation(run.session_id, text, origin, t=t, wall_time=wall_now())
+        with self.writer.direct() as store:
+            return store.write_annotation(run.session_id, text, origin, t=t, wall_time=wall_now())
 
     def _publisher(self, run: BoxRun) -> Callable[[list[Record]], None]:
         def publish(records: list[Record]) -> None:
@@ -190,7 +191,7 @@ class Lab:
                         f"{run.config.name}: session {run.session_id} ended ({record.reason}); "
                         f"{record.trials} trials, {record.rewards} rewards"
                     )
-                self.store.write(run.session_id, record)
+                self.writer.write(run.session_id, record)
                 if isinstance(record, SessionEnded):
                     self._after_session(run)
 
@@ -222,12 +223,14 @@ class Lab:
         advance = box.stages[stage - 1].advance
         if advance is None:
             return
-        self.store.flush()
-        evidence = advancement(self.store.conn, box.animal, stage, advance)
-        if evidence is None:
-            return
-        nxt = box.stages[stage].protocol
-        self.store.write_stage(box.animal, stage + 1, nxt.name, wall_now(), "advanced", run.session_id, evidence)
+        self.writer.drain()  # the session's last trials are with the store before judging
+        with self.writer.direct() as store:
+            store.flush()
+            evidence = advancement(store.conn, box.animal, stage, advance)
+            if evidence is None:
+                return
+            nxt = box.stages[stage].protocol
+            store.write_stage(box.animal, stage + 1, nxt.name, wall_now(), "advanced", run.session_id, evidence)
         self.say(f"{box.name}: animal {box.animal} advances to stage {stage + 1} ('{nxt.name}') next session")
 
     async def run(self, minutes: float | None = None) -> list[BoxRun]:
@@ -282,7 +285,7 @@ class Lab:
             self.say(f"{box.name}: animal {box.animal}, protocol '{box.protocol.name}', session {session_id}")
 
         signals = _install_signals(loop, self.stop_all)
-        flusher = asyncio.create_task(self._flush_loop())
+        self.writer.start()
         limit = asyncio.create_task(self._time_limit(minutes)) if minutes else None
         link_tasks = [asyncio.create_task(run.link.run()) for run in self.runs]
         try:
@@ -295,11 +298,11 @@ class Lab:
             await _close_links([run.link for run in self.runs])
             if folder is not None:
                 shutil.rmtree(folder, ignore_errors=True)
-            for task in link_tasks + [flusher] + ([limit] if limit else []):
+            for task in link_tasks + ([limit] if limit else []):
                 task.cancel()
-            await asyncio.gather(*link_tasks, flusher, *([limit] if limit else []), return_exceptions=True)
+            await asyncio.gather(*link_tasks, *([limit] if limit else []), return_exceptions=True)
             _remove_signals(loop, signals)
-            self.store.flush()
+            self.writer.close()  # everything queued is committed before the lab returns
         return self.runs
 
     async def _connect(self, clock: Callable[[], float], folder: Path | None) -> list:
@@ -319,14 +322,6 @@ class Lab:
                 raise bugs[0]
             raise LabError("\n".join(str(r) for r in failures))
         return links
-
-    async def _flush_loop(self) -> None:
-        while True:
-            await asyncio.sleep(FLUSH_EVERY_S)
-            try:
-                self.store.flush_due(time.monotonic())
-            except Exception as exc:  # full disk etc.: keep running, data stays buffered
-                self.say(f"warning: {exc}")
 
     async def _time_limit(self, minutes: float) -> None:
         await asyncio.sleep(minutes * 60.0)

@@ -127,7 +127,8 @@ class Store:
         path = Path(path)
         conn: sqlite3.Connection | None = None
         try:
-            conn = sqlite3.connect(path, isolation_level=None, timeout=5.0)
+            # Any one thread at a time may write (the lab's writer thread, under its lock).
+            conn = sqlite3.connect(path, isolation_level=None, timeout=5.0, check_same_thread=False)
             mode = conn.execute("PRAGMA journal_mode = WAL").fetchone()[0]
             if mode.lower() != "wal":
                 raise StoreError(f"write-ahead logging is not available (journal mode {mode})")
