@@ -165,6 +165,7 @@ def cmd_rehearse(args: argparse.Namespace) -> int:
     result = rehearse(
         protocol, args.animals, args.seed, caps=HardCaps(), progress=progress_bar(),
         workers=args.workers, sessions=args.sessions, population=population,
+        firing_log=args.firings,
     )  # fmt: skip
     if args.figure:
         try:
@@ -275,6 +276,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--vary", action="append", metavar="NAME=SPEC",
                    help="vary an agent option: NAME=LOW:HIGH, NAME=lognormal:MEDIAN:SIGMA, NAME=VALUE")
     p.add_argument("--figure", metavar="FILE.svg", help="write a histogram of trials to criterion")
+    p.add_argument("--firings", action="store_true",
+                   help="list every rule firing with the values its condition read")
     p.add_argument("--json", action="store_true", help="print JSON instead of a table")
     p.set_defaults(func=cmd_rehearse)
 

@@ -22,6 +22,7 @@ from server.engine.virtual import run_virtual
 from server.protocol.model import SCHEDULE_ACTIONS, Protocol
 from server.population import Population, Spread
 from server.rules.book import firing_counts as rule_firings
+from server.rules.book import firing_log
 
 PARALLEL_FROM = 40  # animals; below this a process pool costs more than it saves
 
@@ -53,7 +54,7 @@ def has_performance_criterion(protocol: Protocol) -> bool:
 
 def rehearse_one(
     protocol: Protocol, animal: Animal, population: Population, caps: HardCaps, sessions: int = 1,
-    closed_loop: bool = True,
+    closed_loop: bool = True, with_log: bool = False,
 ) -> dict:
     """One virtual animal over `sessions` days: its learned values and the estimator's
     posterior carry from day to day, as they would for a real animal."""
@@ -65,6 +66,7 @@ def rehearse_one(
     estimator_state = None
     days = []
     firings: dict[str, int] = {}
+    log: list[dict] = []
     trials_before = 0
     to_criterion = sessions_to_criterion = None
     for day in range(sessions):
@@ -81,6 +83,12 @@ def rehearse_one(
             estimator_state = session.estimator.state_dict()
         for name, count in rule_firings(session).items():
             firings[name] = firings.get(name, 0) + count
+        if with_log:
+            log.extend(
+                {"session": day + 1, "trial": f.trial, "minute": round(f.t / 60, 2), "rule": f.rule,
+                 "actions": list(f.actions), "values": f.values}
+                for f in firing_log(session)
+            )  # fmt: skip
         if to_criterion is None and session.first_criterion_trial is not None:
             to_criterion = trials_before + session.first_criterion_trial
             sessions_to_criterion = day + 1
@@ -111,6 +119,8 @@ def rehearse_one(
     }
     if sessions > 1:
         result["sessions"] = [{k: v for k, v in d.items() if k != "blocks"} for d in days]
+    if with_log:
+        result["firing_log"] = log
     return result
 
 
@@ -119,8 +129,8 @@ def _end_time(session: Session) -> float:
 
 
 def _run_chunk(args) -> list[dict]:
-    protocol, animals, population, caps, sessions, closed_loop = args
-    return [rehearse_one(protocol, a, population, caps, sessions, closed_loop) for a in animals]
+    protocol, animals, population, caps, sessions, closed_loop, with_log = args
+    return [rehearse_one(protocol, a, population, caps, sessions, closed_loop, with_log) for a in animals]
 
 
 def rehearse(
@@ -136,6 +146,7 @@ def rehearse(
     sessions: int = 1,
     population: Population | None = None,
     closed_loop: bool = True,
+    firing_log: bool = False,
 ) -> dict:
     if population is None:
         population = Population(agent, {k: Spread("fixed", float(v)) for k, v in (options or {}).items()})
@@ -144,14 +155,14 @@ def rehearse(
     results: list[dict] = []
     if workers <= 1:
         for animal in animals:
-            results.append(rehearse_one(protocol, animal, population, caps, sessions, closed_loop))
+            results.append(rehearse_one(protocol, animal, population, caps, sessions, closed_loop, firing_log))
             if progress:
                 progress(len(results), n_animals)
     else:
         size = max(1, min(25, n_animals // (workers * 4) or 1))
         chunks = [animals[i : i + size] for i in range(0, n_animals, size)]
         with ProcessPoolExecutor(workers) as pool:
-            jobs = [(protocol, c, population, caps, sessions, closed_loop) for c in chunks]
+            jobs = [(protocol, c, population, caps, sessions, closed_loop, firing_log) for c in chunks]
             for part in pool.map(_run_chunk, jobs):
                 results.extend(part)
                 if progress:
@@ -229,6 +240,10 @@ def human_report(result: dict) -> str:
             f"{r['animal']:<14}{r['trials']:>7}{r['rewards']:>9}{r['duration_s'] / 60:>9.1f}"
             f"{r['reversals']:>10}  {crit:<12} {r['end_reason']}"
         )
+        for f in r.get("firing_log", []):
+            values = ", ".join(f"{k} {v:.3g}" if isinstance(v, float) else f"{k} {v}" for k, v in f["values"].items())
+            did = "; ".join(", ".join(f"{k} {v}" for k, v in a.items()) for a in f["actions"])
+            lines.append(f"    s{f['session']} trial {f['trial']:>4}  {f['rule']}: {did}  ({values})")
     lines.append("")
 
     def fmt(spread: dict | None, scale: float = 1.0) -> str:

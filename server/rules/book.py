@@ -107,6 +107,7 @@ class RuleBook:
         self.rules = protocol.rules
         self.metrics = SessionMetrics(protocol)
         self.state = {rule.name: _RuleState() for rule in self.rules}
+        self.log: list[RuleFired] = []  # every firing of this session, in order
 
     def __call__(self, session: Session, trial: TrialRecord) -> None:
         """Evaluate every rule in order after `trial`. Only the first rule that changes the
@@ -142,11 +143,18 @@ class RuleBook:
         state.last_fired_trial = trial.trial
         state.run = 0
         done = tuple(apply_action(action, session, trial.t_end, rule.name) for action in rule.actions)
-        session.add_record(RuleFired(trial.t_end, trial.trial, rule.name, done, values))
+        fired = RuleFired(trial.t_end, trial.trial, rule.name, done, values)
+        self.log.append(fired)
+        session.add_record(fired)
         return True
 
     def firings(self) -> dict[str, int]:
         return {name: state.fired for name, state in self.state.items()}
+
+
+def firing_log(session: Session) -> list[RuleFired]:
+    """Every rule firing of the session so far, in order."""
+    return [f for observer in session.observers if isinstance(observer, RuleBook) for f in observer.log]
 
 
 def firing_counts(session: Session) -> dict[str, int]:
