@@ -185,44 +185,25 @@ def cmd_rehearse(args: argparse.Namespace) -> int:
 # ---------------------------------------------------------------- parser
 
 
-def _positive_int(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number, found '{text}'") from None
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"expected at least 1, found {value}")
-    return value
+def _number(cast, what: str, ok, expected: str):
+    """An argparse type: `cast` the text, then accept it only when ok(value)."""
+
+    def parse(text: str):
+        try:
+            value = cast(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected {what}, found '{text}'") from None
+        if not ok(value):
+            raise argparse.ArgumentTypeError(f"expected {expected}, found {text}")
+        return value
+
+    return parse
 
 
-def _seed(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number, found '{text}'") from None
-    if value < 0:
-        raise argparse.ArgumentTypeError(f"expected a seed of at least 0, found {value}")
-    return value
-
-
-def _minutes(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected minutes as a number, found '{text}'") from None
-    if not value > 0:
-        raise argparse.ArgumentTypeError(f"expected a positive number of minutes, found {text}")
-    return value
-
-
-def _port(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a port number, found '{text}'") from None
-    if not 0 <= value <= 65535:
-        raise argparse.ArgumentTypeError(f"expected a port from 0 (any free port) to 65535, found {value}")
-    return value
+_positive_int = _number(int, "a whole number", lambda v: v >= 1, "at least 1")
+_seed = _number(int, "a whole number", lambda v: v >= 0, "a seed of at least 0")
+_minutes = _number(float, "minutes as a number", lambda v: v > 0, "a positive number of minutes")
+_port = _number(int, "a port number", lambda v: 0 <= v <= 65535, "a port from 0 (any free port) to 65535")
 
 
 def build_parser() -> argparse.ArgumentParser:
