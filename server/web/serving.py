@@ -59,7 +59,7 @@ class StatusServer:
         self.port = self.sock.getsockname()[1]
         config = uvicorn.Config(
             app, host=host, port=self.port, log_config=None, log_level="warning",
-            access_log=False, lifespan="off", ws="none", http="h11", server_header=False,
+            access_log=False, lifespan="off", ws="none", http="auto", server_header=False,
             timeout_graceful_shutdown=3,
         )
         self._server = _KeepOurSignals(config)
