@@ -252,21 +252,10 @@ class _Compiler(Reader):
             step_nodes = self.listing(fields.get("steps"), f"{where}.steps")
             if "steps" in fields and not step_nodes and fields["steps"].is_list:
                 self.error(fields["steps"].mark, f"{where}.steps: needs at least one step")
-            named: list[tuple[str, dict[str, Marked], Marked]] = []
-            seen: set[str] = set()
-            for i, step_node in enumerate(step_nodes):
-                step_fields = self.mapping(step_node, f"{where}.steps[{i + 1}]", STEP_KEYS, required=("step",))
-                if step_fields is None:
-                    continue
-                step_name = self.text(step_fields.get("step"), f"{where}.steps[{i + 1}].step")
-                if step_name is None:
-                    continue
-                if step_name in seen or step_name == END_TRIAL:
-                    why = "is reserved for ending the trial" if step_name == END_TRIAL else "is used twice"
-                    self.error(step_fields["step"].mark, f"{where}: step name '{step_name}' {why}")
-                    continue
-                seen.add(step_name)
-                named.append((step_name, step_fields, step_node))
+            named = self.named_list(
+                step_nodes, f"{where}.steps", where, STEP_KEYS, ("step",), "step",
+                END_TRIAL, "ending the trial",
+            )  # fmt: skip
             names = [n for n, _, _ in named]
             steps = []
             for i, (step_name, step_fields, step_node) in enumerate(named):
@@ -277,6 +266,36 @@ class _Compiler(Reader):
             if steps and len(steps) == len(named):
                 types[name] = TrialType(name, tuple(steps))
         return types
+
+    def named_list(
+        self,
+        nodes: list[Marked],
+        where: str,
+        owner: str,
+        keys: tuple[str, ...],
+        required: tuple[str, ...],
+        name_key: str,
+        reserved: str,
+        reserved_for: str,
+    ) -> list[tuple[str, dict[str, Marked], Marked]]:
+        """Entries of a list of mappings each named by `name_key`, names unique and never
+        the reserved word; (name, fields, node) for every well-formed entry, in order."""
+        named: list[tuple[str, dict[str, Marked], Marked]] = []
+        seen: set[str] = set()
+        for i, node in enumerate(nodes):
+            fields = self.mapping(node, f"{where}[{i + 1}]", keys, required=required)
+            if fields is None:
+                continue
+            name = self.text(fields.get(name_key), f"{where}[{i + 1}].{name_key}")
+            if name is None:
+                continue
+            if name in seen or name == reserved:
+                why = f"is reserved for {reserved_for}" if name == reserved else "is used twice"
+                self.error(fields[name_key].mark, f"{owner}: {name_key} name '{name}' {why}")
+                continue
+            seen.add(name)
+            named.append((name, fields, node))
+        return named
 
     def target(self, node: Marked | None, where: str, names: list[str]) -> str | None:
         return self.reference(node, where, names + [END_TRIAL], "step")
@@ -378,21 +397,10 @@ class _Compiler(Reader):
         nodes = self.listing(node, "blocks")
         if node is not None and node.is_list and not nodes:
             self.error(node.mark, "blocks: needs at least one block")
-        parsed: list[tuple[str, dict[str, Marked]]] = []
-        seen: set[str] = set()
-        for i, block_node in enumerate(nodes):
-            f = self.mapping(block_node, f"blocks[{i + 1}]", BLOCK_KEYS, required=("block", "trial_types"))
-            if f is None:
-                continue
-            name = self.text(f.get("block"), f"blocks[{i + 1}].block")
-            if name is None:
-                continue
-            if name in seen or name == END_SESSION:
-                why = "is reserved for ending the session" if name == END_SESSION else "is used twice"
-                self.error(f["block"].mark, f"blocks: block name '{name}' {why}")
-                continue
-            seen.add(name)
-            parsed.append((name, f))
+        parsed = [(n, f) for n, f, _ in self.named_list(
+            nodes, "blocks", "blocks", BLOCK_KEYS, ("block", "trial_types"), "block",
+            END_SESSION, "ending the session",
+        )]  # fmt: skip
         names = [n for n, _ in parsed]
         return [b for b in (self.block(n, f, names, trial_types, options) for n, f in parsed) if b]
 
