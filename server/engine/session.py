@@ -9,7 +9,6 @@ the tests all run exactly the same logic.
 from __future__ import annotations
 
 import math
-from dataclasses import replace
 from typing import Callable
 
 import numpy as np
@@ -23,15 +22,15 @@ from server.engine.records import (
     EstimateUpdated,
     EventLogged,
     InputEvent,
-    PulseOutput,
     Record,
     SessionEnded,
     SessionStarted,
     SetOutput,
     TrialRecord,
 )
+from server.engine.step_plans import OutputPlan, StepPlan, output_commands, output_plan, pulse_commands, step_plans
 from server.engine.timing import DurationDraw, ScheduleState
-from server.protocol.model import END_SESSION, END_TRIAL, Block, OutputActions, Protocol, Step, TrialType
+from server.protocol.model import END_SESSION, END_TRIAL, Block, Protocol, Step, TrialType
 
 # A trial may pass through this many steps in one instant (draws, zero waits) before the
 # session declares the protocol stuck in a loop rather than spinning forever.
@@ -48,16 +47,17 @@ class _Trial:
     """Mutable state of the trial in progress."""
 
     __slots__ = (
-        "index", "type", "t_start", "step_index", "step_t0", "deadline", "schedule",
+        "index", "type", "plans", "t_start", "plan", "step_t0", "deadline", "schedule",
         "steps", "counts", "first_s", "choice", "response", "latency_s", "correct",
         "omission", "pellets", "offered_choice", "cut_reason",
     )  # fmt: skip
 
-    def __init__(self, index: int, trial_type: TrialType, t: float):
+    def __init__(self, index: int, trial_type: TrialType, plans: dict[str, StepPlan], t: float):
         self.index = index
         self.type = trial_type
+        self.plans = plans  # step name -> plan, for this trial type
         self.t_start = t
-        self.step_index = -1
+        self.plan: StepPlan | None = None  # the step in progress (None before the first / once left)
         self.step_t0 = t
         self.deadline = math.inf
         self.schedule: ScheduleState | None = None
@@ -75,7 +75,7 @@ class _Trial:
 
     @property
     def step(self) -> Step:
-        return self.type.steps[self.step_index]
+        return self.plan.step
 
 
 class Session(SessionControls):
@@ -128,8 +128,14 @@ class Session(SessionControls):
         self._itis = {
             b.name: DurationDraw(b.iti or protocol.iti, self.rng) for b in protocol.blocks
         }
-        self._waits: dict[int, DurationDraw] = {}
-        self._schedules: dict[int, ScheduleState] = {}
+        self._block_end = math.inf  # when the current block's time criterion runs out
+        self._commands = output_commands(protocol.wiring)
+        self._pulses = pulse_commands(protocol.wiring)
+        self._plans = step_plans(protocol, self._commands, self.rng)
+        self._at_start = output_plan(protocol.at_start, self._commands)
+        self._option_of: dict[str, str] = {}  # input -> option label (the first, as option_for_input)
+        for option in protocol.options.values():
+            self._option_of.setdefault(option.input, option.label)
         self._started = False
         self._paused_at: float | None = None
         self._resume_outputs: set[str] = set()
@@ -143,15 +149,20 @@ class Session(SessionControls):
             return math.inf
         if self._paused_at is not None:
             return self._t_limit
-        local = self._trial.deadline if self._trial is not None else self._iti_end
-        return min(local, self._t_limit, self._block_deadline())
+        trial = self._trial
+        deadline = trial.deadline if trial is not None else self._iti_end
+        if self._t_limit < deadline:
+            deadline = self._t_limit
+        return self._block_end if self._block_end < deadline else deadline
 
-    def _block_deadline(self) -> float:
-        """When a block with a time criterion runs out, even in the middle of a trial."""
+    def _reset_block_end(self) -> None:
+        """When a block with a time criterion runs out, even in the middle of a trial; kept
+        up to date whenever the block or its start time changes."""
         block = self.block
         if block is None or block.block.until.minutes is None:
-            return math.inf
-        return block.t0 + block.block.until.minutes * 60.0
+            self._block_end = math.inf
+        else:
+            self._block_end = block.t0 + block.block.until.minutes * 60.0
 
     @property
     def estimate(self):
@@ -167,7 +178,7 @@ class Session(SessionControls):
 
     @property
     def step_name(self) -> str | None:
-        return self._trial.step.name if self._trial is not None and self._trial.step_index >= 0 else None
+        return self._trial.plan.step.name if self._trial is not None and self._trial.plan is not None else None
 
     def take_records(self) -> list[Record]:
         records, self._records = self._records, []
@@ -179,7 +190,7 @@ class Session(SessionControls):
         self._started = True
         first = self.protocol.blocks[0]
         self._records.append(SessionStarted(t, self.protocol.name, self.seed, first.name))
-        self._apply(self.protocol.at_start, t)
+        self._apply(self._at_start, t)
         self._enter_block(first, t, "session start")
         self._begin_trial(t)
         return self._flush()
@@ -213,11 +224,7 @@ class Session(SessionControls):
 
     def safe_state(self) -> list[Command]:
         """Commands that put every held output in its safe (inactive) state."""
-        return [
-            SetOutput(line.name, line.channel, False)
-            for line in self.protocol.wiring.outputs.values()
-            if not line.pulsed
-        ]
+        return [off for name, (off, _) in self._commands.items() if name not in self._pulses]
 
     # ================================================================ internals: time
 
@@ -229,20 +236,19 @@ class Session(SessionControls):
                 return
             if self._paused_at is not None:
                 return
-            block_end = self._block_deadline()
-            if t >= block_end and block_end < (self._trial.deadline if self._trial else self._iti_end):
+            trial = self._trial
+            deadline = trial.deadline if trial is not None else self._iti_end
+            block_end = self._block_end
+            if t >= block_end and block_end < deadline:
                 self._block_time_up(block_end)
                 guard += 1
                 continue
-            trial = self._trial
+            if t < deadline:
+                return
             if trial is not None:
-                if t < trial.deadline:
-                    return
-                self._timeout(trial, trial.deadline)
+                self._timeout(trial, deadline)
             else:
-                if t < self._iti_end:
-                    return
-                self._begin_trial(self._iti_end)
+                self._begin_trial(deadline)
             guard += 1
             if guard > MAX_STEPS_PER_INSTANT * 10:
                 self._end_session(t, "error: protocol does not advance in time")
@@ -253,30 +259,34 @@ class Session(SessionControls):
     def _begin_trial(self, t: float) -> None:
         assert self.block is not None
         type_name = self.block.next_trial_type()
-        trial = _Trial(self.trials_done + 1, self.protocol.trial_types[type_name], t)
+        trial_type = self.protocol.trial_types[type_name]
+        trial = _Trial(self.trials_done + 1, trial_type, self._plans[type_name], t)
         self._trial = trial
         self._iti_end = math.inf
-        self._goto(trial, trial.type.steps[0].name, t)
+        self._goto(trial, trial_type.steps[0].name, t)
 
     def _goto(self, trial: _Trial, target: str, t: float) -> None:
         hops = 0
+        plans = trial.plans
         while True:
-            if trial.step_index >= 0:
-                self._apply(trial.step.on_leave, t)
+            plan = trial.plan
+            if plan is not None and plan.on_leave is not None:
+                self._apply(plan.on_leave, t)
             if target == END_TRIAL:
                 self._end_trial(trial, t, interrupted=False)
                 return
-            trial.step_index = trial.type.step_index(target)
-            step = trial.step
+            plan = trial.plan = plans[target]
+            step = plan.step
             trial.step_t0 = t
             trial.steps.append((step.name, t))
             if self.log_events:
                 self._log(t, "step", step.name, detail={"trial": trial.index})
             if step.choose:
                 trial.offered_choice = True
-            self._apply(step.on_enter, t)
-            if self._trial is not trial:  # the reward cap ended the session mid-step
-                return
+            if plan.on_enter is not None:
+                self._apply(plan.on_enter, t)
+                if self._trial is not trial:  # the reward cap ended the session mid-step
+                    return
             if step.draw:
                 target = self._draw_target(step)
                 hops += 1
@@ -284,35 +294,22 @@ class Session(SessionControls):
                     self._end_session(t, "error: protocol loops between steps without waiting")
                     return
                 continue
-            trial.deadline = t + self._wait_draw(trial).draw() if step.wait is not None else math.inf
-            if step.schedule is not None:
-                state = self._schedules.get(id(step))
-                if state is None:
-                    state = self._schedules[id(step)] = ScheduleState(step.schedule, self.rng)
-                state.begin(t)
-                trial.schedule = state
-            else:
-                trial.schedule = None
-            if trial.deadline <= t and step.wait is not None:
+            wait = plan.wait
+            trial.deadline = t + wait.draw() if wait is not None else math.inf
+            schedule = trial.schedule = plan.schedule
+            if schedule is not None:
+                schedule.begin(t)
+            if wait is not None and trial.deadline <= t:
                 # zero wait: move on now, but count it against the loop guard
                 hops += 1
                 if hops > MAX_STEPS_PER_INSTANT:
                     self._end_session(t, "error: protocol loops between steps without waiting")
                     return
-                if step.awaits_response:
+                if plan.awaits_response:
                     trial.omission = True
                 target = step.next
                 continue
             return
-
-    def _wait_draw(self, trial: _Trial) -> DurationDraw:
-        step = trial.step
-        key = id(step)
-        draw = self._waits.get(key)
-        if draw is None:
-            assert step.wait is not None
-            draw = self._waits[key] = DurationDraw(step.wait, self.rng)
-        return draw
 
     def _draw_target(self, step: Step) -> str:
         u = self.rng.random()
@@ -324,19 +321,21 @@ class Session(SessionControls):
         return step.draw[-1][0]
 
     def _timeout(self, trial: _Trial, t: float) -> None:
-        step = trial.step
-        if step.awaits_response:
+        plan = trial.plan
+        if plan.awaits_response:
             trial.omission = True
-        self._goto(trial, step.next, t)
+        self._goto(trial, plan.step.next, t)
 
     def _respond(self, trial: _Trial, input_name: str, t: float) -> None:
-        step = trial.step
-        key = f"{step.name}.{input_name}"
-        trial.counts[key] = trial.counts.get(key, 0) + 1
+        plan = trial.plan
+        step = plan.step
+        key = plan.count_keys.get(input_name) or f"{step.name}.{input_name}"
+        counts = trial.counts
+        counts[key] = counts.get(key, 0) + 1
         if key not in trial.first_s:
             trial.first_s[key] = t - trial.step_t0
         if step.choose:
-            label = self.protocol.option_for_input(input_name)
+            label = self._option_of.get(input_name)
             if label is not None and label in step.choose:
                 self._choose(trial, step, label, input_name, t)
                 return
@@ -346,22 +345,24 @@ class Session(SessionControls):
             trial.latency_s = t - trial.step_t0
             self._goto(trial, target, t)
             return
-        if trial.schedule is not None and trial.schedule.schedule.input == input_name:
-            if trial.schedule.respond(t):
+        schedule = trial.schedule
+        if schedule is not None and schedule.schedule.input == input_name:
+            if schedule.respond(t):
                 if trial.response is None:
                     trial.response = input_name
                     trial.latency_s = t - trial.step_t0
-                self._goto(trial, trial.schedule.schedule.then, t)
+                self._goto(trial, schedule.schedule.then, t)
 
     def _choose(self, trial: _Trial, step: Step, label: str, input_name: str, t: float) -> None:
-        assert self.block is not None
+        block = self.block
+        assert block is not None
         trial.choice = label
         trial.response = input_name
         trial.latency_s = t - trial.step_t0
-        trial.correct = self.block.correct(label, step.choose)
+        trial.correct = block.correct(label, step.choose)
         # Draw even when outcomes are withheld, so a probe block does not shift later draws.
-        win = self.rng.random() < self.block.contingencies[label]
-        if self.block.block.withhold_outcomes:
+        win = self.rng.random() < block.contingencies[label]
+        if block.block.withhold_outcomes:
             win = False
         self._goto(trial, step.if_rewarded if win else step.if_unrewarded, t)
 
@@ -376,15 +377,17 @@ class Session(SessionControls):
         cut = cut or trial.cut_reason
         block.record(None if interrupted or cut_outside else trial.correct, trial.pellets)
         ending = self._session_end_due(t)
-        record = TrialRecord(
-            trial=trial.index, block=block.block.name, block_index=block.index,
-            trial_type=trial.type.name, t_start=trial.t_start, t_end=t, choice=trial.choice,
-            response=trial.response, latency_s=trial.latency_s, rewarded=trial.pellets > 0,
-            reward=float(trial.pellets), correct=trial.correct,
-            omission=trial.omission and trial.choice is None and trial.response is None,
-            interrupted=interrupted or cut_outside, iti_s=0.0, steps=tuple(trial.steps),
-            counts=trial.counts, first_s=trial.first_s, extra={"cut_by": cut} if cut else {},
+        # Every field but iti_s, in TrialRecord's order: the ITI is drawn further down, and
+        # building the record again from these is cheaper than dataclasses.replace.
+        head = (
+            trial.index, block.block.name, block.index, trial.type.name, trial.t_start, t,
+            trial.choice, trial.response, trial.latency_s, trial.pellets > 0,
+            float(trial.pellets), trial.correct,
+            trial.omission and trial.choice is None and trial.response is None,
+            interrupted or cut_outside,
         )  # fmt: skip
+        tail = (tuple(trial.steps), trial.counts, trial.first_s, {"cut_by": cut} if cut else {})
+        record = TrialRecord(*head, 0.0, *tail)
         at = len(self._records)
         self._records.append(record)
         if interrupted:
@@ -412,7 +415,7 @@ class Session(SessionControls):
         # Drawn after the rules ran, so an ITI change applies to the interval right after
         # the trial that triggered it; the record then carries the ITI actually used.
         iti = self._next_iti(block.block.name)
-        self._records[at] = replace(record, iti_s=iti)
+        self._records[at] = TrialRecord(*head, iti, *tail)
         if nxt is not None:
             self._enter_block(self._block_named(nxt), t, met)
         self._iti_end = t + iti
@@ -434,8 +437,9 @@ class Session(SessionControls):
         assert self.block is not None
         trial = self._trial
         if trial is not None:
-            self._apply(trial.step.on_leave, t)
-            trial.step_index = -1  # already left
+            if trial.plan.on_leave is not None:
+                self._apply(trial.plan.on_leave, t)
+            trial.plan = None  # already left
             self._end_trial(trial, t, interrupted=False, cut="block time")
             return  # _end_trial ran the block criterion
         nxt, met = self._block_criterion(self.block, t)
@@ -489,6 +493,7 @@ class Session(SessionControls):
         self._blocks_entered += 1
         name = block.name
         self.block = BlockProgress(self.protocol, block, self._blocks_entered, t, self.rng, self._extra_swaps)
+        self._reset_block_end()
         self._count_reversal(before)
         self._records.append(
             BlockStarted(t, name, self._blocks_entered, dict(self.block.contingencies), block.withhold_outcomes)
@@ -507,34 +512,37 @@ class Session(SessionControls):
         if self.block is not None:
             self.block_log.append((self.block.block.name, self.block.trials, None))
         for command in self.safe_state():
-            self._set(command.name, command.channel, False, t)
+            self._switch(command.name, command, t)
         self._records.append(SessionEnded(t, reason, self.trials_done, self.rewards))
 
     # ================================================================ internals: outputs
 
-    def _apply(self, actions: OutputActions, t: float) -> None:
-        if not actions:
+    def _apply(self, actions: OutputPlan | None, t: float) -> None:
+        """Carry out a step's (or the session start's) output actions: off, on, then pulses."""
+        if actions is None:
             return
-        outputs = self.protocol.wiring.outputs
-        for name in actions.deactivate:
-            self._set(outputs[name].name, outputs[name].channel, False, t)
-        for name in actions.activate:
-            self._set(outputs[name].name, outputs[name].channel, True, t)
+        for name, command in actions.off:
+            self._switch(name, command, t)
+        for name, command in actions.on:
+            self._switch(name, command, t)
         for name in actions.pulse:
             self._pulse(name, t)
 
-    def _set(self, name: str, channel: int, active: bool, t: float) -> None:
-        if active:
+    def _set(self, name: str, active: bool, t: float) -> None:
+        self._switch(name, self._commands[name][active], t)
+
+    def _switch(self, name: str, command: SetOutput, t: float) -> None:
+        if command.active:
             self.active_outputs.add(name)
         else:
             self.active_outputs.discard(name)
-        self._out.append(SetOutput(name, channel, active))
+        self._out.append(command)
         if self.log_events:
-            self._records.append(EventLogged(t, "output", name, 1.0 if active else 0.0))
+            self._records.append(EventLogged(t, "output", name, 1.0 if command.active else 0.0))
 
     def _pulse(self, name: str, t: float) -> None:
-        line = self.protocol.wiring.outputs[name]
-        if line.kind == "feeder":
+        command, feeder = self._pulses[name]
+        if feeder:
             if self.block is not None and self.block.block.withhold_outcomes:
                 self._log(t, "pulse", name, detail={"withheld": "outcomes withheld in this block"})
                 return
@@ -547,9 +555,9 @@ class Session(SessionControls):
                 self._trial.pellets += 1
             if self.rewards >= self.limits.max_rewards:
                 self._cap_reached = True
-        self._out.append(PulseOutput(name, line.channel, line.pulse_ms))
+        self._out.append(command)
         if self.log_events:
-            self._records.append(EventLogged(t, "pulse", name, float(line.pulse_ms)))
+            self._records.append(EventLogged(t, "pulse", name, float(command.ms)))
 
     def _log(self, t: float, kind: str, name: str, detail: dict | None = None) -> None:
         if self.log_events:

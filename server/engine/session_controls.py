@@ -33,7 +33,7 @@ class SessionControls:
         self._paused_at = t
         self._resume_outputs = set(self.active_outputs)
         for command in self.safe_state():
-            self._set(command.name, command.channel, False, t)
+            self._switch(command.name, command, t)
         self._log(t, "pause", "session", detail={"origin": origin})
         return self._flush()
 
@@ -53,9 +53,9 @@ class SessionControls:
             self._iti_end += shift
         if self.block is not None:
             self.block.t0 += shift
-        outputs = self.protocol.wiring.outputs
+            self._reset_block_end()
         for name in sorted(self._resume_outputs):
-            self._set(name, outputs[name].channel, True, t)
+            self._set(name, True, t)
         self._log(t, "resume", "session", detail={"origin": origin, "paused_s": shift})
         return self._flush()
 
