@@ -33,6 +33,11 @@ _EDGE = 0  # payload: InputEvent to hand out
 _WAKE = 1  # payload: the agent's token
 _SWITCH_RELEASE_S = (0.1, 0.3)  # lever / poke switch held closed this long (common practice)
 
+# What an output is, looked up once per command: held, a feeder, or another pulsed output.
+_HELD = 0
+_FEEDER = 1
+_PULSED = 2
+
 
 class EmulatedBox:
     """One box with one virtual animal; see the module docstring for the physics."""
@@ -47,6 +52,10 @@ class EmulatedBox:
         self._cancelled: set[int] = set()
 
         self._active = {o.name: False for o in wiring.outputs.values() if not o.pulsed}
+        self._output_kind = {
+            o.name: _HELD if not o.pulsed else _FEEDER if o.kind == "feeder" else _PULSED
+            for o in wiring.outputs.values()
+        }
         presents: dict[str, list[InputLine]] = {}
         for line in wiring.inputs.values():
             by = line.presented_by
@@ -85,19 +94,20 @@ class EmulatedBox:
         if t > self._now:
             self._now = t
         name = command.name
-        line = self.wiring.outputs.get(name)
-        if line is None:
+        kind = self._output_kind.get(name)
+        if kind is None:
             raise ValueError(f"unknown output {name!r}")
         if type(command) is PulseOutput:
-            if not line.pulsed:
+            if kind == _HELD:
                 raise ValueError(f"output {name!r} is held, not pulsed")
-            if line.kind == "feeder":
+            if kind == _FEEDER:
                 self._drop_pellet()
             return
-        if line.pulsed:
+        if kind != _HELD:
             raise ValueError(f"output {name!r} is pulsed, not held")
-        if self._active[name] != command.active:
-            self._set_held(name, command.active)
+        active = command.active
+        if self._active[name] != active:
+            self._set_held(name, active)
 
     def next_time(self) -> float:
         """Time of the earliest pending input event or agent action, math.inf if none.
@@ -246,14 +256,16 @@ class EmulatedBox:
         lines = self._presents.get(name)
         if not lines:
             return
+        presented = self._presented
         for line in lines:
-            self._presented[line.name] = active
+            presented[line.name] = active
         self._refresh_operants()
+        on_presented, now = self._agent.on_presented, self._now
         for line in lines:
-            self._agent.on_presented(self._now, line, active)
+            on_presented(now, line, active)
 
     def _refresh_operants(self) -> None:
-        self.presented_operants = tuple(n for n in self._operants if self._presented[n])
+        self.presented_operants = tuple(filter(self._presented.__getitem__, self._operants))
 
     def _drop_pellet(self) -> None:
         self._delivered += 1
