@@ -377,8 +377,11 @@ class Session(SessionControls):
         cut = cut or trial.cut_reason
         block.record(None if interrupted or cut_outside else trial.correct, trial.pellets)
         ending = self._session_end_due(t)
-        # Every field but iti_s, in TrialRecord's order: the ITI is drawn further down, and
-        # building the record again from these is cheaper than dataclasses.replace.
+        # Every field but iti_s, in TrialRecord's order. The record takes its place in the
+        # stream now, ahead of what the trial causes (estimate, rule firings, session end),
+        # but its ITI is drawn only after the rules ran: observers see it with iti_s 0.0 and
+        # the stream gets it again with the ITI (building it anew from these fields is
+        # cheaper than dataclasses.replace). With no observer it is built once, with the ITI.
         head = (
             trial.index, block.block.name, block.index, trial.type.name, trial.t_start, t,
             trial.choice, trial.response, trial.latency_s, trial.pellets > 0,
@@ -387,9 +390,9 @@ class Session(SessionControls):
             interrupted or cut_outside,
         )  # fmt: skip
         tail = (tuple(trial.steps), trial.counts, trial.first_s, {"cut_by": cut} if cut else {})
-        record = TrialRecord(*head, 0.0, *tail)
+        record = TrialRecord(*head, 0.0, *tail) if interrupted or self.observers else None
         at = len(self._records)
-        self._records.append(record)
+        self._records.append(record)  # None only until filled in below, unseen meanwhile
         if interrupted:
             return
         if self.estimator is not None and trial.offered_choice and not cut_outside:
@@ -405,11 +408,13 @@ class Session(SessionControls):
         nxt = met = None
         if self.block is block:  # no rule switched blocks
             nxt, met = self._block_criterion(block, t)
-            if nxt == END_SESSION:
-                self._end_session(t, f"protocol complete ({block.block.name}: {met})")
-                return
-        ending = ending or self._pending_end
+        if nxt == END_SESSION:
+            ending = f"protocol complete ({block.block.name}: {met})"
+        else:
+            ending = ending or self._pending_end
         if ending is not None:
+            if record is None:
+                self._records[at] = TrialRecord(*head, 0.0, *tail)
             self._end_session(t, ending)
             return
         # Drawn after the rules ran, so an ITI change applies to the interval right after
@@ -518,13 +523,20 @@ class Session(SessionControls):
     # ================================================================ internals: outputs
 
     def _apply(self, actions: OutputPlan | None, t: float) -> None:
-        """Carry out a step's (or the session start's) output actions: off, on, then pulses."""
+        """Carry out a step's (or the session start's) output actions: off, on, then pulses.
+
+        Does what `_switch` does for each output in turn, a group at a time."""
         if actions is None:
             return
-        for name, command in actions.off:
-            self._switch(name, command, t)
-        for name, command in actions.on:
-            self._switch(name, command, t)
+        if actions.switch:
+            active = self.active_outputs
+            active.difference_update(actions.off)
+            active.update(actions.on)
+            self._out += actions.switch
+            if self.log_events:
+                records = self._records
+                records += [EventLogged(t, "output", name, 0.0) for name in actions.off]
+                records += [EventLogged(t, "output", name, 1.0) for name in actions.on]
         for name in actions.pulse:
             self._pulse(name, t)
 

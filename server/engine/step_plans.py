@@ -18,14 +18,15 @@ from server.protocol.wiring import Wiring
 
 
 class OutputPlan:
-    """One OutputActions as ready commands: (name, command) to switch off, then on, then the
-    names to pulse (pulses go through the session's feeder and cap checks)."""
+    """One OutputActions as ready commands: the outputs to switch off, then on, in order, and
+    the names to pulse (pulses go through the session's feeder and cap checks)."""
 
-    __slots__ = ("off", "on", "pulse")
+    __slots__ = ("off", "on", "switch", "pulse")
 
     def __init__(self, actions: OutputActions, commands: dict[str, tuple[SetOutput, SetOutput]]):
-        self.off = tuple((name, commands[name][0]) for name in actions.deactivate)
-        self.on = tuple((name, commands[name][1]) for name in actions.activate)
+        self.off = actions.deactivate
+        self.on = actions.activate
+        self.switch = tuple(commands[name][0] for name in self.off) + tuple(commands[name][1] for name in self.on)
         self.pulse = actions.pulse
 
 
