@@ -69,8 +69,7 @@ class EmulatedBox:
         self._operants = tuple(
             i.name for i in wiring.inputs.values() if i.kind in OPERANT_INPUT_KINDS
         )
-        self.presented_operants: tuple[str, ...] = ()
-        self._refresh_operants()
+        self.presented_operants = tuple(filter(self._presented.__getitem__, self._operants))
 
         # Events carry no per-edge data here, so one frozen instance per edge serves all.
         self._rise = {n: InputEvent(n, True) for n in wiring.inputs}
@@ -106,8 +105,11 @@ class EmulatedBox:
         if kind != _HELD:
             raise ValueError(f"output {name!r} is pulsed, not held")
         active = command.active
-        if self._active[name] != active:
-            self._set_held(name, active)
+        if self._active[name] != active:  # _set_held, inline for lights and tones
+            self._active[name] = active
+            lines = self._presents.get(name)
+            if lines:
+                self._present(lines, active)
 
     def next_time(self) -> float:
         """Time of the earliest pending input event or agent action, math.inf if none.
@@ -254,18 +256,18 @@ class EmulatedBox:
     def _set_held(self, name: str, active: bool) -> None:
         self._active[name] = active
         lines = self._presents.get(name)
-        if not lines:
-            return
-        presented = self._presented
+        if lines:
+            self._present(lines, active)
+
+    def _present(self, lines: tuple[InputLine, ...], presented: bool) -> None:
+        """Inputs made available (or withdrawn) by one held output; then the animal hears of it."""
+        now_presented = self._presented
         for line in lines:
-            presented[line.name] = active
-        self._refresh_operants()
+            now_presented[line.name] = presented
+        self.presented_operants = tuple(filter(now_presented.__getitem__, self._operants))
         on_presented, now = self._agent.on_presented, self._now
         for line in lines:
-            on_presented(now, line, active)
-
-    def _refresh_operants(self) -> None:
-        self.presented_operants = tuple(filter(self._presented.__getitem__, self._operants))
+            on_presented(now, line, presented)
 
     def _drop_pellet(self) -> None:
         self._delivered += 1
