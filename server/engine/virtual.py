@@ -27,25 +27,25 @@ def run_virtual(
 ) -> Session:
     """Run the session to its end in virtual time; returns it for inspection."""
     t = 0.0
-    apply = box.apply
+    apply, next_time, pop_due = box.apply, box.next_time, box.pop_due
+    feed, advance = session.feed, session.advance
     for command in session.start(t):
         apply(command, t)
     while not session.finished:
-        t_box = box.next_time()
+        t_box = next_time()
         t_session = session.next_deadline
         if t_box <= t_session:
-            for t_event, event in box.pop_due(t_box):
-                t = t_event
-                for command in session.feed(event, t):
+            for t, event in pop_due(t_box):
+                for command in feed(event, t):
                     apply(command, t)
                 if session.finished:
                     break
         else:
-            if math.isinf(t_session):  # cannot happen: the time limit is always finite
+            if t_session == math.inf:  # cannot happen: the time limit is always finite
                 session.stop(t, "error: nothing left to happen")
                 break
             t = t_session
-            for command in session.advance(t):
+            for command in advance(t):
                 apply(command, t)
         if on_records is not None:
             records = session.take_records()
