@@ -1,7 +1,8 @@
 """The read side of the JSON API under /api/, live updates and CSV downloads.
 
 Database routes are plain functions, which FastAPI runs on its thread pool, so a long
-query never holds up the lab's loop; the box tiles come from the board's shared snapshot.
+query never holds up the page's loop (and its live streams); the box tiles come from the
+board's shared snapshot.
 """
 
 from __future__ import annotations

@@ -1,8 +1,9 @@
 """The status page's FastAPI app: pages, JSON API, live updates and (with a lab) controls.
 
-The app never talks to a box: it reads the lab's live state and the store through a
-read-only connection, and its controls only queue requests on the lab, which applies them
-in its own loop. `create_app(db, lab=None)` is the read-only app of `vigil serve`.
+The app never talks to a box: it reads the lab's tile feed and the store through a
+read-only connection, and its controls only ask the lab, which applies them in its own loop
+(both over the channel of `page_end.LabView`; the app runs in its own process, see
+`server.web.child`). `create_app(db)` without `live` is the read-only app of `vigil serve`.
 """
 
 from __future__ import annotations
@@ -45,16 +46,16 @@ class WebState:
     store: ReadOnlyStore
     board: Board
     guard: Guard
-    lab: Any
+    live: Any  # a page_end.LabView, or None when read-only
     lab_name: str
     stopping: asyncio.Event = field(default_factory=asyncio.Event)
 
     @property
     def controls_on(self) -> bool:
-        return self.lab is not None
+        return self.live is not None
 
     async def snapshot(self) -> Snapshot:
-        if self.lab is not None:  # lab state lives on this loop: read it here
+        if self.live is not None:  # tiles from the feed in memory: cheap, read here
             return self.board.snapshot()
         return await run_in_threadpool(self.board.snapshot)
 
@@ -102,7 +103,7 @@ class Gate:
                 self.state.guard.check_read(request)
         except Refused as refused:
             response = _refusal(path, refused.status, refused.message, self.state.lab_name,
-                                self.state.lab is None)
+                                self.state.live is None)
             await response(scope, receive, send_with_headers)
             return
         await self.app(scope, receive, send_with_headers)
@@ -111,32 +112,34 @@ class Gate:
 def create_app(
     db_path: str | Path,
     *,
-    lab: Any = None,
+    live: Any = None,
     operator_token: str | None = None,
     viewer_token: str | None = None,
     lab_name: str | None = None,
     quiet_after_s: float = 300.0,
 ) -> FastAPI:
-    """The status page over a database; with `lab`, live tiles and operator controls.
+    """The status page over a database; with `live` (a `page_end.LabView`), live tiles and
+    operator controls.
 
     Raises `StoreError` when the database cannot be read.
     """
     store = ReadOnlyStore(db_path)
-    board = Board(lab=lab, store=None if lab is not None else store, quiet_after_s=quiet_after_s)
+    board = Board(live=None if live is None else live.latest,
+                  store=None if live is not None else store, quiet_after_s=quiet_after_s)
     if lab_name is None:
-        lab_name = getattr(getattr(lab, "config", None), "lab", None) or Path(db_path).name
+        lab_name = Path(db_path).name
     state = WebState(store, board, Guard(operator_token=operator_token,
-                                         viewer_token=viewer_token), lab, lab_name)
+                                         viewer_token=viewer_token), live, lab_name)
     app = FastAPI(title="Vigil status page", version="1",
                   description="Live status of a Vigil lab: boxes, sessions, animals.",
                   docs_url=None, redoc_url=None, openapi_url="/api/openapi.json")
     app.state.vigil = state
     app.include_router(api_router(state))
-    if lab is not None:
+    if live is not None:
         app.include_router(controls_router(state))
     app.include_router(pages_router(state))
     app.mount("/assets", StaticFiles(directory=ASSETS), name="assets")
-    read_only = lab is None
+    read_only = live is None
 
     @app.exception_handler(Refused)
     async def refused(request: Request, exc: Refused) -> Response:

@@ -1,8 +1,9 @@
 """The overview's data, computed at most a few times a second and shared by every client.
 
-Twenty browsers polling must not mean twenty walks over the lab: a snapshot is rebuilt
-only when the last one is older than `ttl_s`, and its JSON (and any page rendered from it)
-is reused until then. The lab's own loop runs this code, so it stays cheap.
+Twenty browsers polling must not mean twenty renderings: a snapshot is rebuilt only when
+the last one is older than `ttl_s`, and its JSON (and any page rendered from it) is reused
+until then. Live tiles come from the lab's latest feed (`page_end.LatestFeed`), read-only
+tiles from the store.
 """
 
 from __future__ import annotations
@@ -18,7 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from server.store import queries
-from server.web.tiles import shown, tile_from_run, tile_from_store
+from server.web.tiles import shown, tile_from_store
 
 
 class ReadOnlyStore:
@@ -70,16 +71,16 @@ class Board:
     def __init__(
         self,
         *,
-        lab: Any = None,
+        live: Any = None,
         store: ReadOnlyStore | None = None,
         quiet_after_s: float = 300.0,
         ttl_s: float = 0.25,
         clock: Callable[[], float] = time.monotonic,
         wall_clock: Callable[[], datetime] = lambda: datetime.now().astimezone(),
     ):
-        if lab is None and store is None:
-            raise ValueError("a board needs a lab or a store")
-        self.lab = lab
+        if live is None and store is None:
+            raise ValueError("a board needs a live feed or a store")
+        self.live = live
         self.store = store
         self.quiet_after_s = quiet_after_s
         self.ttl_s = ttl_s
@@ -102,8 +103,8 @@ class Board:
             return snap
 
     def _tiles(self, wall: datetime) -> list[dict[str, Any]]:
-        if self.lab is not None:
-            return [tile_from_run(run, self.quiet_after_s) for run in self.lab.runs]
+        if self.live is not None:
+            return self.live.tiles(self.quiet_after_s)
         assert self.store is not None
         conn = self.store.conn()
         tiles = []

@@ -1,9 +1,11 @@
 """Operator controls: pause, resume, stop and annotate a running box's session.
 
-Only mounted when the app serves a running lab. Every route is POST, checks the operator
-token, and records who acted: pause and resume land in the events table with their origin,
-a stop in the session's end reason, a note in the annotations table. These routes run on
-the lab's loop (the session queue and the store's writer belong to it).
+Only mounted when the app serves a running lab. Every route is POST and checks the operator
+token here, in the page's process; then the lab is asked over the channel and applies the
+action in its own loop (`lab_end.answer`), recording who acted: pause and resume land in the
+events table with their origin, a stop in the session's end reason, a note in the
+annotations table. The lab's answer becomes the HTTP status: 404 not running, 409 refused,
+422 a bad note, 503 the store failed or the lab did not answer.
 """
 
 from __future__ import annotations
@@ -13,11 +15,11 @@ from typing import Any
 from fastapi import APIRouter, HTTPException, Request
 from fastapi.responses import RedirectResponse
 
-from server.store.errors import StoreError
 from server.web.auth import Refused, form_fields, supplied_token
+from server.web.lab_end import ACTIONS
+from server.web.page_end import LabGone
 from server.web.schemas import ActionOut, NoteIn, NoteOut
 
-ACTIONS = ("pause", "resume", "stop")
 DONE = {"pause": "paused", "resume": "resumed", "stop": "stopped", "annotate": "noted"}
 
 
@@ -26,38 +28,21 @@ def origin_of(request: Request) -> str:
     return client.host if client is not None else "unknown"
 
 
-def _run_of(lab: Any, session_id: int) -> Any:
-    for run in lab.runs:
-        if run.session_id == session_id:
-            return run
-    raise HTTPException(404, f"session {session_id} is not running in this lab")
-
-
-def _act(lab: Any, session_id: int, action: str, origin: str) -> Any:
-    run = _run_of(lab, session_id)
+async def _ask(live: Any, op: str, session_id: int, origin: str,
+               text: str | None = None) -> dict[str, Any]:
+    """The lab's answer to one control; an HTTP error unless it was done."""
     try:
-        lab.control(run.config.name, action, origin)
-    except ValueError as exc:
-        raise HTTPException(409, str(exc)) from None
-    return run
-
-
-def _annotate(lab: Any, session_id: int, text: str, origin: str) -> int:
-    run = _run_of(lab, session_id)
-    text = text.strip()
-    if not text:
-        raise HTTPException(422, "a note needs some text")
-    if len(text) > 2000:
-        raise HTTPException(422, "a note is limited to 2000 characters")
-    try:
-        return lab.annotate(run.config.name, text, origin)
-    except StoreError as exc:
-        raise HTTPException(503, f"note not stored: {exc}") from None
+        reply = await live.ask(op, session_id, origin, text)
+    except LabGone as exc:
+        raise HTTPException(503, str(exc)) from None
+    if reply["status"] >= 300:
+        raise HTTPException(reply["status"], reply.get("detail") or "refused by the lab")
+    return reply
 
 
 def controls_router(state: Any) -> APIRouter:
     router = APIRouter(tags=["controls"])
-    lab = state.lab
+    live = state.live
 
     async def operator(request: Request) -> str:
         state.guard.check_operator(await supplied_token(request))
@@ -66,8 +51,8 @@ def controls_router(state: Any) -> APIRouter:
     def action_route(action: str):
         async def route(session_id: int, request: Request) -> dict[str, Any]:
             origin = await operator(request)
-            run = _act(lab, session_id, action, origin)
-            return {"session_id": session_id, "box": run.config.name, "action": action,
+            reply = await _ask(live, action, session_id, origin)
+            return {"session_id": session_id, "box": reply["box"], "action": action,
                     "origin": origin}
 
         route.__name__ = f"{action}_session"
@@ -84,8 +69,8 @@ def controls_router(state: Any) -> APIRouter:
                  status_code=201, summary="Store a note on a session (operator token required)")
     async def annotate(session_id: int, note: NoteIn, request: Request) -> dict[str, Any]:
         origin = await operator(request)
-        note_id = _annotate(lab, session_id, note.text, origin)
-        return {"id": note_id, "session_id": session_id, "origin": origin}
+        reply = await _ask(live, "annotate", session_id, origin, note.text)
+        return {"id": reply["note_id"], "session_id": session_id, "origin": origin}
 
     @router.post("/sessions/{session_id}/control", include_in_schema=False)
     async def form_control(session_id: int, request: Request) -> RedirectResponse:
@@ -94,9 +79,9 @@ def controls_router(state: Any) -> APIRouter:
         form = await form_fields(request)
         action = form.get("action")
         if action in ACTIONS:
-            _act(lab, session_id, str(action), origin)
+            await _ask(live, str(action), session_id, origin)
         elif action == "annotate":
-            _annotate(lab, session_id, str(form.get("text") or ""), origin)
+            await _ask(live, "annotate", session_id, origin, str(form.get("text") or ""))
         else:
             raise Refused(400, "unknown action")
         return RedirectResponse(f"/sessions/{session_id}?done={DONE[str(action)]}",

@@ -1,5 +1,5 @@
-"""Starting the status page for the `vigil` verbs: beside a running lab, or alone over a
-database (`vigil serve`, read-only)."""
+"""Starting the status page for the `vigil` verbs: beside a running lab (in a process of its
+own), or alone over a database (`vigil serve`, read-only, in this process)."""
 
 from __future__ import annotations
 
@@ -14,6 +14,7 @@ from typing import Any
 from server.lab_config import WebSettings, is_loopback
 from server.store.errors import StoreError
 from server.web.app import create_app
+from server.web.page_process import PageProcess, start_page
 from server.web.serving import StatusServer, WebError
 
 VIEWER_TOKEN_ENV = "VIGIL_VIEWER_TOKEN"  # `vigil serve`: a token on the command line would show in ps
@@ -32,34 +33,30 @@ async def run_lab_with_page(
     port: int | None = None,
     say: Callable[[str], None] = _say,
 ) -> list:
-    """Run the lab with its status page on the same loop; returns the lab's runs.
+    """Run the lab with its status page in a process of its own; returns the lab's runs.
 
     Without an operator token in the config, one is drawn for this run and printed. A page
     that cannot start (a busy port) is reported and the sessions run without it: the
-    animals are already in the boxes.
+    animals are already in the boxes. The page's process ends with the lab.
     """
     token = web.operator_token or secrets.token_urlsafe(18)
     try:
-        app = create_app(db_path, lab=lab, operator_token=token, viewer_token=web.viewer_token,
-                         quiet_after_s=web.no_response_minutes * 60.0)
-        server: StatusServer | None = StatusServer(app, web.host, web.port if port is None else port)
+        page: PageProcess | None = await start_page(
+            lab, db_path, host=web.host, port=web.port if port is None else port,
+            operator_token=token, viewer_token=web.viewer_token, lab_name=lab.config.lab,
+            quiet_after_s=web.no_response_minutes * 60.0, say=say)
     except (WebError, StoreError) as exc:
         say(f"warning: status page not started: {exc}")
-        server = None
-    task = None
-    if server is not None:
-        say(f"status page: {server.url}")
+        page = None
+    if page is not None:
+        say(f"status page: {page.url}")
         if web.operator_token is None:
             say(f"operator token for this run (pause, stop, notes): {token}")
-        task = asyncio.create_task(server.serve())
-        task.add_done_callback(lambda t: t.cancelled() or t.exception() is None or say(
-            f"warning: status page stopped: {t.exception()}"))
     try:
         return await lab.run(minutes)
     finally:
-        if server is not None and task is not None:
-            server.stop()
-            await asyncio.gather(task, return_exceptions=True)
+        if page is not None:
+            await page.close()
 
 
 def serve_store(db_path: str | Path, *, host: str, port: int,

@@ -96,8 +96,8 @@ def _tile_template(slot) -> Safe:
     )
 
 
-# Built once: an overview of 32 tiles is rendered several times a second under load, in the
-# lab's own loop, so a tile is a fill of this template rather than a fresh tree of elements.
+# Built once: an overview of 32 tiles is rendered several times a second under load, so a
+# tile is a fill of this template rather than a fresh tree of elements.
 TILE = Template(_tile_template)
 
 

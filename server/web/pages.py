@@ -34,7 +34,7 @@ def login_body(message: str | None = None) -> Any:
 
 def pages_router(state: Any) -> APIRouter:
     router = APIRouter(include_in_schema=False)
-    read_only = state.lab is None
+    read_only = state.live is None
 
     def html(title: str, body: Any, cls: str, status: int = 200) -> HTMLResponse:
         return HTMLResponse(page(title, body, lab_name=state.lab_name, body_class=cls,
@@ -65,8 +65,8 @@ def pages_router(state: Any) -> APIRouter:
     @router.get("/sessions/{session_id}")
     def session(session_id: int, done: str | None = None) -> HTMLResponse:
         found = _session(session_id)
-        controllable = state.controls_on and found["end_reason"] is None and any(
-            run.session_id == session_id for run in state.lab.runs)
+        controllable = (state.controls_on and found["end_reason"] is None
+                        and session_id in state.live.latest.running_sessions())
         body = session_page.session_body(state.store.conn(), found, controllable=controllable,
                                          notice=NOTICES.get(done or ""))
         return html(f"Session {session_id}", body, "pg-session")

@@ -1,9 +1,10 @@
-"""Serving the status page with uvicorn on the caller's asyncio loop, beside the lab.
+"""Serving the status page with uvicorn on the caller's asyncio loop: in the page's own
+process beside a lab (`server.web.child`), or alone for `vigil serve`.
 
 uvicorn installs its own SIGINT/SIGTERM handlers while it serves; here they are switched
-off so the lab's handlers (which end every session safely) stay in charge, and the
-server stops when told to (DESIGN.md, "uvicorn in our loop"). The socket is bound before
-anything starts, so a busy port is a one-line error rather than an exit from inside uvicorn.
+off so the caller's handlers stay in charge, and the server stops when told to (DESIGN.md,
+"uvicorn in our loop"). The socket is bound before anything starts (by the lab, for the
+page's process), so a busy port is a one-line error rather than an exit from inside uvicorn.
 """
 
 from __future__ import annotations
@@ -38,8 +39,11 @@ def bind_socket(host: str, port: int) -> socket.socket:
         why = "the port is already in use" if exc.errno == errno.EADDRINUSE else (
             exc.strerror or str(exc)).lower()
         raise WebError(f"cannot listen on {host}:{port}: {why}") from None
-    sock.set_inheritable(True)
     return sock
+
+
+def url_of(host: str, port: int) -> str:
+    return f"http://[{host}]:{port}/" if ":" in host else f"http://{host}:{port}/"
 
 
 class _KeepOurSignals(uvicorn.Server):
@@ -66,8 +70,7 @@ class StatusServer:
 
     @property
     def url(self) -> str:
-        host = f"[{self.host}]" if ":" in self.host else self.host
-        return f"http://{host}:{self.port}/"
+        return url_of(self.host, self.port)
 
     @property
     def started(self) -> bool:

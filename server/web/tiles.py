@@ -85,38 +85,65 @@ def _tile(**fields: Any) -> dict[str, Any]:
 # ---------------------------------------------------------------- from the live lab
 
 
-def tile_from_run(run: Any, quiet_after_s: float) -> dict[str, Any]:
-    """A tile from a `server.lab.BoxRun` (read only; session times in session seconds)."""
+def facts_of_run(run: Any) -> dict[str, Any]:
+    """What a tile needs from a `server.lab.BoxRun`, as plain JSON-ready data (read only).
+
+    Read on the lab's loop and sent to the page's process, so it holds no clock reading
+    of its own: times are session seconds, and "now" travels beside the facts (see
+    `tile_from_facts`). Equal facts mean an unchanged tile, which is what lets the lab
+    skip sending a feed when nothing happened.
+    """
     session = run.session
     finished = session.finished
-    now = session.ended_at if finished and session.ended_at is not None else (
-        run.live.clock() if run.live is not None else 0.0)
-    paused = session.paused and not finished
-    connected = getattr(run.link, "connected", True)
-    link_lost = bool(run.link_lost or not connected)
-    since_input = None if run.last_input_t is None else max(0.0, now - run.last_input_t)
-    limit_s = session.limits.max_minutes * 60.0
     rule = run.last_rule
     alarm = getattr(run, "last_alarm", None)
-    block = session.block.block.name if session.block is not None else None
+    connected = getattr(run.link, "connected", True)
+    return {
+        "box": run.config.name, "animal": run.config.animal, "protocol": session.protocol.name,
+        "session_id": run.session_id, "finished": finished,
+        "ended_at": session.ended_at if finished else None,
+        "paused": session.paused and not finished,
+        "block": session.block.block.name if session.block is not None else None,
+        "step": None if finished else session.step_name,
+        "trial": session.trial_index, "trials_done": session.trials_done,
+        "rewards": session.rewards, "scored": run.scored, "correct": run.correct,
+        "limit_s": session.limits.max_minutes * 60.0,
+        "last_input_t": run.last_input_t,
+        "link_lost": bool(run.link_lost or not connected),
+        "last_rule": None if rule is None else {"t": rule.t,
+                                                "text": rule_text(rule.rule, rule.actions)},
+        "end_reason": session.end_reason, "cap_reached": run.cap_reached,
+        "rule_alarm": None if alarm is None else _alarm_message(alarm.detail),
+    }
+
+
+def tile_from_facts(facts: dict[str, Any], now: float, quiet_after_s: float) -> dict[str, Any]:
+    """A live tile from `facts_of_run` at session time `now` (ignored once the session has
+    ended: its tile stops at the end)."""
+    finished = facts["finished"]
+    if finished and facts["ended_at"] is not None:
+        now = facts["ended_at"]
+    paused = facts["paused"]
+    last_input = facts["last_input_t"]
+    since_input = None if last_input is None else max(0.0, now - last_input)
+    scored = facts["scored"]
     return _tile(
-        box=run.config.name, animal=run.config.animal, protocol=session.protocol.name,
-        session_id=run.session_id, live=True,
+        box=facts["box"], animal=facts["animal"], protocol=facts["protocol"],
+        session_id=facts["session_id"], live=True,
         state="ended" if finished else ("paused" if paused else "running"),
-        block=block, step=None if finished else session.step_name,
-        trial=session.trial_index, trials_done=session.trials_done, rewards=session.rewards,
-        accuracy=(run.correct / run.scored) if run.scored else None,
-        elapsed_s=now, remaining_s=None if finished else max(0.0, limit_s - now),
+        block=facts["block"], step=facts["step"],
+        trial=facts["trial"], trials_done=facts["trials_done"], rewards=facts["rewards"],
+        accuracy=(facts["correct"] / scored) if scored else None,
+        elapsed_s=now, remaining_s=None if finished else max(0.0, facts["limit_s"] - now),
         since_input_s=since_input,
-        link="lost" if link_lost else "up",
-        last_rule=None if rule is None else {"t": rule.t, "text": rule_text(rule.rule, rule.actions)},
-        end_reason=session.end_reason,
+        link="lost" if facts["link_lost"] else "up",
+        last_rule=facts["last_rule"],
+        end_reason=facts["end_reason"],
         alarms=alarms_for(
-            running=not finished, paused=paused, link_lost=link_lost,
+            running=not finished, paused=paused, link_lost=facts["link_lost"],
             silent_s=since_input if since_input is not None else now,
-            cap_reached=run.cap_reached, end_reason=session.end_reason,
-            quiet_after_s=quiet_after_s,
-            rule_alarm=None if alarm is None else _alarm_message(alarm.detail),
+            cap_reached=facts["cap_reached"], end_reason=facts["end_reason"],
+            quiet_after_s=quiet_after_s, rule_alarm=facts["rule_alarm"],
         ),
     )
 

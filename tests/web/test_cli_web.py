@@ -9,7 +9,9 @@ import time
 import urllib.error
 import urllib.request
 
-from processes import Vigil
+import pytest
+
+from processes import Vigil, page_process_of, wait_exited
 
 
 def _get(url: str) -> tuple[int, str]:
@@ -39,9 +41,13 @@ def test_demo_prints_its_url_and_token_and_keeps_its_own_ctrl_c(tmp_path):
         assert json.loads(body)[0]["box"] == "rack-1"
         status, _ = _get(url + "api/boxes?token=" + token)
         assert status == 400
+        page = page_process_of(demo.proc.pid)  # the page is served by a process of its own
         code = demo.finish(signal.SIGINT)
+        wait_exited(page)  # and it ends with the lab
     finally:
         demo.kill()
+    with pytest.raises(urllib.error.URLError):
+        urllib.request.urlopen(url, timeout=5)
     # Ctrl-C reached the lab, not the web server: the session ended cleanly and was recorded
     assert code == 0, demo.lines
     assert any("stopped by signal (SIGINT)" in line for line in demo.lines), demo.lines

@@ -1,60 +1,41 @@
-"""The status page beside a running lab: live tiles, operator controls and what they store,
-served in the lab's own loop. Emulated boxes run in process (virtual animals in real time)."""
+"""The status page beside a running lab: live tiles, operator controls and what they store.
+
+Lab and app share this test's loop here, joined by the real channel (a socketpair, the same
+code as between the lab and the page's own process), so every request can be checked
+against the lab's state; tests/web/test_page_process.py runs the page in its process.
+Emulated boxes run in process (virtual animals in real time)."""
 
 from __future__ import annotations
 
 import asyncio
 import json
-import signal
+import socket
 import sqlite3
-import time
 from pathlib import Path
 
 import httpx
-import pytest
 
 from server.lab import Lab
 from server.lab_config import load_lab
 from server.store.writer import Store
-from server.web import StatusServer, create_app
+from server.web import create_app
+from server.web.lab_end import FeedBuilder, open_lab_end
+from server.web.page_end import open_lab_view
 
-from web_samples import EVIL_BOX, OPERATOR, REPO
+from web_samples import EVIL_BOX, OPERATOR, lab_config, until as _until, until_tile
 
 CLIENT = ("10.9.8.7", 40000)  # where the test's requests come from (the stored origin)
-
-
-def lab_config(tmp_path: Path) -> Path:
-    """Two boxes of our own: a lever-training rat (many quick trials) and a reversal rat."""
-    path = tmp_path / "lab.yaml"
-    path.write_text(f"""
-lab: Bench rig 5
-caps: {{max_rewards: 250, max_minutes: 30}}
-boxes:
-  - name: {json.dumps(EVIL_BOX)}
-    animal: LT-0031
-    protocol: {REPO / 'protocols' / 'lever_training_devaluation.yaml'}
-    emulate: {{agent: random, seed: 77}}
-  - name: rig-5b
-    animal: RV-0032
-    protocol: {REPO / 'protocols' / 'reversal.yaml'}
-    emulate: {{agent: q_learner, seed: 78, options: {{alpha: 0.3, beta: 5.0}}}}
-""", encoding="utf-8")
-    return path
-
-
-async def _until(check, timeout: float = 20.0, every: float = 0.05):
-    deadline = time.monotonic() + timeout
-    while not check():
-        if time.monotonic() > deadline:
-            raise AssertionError("timed out waiting for the lab")
-        await asyncio.sleep(every)
 
 
 async def run_with_lab(tmp_path: Path, body) -> Path:
     db = tmp_path / "live.sqlite"
     store = Store.open(db)
     lab = Lab(load_lab(lab_config(tmp_path)), store, say=lambda text: None, in_process_boxes=True)
-    app = create_app(db, lab=lab, operator_token=OPERATOR)
+    lab_sock, page_sock = socket.socketpair()
+    end = await open_lab_end(lab, lab_sock)
+    view = await open_lab_view(page_sock)
+    channel = [asyncio.create_task(end.run()), asyncio.create_task(view.run())]
+    app = create_app(db, live=view, operator_token=OPERATOR)
     task = asyncio.create_task(lab.run(minutes=3))
     try:
         await _until(lambda: len(lab.runs) == 2)
@@ -62,7 +43,13 @@ async def run_with_lab(tmp_path: Path, body) -> Path:
     finally:
         lab.stop_all("test over")
         await asyncio.wait_for(task, 15)
+        end.close()
+        await asyncio.wait_for(asyncio.gather(*channel), 5)  # the page's end reads EOF
+        assert view.closed.is_set()
         store.close()
+    # once every session has ended nothing changes: the lab sends one last feed, then none
+    feed = FeedBuilder(lab)
+    assert b'"finished":true' in (feed.line() or b"") and feed.line() is None
     return db
 
 
@@ -84,8 +71,7 @@ def test_live_tiles_and_operator_controls(tmp_path):
         await _until(lambda: run.session.trials_done >= 2)
         transport = httpx.ASGITransport(app=app, client=CLIENT)
         async with httpx.AsyncClient(transport=transport, base_url="http://vigil.test") as web:
-            tiles = (await web.get("/api/boxes")).json()
-            tile = next(t for t in tiles if t["session_id"] == sid)
+            tile = await until_tile(web, sid, lambda t: t["trials_done"] >= 2)
             assert tile["box"] == EVIL_BOX and tile["animal"] == "LT-0031"
             assert tile["live"] and tile["state"] == "running" and tile["link"] == "up"
             assert 2 <= tile["trials_done"] <= run.session.trials_done
@@ -106,9 +92,7 @@ def test_live_tiles_and_operator_controls(tmp_path):
             assert done.json() == {"session_id": sid, "box": EVIL_BOX, "action": "pause",
                                    "origin": CLIENT[0]}
             await _until(lambda: run.session.paused)
-            await asyncio.sleep(0.3)  # the board's snapshot lives 0.25 s
-            tile = next(t for t in (await web.get("/api/boxes")).json() if t["session_id"] == sid)
-            assert tile["state"] == "paused"
+            await until_tile(web, sid, lambda t: t["state"] == "paused")
             page = (await web.get(f"/sessions/{sid}")).text
             assert f'action="/sessions/{sid}/control"' in page  # the form, for a running session
 
@@ -157,30 +141,3 @@ def test_live_tiles_and_operator_controls(tmp_path):
     assert notes[0][0] == sid and notes[0][1] is not None and notes[0][1] > 0
     assert notes[0][2:4] == (CLIENT[0], "rat groomed at the lever for a minute")
     assert ended == seen["reason"]
-
-
-def test_page_beside_the_lab_over_tcp_keeps_the_lab_signal_handlers(tmp_path):
-    async def body(app, lab):
-        server = StatusServer(app, "127.0.0.1", 0)
-        serving = asyncio.create_task(server.serve())
-        await _until(lambda: server.started)
-        # uvicorn did not take SIGINT over: the lab's handler (installed by Lab.run) stays
-        handler = signal.getsignal(signal.SIGINT)
-        assert getattr(handler, "__self__", None) is not server._server
-        async with httpx.AsyncClient(base_url=server.url, timeout=10) as web:
-            overview = await web.get("/")
-            assert overview.status_code == 200 and overview.text.count('class="tile"') == 2
-            async with web.stream("GET", "/api/live") as stream:
-                async for line in stream.aiter_lines():
-                    if line.startswith("data:"):
-                        board = json.loads(line[5:])
-                        break
-            assert board["boxes"] == [EVIL_BOX, "rig-5b"]
-            # shutting down with a live stream open still ends promptly
-            async with web.stream("GET", "/api/live"):
-                started = time.monotonic()
-                server.stop()
-                await asyncio.wait_for(serving, 10)
-                assert time.monotonic() - started < 6
-
-    asyncio.run(run_with_lab(tmp_path, body))

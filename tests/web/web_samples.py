@@ -1,9 +1,12 @@
 """A stored lab of our own for the status page tests: sessions run in virtual time on
 emulated boxes with virtual animals, closed loop (the session's own estimator and rules),
-written by the real store."""
+written by the real store; and a live lab's config, with waits for what it shows."""
 
 from __future__ import annotations
 
+import asyncio
+import json
+import time
 import warnings
 from pathlib import Path
 
@@ -67,3 +70,50 @@ def record_session(store: Store, *, box: str, animal: str, protocol_path: Path, 
     run_virtual(session, box_, on_records)
     store.flush()
     return sid
+
+
+# ---------------------------------------------------------------- a live lab
+
+
+def lab_config(tmp_path: Path) -> Path:
+    """Two boxes of our own: a lever-training rat (many quick trials) and a reversal rat."""
+    path = tmp_path / "lab.yaml"
+    path.write_text(f"""
+lab: Bench rig 5
+caps: {{max_rewards: 250, max_minutes: 30}}
+boxes:
+  - name: {json.dumps(EVIL_BOX)}
+    animal: LT-0031
+    protocol: {REPO / 'protocols' / 'lever_training_devaluation.yaml'}
+    emulate: {{agent: random, seed: 77}}
+  - name: rig-5b
+    animal: RV-0032
+    protocol: {REPO / 'protocols' / 'reversal.yaml'}
+    emulate: {{agent: q_learner, seed: 78, options: {{alpha: 0.3, beta: 5.0}}}}
+""", encoding="utf-8")
+    return path
+
+
+async def until(check, timeout: float = 20.0, every: float = 0.05):
+    deadline = time.monotonic() + timeout
+    while not check():
+        if time.monotonic() > deadline:
+            raise AssertionError("timed out waiting for the lab")
+        await asyncio.sleep(every)
+
+
+async def tile_of(web, session_id: int) -> dict:
+    """The session's tile from GET /api/boxes (`web`: an httpx.AsyncClient)."""
+    return next(t for t in (await web.get("/api/boxes")).json() if t["session_id"] == session_id)
+
+
+async def until_tile(web, session_id: int, check, timeout: float = 20.0) -> dict:
+    """The session's tile once `check(tile)` holds (the feed and the board's cache lag a
+    little behind the lab)."""
+    deadline = time.monotonic() + timeout
+    while True:
+        tile = await tile_of(web, session_id)
+        if check(tile):
+            return tile
+        assert time.monotonic() < deadline, f"tile never matched: {tile}"
+        await asyncio.sleep(0.05)
