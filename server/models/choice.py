@@ -8,7 +8,9 @@ innermost axis and fast across whole blocks.
 - `learn(theta, q, chosen, reward) -> (q_new, delta)`: the trial's value update. `chosen`
   is one-hot over options (all zeros on an omission, which leaves `q` unchanged).
 - `drive(theta, q, previous) -> logits`: the softmax input; `previous` is the one-hot of
-  the last non-omitted choice in the session (all zeros at session start).
+  the last non-omitted choice in the session (all zeros at session start). It must be
+  linear in `q` and `previous` together (every rule here is): the online estimator takes
+  the logit gap of two options as the drive of their differences.
 
 The online estimator and the offline fit both call these same functions, which is why
 replaying stored trials reproduces the online result exactly. Parameter values in

@@ -3,9 +3,15 @@
 An exact Bayesian filter on a parameter grid: after each choice every grid point's weight
 is multiplied by the probability that point gave the choice, then every point's values
 are updated by the model's own `learn`, the same function the offline fit uses. Exact
-for static parameters, honest about uncertainty, and cheap enough (well under a
-millisecond) to run inside the session after every trial. Optionally the posterior over
-log beta diffuses between trials, so a drift in engagement (satiety, fatigue) is tracked.
+for static parameters, honest about uncertainty, and cheap enough (tens of microseconds)
+to run inside the session after every trial. Optionally log beta drifts between trials
+(`drift.BetaWalk`), so a change in engagement (satiety, fatigue) is tracked.
+
+Weights are kept linear, normalised and floored (not as logs): a trial then costs a few
+passes over the grid, which matters when a rehearsal runs a million trials. Two options
+(the common case) take a shortcut: the choice probability is a logistic function of the
+logit difference, which for the linear drives of `choice` is the drive of the value
+differences, so one exponential per grid point is all a trial needs.
 
 Per-animal state is plain JSON (`state_dict` / `from_state`); the next session starts from
 the last posterior, broadened by tempering, and `replay` rebuilds it bit for bit from the
@@ -21,10 +27,13 @@ from typing import Any, Iterable, Mapping, Sequence
 import numpy as np
 
 from .choice import get_choice_model
-from .grid import build_grid, drift_kernel
+from .drift import beta_walk
+from .grid import build_grid
 
-STATE_FORMAT = 1
-LOG_FLOOR = -1000.0  # weights below e^-1000 of the best are zero in double precision
+STATE_FORMAT = 2
+# No weight falls below this: arithmetic stays out of slow subnormal numbers, and a grid
+# point ruled out early can still come back if the animal changes.
+WEIGHT_FLOOR = 1e-280
 _TIE = 1e-12
 
 
@@ -75,12 +84,12 @@ class Estimate:
         }
 
 
-def _normalise(logw: np.ndarray) -> tuple[np.ndarray, np.ndarray, float]:
-    """Normalised log weights (floored), the weights themselves, and the log normaliser."""
+def _weights_from_logs(logw: np.ndarray) -> np.ndarray:
+    """Normalised, floored weights from unnormalised log weights (a log-sum-exp round trip)."""
     top = float(logw.max())
-    lse = top + math.log(float(np.exp(logw - top).sum()))
-    out = np.maximum(logw - lse, LOG_FLOOR)
-    return out, np.exp(out), lse  # weights always exp(log weights): state is logw alone
+    w = np.exp(logw - top)
+    w *= 1.0 / float(w.sum())
+    return np.maximum(w, WEIGHT_FLOOR, out=w)
 
 
 class OnlineEstimator:
@@ -115,23 +124,29 @@ class OnlineEstimator:
             "reward_rate_step": float(reward_rate_step), "use_prior": bool(use_prior),
         }
         self.grid = build_grid(self.model, grid, use_prior)
-        self._kernel = drift_kernel(self.grid, drift)
-        self._beta_axis = self.grid.axis_of("beta")
+        self._walk = beta_walk(self.grid, drift)
         self._choice_axes = self.grid.choice_axes
         self.options: list[str] = list(options)
         self._index = {lab: i for i, lab in enumerate(self.options)}
-        self._logw = self.grid.log_prior.copy()
-        self._w = np.exp(self._logw)  # always exp(self._logw)
+        self._w = _weights_from_logs(self.grid.log_prior)
+        self._scratch = np.empty(self.grid.sizes)  # weights x likelihood, then swapped in
+        self._work = np.empty(self.grid.sizes)
         self._q = np.full((len(self.options),) + self.grid.qshape, self.config["q0"])
         self._ones = (1,) * len(self.grid.qshape)
         self._previous: int | None = None
         self._session_trial = 0
         self._rate_sum = 0.0  # bias-corrected exponential filter (numerator)
         self._rate_norm = 0.0
+        self._delta: np.ndarray | None = None  # last trial's errors, until the PE is asked for
         self._last_pe: float | None = None
         self._last_surprise: float | None = None
-        self._p: np.ndarray | None = None  # next trial's choice probabilities per point
-        self._shifted = self._log_norm = None
+        self._hots: list[np.ndarray] | None = None
+        self._forget()
+
+    def _forget(self) -> None:
+        """Drop what was derived from the values (they changed)."""
+        self._gap = None  # two options: logit(second) - logit(first) per point
+        self._p = None  # choice probabilities per option and point
 
     # ------------------------------------------------------------------ trial by trial
 
@@ -144,15 +159,19 @@ class OnlineEstimator:
         if not math.isfinite(reward):
             raise ValueError(f"reward must be a finite number, got {reward!r}")
         if choice is None or choice == "":
-            self._last_pe = self._last_surprise = None
+            self._delta = self._last_pe = self._last_surprise = None
+            self._settle(self._w, 1.0)
         else:
-            self._choose(self._option(choice), reward)
+            idx = self._option(choice)
+            weighted = self._scratch
+            log_predictive, scale = self._weigh(idx, weighted)
+            self._last_surprise = -log_predictive
+            self._learn(idx, reward)
+            self._settle(weighted, scale)
         step = self.config["reward_rate_step"]
         self._rate_sum = (1 - step) * self._rate_sum + step * reward
         self._rate_norm = (1 - step) * self._rate_norm + step
         self._session_trial += 1
-        if self._kernel is not None:
-            self._diffuse()
         return self.estimate() if summarise else None
 
     def _option(self, label: str) -> int:
@@ -164,54 +183,101 @@ class OnlineEstimator:
             self.options.append(label)
             pad = np.full((1,) + self._q.shape[1:], self.config["q0"])
             self._q = np.concatenate([self._q, pad], axis=0)
-            self._p = None
+            self._forget()
         return idx
 
-    def _choose(self, idx: int, reward: float) -> None:
-        self._log_probs()
-        lp = self._shifted[idx] - self._log_norm
-        joint = self._logw + lp
-        self._logw, self._w, log_pred = _normalise(joint)
-        self._last_surprise = -log_pred
+    def _weigh(self, idx: int, out: np.ndarray) -> tuple[float, float]:
+        """out = weights x P(choice idx) per point, up to a constant; returns the log
+        predictive probability of the choice and the factor that normalises `out`."""
+        k = len(self.options)
+        if k == 1:
+            np.copyto(out, self._w)
+        elif k == 2:
+            # P(second) = 1 / (1 + exp(-gap)), P(first) = 1 / (1 + exp(gap))
+            work = self._work
+            gap = self._logit_gap()
+            with np.errstate(over="ignore"):  # exp -> inf gives probability 0, as it should
+                np.exp(gap if idx == 0 else np.negative(gap, out=work), out=work)
+            work += 1.0
+            np.divide(self._w, work, out=out)
+        else:
+            np.multiply(self._w, self._probs()[idx], out=out)
+        total = float(out.sum())
+        if total > 0.0:
+            return math.log(total), 1.0 / total
+        # every point all but excluded the choice (probabilities underflowed): redo in logs
+        logits = self._logits()
+        top = logits.max(0)
+        log_p = logits[idx] - top - np.log(np.exp(logits - top).sum(0))
+        joint = np.log(self._w) + log_p
+        best = float(joint.max())
+        np.exp(joint - best, out=out)
+        total = float(out.sum())
+        return math.log(total) + best, 1.0 / total
+
+    def _learn(self, idx: int, reward: float) -> None:
         chosen = self._one_hot(idx)
-        self._q, delta = self.model.learn(self.grid.theta, self._q, chosen, reward)
-        w_learn = self._w.sum(axis=self._choice_axes, keepdims=True)
-        self._last_pe = float((w_learn * delta).sum())
+        self._q, self._delta = self.model.learn(self.grid.theta, self._q, chosen, reward)
+        self._last_pe = None  # summarised from _delta only when asked for
         self._previous = idx
-        self._p = None
+        self._forget()
 
-    def _log_probs(self) -> None:
-        """Softmax for the next trial at every grid point (cached until values change).
+    def _settle(self, weighted: np.ndarray, scale: float) -> None:
+        """The new weights: `weighted` times `scale`, moved by the drift, floored."""
+        if self._walk is not None:
+            target = self._scratch if weighted is self._w else self._w
+            self._walk.apply(weighted, target, scale)
+            if target is self._scratch:
+                self._w, self._scratch = target, self._w
+        elif weighted is not self._w or scale != 1.0:
+            np.multiply(weighted, scale, out=self._w)
+        np.maximum(self._w, WEIGHT_FLOOR, out=self._w)
 
-        Kept as shifted logits and log normaliser, so log P of one option costs one
-        subtraction and never underflows.
+    def _logits(self) -> np.ndarray:
+        return self.model.drive(self.grid.theta, self._q, self._one_hot(self._previous))
+
+    def _logit_gap(self) -> np.ndarray:
+        """Two options: logit(second) - logit(first) at every grid point, for the next trial.
+
+        Drives are linear in values and previous choice (a contract `choice` keeps), so this
+        is the drive of the differences: one pass over the grid instead of three.
         """
+        if self._gap is None:
+            q, prev = self._q, self._one_hot(self._previous)
+            gap = self.model.drive(self.grid.theta, q[1] - q[0], prev[1] - prev[0])
+            if gap.shape != self._w.shape:  # a drive that ignores some axis: spread it out
+                gap = np.broadcast_to(gap, self._w.shape)
+            self._gap = gap
+        return self._gap
+
+    def _probs(self) -> np.ndarray:
+        """Softmax for the next trial at every grid point (cached until values change)."""
         if self._p is None:
-            logits = self.model.drive(self.grid.theta, self._q, self._one_hot(self._previous))
-            self._shifted = logits - logits.max(0)
-            e = np.exp(self._shifted)
-            total = e.sum(0)
-            self._log_norm = np.log(total)
-            self._p = e / total
+            logits = self._logits()
+            e = np.exp(logits - logits.max(0))
+            self._p = e / e.sum(0)
+        return self._p
 
     def _one_hot(self, idx: int | None) -> np.ndarray:
-        out = np.zeros((len(self.options),) + self._ones)
-        if idx is not None:
-            out[idx] = 1.0
-        return out
+        """Indicator of one option over the option axis (all zeros for None); read-only,
+        kept per option count since the models only read it."""
+        k = len(self.options)
+        if self._hots is None or len(self._hots[0]) != k:
+            self._hots = [np.zeros((k,) + self._ones)] + [np.zeros((k,) + self._ones) for _ in range(k)]
+            for i, hot in enumerate(self._hots[1:]):
+                hot[i] = 1.0
+            for hot in self._hots:
+                hot.flags.writeable = False
+        return self._hots[0 if idx is None else idx + 1]
 
-    def _diffuse(self) -> None:
-        w = self._w
-        sizes = self.grid.sizes
-        b = self._beta_axis
-        before, after = int(np.prod(sizes[:b])), int(np.prod(sizes[b + 1:]))
-        # The kernel is column-stochastic, so the moved weights still sum to one: renormalise
-        # against rounding and take one log, instead of a log-sum-exp round trip.
-        moved = (self._kernel @ w.reshape(before, sizes[b], after)).reshape(sizes)
-        moved /= moved.sum()
-        with np.errstate(divide="ignore"):
-            self._logw = np.maximum(np.log(moved), LOG_FLOOR)
-        self._w = np.exp(self._logw)  # weights are always exp(log weights): state is logw alone
+    def _prediction_error(self) -> float | None:
+        """The last trial's prediction error, averaged over the posterior of the learning
+        parameters (the walk moves beta only, so it leaves that posterior as it was)."""
+        if self._delta is not None:
+            w_learn = self._w.sum(axis=self._choice_axes, keepdims=True)
+            self._last_pe = float((w_learn * self._delta).sum())
+            self._delta = None
+        return self._last_pe
 
     # ------------------------------------------------------------------ summaries
 
@@ -225,8 +291,7 @@ class OnlineEstimator:
         if k:
             w_learn = w.sum(axis=self._choice_axes, keepdims=True).ravel()
             q_mean = self._q.reshape(k, -1) @ w_learn
-            self._log_probs()
-            probs = self._p.reshape(k, -1) @ w.ravel()
+            probs = self._probs().reshape(k, -1) @ w.ravel()
             top = self._q >= self._q.max(0) - _TIE
             share = (top / top.sum(0)).reshape(k, -1) @ w_learn
             values = dict(zip(self.options, q_mean.tolist()))
@@ -241,7 +306,8 @@ class OnlineEstimator:
         rate = self._rate_sum / self._rate_norm if self._rate_norm else None
         return Estimate(
             self.model.name, self._session_trial, params, values, p_choice,
-            self._last_pe, self._last_surprise, best, exploration, p_best, p_prefers, rate,
+            self._prediction_error(), self._last_surprise, best, exploration, p_best,
+            p_prefers, rate,
         )
 
     def p_choice_at_least(self, label: str, level: float) -> float | None:
@@ -250,23 +316,31 @@ class OnlineEstimator:
         idx = self._index.get(label)
         if idx is None:
             return None
-        self._log_probs()
-        return float(np.clip(((self._p[idx] >= level) * self._w).sum(), 0.0, 1.0))
+        if len(self.options) == 2 and 0.0 < level < 1.0:
+            # P(second) >= level exactly when the logit gap >= logit(level)
+            cut = math.log(level / (1.0 - level))
+            gap, sure = self._logit_gap(), self._work
+            if idx == 1:
+                np.greater_equal(gap, cut, out=sure)  # 1.0 where sure, 0.0 elsewhere
+            else:
+                np.less_equal(gap, -cut, out=sure)
+        else:
+            sure = (self._probs()[idx] >= level).astype(float)
+        return min(max(float(np.dot(sure.ravel(), self._w.ravel())), 0.0), 1.0)
 
     # ------------------------------------------------------------------ sessions and state
 
     def new_session(self) -> None:
         """Start the next session: broaden the posterior, reset values and history."""
         prior = self.grid.log_prior
-        self._logw, self._w, _ = _normalise(
-            prior + self.config["temper"] * (self._logw - prior))
+        self._w = _weights_from_logs(prior + self.config["temper"] * (np.log(self._w) - prior))
         if not self.config["carry_values"]:
             self._q = np.full(self._q.shape, self.config["q0"])
         self._previous = None
         self._session_trial = 0
         self._rate_sum = self._rate_norm = 0.0
-        self._last_pe = self._last_surprise = None
-        self._p = None
+        self._delta = self._last_pe = self._last_surprise = None
+        self._forget()
 
     def state_dict(self) -> dict[str, Any]:
         """Everything needed to continue later, as JSON-ready data (floats round-trip)."""
@@ -275,12 +349,12 @@ class OnlineEstimator:
             "model": self.model.name,
             "options": list(self.options),
             "config": {**self.config, "grid": dict(self.config["grid"])},
-            "log_weights": self._logw.ravel().tolist(),
+            "weights": self._w.ravel().tolist(),
             "values": self._q.ravel().tolist(),
             "previous": self._previous,
             "session_trial": self._session_trial,
             "reward_rate": [self._rate_sum, self._rate_norm],
-            "last": [self._last_pe, self._last_surprise],
+            "last": [self._prediction_error(), self._last_surprise],
         }
 
     @classmethod
@@ -290,12 +364,13 @@ class OnlineEstimator:
             raise ValueError(f"estimator state format {state.get('format')!r} is not "
                              f"{STATE_FORMAT}")
         est = cls(state["model"], state["options"], **state["config"])
-        logw = np.array(state["log_weights"], dtype=float)
+        w = np.array(state["weights"], dtype=float)
         q = np.array(state["values"], dtype=float)
-        if logw.size != est._logw.size or q.size != est._q.size:
+        if w.size != est._w.size or q.size != est._q.size:
             raise ValueError("estimator state does not match its grid")
-        est._logw = logw.reshape(est._logw.shape)
-        est._w = np.exp(est._logw)
+        if not (np.all(w >= WEIGHT_FLOOR) and np.all(np.isfinite(w))):
+            raise ValueError("estimator state has weights that are not positive numbers")
+        est._w = w.reshape(est._w.shape)
         est._q = q.reshape(est._q.shape)
         est._previous = state["previous"]
         est._session_trial = int(state["session_trial"])

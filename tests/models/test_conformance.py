@@ -74,6 +74,22 @@ def test_update_and_choice_rule_shapes(model):
 
 
 @pytest.mark.parametrize("model", CHOICE_MODELS.values(), ids=lambda m: m.name)
+def test_drive_is_linear_in_values_and_previous_choice(model):
+    # The contract the online estimator's two-option shortcut relies on: the logit gap
+    # between two options is the drive of the value and previous-choice differences.
+    rng = np.random.default_rng(4)
+    theta = _theta(model, (4, 5), rng)
+    q1, q2 = rng.normal(size=(2, 2, 4, 5))
+    prev1, prev2 = np.array([[[1.0]], [[0.0]]]), np.array([[[0.0]], [[1.0]]])
+    mixed = model.drive(theta, 0.7 * q1 - 1.3 * q2, 0.7 * prev1 - 1.3 * prev2)
+    apart = 0.7 * model.drive(theta, q1, prev1) - 1.3 * model.drive(theta, q2, prev2)
+    assert mixed == pytest.approx(apart, abs=1e-12)
+    gap = model.drive(theta, q1[1] - q1[0], prev1[1] - prev1[0])
+    logits = model.drive(theta, q1, prev1)
+    assert gap == pytest.approx(logits[1] - logits[0], abs=1e-12)
+
+
+@pytest.mark.parametrize("model", CHOICE_MODELS.values(), ids=lambda m: m.name)
 def test_only_learning_parameters_shape_the_values(model):
     rng = np.random.default_rng(1)
     q = rng.normal(size=(3, 6))

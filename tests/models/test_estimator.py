@@ -36,12 +36,14 @@ def test_static_posterior_is_prior_times_the_batch_likelihood(model):
                            options=("L", "R", "C"))
     theta = {k: v[None] for k, v in est.grid.theta.items()}
     batch = loglik(CHOICE_MODELS[model], theta, stack_animals([animal]), est.grid.qshape)[0]
-    online = est._logw - est.grid.log_prior
-    keep = est._logw > -700
+    logw = np.log(est._w)
+    online = logw - est.grid.log_prior
+    keep = est._w > 1e-250  # points at the weight floor have left the exact regime
     diff = (online - batch)[keep]
+    assert keep.sum() > est.grid.points // 4
     assert np.ptp(diff) < 1e-9
     # one grid point against the independent implementation
-    idx = np.unravel_index(np.argmax(est._logw), est.grid.sizes)
+    idx = np.unravel_index(np.argmax(logw), est.grid.sizes)
     params = {p.name: float(est.grid.centres[i][idx[i]])
               for i, p in enumerate(CHOICE_MODELS[model].params)}
     ref = reference_loglik(model, params, [("s", c, r) for c, r in trials])
@@ -98,11 +100,11 @@ def test_new_session_tempers_the_evidence_and_resets_values():
     for c, r in _session_trials(7, n=80):
         est.update(c, r)
     before = est.estimate()
-    logw, prior = est._logw.copy(), est.grid.log_prior
+    logw, prior = np.log(est._w), est.grid.log_prior
     est.new_session()
     expected = prior + 0.5 * (logw - prior)
     expected -= np.log(np.exp(expected - expected.max()).sum()) + expected.max()
-    assert est._logw == pytest.approx(expected, abs=1e-9)
+    assert np.log(est._w) == pytest.approx(expected, abs=1e-9)
     after = est.estimate()
     for name in ("alpha", "beta"):
         width = before.params[name].high - before.params[name].low
@@ -115,9 +117,9 @@ def test_omission_changes_neither_posterior_nor_values():
     est = OnlineEstimator("q_learning", options=["L", "R"])
     for c, r in _session_trials(2, n=20, omission=0.0):
         est.update(c, r)
-    logw, q = est._logw.copy(), est._q.copy()
+    w, q = est._w.copy(), est._q.copy()
     e = est.update(None, 0.0)
-    assert np.array_equal(est._logw, logw) and np.array_equal(est._q, q)
+    assert np.array_equal(est._w, w) and np.array_equal(est._q, q)
     assert e.prediction_error is None and e.surprise is None
     assert est.update("", 0.0).prediction_error is None  # empty label = omission too
 
@@ -153,12 +155,10 @@ def test_prediction_error_surprise_and_reward_rate():
 def test_drift_spreads_beta_but_keeps_mass():
     static = OnlineEstimator("q_learning", options=["L", "R"])
     drifting = OnlineEstimator("q_learning", options=["L", "R"], drift=0.3)
-    kernel = drifting._kernel
-    assert kernel.sum(0) == pytest.approx(np.ones(kernel.shape[1]))
-    assert static._kernel is None
+    assert static._walk is None
     for c, r in _session_trials(9, n=120, omission=0.0):
         a, b = static.update(c, r), drifting.update(c, r)
-    assert np.exp(drifting._logw).sum() == pytest.approx(1.0)
+    assert drifting._w.sum() == pytest.approx(1.0)
 
     def log_width(e):
         return math.log(e.params["beta"].high) - math.log(e.params["beta"].low)
@@ -221,10 +221,12 @@ def test_bad_reward_is_refused():
 
 def test_state_from_another_format_is_refused():
     state = OnlineEstimator().state_dict()
-    with pytest.raises(ValueError, match="estimator state format 99 is not 1"):
+    with pytest.raises(ValueError, match="estimator state format 99 is not 2"):
         OnlineEstimator.from_state({**state, "format": 99})
     with pytest.raises(ValueError, match="does not match its grid"):
-        OnlineEstimator.from_state({**state, "log_weights": [0.0]})
+        OnlineEstimator.from_state({**state, "weights": [1.0]})
+    with pytest.raises(ValueError, match="weights that are not positive numbers"):
+        OnlineEstimator.from_state({**state, "weights": [0.0] * len(state["weights"])})
 
 
 def test_resuming_mid_session_continues_identically():
@@ -238,3 +240,34 @@ def test_resuming_mid_session_continues_identically():
     assert resumed.estimate().to_dict() == whole.estimate().to_dict()
     for c, r in trials[25:]:
         assert resumed.update(c, r).to_dict() == whole.update(c, r).to_dict()
+
+
+@pytest.mark.parametrize("model", ["q_learning", "q_sticky"])
+def test_two_option_shortcut_agrees_with_the_full_softmax(model):
+    # The logistic form for two options (P = 1 / (1 + exp(-gap))) is the softmax
+    # (Sutton & Barto 2018, eq. 2.11) with K = 2; both paths must give the same posterior.
+    trials = [(c if c in ("L", "R") else None, r) for c, r in _session_trials(13, n=80, model=model)]
+    est = OnlineEstimator(model, options=["L", "R"], drift=0.05)
+    for c, r in trials:
+        before = est._w.copy()
+        probs = est._probs()
+        expected = None if c is None else before * probs[est.options.index(c)]
+        est.update(c, r, summarise=False)
+        if expected is not None:
+            assert est.estimate().surprise == pytest.approx(-math.log(expected.sum()), rel=1e-12)
+        for label in ("L", "R"):
+            for level in (0.6, 0.75, 0.9):
+                by_softmax = float(((est._probs()[est.options.index(label)] >= level) * est._w).sum())
+                assert est.p_choice_at_least(label, level) == pytest.approx(by_softmax, abs=1e-12)
+
+
+def test_a_choice_every_point_all_but_ruled_out_keeps_the_posterior_finite():
+    # A reward of 10^6 makes the value gap so large that P(R) underflows to 0 in doubles at
+    # every grid point (beta >= 0.1, alpha >= 0.005: gap >= 500); the update falls back to
+    # log space instead of dividing by zero.
+    est = OnlineEstimator("q_learning", options=["L", "R"])
+    est.update("L", 1e6)
+    e = est.update("R", 0.0)
+    assert np.isfinite(est._w).all() and est._w.sum() == pytest.approx(1.0)
+    assert math.isfinite(e.surprise) and e.surprise > 700
+    json.dumps(e.to_dict(), allow_nan=False)
