@@ -9,6 +9,7 @@ flapping the schedule.
 from __future__ import annotations
 
 import operator
+from collections.abc import Callable
 from dataclasses import dataclass
 
 from server.engine.records import RuleFired, TrialRecord
@@ -52,45 +53,61 @@ def evaluate(node: Node, values: dict[str, float | None]) -> float | bool | None
     return any(evaluate(part, values) for part in node.parts)
 
 
-def quantity_value(q: Quantity, metrics: SessionMetrics, session: Session, trial: TrialRecord) -> float | None:
+Getter = Callable[[SessionMetrics, Session, TrialRecord], "float | None"]
+
+
+def quantity_getter(q: Quantity) -> Getter:
+    """How to read one quantity after a trial; the dispatch on its kind is done once, when
+    the rule book is built, not after every trial."""
     name = q.name
     if q.setting:
-        return session.protocol.settings[name]
+        return lambda m, s, t: s.protocol.settings[name]
     if q.field is not None:
-        estimate = session.estimate  # summarised on demand: costly, so only when read
-        if estimate is None or name not in estimate.params:
-            return None
-        return float(getattr(estimate.params[name], q.field))
+        field = q.field
+
+        def parameter(m: SessionMetrics, s: Session, t: TrialRecord) -> float | None:
+            estimate = s.estimate  # summarised on demand: costly, so only when read
+            if estimate is None or name not in estimate.params:
+                return None
+            return float(getattr(estimate.params[name], field))
+
+        return parameter
     if q.window is not None:
-        return getattr(metrics, name)(q.window)
-    if name == "streak":
-        return float(metrics.streak)
-    if name == "rewards":
-        return float(session.rewards)
-    if name == "rewarded_responses":
-        return float(metrics.rewarded_trials)
-    if name == "minutes":
-        return trial.t_end / 60.0
-    if name == "trials":
-        return float(session.trials_done)
-    if name == "block_trials":
-        return float(session.block.trials) if session.block is not None else None
-    if name == "reversals":
-        return float(session.reversals)
-    if name == "pca":
-        return metrics.pca()
+        window, method = q.window, getattr(SessionMetrics, name)
+        return lambda m, s, t: method(m, window)
+    simple = _SIMPLE.get(name)
+    if simple is not None:
+        return simple
     if name == "p_prefers_correct":
-        best = session.best_options()
-        if not best or session.estimator is None or session.trials_done == 0:
-            return None
-        found = [session.estimator.p_choice_at_least(o, PREFERENCE_LEVEL) for o in best]
-        found = [p for p in found if p is not None]
-        return max(found) if found else 0.0
-    estimate = session.estimate
-    if estimate is None:
+        return _p_prefers_correct
+
+    def from_estimate(m: SessionMetrics, s: Session, t: TrialRecord) -> float | None:
+        estimate = s.estimate
+        value = None if estimate is None else getattr(estimate, name)
+        return None if value is None else float(value)
+
+    return from_estimate
+
+
+def _p_prefers_correct(m: SessionMetrics, s: Session, t: TrialRecord) -> float | None:
+    best = s.best_options()
+    if not best or s.estimator is None or s.trials_done == 0:
         return None
-    value = getattr(estimate, name)
-    return None if value is None else float(value)
+    found = [s.estimator.p_choice_at_least(o, PREFERENCE_LEVEL) for o in best]
+    found = [p for p in found if p is not None]
+    return max(found) if found else 0.0
+
+
+_SIMPLE: dict[str, Getter] = {
+    "streak": lambda m, s, t: float(m.streak),
+    "rewards": lambda m, s, t: float(s.rewards),
+    "rewarded_responses": lambda m, s, t: float(m.rewarded_trials),
+    "minutes": lambda m, s, t: t.t_end / 60.0,
+    "trials": lambda m, s, t: float(s.trials_done),
+    "block_trials": lambda m, s, t: float(s.block.trials) if s.block is not None else None,
+    "reversals": lambda m, s, t: float(s.reversals),
+    "pca": lambda m, s, t: m.pca(),
+}
 
 
 @dataclass
@@ -107,6 +124,8 @@ class RuleBook:
         self.rules = protocol.rules
         self.metrics = SessionMetrics(protocol)
         self.state = {rule.name: _RuleState() for rule in self.rules}
+        self._reads = {rule.name: [(q.label, quantity_getter(q)) for q in rule.reads] for rule in self.rules}
+        self._changes = {rule.name: any(a.kind in SCHEDULE_ACTIONS for a in rule.actions) for rule in self.rules}
         self.log: list[RuleFired] = []  # every firing of this session, in order
 
     def __call__(self, session: Session, trial: TrialRecord) -> None:
@@ -119,7 +138,7 @@ class RuleBook:
         for rule in self.rules:
             if session.finished:
                 return
-            changes = any(a.kind in SCHEDULE_ACTIONS for a in rule.actions)
+            changes = self._changes[rule.name]
             fired = self._consider(rule, self.state[rule.name], session, trial, allowed=not (changes and schedule_changed))
             if fired and changes:
                 schedule_changed = True
@@ -129,7 +148,8 @@ class RuleBook:
             self.metrics.streak = 0  # correctness is judged against the new contingencies
 
     def _consider(self, rule: Rule, state: _RuleState, session: Session, trial: TrialRecord, allowed: bool) -> bool:
-        values = {q.label: quantity_value(q, self.metrics, session, trial) for q in rule.reads}
+        metrics = self.metrics
+        values = {label: get(metrics, session, trial) for label, get in self._reads[rule.name]}
         state.run = state.run + 1 if evaluate(rule.condition, values) else 0
         if not allowed or state.run < rule.hold_for:
             return False

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from collections import deque
+from itertools import islice
 from statistics import median
 
 from server.engine.records import TrialRecord
@@ -96,16 +97,15 @@ class SessionMetrics:
         )  # fmt: skip
 
     def window(self, n: int) -> list[TrialRecord] | None:
+        """The last n trials, oldest first (None until there are n)."""
         if len(self.recent) < n:
             return None
-        return list(self.recent)[-n:]
+        return list(islice(reversed(self.recent), n))[::-1]
 
     def accuracy(self, n: int) -> float | None:
-        scored = [t.correct for t in self.recent if t.correct is not None]
-        if len(scored) < n:
-            return None
-        last = scored[-n:]
-        return sum(last) / n
+        """Fraction correct over the last n scored trials (None until there are n)."""
+        last = list(islice((t.correct for t in reversed(self.recent) if t.correct is not None), n))
+        return sum(last) / n if len(last) == n else None
 
     def omission_rate(self, n: int) -> float | None:
         trials = self.window(n)
