@@ -10,8 +10,11 @@ common practice), split into m equal substeps whenever p would exceed 1/2, so ev
 transition probability stays non-negative. Mass that would leave the grid stays in the edge
 cell, so the walk never loses probability.
 
-It is applied in place of a dense matrix: three passes over the weights per substep, and the
-caller's normalising factor is folded into the same passes.
+The caller writes the weights to move into `inbox`, a view into a buffer with one spare
+cell at each end of the beta axis (the reflecting edges); `settle` then moves them, scales
+them and floors them in a handful of passes. When beta is the grid's last axis (the
+two-parameter models) the whole buffer is one flat 3-tap convolution, so a trial's walk is
+a single numpy call plus the copy out.
 """
 
 from __future__ import annotations
@@ -27,59 +30,60 @@ class BetaWalk:
     """The walk along one axis of a grid-shaped weight array."""
 
     def __init__(self, grid: Grid, step: float, name: str = "beta"):
-        self.axis = grid.axis_of(name)
-        p = grid.model.params[self.axis]
-        n = grid.sizes[self.axis]
+        axis = grid.axis_of(name)
+        p = grid.model.params[axis]
+        n = grid.sizes[axis]
         lo, hi = p.grid_range()
         width = (math.log(hi) - math.log(lo)) / n if p.scale == "log" else (hi - lo) / n
         ratio = (step / width) ** 2  # variance of one trial's step, in cells squared
         self.substeps = max(1, math.ceil(ratio))
         self.p = ratio / (2 * self.substeps)
         self.cells = n
-        before = int(np.prod(grid.sizes[: self.axis]))
-        after = int(np.prod(grid.sizes[self.axis + 1:]))
-        # (before, n, after) with axes of one dropped: numpy is slow along a length-1 axis
-        self._shape = tuple(d for d in (before, n, after) if d > 1)  # n >= 2 on every grid
-        self._at = 1 if before > 1 else 0
-        padded = list(self._shape)
-        padded[self._at] += 2
-        self._padded = np.empty(padded)
-        self._spare = np.empty(self._shape)
-        index = [slice(None)] * len(self._shape)
+        self.sizes = grid.sizes
+        before = int(np.prod(grid.sizes[:axis]))
+        after = int(np.prod(grid.sizes[axis + 1:]))
+        self._pad = np.zeros((before, n + 2, after))
+        self._mid = self._pad[:, 1:-1]
+        self.inbox = self._mid.reshape(grid.sizes)  # a view: writing here fills the buffer
+        assert np.shares_memory(self.inbox, self._pad)
+        self._flat = after == 1  # beta last: rows of the buffer are independent lines
+        self._kernel = np.array([self.p, 1.0 - 2.0 * self.p, self.p])
+        self._spare = np.empty((before, n, after))
+        self._sum = np.empty((before, n, after))
 
-        def along(s):
-            return tuple(index[: self._at] + [s] + index[self._at + 1:])
-
-        self._mid, self._below, self._above = along(slice(1, -1)), along(slice(None, -2)), along(slice(2, None))
-        self._first, self._second = along(0), along(1)
-        self._last, self._next_to_last = along(-1), along(-2)
-
-    def apply(self, src: np.ndarray, out: np.ndarray, scale: float = 1.0) -> None:
-        """out = scale x walk(src); src and out are grid-shaped and must not overlap."""
-        v, o = src.reshape(self._shape), out.reshape(self._shape)
-        pad, p = self._padded, self.p
+    def settle(self, out: np.ndarray, scale: float, floor: float) -> None:
+        """out = max(scale x walk(inbox), floor); out is grid-shaped, apart from the inbox."""
+        pad, mid, p = self._pad, self._mid, self.p
+        o = out.reshape(self._spare.shape)
         for i in range(self.substeps):
-            target = o if (self.substeps - i) % 2 == 1 else self._spare
-            np.multiply(v, p * scale, out=pad[self._mid])
-            pad[self._first] = pad[self._second]  # reflecting edges: what would step off
-            pad[self._last] = pad[self._next_to_last]  # the grid stays where it is
-            np.multiply(v, (1 - 2 * p) * scale, out=target)
-            target += pad[self._below]
-            target += pad[self._above]
-            v, scale = target, 1.0
+            last = i == self.substeps - 1
+            pad[:, 0] = pad[:, 1]  # reflecting edges: what would step off the grid stays
+            pad[:, -1] = pad[:, -2]
+            if self._flat:
+                moved = np.convolve(pad.ravel(), self._kernel * scale, mode="same")
+                moved = moved.reshape(pad.shape)[:, 1:-1]
+            else:
+                moved = self._spare
+                np.add(pad[:, :-2], pad[:, 2:], out=self._sum)
+                np.multiply(mid, (1.0 - 2.0 * p) * scale, out=moved)
+                self._sum *= p * scale
+                moved += self._sum
+            if last:
+                np.maximum(moved, floor, out=o)
+            else:
+                mid[...] = moved
+            scale = 1.0
 
     def matrix(self) -> np.ndarray:
         """The walk as an (n, n) column-stochastic matrix: new = matrix @ old (for checks)."""
-        eye = np.eye(self.cells)
-        out = np.empty_like(eye)
-        size = int(np.prod(self._shape))
-        line = tuple(slice(None) if i == self._at else 0 for i in range(len(self._shape)))
+        out = np.empty((self.cells, self.cells))
+        moved = np.empty(self.sizes)
+        line = (0, slice(None), 0)
         for j in range(self.cells):
-            col = np.zeros(size)
-            col.reshape(self._shape)[line] = eye[:, j]
-            moved = np.empty_like(col)
-            self.apply(col, moved)
-            out[:, j] = moved.reshape(self._shape)[line]
+            self.inbox[...] = 0.0
+            self._mid[(0, j, 0)] = 1.0
+            self.settle(moved, 1.0, 0.0)
+            out[:, j] = moved.reshape(self._spare.shape)[line]
         return out
 
 

@@ -129,7 +129,7 @@ class OnlineEstimator:
         self.options: list[str] = list(options)
         self._index = {lab: i for i, lab in enumerate(self.options)}
         self._w = _weights_from_logs(self.grid.log_prior)
-        self._scratch = np.empty(self.grid.sizes)  # weights x likelihood, then swapped in
+        self._scratch = np.empty(self.grid.sizes)  # weights x likelihood, without a walk
         self._work = np.empty(self.grid.sizes)
         self._q = np.full((len(self.options),) + self.grid.qshape, self.config["q0"])
         self._ones = (1,) * len(self.grid.qshape)
@@ -158,16 +158,23 @@ class OnlineEstimator:
         reward = float(reward)
         if not math.isfinite(reward):
             raise ValueError(f"reward must be a finite number, got {reward!r}")
+        # the weights to carry into the next trial go where the walk (if any) takes them
+        weighted = self._scratch if self._walk is None else self._walk.inbox
         if choice is None or choice == "":
             self._delta = self._last_pe = self._last_surprise = None
-            self._settle(self._w, 1.0)
+            if self._walk is not None:
+                np.copyto(weighted, self._w)
+                self._walk.settle(self._w, 1.0, WEIGHT_FLOOR)
         else:
             idx = self._option(choice)
-            weighted = self._scratch
             log_predictive, scale = self._weigh(idx, weighted)
             self._last_surprise = -log_predictive
             self._learn(idx, reward)
-            self._settle(weighted, scale)
+            if self._walk is not None:
+                self._walk.settle(self._w, scale, WEIGHT_FLOOR)
+            else:
+                np.multiply(weighted, scale, out=self._w)
+                np.maximum(self._w, WEIGHT_FLOOR, out=self._w)
         step = self.config["reward_rate_step"]
         self._rate_sum = (1 - step) * self._rate_sum + step * reward
         self._rate_norm = (1 - step) * self._rate_norm + step
@@ -221,17 +228,6 @@ class OnlineEstimator:
         self._last_pe = None  # summarised from _delta only when asked for
         self._previous = idx
         self._forget()
-
-    def _settle(self, weighted: np.ndarray, scale: float) -> None:
-        """The new weights: `weighted` times `scale`, moved by the drift, floored."""
-        if self._walk is not None:
-            target = self._scratch if weighted is self._w else self._w
-            self._walk.apply(weighted, target, scale)
-            if target is self._scratch:
-                self._w, self._scratch = target, self._w
-        elif weighted is not self._w or scale != 1.0:
-            np.multiply(weighted, scale, out=self._w)
-        np.maximum(self._w, WEIGHT_FLOOR, out=self._w)
 
     def _logits(self) -> np.ndarray:
         return self.model.drive(self.grid.theta, self._q, self._one_hot(self._previous))
