@@ -76,13 +76,15 @@ class RandomResponder(VirtualAnimal):
         self._plan_response(t, self.latency_s, self.latency_sigma)
 
     def _plan_response(self, t: float, median: float, sigma: float) -> None:
-        draws = self.draws
-        p_omit = min(self.omission + self.satiety * self.box.pellets_eaten, _MAX_OMISSION)
+        draws, box = self.draws, self.box
+        p_omit = self.omission + self.satiety * box.pellets_eaten
+        if _MAX_OMISSION < p_omit:  # min(p_omit, _MAX_OMISSION), without the call
+            p_omit = _MAX_OMISSION
         if p_omit > 0 and draws.uniform() < p_omit:
             at = t + draws.exponential(self.pause_s)
         else:
             at = t + draws.lognormal(median, sigma)
-        self._respond = self.box.wake(at if at > self._busy_until else self._busy_until, RESPOND)
+        self._respond = box.wake(at if at > self._busy_until else self._busy_until, RESPOND)
 
     def _act(self, t: float, token: int) -> None:
         if token != RESPOND:

@@ -208,13 +208,15 @@ class Session(SessionControls):
         trial = self._trial
         if event.rising and trial is not None and not self.finished:
             self._respond(trial, event.name, t)
-        return self._flush()
+        out, self._out = self._out, []  # _flush, inline on the busiest path
+        return out
 
     def advance(self, t: float) -> list[Command]:
         """Run every deadline that has passed by time t."""
         if not self.finished:
             self._catch_up(t)
-        return self._flush()
+        out, self._out = self._out, []  # _flush, inline on the busiest path
+        return out
 
     def stop(self, t: float, reason: str) -> list[Command]:
         """End the session now (operator, time limit, link failure...): outputs to safe state."""
