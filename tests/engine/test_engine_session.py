@@ -228,6 +228,24 @@ def test_pause_freezes_the_trial_and_resume_restores_outputs():
     assert trial.latency_s == pytest.approx(5.0)
 
 
+
+def test_a_timed_block_ends_later_by_the_length_of_a_pause():
+    protocol = choice_protocol(
+        "blocks:\n  - block: one\n    trial_types: [pick]\n    until: {minutes: 1}\n"
+        "  - block: two\n    trial_types: [pick]\n"
+    )
+    session = Session(protocol, 3)
+    session.start(0.0)
+    session.advance(30.0)  # no presses: 10 s omissions and 5 s ITIs
+    session.pause(32.0)
+    session.resume(52.0)  # 20 s paused: the block now runs out at 80 s, not 60 s
+    session.advance(79.0)
+    assert session.block.block.name == "one"
+    session.advance(80.0)
+    assert session.block.block.name == "two"
+    started = [r for r in session.take_records() if isinstance(r, BlockStarted)]
+    assert [r.t for r in started] == [0.0, 80.0]
+
 def test_max_run_limits_repeats_of_one_trial_type():
     text = WIRING.format(name="mix", pa=1.0, pb=0.0) + CHOICE.replace("iti: 5", "") + textwrap.dedent(
         """\
