@@ -153,7 +153,7 @@ class QLearner(RandomResponder):
         top = max(qs)  # shifting by the maximum leaves P unchanged and avoids overflow
         weights = [math.exp(self.beta * (q - top)) for q in qs]
         total = sum(weights)
-        return tuple(w / total for w in weights)
+        return tuple([w / total for w in weights])
 
     def on_presented(self, t: float, line: InputLine, presented: bool) -> None:
         if presented and self._last is not None and t - self._last_t > self.reward_window_s:

@@ -75,7 +75,11 @@ class EventLogged:
 
 @dataclass(frozen=True, slots=True)
 class TrialRecord:
-    """One finished trial, committed by the store as soon as it is emitted."""
+    """One finished trial, committed by the store as soon as it is emitted.
+
+    The session builds it from positional fields (Session._end_trial): a new field goes
+    at the end, or there too.
+    """
 
     trial: int  # 1-based within the session
     block: str

@@ -543,7 +543,8 @@ class Session(SessionControls):
             self._pulse(name, t)
 
     def _set(self, name: str, active: bool, t: float) -> None:
-        self._switch(name, self._commands[name][active], t)
+        off, on = self._commands[name]
+        self._switch(name, on if active else off, t)
 
     def _switch(self, name: str, command: SetOutput, t: float) -> None:
         if command.active:

@@ -246,6 +246,25 @@ def test_a_timed_block_ends_later_by_the_length_of_a_pause():
     started = [r for r in session.take_records() if isinstance(r, BlockStarted)]
     assert [r.t for r in started] == [0.0, 80.0]
 
+
+def test_every_field_of_a_trial_record():
+    # The session builds the record positionally (for speed): each field checked by name.
+    protocol = choice_protocol("blocks:\n  - block: one\n    trial_types: [pick]\n    until: {trials: 2}\n")
+    session, _ = run(protocol, [(1.5, "press_a"), (8.0, "press_b"), (8.2, "press_b")])
+    first, second = records_of(session, TrialRecord)
+    assert first == TrialRecord(
+        trial=1, block="one", block_index=1, trial_type="pick", t_start=0.0, t_end=2.5,
+        choice="a", response="press_a", latency_s=1.5, rewarded=True, reward=1.0, correct=True,
+        omission=False, interrupted=False, iti_s=5.0, steps=(("offer", 0.0), ("pellet", 1.5)),
+        counts={"offer.press_a": 1}, first_s={"offer.press_a": 1.5}, extra={},
+    )  # fmt: skip
+    assert second == TrialRecord(
+        trial=2, block="one", block_index=1, trial_type="pick", t_start=7.5, t_end=8.0,
+        choice="b", response="press_b", latency_s=pytest.approx(0.5), rewarded=False, reward=0.0,
+        correct=False, omission=False, interrupted=False, iti_s=0.0, steps=(("offer", 7.5),),
+        counts={"offer.press_b": 1}, first_s={"offer.press_b": pytest.approx(0.5)}, extra={},
+    )  # fmt: skip
+
 def test_max_run_limits_repeats_of_one_trial_type():
     text = WIRING.format(name="mix", pa=1.0, pb=0.0) + CHOICE.replace("iti: 5", "") + textwrap.dedent(
         """\
