@@ -57,9 +57,11 @@ class BoxRun:
     cap_reached: bool = False
     scored: int = 0  # trials where correctness applies
     correct: int = 0
+    records_seen: int = 0  # lets a status view skip a box whose session said nothing new
 
     def observe(self, record: Record) -> None:
         """Remember what a status view needs from one record (constant time per record)."""
+        self.records_seen += 1
         if isinstance(record, TrialRecord):
             self.last_trial = record
             if record.correct is not None:

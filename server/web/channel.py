@@ -24,8 +24,12 @@ class ChannelError(Exception):
     pass
 
 
+# Compact, and strict: a NaN is not JSON and would fail at the other end.
+JSON = json.JSONEncoder(separators=(",", ":"), allow_nan=False)
+
+
 def encode(message: dict[str, Any]) -> bytes:
-    return json.dumps(message, separators=(",", ":"), allow_nan=False).encode("utf-8") + b"\n"
+    return JSON.encode(message).encode("utf-8") + b"\n"
 
 
 def decode(line: bytes) -> dict[str, Any]:

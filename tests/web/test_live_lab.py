@@ -50,6 +50,9 @@ async def run_with_lab(tmp_path: Path, body) -> Path:
     # once every session has ended nothing changes: the lab sends one last feed, then none
     feed = FeedBuilder(lab)
     assert b'"finished":true' in (feed.line() or b"") and feed.line() is None
+    # a change that no record announced is still found by the feed's rotating sweep
+    lab.runs[1].link.connected = False
+    assert b'"link_lost":true' in (feed.line() or b"")
     return db
 
 
