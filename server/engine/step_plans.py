@@ -1,10 +1,10 @@
 """A protocol's steps laid out for the session core's per-trial path.
 
 The compiled Protocol is data keyed by names. Walking it by name at every step (a linear
-search for the step, a fresh command for every output switched) was a large share of
-rehearsal time, so a session prepares these tables once: each step with its output actions
-as ready-made commands, and with its own wait draw and schedule state, which carry the
-session's draws from one trial to the next.
+search for the step, a fresh command for every output switched) would cost a large share
+of rehearsal time, so a session prepares these tables once: each step with its output
+actions as ready-made commands, and with its own wait draw and schedule state, which carry
+the session's draws from one trial to the next.
 """
 
 from __future__ import annotations
