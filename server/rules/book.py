@@ -25,35 +25,48 @@ _ARITH = {"+": operator.add, "-": operator.sub, "*": operator.mul}
 PREFERENCE_LEVEL = 0.75
 
 
-def evaluate(node: Node, values: dict[str, float | None]) -> float | bool | None:
-    """Value of a condition tree; None propagates through arithmetic, comparisons with an
-    unknown value are False, so a rule never fires on a quantity not known yet."""
-    if isinstance(node, Number):
-        return node.value
-    if isinstance(node, Quantity):
-        return values[node.label]
-    if isinstance(node, Negate):
-        inner = evaluate(node.operand, values)
-        return None if inner is None else -inner
-    if isinstance(node, Arithmetic):
-        left, right = evaluate(node.left, values), evaluate(node.right, values)
-        if left is None or right is None:
-            return None
-        if node.op == "/":
-            return None if right == 0 else left / right
-        return _ARITH[node.op](left, right)
-    if isinstance(node, Compare):
-        left, right = evaluate(node.left, values), evaluate(node.right, values)
-        return False if left is None or right is None else _COMPARE[node.op](left, right)
-    if isinstance(node, Not):
-        return not evaluate(node.operand, values)
-    assert isinstance(node, Logic)
-    if node.op == "and":
-        return all(evaluate(part, values) for part in node.parts)
-    return any(evaluate(part, values) for part in node.parts)
-
-
 Getter = Callable[[SessionMetrics, Session, TrialRecord], "float | None"]
+
+
+def compile_condition(node: Node) -> Getter:
+    """A condition tree as one function of (metrics, session, trial), built once per rule
+    book. None propagates through arithmetic and comparisons with an unknown value are
+    False, so a rule never fires on a quantity not known yet."""
+    if isinstance(node, Number):
+        value = node.value
+        return lambda m, s, t: value
+    if isinstance(node, Quantity):
+        return quantity_getter(node)
+    if isinstance(node, Negate):
+        inner = compile_condition(node.operand)
+
+        def negate(m, s, t):
+            v = inner(m, s, t)
+            return None if v is None else -v
+
+        return negate
+    if isinstance(node, (Arithmetic, Compare)):
+        left, right = compile_condition(node.left), compile_condition(node.right)
+        unknown = False if isinstance(node, Compare) else None
+        op = _COMPARE.get(node.op) or _ARITH.get(node.op) or _divide
+
+        def binary(m, s, t):
+            a, b = left(m, s, t), right(m, s, t)
+            return unknown if a is None or b is None else op(a, b)
+
+        return binary
+    if isinstance(node, Not):
+        inner = compile_condition(node.operand)
+        return lambda m, s, t: not inner(m, s, t)
+    assert isinstance(node, Logic)
+    parts = [compile_condition(part) for part in node.parts]
+    if node.op == "and":
+        return lambda m, s, t: all(part(m, s, t) for part in parts)
+    return lambda m, s, t: any(part(m, s, t) for part in parts)
+
+
+def _divide(a: float, b: float) -> float | None:
+    return None if b == 0 else a / b
 
 
 def quantity_getter(q: Quantity) -> Getter:
@@ -125,6 +138,7 @@ class RuleBook:
         self.metrics = SessionMetrics(protocol)
         self.state = {rule.name: _RuleState() for rule in self.rules}
         self._reads = {rule.name: [(q.label, quantity_getter(q)) for q in rule.reads] for rule in self.rules}
+        self._conditions = {rule.name: compile_condition(rule.condition) for rule in self.rules}
         self._changes = {rule.name: any(a.kind in SCHEDULE_ACTIONS for a in rule.actions) for rule in self.rules}
         self.log: list[RuleFired] = []  # every firing of this session, in order
 
@@ -149,8 +163,7 @@ class RuleBook:
 
     def _consider(self, rule: Rule, state: _RuleState, session: Session, trial: TrialRecord, allowed: bool) -> bool:
         metrics = self.metrics
-        values = {label: get(metrics, session, trial) for label, get in self._reads[rule.name]}
-        state.run = state.run + 1 if evaluate(rule.condition, values) else 0
+        state.run = state.run + 1 if self._conditions[rule.name](metrics, session, trial) else 0
         if not allowed or state.run < rule.hold_for:
             return False
         if session.in_probe and any(a.kind == "probe" for a in rule.actions):
@@ -162,6 +175,8 @@ class RuleBook:
         state.fired += 1
         state.last_fired_trial = trial.trial
         state.run = 0
+        # what the condition read (reads are pure, so reading again gives the same values)
+        values = {label: get(metrics, session, trial) for label, get in self._reads[rule.name]}
         done = tuple(apply_action(action, session, trial.t_end, rule.name) for action in rule.actions)
         fired = RuleFired(trial.t_end, trial.trial, rule.name, done, values)
         self.log.append(fired)

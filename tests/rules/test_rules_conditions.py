@@ -132,6 +132,35 @@ def test_hysteresis_needs_k_consecutive_holds():
     assert [f.trial for f in firings(records)] == [8]
 
 
+def test_condition_arithmetic_logic_and_unknown_values():
+    # Hand-computed on a a b a a a b: accuracy(4) = 3/4 first at trial 4, so
+    # 2 * accuracy(4) - 1 = 0.5 there; the streak reaches 3 at trial 6. A window longer than
+    # the session, or a division by zero, is unknown: its comparison is false, never fires.
+    rules = """\
+    rules:
+      - rule: arithmetic
+        when: "accuracy(4) * 2 - 1 >= 0.5 and not omission_rate(4) > 0"
+        max_firings: 1
+        then: {alarm: x}
+      - rule: either
+        when: "streak >= 3 or -streak <= -100"
+        max_firings: 1
+        then: {alarm: y}
+      - rule: unknown_window
+        when: "accuracy(50) >= 0"
+        then: {alarm: z}
+      - rule: by_zero
+        when: "streak / (trials - trials) >= 0"
+        then: {alarm: w}
+    """
+    _, records = drive(protocol_with(rules), list("aabaaab"))
+    fired = {(f.rule, f.trial) for f in firings(records)}
+    assert fired == {("arithmetic", 4), ("either", 6)}
+    values = {f.rule: f.values for f in firings(records)}
+    assert values["arithmetic"] == {"accuracy(4)": 0.75, "omission_rate(4)": 0.0}
+    assert values["either"] == {"streak": 3.0}
+
+
 def test_max_firings_per_session():
     protocol = protocol_with('rules:\n  - rule: r\n    when: "trials >= 1"\n    max_firings: 2\n    then: {alarm: x}\n')
     _, records = drive(protocol, list("a" * 10))
