@@ -233,6 +233,10 @@ class Session(SessionControls):
     def _catch_up(self, t: float) -> None:
         guard = 0
         while not self.finished:
+            guard += 1  # every pass counts, the block-time branch too: no path loops forever
+            if guard > MAX_STEPS_PER_INSTANT * 10:
+                self._end_session(t, "error: protocol does not advance in time")
+                return
             if t >= self._t_limit:
                 self._end_session(self._t_limit, "session time limit")
                 return
@@ -243,7 +247,6 @@ class Session(SessionControls):
             block_end = self._block_end
             if t >= block_end and block_end < deadline:
                 self._block_time_up(block_end)
-                guard += 1
                 continue
             if t < deadline:
                 return
@@ -251,10 +254,6 @@ class Session(SessionControls):
                 self._timeout(trial, deadline)
             else:
                 self._begin_trial(deadline)
-            guard += 1
-            if guard > MAX_STEPS_PER_INSTANT * 10:
-                self._end_session(t, "error: protocol does not advance in time")
-                return
 
     # ================================================================ internals: trials
 
