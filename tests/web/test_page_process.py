@@ -1,7 +1,8 @@
 """The status page in its own process beside a running lab: it is another process, its tiles
 follow the lab through the feed, its controls reach the lab across the process boundary,
-and each side outlives the other the right way round (a dead page leaves the sessions
-running; an ended or killed lab takes its page, and the port, with it)."""
+and each side outlives the other the right way round (a dead page, or one that cannot
+listen, leaves the sessions running; an ended or killed lab takes its page, and the port,
+with it)."""
 
 from __future__ import annotations
 
@@ -21,6 +22,7 @@ import pytest
 from server.lab import Lab
 from server.lab_config import load_lab
 from server.store.writer import Store
+from server.web.launch import run_lab_with_page
 from server.web.page_process import start_page
 
 from processes import Vigil, has_exited, page_process_of, wait_exited
@@ -182,3 +184,25 @@ def test_the_page_exits_when_the_lab_ends_however_it_ends(tmp_path, sig):
             "ended: stopped by signal (SIGTERM), stopped by signal (SIGTERM)"), lab.lines
     else:
         assert code == -signal.SIGKILL
+
+
+def test_a_busy_port_is_one_warning_and_the_sessions_run_without_a_page(tmp_path):
+    said: list[str] = []
+    with socket.socket() as other:  # another program already listens on the port
+        other.bind(("127.0.0.1", 0))
+        other.listen(1)
+        port = other.getsockname()[1]
+        config = load_lab(lab_config(tmp_path))
+        store = Store.open(tmp_path / "busy.sqlite")
+        lab = Lab(config, store, say=said.append, in_process_boxes=True)
+        try:
+            runs = asyncio.run(run_lab_with_page(lab, tmp_path / "busy.sqlite", config.web,
+                                                 minutes=0.02, port=port, say=said.append))
+        finally:
+            store.close()
+    assert [line for line in said if "status page" in line] == [
+        f"warning: status page not started: cannot listen on 127.0.0.1:{port}: "
+        "the port is already in use"]
+    assert [run.ended.reason for run in runs] == ["time limit", "time limit"]
+    with pytest.raises(AssertionError, match="no status page process"):
+        page_process_of(os.getpid())
