@@ -123,7 +123,7 @@ def session_body(conn: sqlite3.Connection, session: dict[str, Any], *,
         ("protocol", session["protocol"]), ("started", _when(session["started_at"])),
         ("state", "running" if running else f"ended – {session['end_reason']}"),
         ("trials", session["trials"]), ("pellets", session["rewards"]),
-        ("correct", "–" if status["accuracy"] is None else f"{100 * status['accuracy']:.0f} %"),
+        ("correct", "–" if status["accuracy"] is None else f"{100 * status['accuracy']:.0f}\u202f%"),
         ("block", status["block"] or "–"), ("seed", session["seed"]),
     ]
     events = queries.session_events(conn, sid, tail=EVENT_TAIL)
@@ -183,7 +183,7 @@ def animal_rows(conn: sqlite3.Connection, animal: str) -> list[dict[str, Any]]:
 def animal_body(animal: str, history: list[dict[str, Any]]) -> Safe:
     rows = [[el("a", str(s["id"]), href=f"/sessions/{s['id']}"), _when(s["started_at"]), s["box"],
              s["protocol"], s["stage"] or "–", s["trials"], s["rewards"],
-             "–" if s["accuracy"] is None else f"{100 * s['accuracy']:.0f} %",
+             "–" if s["accuracy"] is None else f"{100 * s['accuracy']:.0f}\u202f%",
              s["omissions"], s["end_reason"] or "running", s["fitted_text"]] for s in history]
     return el(
         "div",

@@ -241,7 +241,7 @@ def shown(tile: dict[str, Any]) -> dict[str, str]:
         "block": tile["block"] or "–",
         "trial": str(tile["trial"]),
         "rewards": str(tile["rewards"]),
-        "accuracy": "–" if accuracy is None else f"{100 * accuracy:.0f} %",
+        "accuracy": "–" if accuracy is None else f"{100 * accuracy:.0f}\u202f%",
         "elapsed": clock_text(tile["elapsed_s"]),
         "remaining": "–" if tile["remaining_s"] is None else clock_text(tile["remaining_s"]),
         "since_input": "–" if tile["state"] == "ended" else ago_text(tile["since_input_s"]),
