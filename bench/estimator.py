@@ -24,9 +24,8 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from machine import where_run  # noqa: E402  (bench/ is on sys.path when run as a script)
-
 import numpy as np  # noqa: E402
+from machine import where_run  # noqa: E402  (bench/ is on sys.path when run as a script)
 from scipy import optimize  # noqa: E402
 
 from server.models import CHOICE_MODELS, OnlineEstimator, encode_animal, fit_animals  # noqa: E402
@@ -36,9 +35,9 @@ from server.models.trials import stack_animals  # noqa: E402
 OPTIONS = ["west", "east", "north", "south"]
 
 
-
-def bandit_animal(n: int, k: int, alpha: float, beta: float, seed: int,
-                  reversal_every: int = 100) -> tuple[np.ndarray, np.ndarray]:
+def bandit_animal(
+    n: int, k: int, alpha: float, beta: float, seed: int, reversal_every: int = 100
+) -> tuple[np.ndarray, np.ndarray]:
     """A simulated Q-learner on a k-armed bandit (one arm at 0.8, the rest at 0.2)."""
     rng = np.random.default_rng(seed)
     q = np.zeros(k)
@@ -69,9 +68,9 @@ def time_updates(trials: int, drift: float) -> tuple[list[float], OnlineEstimato
 def time_recompute(est: OnlineEstimator, n: int) -> float:
     """Baseline: the grid posterior rebuilt from all n trials so far (batch likelihood)."""
     choices, rewards = bandit_animal(n, 4, 0.3, 5.0, seed=1)
-    animal = encode_animal("bench", [("s", i, OPTIONS[c], r)
-                                     for i, (c, r) in enumerate(zip(choices, rewards))],
-                           options=OPTIONS)
+    animal = encode_animal(
+        "bench", [("s", i, OPTIONS[c], r) for i, (c, r) in enumerate(zip(choices, rewards))], options=OPTIONS
+    )
     theta = {k: v[None] for k, v in est.grid.theta.items()}
     start = time.perf_counter()
     stack = stack_animals([animal])
@@ -99,8 +98,7 @@ def scipy_fit(choices: np.ndarray, rewards: np.ndarray, starts: int = 10) -> tup
     best = None
     for _ in range(starts):
         x0 = [rng.uniform(0.05, 0.95), float(np.exp(rng.uniform(np.log(0.5), np.log(20))))]
-        res = optimize.minimize(plain_nll, x0, args=(choices, rewards, 2), method="L-BFGS-B",
-                                bounds=bounds)
+        res = optimize.minimize(plain_nll, x0, args=(choices, rewards, 2), method="L-BFGS-B", bounds=bounds)
         if best is None or res.fun < best.fun:
             best = res
     return -float(best.fun), best.x
@@ -118,8 +116,7 @@ def main() -> int:
     recompute_s = time_recompute(est, 500)
 
     choices, rewards = bandit_animal(1000, 2, 0.25, 4.0, seed=7)
-    animal = encode_animal("bench", [("s", i, "LR"[c], r)
-                                     for i, (c, r) in enumerate(zip(choices, rewards))])
+    animal = encode_animal("bench", [("s", i, "LR"[c], r) for i, (c, r) in enumerate(zip(choices, rewards))])
     ours, fit = [], None
     for _ in range(args.repeats):
         start = time.perf_counter()
@@ -149,21 +146,26 @@ def main() -> int:
         return 0
     dms = np.array(drift_times) * 1e3
     print(f"machine: {where_run()}")
-    print(f"online update, q_learning, {est.grid.points} grid points, {len(OPTIONS)} options, "
-          f"{len(ms)} trials")
+    print(f"online update, q_learning, {est.grid.points} grid points, {len(OPTIONS)} options, {len(ms)} trials")
     print(f"  static       p50 {np.percentile(ms, 50):.3f} ms   p99 {np.percentile(ms, 99):.3f} ms")
     print(f"  drift 0.1    p50 {np.percentile(dms, 50):.3f} ms   p99 {np.percentile(dms, 99):.3f} ms")
-    print(f"  baseline: posterior recomputed from 500 trials {recompute_s * 1e3:.1f} ms "
-          f"({recompute_s * 1e3 / np.percentile(ms, 50):.0f}x one filter update)")
+    print(
+        f"  baseline: posterior recomputed from 500 trials {recompute_s * 1e3:.1f} ms "
+        f"({recompute_s * 1e3 / np.percentile(ms, 50):.0f}x one filter update)"
+    )
     print("offline fit, q_learning, 1000 trials, 2 options")
-    print(f"  ours   {statistics.median(ours):.3f} s  loglik {fit.loglik:.6f}  "
-          f"alpha {fit.params['alpha']:.4f} beta {fit.params['beta']:.4f}")
-    print(f"  scipy  {scipy_s:.3f} s  loglik {base_ll:.6f}  alpha {base_x[0]:.4f} "
-          f"beta {base_x[1]:.4f}  (L-BFGS-B, 10 starts, per-trial numpy likelihood)")
-    print(f"  speed-up {scipy_s / statistics.median(ours):.1f}x; loglik gap (scipy - ours) "
-          f"{base_ll - fit.loglik:.2e}")
-    print("  our fit of every choice model on the same trials: "
-          + ", ".join(f"{k} {v:.3f} s" for k, v in others.items()))
+    print(
+        f"  ours   {statistics.median(ours):.3f} s  loglik {fit.loglik:.6f}  "
+        f"alpha {fit.params['alpha']:.4f} beta {fit.params['beta']:.4f}"
+    )
+    print(
+        f"  scipy  {scipy_s:.3f} s  loglik {base_ll:.6f}  alpha {base_x[0]:.4f} "
+        f"beta {base_x[1]:.4f}  (L-BFGS-B, 10 starts, per-trial numpy likelihood)"
+    )
+    print(f"  speed-up {scipy_s / statistics.median(ours):.1f}x; loglik gap (scipy - ours) {base_ll - fit.loglik:.2e}")
+    print(
+        "  our fit of every choice model on the same trials: " + ", ".join(f"{k} {v:.3f} s" for k, v in others.items())
+    )
     return 0
 
 

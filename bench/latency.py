@@ -33,9 +33,9 @@ sys.path.insert(0, str(ROOT))
 
 import numpy as np  # noqa: E402
 import serial  # noqa: E402
+from machine import where_run  # noqa: E402  (bench/ is this script's folder)
 
 from hardware_stubs.box_wire import U32, DeviceWire  # noqa: E402
-from machine import where_run  # noqa: E402  (bench/ is this script's folder)
 from server.link.codec import encode  # noqa: E402
 from server.link.handshake import device_channels  # noqa: E402
 from server.link.messages import DriveCommand, PulseCommand  # noqa: E402
@@ -234,8 +234,12 @@ def main() -> int:
     p.add_argument("--boxes", type=int, default=1)
     p.add_argument("--samples", type=int, default=2000, help="at least this many, all boxes together")
     p.add_argument("--rate", type=float, default=200.0, help="presses per second, all boxes together")
-    p.add_argument("--db-dir", default=None, metavar="DIR",
-                   help="folder for the bench database (default: the system's temporary folder)")
+    p.add_argument(
+        "--db-dir",
+        default=None,
+        metavar="DIR",
+        help="folder for the bench database (default: the system's temporary folder)",
+    )
     p.add_argument("--device", action="store_true", help=argparse.SUPPRESS)
     p.add_argument("--per-box", type=int, default=0, help=argparse.SUPPRESS)
     p.add_argument("--pause", type=float, default=0.005, help=argparse.SUPPRESS)
@@ -252,14 +256,15 @@ def main() -> int:
     if args.json:
         print(json.dumps(stack))
         return 0
-    print(f"machine: {where_run()}, pyserial {serial.__version__}; "
-          f"load average before the run {load:.2f}")
+    print(f"machine: {where_run()}, pyserial {serial.__version__}; load average before the run {load:.2f}")
     print(f"{args.boxes} box(es), {args.rate:g} presses/s in all; press line written -> pulse line read")
     print(f"{'':28}{'n':>6}{'p50 ms':>9}{'p99 ms':>9}{'max ms':>9}")
     for name, s in (("baseline (pty + echo)", base), ("vigil (link+session+store)", stack)):
         print(f"{name:28}{s['n']:>6}{s['p50_ms']:>9.3f}{s['p99_ms']:>9.3f}{s['max_ms']:>9.3f}")
-    print(f"ratio vigil / baseline: p50 x{stack['p50_ms'] / base['p50_ms']:.1f}, "
-          f"p99 x{stack['p99_ms'] / base['p99_ms']:.1f}")
+    print(
+        f"ratio vigil / baseline: p50 x{stack['p50_ms'] / base['p50_ms']:.1f}, "
+        f"p99 x{stack['p99_ms'] / base['p99_ms']:.1f}"
+    )
     print(f"target p99 <= 2 ms (stretch 0.5 ms): {'met' if stack['p99_ms'] <= 2 else 'NOT met'}")
     return 0
 

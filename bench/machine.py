@@ -13,8 +13,9 @@ def where_run() -> str:
     cpu = platform.machine()
     cpuinfo = Path("/proc/cpuinfo")
     if cpuinfo.exists():
-        names = [ln.split(":", 1)[1].strip() for ln in cpuinfo.read_text().splitlines()
-                 if ln.startswith("model name")]
+        names = [ln.split(":", 1)[1].strip() for ln in cpuinfo.read_text().splitlines() if ln.startswith("model name")]
         cpu = names[0] if names else cpu
-    return (f"{cpu} ({os.cpu_count()} logical cores), {platform.system()}, "
-            f"Python {platform.python_version()}, numpy {np.__version__}")
+    return (
+        f"{cpu} ({os.cpu_count()} logical cores), {platform.system()}, "
+        f"Python {platform.python_version()}, numpy {np.__version__}"
+    )

@@ -22,9 +22,8 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from machine import where_run  # noqa: E402  (bench/ is on sys.path when run as a script)
-
 import numpy as np  # noqa: E402
+from machine import where_run  # noqa: E402  (bench/ is on sys.path when run as a script)
 
 from hardware_stubs.agents import make_agent  # noqa: E402
 from hardware_stubs.emulated_box import EmulatedBox  # noqa: E402
@@ -35,7 +34,6 @@ from server.engine.session import Session  # noqa: E402
 from server.engine.virtual import run_virtual  # noqa: E402
 from server.protocol.load import load_protocol  # noqa: E402
 from server.rehearsal import rehearse  # noqa: E402
-
 
 
 def one_session(protocol, seed: int, closed_loop: bool = False) -> tuple[float, Session, list]:
@@ -55,9 +53,7 @@ def recorded_inputs(protocol, seed: int) -> list[tuple[float, InputEvent]]:
     records: list = []
     run_virtual(session, box, on_records=records.extend)
     return [
-        (r.t, InputEvent(r.name, r.value == 1.0))
-        for r in records
-        if isinstance(r, EventLogged) and r.kind == "input"
+        (r.t, InputEvent(r.name, r.value == 1.0)) for r in records if isinstance(r, EventLogged) and r.kind == "input"
     ]
 
 
@@ -111,7 +107,9 @@ def main() -> int:
     plain_virtual = sum(a["duration_s"] for a in plain["animals"])
 
     start = time.perf_counter()
-    result = rehearse(protocol, args.loop_animals, seed=7, agent="q_learner", workers=args.workers, sessions=args.sessions)
+    result = rehearse(
+        protocol, args.loop_animals, seed=7, agent="q_learner", workers=args.workers, sessions=args.sessions
+    )
     cohort_s = time.perf_counter() - start
     cohort_trials = sum(a["trials"] for a in result["animals"])
     cohort_virtual = sum(a["duration_s"] for a in result["animals"])
@@ -148,7 +146,8 @@ def main() -> int:
     print(f"baseline, session core alone replaying the same inputs: {core * 1000:.1f} ms "
           f"({core / wall:.0%} of the full rehearsal)")  # fmt: skip
     print(f"closed loop on (estimator + rules): {loop_wall * 1000:.1f} ms per session "
-          f"= {virtual_s / loop_wall:,.0f}x real time, {statistics.median(loop_trials) / loop_wall:,.0f} trials/s")  # fmt: skip
+          f"= {virtual_s / loop_wall:,.0f}x real time, "
+          f"{statistics.median(loop_trials) / loop_wall:,.0f} trials/s")  # fmt: skip
     print(f"cohort, schedule only: {args.animals} animals x 1 session in {plain_s:.1f} s wall "
           f"= {plain_virtual / plain_s:,.0f}x real time, {plain_trials / plain_s:,.0f} trials/s")  # fmt: skip
     print(f"cohort, closed loop on: {args.loop_animals} animals x {args.sessions} sessions in {cohort_s:.1f} s wall "

@@ -44,7 +44,6 @@ sys.path.insert(0, str(ROOT))
 from machine import where_run  # noqa: E402  (bench/ is on sys.path when run as a script)
 
 
-
 def pct(values: list[float], q: float) -> float:
     if not values:
         return float("nan")
@@ -79,7 +78,7 @@ def client_main(url: str, clients: int, windows: list, paths: list[str]) -> None
                 if time.monotonic() >= end:
                     break
                 for path in paths:
-                    for attempt in (1, 2):  # a keep-alive connection the server closed while
+                    for _ in (1, 2):  # a keep-alive connection the server closed while
                         began = time.perf_counter()  # idle is retried once, as browsers do
                         try:
                             conn.request("GET", path)
@@ -109,8 +108,16 @@ def client_main(url: str, clients: int, windows: list, paths: list[str]) -> None
 
 async def load(url: str, clients: int, windows: list, paths: list[str]) -> dict:
     proc = await asyncio.create_subprocess_exec(
-        sys.executable, __file__, "--client", url, "--clients", str(clients),
-        "--windows", json.dumps(windows), "--paths", ",".join(paths),
+        sys.executable,
+        __file__,
+        "--client",
+        url,
+        "--clients",
+        str(clients),
+        "--windows",
+        json.dumps(windows),
+        "--paths",
+        ",".join(paths),
         stdout=subprocess.PIPE,
     )
     out, _ = await proc.communicate()
@@ -185,20 +192,32 @@ async def bench(boxes: int, clients: int, seconds: float, rounds: int) -> dict:
     db = folder / "bench.sqlite"
     store = Store.open(db)
     lab = Lab(demo_lab(DEMO_CONFIG, boxes), store, say=lambda text: None, in_process_boxes=True)
-    page = await start_page(lab, db, host="127.0.0.1", port=0,
-                            operator_token="bench-operator-token-0000", viewer_token=None,
-                            lab_name=lab.config.lab, quiet_after_s=300.0, say=print)
+    page = await start_page(
+        lab,
+        db,
+        host="127.0.0.1",
+        port=0,
+        operator_token="bench-operator-token-0000",
+        viewer_token=None,
+        lab_name=lab.config.lab,
+        quiet_after_s=300.0,
+        say=print,
+    )
     running = asyncio.create_task(lab.run())
     while len(lab.runs) < boxes:
         await asyncio.sleep(0.05)
     await asyncio.wait_for(page.end.ready.wait(), 60)
     await asyncio.sleep(2.0)  # every box past its first trial start
     url = page.url
-    result: dict = {"boxes": boxes, "clients": clients, "seconds": seconds, "rounds": rounds,
-                    "page_pid": page.pid}
-    result["http_single"] = (await load(url, 1, [["single", time.monotonic() + 0.5,
-                                                   time.monotonic() + 3.5, 0.0]],
-                                        ["/assets/vigil.svg", "/api/boxes", "/"]))["times"]["single"]
+    result: dict = {"boxes": boxes, "clients": clients, "seconds": seconds, "rounds": rounds, "page_pid": page.pid}
+    result["http_single"] = (
+        await load(
+            url,
+            1,
+            [["single", time.monotonic() + 0.5, time.monotonic() + 3.5, 0.0]],
+            ["/assets/vigil.svg", "/api/boxes", "/"],
+        )
+    )["times"]["single"]
     # Unloaded and polling windows alternate, so drift in the machine's other load falls on
     # both alike; one flat-out window at the end.
     slice_s = seconds / rounds
@@ -228,35 +247,57 @@ async def bench(boxes: int, clients: int, seconds: float, rounds: int) -> dict:
 
 
 def summary(result: dict) -> dict:
-    out: dict = {"machine": where_run(), "boxes": result["boxes"], "clients": result["clients"],
-                 "seconds_per_condition": result["seconds"], "rounds": result["rounds"],
-                 "http": {}, "closed_loop_ms": {}, "errors": result["errors"],
-                 "page_exit": result["page_exit"]}
+    out: dict = {
+        "machine": where_run(),
+        "boxes": result["boxes"],
+        "clients": result["clients"],
+        "seconds_per_condition": result["seconds"],
+        "rounds": result["rounds"],
+        "http": {},
+        "closed_loop_ms": {},
+        "errors": result["errors"],
+        "page_exit": result["page_exit"],
+    }
     costs = [us for us, _ in result["feed"]]
     sent = [size for _, size in result["feed"] if size]
-    out["feed"] = {"turns": len(costs), "sent": len(sent), "p50_us": pct(costs, 50),
-                   "p99_us": pct(costs, 99), "max_us": max(costs, default=float("nan")),
-                   "mean_bytes": sum(sent) / len(sent) if sent else 0.0}
+    out["feed"] = {
+        "turns": len(costs),
+        "sent": len(sent),
+        "p50_us": pct(costs, 50),
+        "p99_us": pct(costs, 99),
+        "max_us": max(costs, default=float("nan")),
+        "mean_bytes": sum(sent) / len(sent) if sent else 0.0,
+    }
     for path, values in result["http_single"].items():
-        out["http"][f"1 client {path}"] = {"n": len(values), "p50_ms": pct(values, 50),
-                                            "p99_ms": pct(values, 99)}
+        out["http"][f"1 client {path}"] = {"n": len(values), "p50_ms": pct(values, 50), "p99_ms": pct(values, 99)}
     for name in ("polling", "flat_out"):
         for path, values in result[f"http_{name}"].items():
             out["http"][f"{result['clients']} clients {name} {path}"] = {
-                "n": len(values), "p50_ms": pct(values, 50), "p99_ms": pct(values, 99)}
+                "n": len(values),
+                "p50_ms": pct(values, 50),
+                "p99_ms": pct(values, 99),
+            }
     for name in ("unloaded", "polling", "flat_out"):
         values = result[f"loop_{name}"]
-        out["closed_loop_ms"][name] = {"n": len(values), "p50": pct(values, 50),
-                                       "p99": pct(values, 99), "max": max(values, default=float("nan"))}
+        out["closed_loop_ms"][name] = {
+            "n": len(values),
+            "p50": pct(values, 50),
+            "p99": pct(values, 99),
+            "max": max(values, default=float("nan")),
+        }
     return out
 
 
 def report(s: dict) -> str:
-    lines = [f"machine: {s['machine']}",
-             f"lab: {s['boxes']} emulated boxes (in-process link), status page in its own "
-             f"process; {s['seconds_per_condition']:g} s per condition in {s['rounds']} "
-             f"alternating slices; request errors: {s['errors']}; page process exit code "
-             f"{s['page_exit']}", "", "response time (ms)"]
+    lines = [
+        f"machine: {s['machine']}",
+        f"lab: {s['boxes']} emulated boxes (in-process link), status page in its own "
+        f"process; {s['seconds_per_condition']:g} s per condition in {s['rounds']} "
+        f"alternating slices; request errors: {s['errors']}; page process exit code "
+        f"{s['page_exit']}",
+        "",
+        "response time (ms)",
+    ]
     lines.append(f"  {'':44} {'n':>6} {'p50':>8} {'p99':>8}")
     for name, row in s["http"].items():
         lines.append(f"  {name:44} {row['n']:6d} {row['p50_ms']:8.2f} {row['p99_ms']:8.2f}")
@@ -264,22 +305,30 @@ def report(s: dict) -> str:
     if floor:
         boxes_p50 = s["http"]["1 client /api/boxes"]["p50_ms"]
         lines.append(f"  /api/boxes p50 = {boxes_p50 / floor:.2f} x the static-file floor")
-    lines += ["", "closed-loop latency, input due -> taken by the session (ms)",
-              f"  {'':16} {'n':>6} {'p50':>7} {'p99':>7} {'max':>7}"]
+    lines += [
+        "",
+        "closed-loop latency, input due -> taken by the session (ms)",
+        f"  {'':16} {'n':>6} {'p50':>7} {'p99':>7} {'max':>7}",
+    ]
     base = s["closed_loop_ms"]["unloaded"]["p99"]
     for name, row in s["closed_loop_ms"].items():
         delta = "" if name == "unloaded" else f"   p99 {row['p99'] - base:+.2f} vs unloaded"
-        lines.append(f"  {name:16} {row['n']:6d} {row['p50']:7.3f} {row['p99']:7.3f} "
-                     f"{row['max']:7.2f}{delta}")
+        lines.append(f"  {name:16} {row['n']:6d} {row['p50']:7.3f} {row['p99']:7.3f} {row['max']:7.2f}{delta}")
     feed = s["feed"]
-    lines += ["", f"feed on the lab's loop: {feed['turns']} turns, {feed['sent']} lines sent "
-              f"(mean {feed['mean_bytes']:.0f} bytes); per turn p50 {feed['p50_us']:.0f} us, "
-              f"p99 {feed['p99_us']:.0f} us, max {feed['max_us']:.0f} us"]
+    lines += [
+        "",
+        f"feed on the lab's loop: {feed['turns']} turns, {feed['sent']} lines sent "
+        f"(mean {feed['mean_bytes']:.0f} bytes); per turn p50 {feed['p50_us']:.0f} us, "
+        f"p99 {feed['p99_us']:.0f} us, max {feed['max_us']:.0f} us",
+    ]
     poll_p99 = max(v["p99_ms"] for k, v in s["http"].items() if "polling" in k)
     loop_delta = s["closed_loop_ms"]["polling"]["p99"] - base
-    lines += ["", f"targets: page p99 under polling {poll_p99:.1f} ms (<= 50: "
-              f"{'met' if poll_p99 <= 50 else 'NOT met'}); closed-loop p99 under polling "
-              f"{loop_delta:+.2f} ms vs unloaded (<= +0.5: {'met' if loop_delta <= 0.5 else 'NOT met'})"]
+    lines += [
+        "",
+        f"targets: page p99 under polling {poll_p99:.1f} ms (<= 50: "
+        f"{'met' if poll_p99 <= 50 else 'NOT met'}); closed-loop p99 under polling "
+        f"{loop_delta:+.2f} ms vs unloaded (<= +0.5: {'met' if loop_delta <= 0.5 else 'NOT met'})",
+    ]
     return "\n".join(lines)
 
 
@@ -287,8 +336,9 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--boxes", type=int, default=32)
     parser.add_argument("--clients", type=int, default=20)
-    parser.add_argument("--seconds", type=float, default=180.0,
-                        help="seconds of each condition (unloaded, polling), in slices")
+    parser.add_argument(
+        "--seconds", type=float, default=180.0, help="seconds of each condition (unloaded, polling), in slices"
+    )
     parser.add_argument("--rounds", type=int, default=12, help="alternating slices per condition")
     parser.add_argument("--json", action="store_true")
     parser.add_argument("--client", metavar="URL", help=argparse.SUPPRESS)

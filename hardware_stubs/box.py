@@ -117,9 +117,7 @@ class PtyBox:
         protocol = load_protocol(args.protocol)
         self.wiring = protocol.wiring
         self.t0 = time.monotonic()
-        self.offset_us = (
-            args.clock_offset_us if args.clock_offset_us is not None else -int(self.t0 * 1e6)
-        )
+        self.offset_us = args.clock_offset_us if args.clock_offset_us is not None else -int(self.t0 * 1e6)
         self.faults = FaultPlan(args.unplug_every, args.unplug_for, args.drop_rate,
                                 args.garbage_rate, args.delay_ms)  # fmt: skip
         self.fault_rng = np.random.default_rng([args.seed, 1])

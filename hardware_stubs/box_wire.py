@@ -207,9 +207,7 @@ class DeviceWire:
     # ------------------------------------------------------------ writing
 
     def identity(self) -> Identity:
-        return Identity(
-            self.cursor - 1, self.firmware, PROTOCOL_VERSION, self.boot, self.inputs, self.outputs
-        )
+        return Identity(self.cursor - 1, self.firmware, PROTOCOL_VERSION, self.boot, self.inputs, self.outputs)
 
     def _beat(self, now_us: int) -> Beat:
         self._beat_due = (now_us + BEAT_US) % U32

@@ -66,9 +66,7 @@ class EmulatedBox:
             presents.setdefault(by, []).append(line)
         self._presents = {k: tuple(v) for k, v in presents.items()}
         self._presented = {i.name: i.presented_by is None for i in wiring.inputs.values()}
-        self._operants = tuple(
-            i.name for i in wiring.inputs.values() if i.kind in OPERANT_INPUT_KINDS
-        )
+        self._operants = tuple(i.name for i in wiring.inputs.values() if i.kind in OPERANT_INPUT_KINDS)
         self.presented_operants = tuple(filter(self._presented.__getitem__, self._operants))
 
         # Events carry no per-edge data here, so one frozen instance per edge serves all.

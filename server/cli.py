@@ -235,8 +235,12 @@ def build_parser() -> argparse.ArgumentParser:
     p = verbs.add_parser("serve", help="the status page over a database, read-only")
     p.add_argument("--db", required=True, metavar="PATH", help="SQLite database to show")
     p.add_argument("--port", type=_port, default=8642, metavar="P")
-    p.add_argument("--host", default="127.0.0.1", metavar="H",
-                   help="address to listen on (beyond this computer needs VIGIL_VIEWER_TOKEN)")
+    p.add_argument(
+        "--host",
+        default="127.0.0.1",
+        metavar="H",
+        help="address to listen on (beyond this computer needs VIGIL_VIEWER_TOKEN)",
+    )
     p.set_defaults(func=cmd_serve)
 
     p = verbs.add_parser("stages", help="each animal's training-stage history")
@@ -251,14 +255,22 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--agent", default="q_learner", metavar="NAME")
     p.add_argument("--workers", type=_positive_int, default=None, metavar="W",
                    help="worker processes (default: all cores for large cohorts)")  # fmt: skip
-    p.add_argument("--sessions", type=_positive_int, default=1, metavar="K",
-                   help="sessions (days) per animal; learning carries over")
+    p.add_argument(
+        "--sessions",
+        type=_positive_int,
+        default=1,
+        metavar="K",
+        help="sessions (days) per animal; learning carries over",
+    )
     p.add_argument("--population", metavar="FILE", help="YAML: agent and how its options vary")
-    p.add_argument("--vary", action="append", metavar="NAME=SPEC",
-                   help="vary an agent option: NAME=LOW:HIGH, NAME=lognormal:MEDIAN:SIGMA, NAME=VALUE")
+    p.add_argument(
+        "--vary",
+        action="append",
+        metavar="NAME=SPEC",
+        help="vary an agent option: NAME=LOW:HIGH, NAME=lognormal:MEDIAN:SIGMA, NAME=VALUE",
+    )
     p.add_argument("--figure", metavar="FILE.svg", help="write a histogram of trials to criterion")
-    p.add_argument("--firings", action="store_true",
-                   help="list every rule firing with the values its condition read")
+    p.add_argument("--firings", action="store_true", help="list every rule firing with the values its condition read")
     p.add_argument("--json", action="store_true", help="print JSON instead of a table")
     p.set_defaults(func=cmd_rehearse)
 

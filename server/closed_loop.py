@@ -8,7 +8,8 @@ exactly what runs.
 from __future__ import annotations
 
 import sqlite3
-from typing import Any, Mapping
+from collections.abc import Mapping
+from typing import Any
 
 from server.engine.caps import HardCaps
 from server.engine.session import Session

@@ -15,26 +15,25 @@ import shutil
 import signal
 import sys
 import tempfile
+from collections.abc import Callable
 from dataclasses import dataclass, field, replace
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
-from typing import Callable
 
 import numpy as np
 
+from server.closed_loop import animal_estimator_state, build_session
 from server.engine.live import LiveSession
 from server.engine.records import EventLogged, Record, SessionEnded, TrialRecord
-from server.closed_loop import animal_estimator_state, build_session
-from server.stages import advancement, current_stage, stage_for_box
 from server.engine.session import Session
 from server.lab_config import BoxConfig, LabConfig
 from server.link.emulator_process import EmulatorProcess, emulator_command
 from server.link.handshake import LinkError
 from server.link.inprocess import InProcessLink
 from server.link.serial_link import SerialLink
+from server.stages import advancement, current_stage, stage_for_box
 from server.store.background import BackgroundWriter
 from server.store.writer import Store
-
 
 
 @dataclass
@@ -85,7 +84,7 @@ class BoxRun:
 
 
 def wall_now() -> str:
-    return datetime.now(timezone.utc).astimezone().isoformat(timespec="milliseconds")
+    return datetime.now(UTC).astimezone().isoformat(timespec="milliseconds")
 
 
 EMULATOR_STARTUP_S = 30.0  # a child process importing numpy on a busy machine
@@ -113,9 +112,7 @@ def make_box(
             raise LabError(f"box '{box.name}': no folder for the emulated box's pty")
         path = folder / (re.sub(r"[^A-Za-z0-9._-]", "_", box.name) + ".tty")  # names are unique
         emu = box.emulate
-        command = emulator_command(
-            path, box.protocol.source, emu.agent, emu.seed, emu.options, emu.faults
-        )
+        command = emulator_command(path, box.protocol.source, emu.agent, emu.seed, emu.options, emu.faults)
         child = EmulatorProcess(box.name, path, command)
         return SerialLink(box.name, str(path), box.protocol.wiring, clock, say=say,
                           on_close=child.stop, gone=child.failure,

@@ -27,6 +27,7 @@ def _url_handlers():
 
     return [m for m in pkgutil.iter_modules(serial.urlhandler.__path__) if m.name.startswith("protocol_")]
 
+
 TOP_KEYS = ("lab", "database", "caps", "boxes", "web")
 BOX_KEYS = ("name", "animal", "protocol", "stages", "settings", "port", "emulate", "seed")
 STAGE_KEYS = ("protocol", "advance")
@@ -146,7 +147,9 @@ class _LabReader(Reader):
         if top is None:
             return None
         name = self.text(top["lab"], "lab") if "lab" in top else "lab"
-        database = self.base / (self.text(top["database"], "database") or "") if "database" in top else Path("vigil.sqlite")
+        database = (
+            self.base / (self.text(top["database"], "database") or "") if "database" in top else Path("vigil.sqlite")
+        )
         caps = self.caps(top.get("caps"))
         boxes: list[BoxConfig] = []
         seen: dict[str, int] = {}
@@ -159,9 +162,13 @@ class _LabReader(Reader):
             if box is None:
                 continue
             if box.name in seen:
-                self.error(node.mark, f"boxes[{i + 1}].name: box '{box.name}' is already listed as boxes[{seen[box.name]}]")
+                self.error(
+                    node.mark, f"boxes[{i + 1}].name: box '{box.name}' is already listed as boxes[{seen[box.name]}]"
+                )
             elif box.animal in animals:
-                self.error(node.mark, f"boxes[{i + 1}].animal: '{box.animal}' is already in box '{animals[box.animal]}'")
+                self.error(
+                    node.mark, f"boxes[{i + 1}].animal: '{box.animal}' is already in box '{animals[box.animal]}'"
+                )
             else:
                 seen[box.name] = i + 1
                 animals[box.animal] = box.name
@@ -180,23 +187,49 @@ class _LabReader(Reader):
         for key in ("operator_token", "viewer_token"):
             token = self.text(f[key], f"web.{key}") if key in f else None
             if token is not None and len(token) < MIN_TOKEN_CHARS:
-                self.error(f[key].mark, f"web.{key}: expected at least {MIN_TOKEN_CHARS} characters, found {len(token)}")
+                self.error(
+                    f[key].mark, f"web.{key}: expected at least {MIN_TOKEN_CHARS} characters, found {len(token)}"
+                )
                 token = None
             tokens[key] = token
-        quiet = self.number(f["no_response_minutes"], "web.no_response_minutes", low=0, low_open=True) if "no_response_minutes" in f else default.no_response_minutes
+        quiet = (
+            self.number(f["no_response_minutes"], "web.no_response_minutes", low=0, low_open=True)
+            if "no_response_minutes" in f
+            else default.no_response_minutes
+        )
         host = host or default.host
         if "host" in f and not is_loopback(host) and not (tokens["operator_token"] and tokens["viewer_token"]):
-            self.error(f["host"].mark, f"web.host: listening on '{host}' reaches other computers; set web.operator_token and web.viewer_token first, or use 127.0.0.1")
-        return WebSettings(host, int(port or default.port), tokens["operator_token"], tokens["viewer_token"], float(quiet or default.no_response_minutes))
+            self.error(
+                f["host"].mark,
+                f"web.host: listening on '{host}' reaches other computers; "
+                "set web.operator_token and web.viewer_token first, or use 127.0.0.1",
+            )
+        return WebSettings(
+            host,
+            int(port or default.port),
+            tokens["operator_token"],
+            tokens["viewer_token"],
+            float(quiet or default.no_response_minutes),
+        )
 
     def caps(self, node: Marked | None) -> HardCaps:
         f = self.mapping(node, "caps", ("max_rewards", "max_minutes"))
         if not f:
             return HardCaps()
         default = HardCaps()
-        rewards = self.number(f["max_rewards"], "caps.max_rewards", low=0, integer=True) if "max_rewards" in f else default.max_rewards
-        minutes = self.number(f["max_minutes"], "caps.max_minutes", low=0, low_open=True, high=24 * 60) if "max_minutes" in f else default.max_minutes
-        return HardCaps(int(rewards if rewards is not None else default.max_rewards), float(minutes or default.max_minutes))
+        rewards = (
+            self.number(f["max_rewards"], "caps.max_rewards", low=0, integer=True)
+            if "max_rewards" in f
+            else default.max_rewards
+        )
+        minutes = (
+            self.number(f["max_minutes"], "caps.max_minutes", low=0, low_open=True, high=24 * 60)
+            if "max_minutes" in f
+            else default.max_minutes
+        )
+        return HardCaps(
+            int(rewards if rewards is not None else default.max_rewards), float(minutes or default.max_minutes)
+        )
 
     def box(self, node: Marked, where: str) -> BoxConfig | None:
         before = len(self.problems)
@@ -207,22 +240,33 @@ class _LabReader(Reader):
         animal = self.text(f.get("animal"), f"{where}.animal")
         stages: tuple[Stage, ...] = ()
         if ("protocol" in f) == ("stages" in f):
-            self.error(node.mark, f"{where}: give exactly one of 'protocol' or 'stages' (a list of protocols to advance through)")
+            self.error(
+                node.mark,
+                f"{where}: give exactly one of 'protocol' or 'stages' (a list of protocols to advance through)",
+            )
             protocol = None
         elif "protocol" in f:
             protocol = self.protocol(f.get("protocol"), f"{where}.protocol")
         else:
             stages = self.stages(f["stages"], f"{where}.stages")
             protocol = stages[0].protocol if stages else None
-        settings = self.box_settings(f.get("settings"), f"{where}.settings", [protocol] if protocol and not stages else [s.protocol for s in stages])
+        settings = self.box_settings(
+            f.get("settings"),
+            f"{where}.settings",
+            [protocol] if protocol and not stages else [s.protocol for s in stages],
+        )
         port = self.port(f["port"], f"{where}.port") if "port" in f else None
         emulate = self.emulation(f["emulate"], f"{where}.emulate") if "emulate" in f else None
         if ("port" in f) == ("emulate" in f):
-            self.error(node.mark, f"{where}: give exactly one of 'port' (a serial port) or 'emulate' (a virtual animal)")
+            self.error(
+                node.mark, f"{where}: give exactly one of 'port' (a serial port) or 'emulate' (a virtual animal)"
+            )
         seed = self.number(f["seed"], f"{where}.seed", low=0, integer=True) if "seed" in f else None
         if len(self.problems) > before or name is None or animal is None or protocol is None:
             return None
-        return BoxConfig(name, animal, protocol, port, emulate, int(seed) if seed is not None else None, stages, settings)
+        return BoxConfig(
+            name, animal, protocol, port, emulate, int(seed) if seed is not None else None, stages, settings
+        )
 
     def stages(self, node: Marked, where: str) -> tuple[Stage, ...]:
         items = self.listing(node, where)
@@ -258,7 +302,9 @@ class _LabReader(Reader):
                 values[key] = self.probability(f[key], f"{where}.{key}")
         if any(v is None for v in values.values()):
             return None
-        return Advance(**{k: (int(v) if k in ("sessions", "min_trials", "min_rewards") else float(v)) for k, v in values.items()})
+        return Advance(
+            **{k: (int(v) if k in ("sessions", "min_trials", "min_rewards") else float(v)) for k, v in values.items()}
+        )
 
     def box_settings(self, node: Marked | None, where: str, protocols: list[Protocol]) -> dict[str, float]:
         known = sorted({name for p in protocols for name in p.settings})
@@ -330,7 +376,11 @@ class _LabReader(Reader):
             self.error(node.mark, f"{where}: give both unplug_every_s and unplug_for_s, or neither")
             return None
         if faults.get("unplug_for_s", 0.0) >= faults.get("unplug_every_s", 1.0):
-            self.error(f["unplug_for_s"].mark, f"{where}.unplug_for_s: expected less than unplug_every_s ({faults['unplug_every_s']:g}), found {faults['unplug_for_s']:g}")
+            self.error(
+                f["unplug_for_s"].mark,
+                f"{where}.unplug_for_s: expected less than unplug_every_s ({faults['unplug_every_s']:g}), "
+                f"found {faults['unplug_for_s']:g}",
+            )
             return None
         return faults
 
@@ -342,6 +392,10 @@ class _LabReader(Reader):
         scheme = text.split("://", 1)[0]
         known = sorted(m.name.removeprefix("protocol_") for m in _url_handlers())
         if scheme not in known:
-            self.error(node.mark, f"{where}: unknown serial URL scheme '{scheme}' (pyserial knows {', '.join(known)}){did_you_mean(scheme, known)}")
+            self.error(
+                node.mark,
+                f"{where}: unknown serial URL scheme '{scheme}' "
+                f"(pyserial knows {', '.join(known)}){did_you_mean(scheme, known)}",
+            )
             return None
         return text

@@ -88,7 +88,12 @@ def _read_spread(r: Reader, node, where: str) -> Spread | None:
     g = r.mapping(value, f"{where}.{kind}", keys, required=keys)
     if g is None:
         return None
-    first = r.number(g.get(keys[0]), f"{where}.{kind}.{keys[0]}", low=0 if kind == "lognormal" else None, low_open=kind == "lognormal")
+    first = r.number(
+        g.get(keys[0]),
+        f"{where}.{kind}.{keys[0]}",
+        low=0 if kind == "lognormal" else None,
+        low_open=kind == "lognormal",
+    )
     second = r.number(g.get(keys[1]), f"{where}.{kind}.{keys[1]}", low=0)
     if first is None or second is None:
         return None
@@ -148,5 +153,13 @@ def parse_vary(items: list[str], agent: str) -> Population:
         elif parts[0] == "normal" and len(parts) == 3:
             lines.append(f"  {name}: {{normal: {{mean: {parts[1]}, sd: {parts[2]}}}}}")
         else:
-            raise InvalidFile([Problem(Mark("--vary", 1, 1), f"cannot read '{item}': use NAME=VALUE, NAME=LOW:HIGH, NAME=lognormal:MEDIAN:SIGMA or NAME=normal:MEAN:SD")])
+            raise InvalidFile(
+                [
+                    Problem(
+                        Mark("--vary", 1, 1),
+                        f"cannot read '{item}': use NAME=VALUE, NAME=LOW:HIGH, "
+                        "NAME=lognormal:MEDIAN:SIGMA or NAME=normal:MEAN:SD",
+                    )
+                ]
+            )
     return read_population("options:\n" + "\n".join(lines) + "\n" if lines else "{}\n", "--vary", agent)

@@ -9,18 +9,19 @@ from __future__ import annotations
 
 import os
 import sys
+from collections.abc import Callable
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass
-from typing import Any, Callable
+from typing import Any
 
 import numpy as np
 
-from server.engine.caps import HardCaps
 from server.closed_loop import build_session
+from server.engine.caps import HardCaps
 from server.engine.session import Session
 from server.engine.virtual import run_virtual
-from server.protocol.model import SCHEDULE_ACTIONS, Protocol
 from server.population import Population, Spread
+from server.protocol.model import SCHEDULE_ACTIONS, Protocol
 from server.rules.book import firing_counts as rule_firings
 from server.rules.book import firing_log
 
@@ -53,8 +54,13 @@ def has_performance_criterion(protocol: Protocol) -> bool:
 
 
 def rehearse_one(
-    protocol: Protocol, animal: Animal, population: Population, caps: HardCaps, sessions: int = 1,
-    closed_loop: bool = True, with_log: bool = False,
+    protocol: Protocol,
+    animal: Animal,
+    population: Population,
+    caps: HardCaps,
+    sessions: int = 1,
+    closed_loop: bool = True,
+    with_log: bool = False,
 ) -> dict:
     """One virtual animal over `sessions` days: its learned values and the estimator's
     posterior carry from day to day, as they would for a real animal."""
@@ -73,7 +79,9 @@ def rehearse_one(
         agent = make_agent(population.agent, **params)
         agent.restore(learned)
         if closed_loop:
-            session = build_session(protocol, animal.session_seed + day, caps, log_events=False, estimator_state=estimator_state)
+            session = build_session(
+                protocol, animal.session_seed + day, caps, log_events=False, estimator_state=estimator_state
+            )
         else:  # the schedule alone: no estimator, no rules (a speed baseline)
             session = Session(protocol, animal.session_seed + day, caps, log_events=False)
         box = EmulatedBox(protocol.wiring, agent, np.random.default_rng(animal.agent_seed + day))
@@ -200,7 +208,8 @@ def summarise(results: list[dict], criterion: bool, sessions: int = 1) -> dict:
         "trials_to_criterion": _spread(reached) if criterion else None,
         "sessions_to_criterion": (
             _spread([r["sessions_to_criterion"] for r in results if r["sessions_to_criterion"] is not None])
-            if criterion else None
+            if criterion
+            else None
         ),
         "fraction_never_reaching_criterion": (
             round(1 - len(reached) / len(results), 4) if criterion and results else None
@@ -275,7 +284,8 @@ def criterion_figure_svg(result: dict) -> str:
     plot_w, plot_h = width - left - 20, height - bottom - 40
     title = escape(f"{result['protocol']}: trials to criterion, {len(result['animals'])} virtual animals")
     parts = [
-        f'<svg xmlns="http://www.w3.org/2000/svg" width="{width}" height="{height}" viewBox="0 0 {width} {height}" font-family="sans-serif" font-size="12">',
+        f'<svg xmlns="http://www.w3.org/2000/svg" width="{width}" height="{height}" '
+        f'viewBox="0 0 {width} {height}" font-family="sans-serif" font-size="12">',
         f'<rect width="{width}" height="{height}" fill="white"/>',
         f'<text x="{left}" y="22" font-size="14">{title}</text>',
     ]
@@ -286,14 +296,18 @@ def criterion_figure_svg(result: dict) -> str:
         for i, c in enumerate(counts):
             h = plot_h * c / top
             x = left + i * bar_w
-            parts.append(f'<rect x="{x:.1f}" y="{40 + plot_h - h:.1f}" width="{bar_w - 2:.1f}" height="{h:.1f}" fill="#4a6fa5"/>')
+            parts.append(
+                f'<rect x="{x:.1f}" y="{40 + plot_h - h:.1f}" width="{bar_w - 2:.1f}" height="{h:.1f}" fill="#4a6fa5"/>'
+            )
         for i in (0, len(edges) // 2, len(edges) - 1):
             x = left + plot_w * i / (len(edges) - 1)
             parts.append(f'<text x="{x:.1f}" y="{height - bottom + 18}" text-anchor="middle">{edges[i]:.0f}</text>')
         parts.append(f'<text x="{left - 8}" y="{40 + 4}" text-anchor="end">{top}</text>')
         parts.append(f'<text x="{left - 8}" y="{40 + plot_h}" text-anchor="end">0</text>')
     parts.append(f'<line x1="{left}" y1="{40 + plot_h}" x2="{left + plot_w}" y2="{40 + plot_h}" stroke="black"/>')
-    parts.append(f'<text x="{left + plot_w / 2}" y="{height - 12}" text-anchor="middle">trials to criterion (animals)</text>')
+    parts.append(
+        f'<text x="{left + plot_w / 2}" y="{height - 12}" text-anchor="middle">trials to criterion (animals)</text>'
+    )
     parts.append(f'<text x="{left + plot_w}" y="{height - 12}" text-anchor="end">never reached: {never}</text>')
     parts.append("</svg>")
     return "\n".join(parts) + "\n"

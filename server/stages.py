@@ -8,8 +8,8 @@ the figures kept as evidence.
 from __future__ import annotations
 
 import json
-from dataclasses import asdict
 import sqlite3
+from dataclasses import asdict
 from typing import Any
 
 from server.lab_config import Advance, BoxConfig

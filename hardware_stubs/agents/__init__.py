@@ -1,7 +1,7 @@
 """Virtual animals for emulated boxes, chosen by name with options declared as data.
 
-    agent = make_agent("q_learner", alpha=0.2, beta=4.0)
-    errors = validate_agent("pavlovian", {"tracking": "sign"})   # [] when fine
+agent = make_agent("q_learner", alpha=0.2, beta=4.0)
+errors = validate_agent("pavlovian", {"tracking": "sign"})   # [] when fine
 """
 
 from __future__ import annotations

@@ -44,14 +44,12 @@ COLLECT = 1
 CHECK = 2
 
 MAGAZINE_OPTIONS = (
-    AgentOption("collect_s", 0.8, "median latency to the magazine after a pellet drops (lognormal)",
-                0.05, 60.0),
+    AgentOption("collect_s", 0.8, "median latency to the magazine after a pellet drops (lognormal)", 0.05, 60.0),
     AgentOption("collect_sigma", 0.5, "log-scale spread of that latency", 0.0, 3.0),
     AgentOption("eat_s", 2.5, "median head-in time when eating", 0.1, 60.0),
     AgentOption("check_s", 0.8, "median head-in time when the magazine is empty", 0.05, 60.0),
     AgentOption("dwell_sigma", 0.4, "log-scale spread of head-in times", 0.0, 3.0),
-    AgentOption("check_every_s", 60.0,
-                "mean time between spontaneous magazine checks while idle (0: never)", 0.0, 1e6),
+    AgentOption("check_every_s", 60.0, "mean time between spontaneous magazine checks while idle (0: never)", 0.0, 1e6),
 )
 
 
@@ -111,9 +109,7 @@ class VirtualAnimal:
     def on_pellet(self, t: float) -> None:
         """The feeder clicked: go and collect, unless already on the way."""
         if self._collect is None:
-            self._collect = self.box.wake(
-                t + self.draws.lognormal(self.collect_s, self.collect_sigma), COLLECT
-            )
+            self._collect = self.box.wake(t + self.draws.lognormal(self.collect_s, self.collect_sigma), COLLECT)
 
     def on_wake(self, t: float, token: int) -> None:
         if token == COLLECT:

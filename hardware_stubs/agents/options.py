@@ -42,8 +42,10 @@ class AgentOption:
             return f"{where} must be one of {', '.join(self.choices)}, got {value!r}{hint}"
         if isinstance(value, bool) or not isinstance(value, (int, float)):
             return f"{where} must be a number, got {value!r}"
-        if value != value or (self.low is not None and value < self.low) or (
-            self.high is not None and value > self.high
+        if (
+            value != value
+            or (self.low is not None and value < self.low)
+            or (self.high is not None and value > self.high)
         ):
             return f"{where} must be between {self.low:g} and {self.high:g}, got {value!r}"
         return None
@@ -59,9 +61,7 @@ def resolve_options(
     for key, value in given.items():
         option = by_name.get(key)
         if option is None:
-            errors.append(
-                f"unknown option {key!r} for agent {agent!r}{did_you_mean(key, by_name)}"
-            )
+            errors.append(f"unknown option {key!r} for agent {agent!r}{did_you_mean(key, by_name)}")
             continue
         problem = None if value is None and option.default is None else option.problem(agent, value)
         if problem:

@@ -19,25 +19,17 @@ TO_MAGAZINE = 21
 TRACKING_BIAS = {"sign": 1.0, "goal": -1.0, "intermediate": 0.0}
 
 PAVLOVIAN_OPTIONS = MAGAZINE_OPTIONS + (
-    AgentOption("tracking", None, "sign, goal or intermediate (instead of sign_bias)",
-                choices=tuple(TRACKING_BIAS)),
-    AgentOption("sign_bias", None, "+1 approaches only the lever, -1 only the magazine",
-                -1.0, 1.0),
-    AgentOption("learning_rate", 0.1, "Rescorla-Wagner rate (alpha times beta) of the CS",
-                0.0, 1.0),
-    AgentOption("baseline", 0.05, "chance of approaching on a trial before any learning",
-                0.0, 1.0),
-    AgentOption("latency_s", 1.0, "median approach latency once the CS is learned",
-                0.05, 60.0),
+    AgentOption("tracking", None, "sign, goal or intermediate (instead of sign_bias)", choices=tuple(TRACKING_BIAS)),
+    AgentOption("sign_bias", None, "+1 approaches only the lever, -1 only the magazine", -1.0, 1.0),
+    AgentOption("learning_rate", 0.1, "Rescorla-Wagner rate (alpha times beta) of the CS", 0.0, 1.0),
+    AgentOption("baseline", 0.05, "chance of approaching on a trial before any learning", 0.0, 1.0),
+    AgentOption("latency_s", 1.0, "median approach latency once the CS is learned", 0.05, 60.0),
     AgentOption("naive_latency_s", 5.0, "median approach latency before learning", 0.05, 120.0),
     AgentOption("latency_sigma", 0.5, "log-scale spread of approach latencies", 0.0, 3.0),
-    AgentOption("press_irt_s", 1.5, "median time between lever presses once learned",
-                0.05, 60.0),
-    AgentOption("entry_gap_s", 1.0, "median time between head entries during the CS",
-                0.05, 60.0),
+    AgentOption("press_irt_s", 1.5, "median time between lever presses once learned", 0.05, 60.0),
+    AgentOption("entry_gap_s", 1.0, "median time between head entries during the CS", 0.05, 60.0),
     AgentOption("irt_sigma", 0.5, "log-scale spread of those times", 0.0, 3.0),
-    AgentOption("reward_window_s", 1.0, "a pellet this soon after CS offset is its US",
-                0.01, 30.0),
+    AgentOption("reward_window_s", 1.0, "a pellet this soon after CS offset is its US", 0.01, 30.0),
 )
 
 
@@ -69,9 +61,7 @@ class PavlovianApproacher(VirtualAnimal):
         super().__init__(**options)
         given = self.options["sign_bias"]
         tracking = self.options["tracking"]
-        self.sign_bias: float = (
-            TRACKING_BIAS[tracking] if tracking is not None else 0.0 if given is None else given
-        )
+        self.sign_bias: float = TRACKING_BIAS[tracking] if tracking is not None else 0.0 if given is None else given
         self.v = 0.0  # CS-pellet associative strength, V0 = 0, asymptote 1
         self.cs_trials = 0
         self._cs: str | None = None

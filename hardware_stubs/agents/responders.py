@@ -22,15 +22,12 @@ RESPOND = 10
 _MAX_OMISSION = 0.95  # a sated animal still wanders back to the lever now and then
 
 RESPONDER_OPTIONS = MAGAZINE_OPTIONS + (
-    AgentOption("latency_s", 2.0, "median latency from presentation to the first response",
-                0.05, 120.0),
+    AgentOption("latency_s", 2.0, "median latency from presentation to the first response", 0.05, 120.0),
     AgentOption("latency_sigma", 0.6, "log-scale spread of that latency", 0.0, 3.0),
-    AgentOption("irt_s", 1.0, "median inter-response time while an input stays presented",
-                0.05, 120.0),
+    AgentOption("irt_s", 1.0, "median inter-response time while an input stays presented", 0.05, 120.0),
     AgentOption("irt_sigma", 0.7, "log-scale spread of inter-response times", 0.0, 3.0),
     AgentOption("omission", 0.05, "probability of pausing instead of responding", 0.0, 1.0),
-    AgentOption("satiety", 0.001, "added to the omission probability per pellet eaten",
-                0.0, 1.0),
+    AgentOption("satiety", 0.001, "added to the omission probability per pellet eaten", 0.0, 1.0),
     AgentOption("pause_s", 20.0, "mean length of a pause (exponential)", 0.1, 1e5),
 )
 
@@ -114,8 +111,7 @@ class RandomResponder(VirtualAnimal):
 Q_OPTIONS = RESPONDER_OPTIONS + (
     AgentOption("alpha", 0.3, "learning rate of the Q update", 0.0, 1.0),
     AgentOption("beta", 5.0, "softmax inverse temperature", 0.0, 50.0),
-    AgentOption("reward_window_s", 1.0,
-                "a pellet this soon after a response counts as its reward", 0.01, 30.0),
+    AgentOption("reward_window_s", 1.0, "a pellet this soon after a response counts as its reward", 0.01, 30.0),
 )
 
 

@@ -8,7 +8,6 @@ import numpy as np
 
 from server.protocol.model import Block, Protocol
 
-
 PERFORMANCE_CRITERIA = ("streak", "accuracy")
 
 
@@ -83,11 +82,11 @@ class BlockProgress:
                 banned = tail[0]
         while True:  # at most a few draws: the banned type never has all the weight
             u = self.rng.random()
-            for name, edge in zip(self._names, self._cum):
+            name = self._names[-1]
+            for candidate, edge in zip(self._names, self._cum):
                 if u < edge:
+                    name = candidate
                     break
-            else:
-                name = self._names[-1]
             if name != banned:
                 return name
 

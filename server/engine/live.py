@@ -8,14 +8,15 @@ driver only decides *when* to call the core: at each input, and at each deadline
 from __future__ import annotations
 
 import asyncio
-from typing import Callable, Protocol as TypingProtocol
+from collections.abc import Callable
+from typing import Protocol as TypingProtocol
 
 from server.engine.records import Command, InputEvent, Record
 from server.engine.session import Session
 
 
 class BoxLink(TypingProtocol):
-    events: "asyncio.Queue[tuple[InputEvent, float] | ControlRequest]"
+    events: asyncio.Queue[tuple[InputEvent, float] | ControlRequest]
 
     def send(self, commands: list[Command]) -> None: ...
 
@@ -91,7 +92,7 @@ class LiveSession:
             self._send(session.stop(self._t(self.clock()), f"error: {type(exc).__name__}: {exc}"))
             raise
 
-    def _handle(self, item: "tuple[InputEvent, float] | ControlRequest") -> None:
+    def _handle(self, item: tuple[InputEvent, float] | ControlRequest) -> None:
         if isinstance(item, ControlRequest):
             t = self._t(self.clock())
             if item.action == "stop":

@@ -10,7 +10,6 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from typing import Any
 
-
 # ---------------------------------------------------------------- box side
 
 
@@ -139,6 +138,4 @@ class RuleFired:
     values: dict[str, float | None]
 
 
-Record = (
-    SessionStarted | EventLogged | TrialRecord | BlockStarted | SessionEnded | EstimateUpdated | RuleFired
-)
+Record = SessionStarted | EventLogged | TrialRecord | BlockStarted | SessionEnded | EstimateUpdated | RuleFired

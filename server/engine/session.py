@@ -9,12 +9,11 @@ the tests all run exactly the same logic.
 from __future__ import annotations
 
 import math
-from typing import Callable
+from collections.abc import Callable
 
 import numpy as np
 
 from server.engine.block_progress import PERFORMANCE_CRITERIA, BlockProgress
-from server.engine.session_controls import SessionControls
 from server.engine.caps import EffectiveLimits, HardCaps, effective_limits
 from server.engine.records import (
     BlockStarted,
@@ -28,6 +27,7 @@ from server.engine.records import (
     SetOutput,
     TrialRecord,
 )
+from server.engine.session_controls import SessionControls
 from server.engine.step_plans import OutputPlan, StepPlan, output_commands, output_plan, pulse_commands, step_plans
 from server.engine.timing import DurationDraw, ScheduleState
 from server.protocol.model import END_SESSION, END_TRIAL, Block, Protocol, Step, TrialType
@@ -125,9 +125,7 @@ class Session(SessionControls):
         self.first_criterion_trial: int | None = None
         self._cap_reached = False
         self._pending_end: str | None = None
-        self._itis = {
-            b.name: DurationDraw(b.iti or protocol.iti, self.rng) for b in protocol.blocks
-        }
+        self._itis = {b.name: DurationDraw(b.iti or protocol.iti, self.rng) for b in protocol.blocks}
         self._block_end = math.inf  # when the current block's time criterion runs out
         self._commands = output_commands(protocol.wiring)
         self._pulses = pulse_commands(protocol.wiring)
@@ -199,8 +197,9 @@ class Session(SessionControls):
         """An input edge at session time t (events must arrive in time order)."""
         if self.log_events:
             self._records.append(
-                EventLogged(t, "input", event.name, 1.0 if event.rising else 0.0,
-                            event.device_t_us, event.device_seq)  # fmt: skip
+                EventLogged(
+                    t, "input", event.name, 1.0 if event.rising else 0.0, event.device_t_us, event.device_seq
+                )  # fmt: skip
             )
         if self.finished or self._paused_at is not None:
             return []
@@ -580,5 +579,3 @@ class Session(SessionControls):
     def _flush(self) -> list[Command]:
         out, self._out = self._out, []
         return out
-
-

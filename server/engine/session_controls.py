@@ -68,7 +68,9 @@ class SessionControls:
             before = self.best_options()
             self.block.swap(a, b)
             self._count_reversal(before)
-        self._log(t, "block", "reversal", detail={"swap": [a, b], "now": dict(self.block.contingencies) if self.block else {}})
+        self._log(
+            t, "block", "reversal", detail={"swap": [a, b], "now": dict(self.block.contingencies) if self.block else {}}
+        )
 
     def switch_block(self, name: str, t: float, why: str = "rule") -> None:
         """Leave the current block after the trial in progress; the next trial starts `name`."""

@@ -8,7 +8,8 @@ input comes first is processed; nothing sleeps, so a night runs in milliseconds.
 from __future__ import annotations
 
 import math
-from typing import Callable, Protocol as TypingProtocol
+from collections.abc import Callable
+from typing import Protocol as TypingProtocol
 
 from server.engine.records import Command, InputEvent, Record
 from server.engine.session import Session

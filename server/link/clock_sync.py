@@ -92,8 +92,7 @@ class ClockSync:
         groups = max(1, round(len(samples) * self.keep))
         size = len(samples) / groups
         fastest = [
-            min(samples[round(g * size) : round((g + 1) * size)], key=lambda s: s.delay_s)
-            for g in range(groups)
+            min(samples[round(g * size) : round((g + 1) * size)], key=lambda s: s.delay_s) for g in range(groups)
         ]
         limit = 2.0 * statistics.median(s.delay_s for s in fastest)
         return [s for s in fastest if s.delay_s <= limit]

@@ -52,7 +52,10 @@ class EmulatorProcess:
         # Its own session: a Ctrl-C at the terminal reaches the lab, which ends the sessions
         # cleanly and then stops its boxes, instead of pulling every box's cable at once.
         self.process = subprocess.Popen(
-            command, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=self._stderr,
+            command,
+            stdin=subprocess.DEVNULL,
+            stdout=subprocess.DEVNULL,
+            stderr=self._stderr,
             start_new_session=True,
         )
 

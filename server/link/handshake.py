@@ -23,7 +23,7 @@ class HandshakeError(LinkError):
 
 def _kind_words(kind: str) -> str:
     if kind.startswith(UNKNOWN_KIND_PREFIX):
-        return f"a kind this vigil does not know ('{kind[len(UNKNOWN_KIND_PREFIX):]}')"
+        return f"a kind this vigil does not know ('{kind[len(UNKNOWN_KIND_PREFIX) :]}')"
     return f"a {kind}"
 
 

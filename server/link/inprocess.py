@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import asyncio
 import math
-from typing import Callable
+from collections.abc import Callable
 
 from server.engine.records import Command
 

@@ -31,9 +31,7 @@ class ResendPlan:
 class PendingCommands:
     """Tracks unacknowledged commands by id; pure, the current time is passed in."""
 
-    def __init__(
-        self, first_id: int = 1, resend_after_s: float = 0.25, max_attempts: int = 8
-    ) -> None:
+    def __init__(self, first_id: int = 1, resend_after_s: float = 0.25, max_attempts: int = 8) -> None:
         if not 1 <= first_id <= U32_MAX:
             raise ValueError(f"first command id out of range 1..{U32_MAX}: {first_id}")
         if resend_after_s <= 0 or max_attempts < 1:

@@ -210,8 +210,7 @@ class SerialLink:
                         raise LinkError(f"box '{self.box}': {self._failure}") from None
                     if self._host() >= end:
                         raise LinkError(
-                            f"box '{self.box}' is not answering on {self.url} "
-                            f"(no identity within {within_s:g} s)"
+                            f"box '{self.box}' is not answering on {self.url} (no identity within {within_s:g} s)"
                         ) from None
         finally:
             self._greeting = None

@@ -8,8 +8,8 @@ one value history; the softmax part is then evaluated over all trials in one go.
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Mapping
 
 import numpy as np
 
@@ -27,10 +27,14 @@ class ValueSettings:
     carry_values: bool = False
 
 
-def value_history(model: ChoiceModel, theta: Mapping[str, np.ndarray | float],
-                  stack: TrialStack, qshape: tuple[int, ...],
-                  values: ValueSettings = ValueSettings(),
-                  keep_delta: bool = False) -> tuple[np.ndarray, np.ndarray | None]:
+def value_history(
+    model: ChoiceModel,
+    theta: Mapping[str, np.ndarray | float],
+    stack: TrialStack,
+    qshape: tuple[int, ...],
+    values: ValueSettings = ValueSettings(),
+    keep_delta: bool = False,
+) -> tuple[np.ndarray, np.ndarray | None]:
     """Values before each trial, shape (K, T, N, *qshape), and optionally the TD errors.
 
     Learning parameters in `theta` must broadcast against (N, *qshape).
@@ -56,15 +60,21 @@ def value_history(model: ChoiceModel, theta: Mapping[str, np.ndarray | float],
     return hist, deltas
 
 
-def loglik(model: ChoiceModel, theta: Mapping[str, np.ndarray | float], stack: TrialStack,
-           qshape: tuple[int, ...], values: ValueSettings = ValueSettings()) -> np.ndarray:
+def loglik(
+    model: ChoiceModel,
+    theta: Mapping[str, np.ndarray | float],
+    stack: TrialStack,
+    qshape: tuple[int, ...],
+    values: ValueSettings = ValueSettings(),
+) -> np.ndarray:
     """Summed log-likelihood of the choices: broadcast shape of (N, *qshape) and theta."""
     hist, _ = value_history(model, theta, stack, qshape, values)
     return loglik_from_history(model, theta, stack, hist)
 
 
-def loglik_from_history(model: ChoiceModel, theta: Mapping[str, np.ndarray | float],
-                        stack: TrialStack, hist: np.ndarray) -> np.ndarray:
+def loglik_from_history(
+    model: ChoiceModel, theta: Mapping[str, np.ndarray | float], stack: TrialStack, hist: np.ndarray
+) -> np.ndarray:
     k, t_len, n = stack.shape
     ones = (1,) * (hist.ndim - 3)
     chosen = stack.chosen.reshape(k, t_len, n, *ones)
@@ -80,8 +90,9 @@ def loglik_from_history(model: ChoiceModel, theta: Mapping[str, np.ndarray | flo
     return total
 
 
-def choice_probabilities(model: ChoiceModel, theta: Mapping[str, np.ndarray | float],
-                         stack: TrialStack, hist: np.ndarray) -> np.ndarray:
+def choice_probabilities(
+    model: ChoiceModel, theta: Mapping[str, np.ndarray | float], stack: TrialStack, hist: np.ndarray
+) -> np.ndarray:
     """Softmax choice probabilities before each trial, same shape as `hist`."""
     k, t_len, n = stack.shape
     ones = (1,) * (hist.ndim - 3)

@@ -20,8 +20,8 @@ replaying stored trials reproduces the online result exactly. Parameter values i
 from __future__ import annotations
 
 import difflib
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
-from typing import Callable, Mapping
 
 import numpy as np
 
@@ -90,7 +90,8 @@ CHOICE_MODELS: dict[str, ChoiceModel] = {
         ChoiceModel(
             "q_learning",
             (learning_rate("alpha", "learning rate"), inverse_temperature()),
-            _q_learning, _softmax_drive,
+            _q_learning,
+            _softmax_drive,
             "Q-learning with a softmax choice rule",
         ),
         ChoiceModel(
@@ -100,7 +101,8 @@ CHOICE_MODELS: dict[str, ChoiceModel] = {
                 learning_rate("alpha_neg", "learning rate after negative prediction errors", 16),
                 inverse_temperature(24),
             ),
-            _q_dual_rate, _softmax_drive,
+            _q_dual_rate,
+            _softmax_drive,
             "Q-learning with separate rates for better- and worse-than-expected outcomes",
         ),
         ChoiceModel(
@@ -108,11 +110,21 @@ CHOICE_MODELS: dict[str, ChoiceModel] = {
             (
                 learning_rate("alpha", "learning rate", 16),
                 inverse_temperature(24),
-                Param("kappa", -5.0, 5.0, "linear", Prior("normal", 0.0, 2.0), False, 16,
-                      "bonus for repeating the previous choice (negative = alternation)",
-                      grid_low=-4.0, grid_high=4.0),
+                Param(
+                    "kappa",
+                    -5.0,
+                    5.0,
+                    "linear",
+                    Prior("normal", 0.0, 2.0),
+                    False,
+                    16,
+                    "bonus for repeating the previous choice (negative = alternation)",
+                    grid_low=-4.0,
+                    grid_high=4.0,
+                ),
             ),
-            _q_learning, _sticky_drive,
+            _q_learning,
+            _sticky_drive,
             "Q-learning plus a bonus for repeating the previous choice",
         ),
         ChoiceModel(
@@ -120,10 +132,19 @@ CHOICE_MODELS: dict[str, ChoiceModel] = {
             (
                 learning_rate("alpha", "learning rate", 16),
                 inverse_temperature(24),
-                Param("decay", 0.0, 1.0, "linear", Prior("beta", 1.1, 1.1), True, 16,
-                      "fraction of an unchosen value lost after each choice"),
+                Param(
+                    "decay",
+                    0.0,
+                    1.0,
+                    "linear",
+                    Prior("beta", 1.1, 1.1),
+                    True,
+                    16,
+                    "fraction of an unchosen value lost after each choice",
+                ),
             ),
-            _q_forgetting, _softmax_drive,
+            _q_forgetting,
+            _softmax_drive,
             "Q-learning whose unchosen values decay towards zero",
         ),
     )
@@ -155,6 +176,10 @@ def log_choice_probability(logits: np.ndarray, chosen: np.ndarray) -> np.ndarray
 
 
 __all__ = [
-    "CHOICE_MODELS", "ChoiceModel", "Prior", "get_choice_model", "log_choice_probability",
+    "CHOICE_MODELS",
+    "ChoiceModel",
+    "Prior",
+    "get_choice_model",
+    "log_choice_probability",
     "log_softmax",
 ]

@@ -8,8 +8,8 @@ prediction errors per trial, computed by the same batch code the fit used.
 
 from __future__ import annotations
 
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import Mapping, Sequence
 
 import numpy as np
 
@@ -43,15 +43,18 @@ class Comparison:
         return self.ranking(index)[0]
 
 
-def compare_models(animals: Sequence[AnimalTrials], models: Sequence[str] | None = None, *,
-                   use_prior: bool = False,
-                   values: ValueSettings = ValueSettings()) -> Comparison:
+def compare_models(
+    animals: Sequence[AnimalTrials],
+    models: Sequence[str] | None = None,
+    *,
+    use_prior: bool = False,
+    values: ValueSettings = ValueSettings(),
+) -> Comparison:
     """Fit every choice model (or those named) to every animal."""
     names = list(models) if models else list(CHOICE_MODELS)
-    return Comparison({
-        name: fit_animals(get_choice_model(name), animals, use_prior=use_prior, values=values)
-        for name in names
-    })
+    return Comparison(
+        {name: fit_animals(get_choice_model(name), animals, use_prior=use_prior, values=values) for name in names}
+    )
 
 
 @dataclass(frozen=True, slots=True, eq=False)
@@ -67,12 +70,12 @@ class Regressors:
     prediction_error: np.ndarray  # (trials,)
 
 
-def regressors(model: ChoiceModel, animal: AnimalTrials, params: Mapping[str, float],
-               values: ValueSettings = ValueSettings()) -> Regressors:
+def regressors(
+    model: ChoiceModel, animal: AnimalTrials, params: Mapping[str, float], values: ValueSettings = ValueSettings()
+) -> Regressors:
     theta = model.check(params)
     stack = stack_animals([animal])
     hist, deltas = value_history(model, theta, stack, (), values, keep_delta=True)
     probs = choice_probabilities(model, theta, stack, hist)
     pe = np.where(animal.choice >= 0, deltas[:, 0], np.nan)
-    return Regressors(animal.animal, model.name, animal.options, hist[:, :, 0].T,
-                      probs[:, :, 0].T, pe)
+    return Regressors(animal.animal, model.name, animal.options, hist[:, :, 0].T, probs[:, :, 0].T, pe)

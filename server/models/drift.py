@@ -41,7 +41,7 @@ class BetaWalk:
         self.cells = n
         self.sizes = grid.sizes
         before = int(np.prod(grid.sizes[:axis]))
-        after = int(np.prod(grid.sizes[axis + 1:]))
+        after = int(np.prod(grid.sizes[axis + 1 :]))
         self._pad = np.zeros((before, n + 2, after))
         self._mid = self._pad[:, 1:-1]
         self.inbox = self._mid.reshape(grid.sizes)  # a view: writing here fills the buffer

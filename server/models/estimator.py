@@ -21,8 +21,9 @@ stored trials. No clocks and no I/O here: the caller passes each trial in.
 from __future__ import annotations
 
 import math
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any, Iterable, Mapping, Sequence
+from typing import Any
 
 import numpy as np
 
@@ -70,8 +71,7 @@ class Estimate:
         return {
             "model": self.model,
             "session_trial": self.session_trial,
-            "params": {k: {"mean": v.mean, "low": v.low, "high": v.high}
-                       for k, v in self.params.items()},
+            "params": {k: {"mean": v.mean, "low": v.low, "high": v.high} for k, v in self.params.items()},
             "values": dict(self.values),
             "p_choice": dict(self.p_choice),
             "prediction_error": self.prediction_error,
@@ -102,10 +102,19 @@ class OnlineEstimator:
     reward_rate_step: step of the exponential filter on reward per trial.
     """
 
-    def __init__(self, model: str = "q_learning", options: Sequence[str] = (), *,
-                 grid: Mapping[str, int] | None = None, drift: float = 0.0,
-                 temper: float = 0.5, carry_values: bool = False, q0: float = 0.0,
-                 reward_rate_step: float = 0.1, use_prior: bool = True):
+    def __init__(
+        self,
+        model: str = "q_learning",
+        options: Sequence[str] = (),
+        *,
+        grid: Mapping[str, int] | None = None,
+        drift: float = 0.0,
+        temper: float = 0.5,
+        carry_values: bool = False,
+        q0: float = 0.0,
+        reward_rate_step: float = 0.1,
+        use_prior: bool = True,
+    ):
         self.model = get_choice_model(model)
         for label in options:
             if not isinstance(label, str) or not label:
@@ -119,9 +128,13 @@ class OnlineEstimator:
         if not (0 < reward_rate_step <= 1):
             raise ValueError(f"reward_rate_step must be in (0, 1], got {reward_rate_step!r}")
         self.config = {
-            "grid": dict(grid or {}), "drift": float(drift), "temper": float(temper),
-            "carry_values": bool(carry_values), "q0": float(q0),
-            "reward_rate_step": float(reward_rate_step), "use_prior": bool(use_prior),
+            "grid": dict(grid or {}),
+            "drift": float(drift),
+            "temper": float(temper),
+            "carry_values": bool(carry_values),
+            "q0": float(q0),
+            "reward_rate_step": float(reward_rate_step),
+            "use_prior": bool(use_prior),
         }
         self.grid = build_grid(self.model, grid, use_prior)
         self._walk = beta_walk(self.grid, drift)
@@ -279,8 +292,7 @@ class OnlineEstimator:
 
     def estimate(self) -> Estimate:
         w = self._w
-        params = {p.name: ParamEstimate(*row)
-                  for p, row in zip(self.model.params, self.grid.marginal_summaries(w))}
+        params = {p.name: ParamEstimate(*row) for p, row in zip(self.model.params, self.grid.marginal_summaries(w))}
         k = len(self.options)
         values, p_choice, p_prefers = {}, {}, {}
         best = exploration = p_best = None
@@ -301,9 +313,18 @@ class OnlineEstimator:
                 p_best = p_prefers[best]
         rate = self._rate_sum / self._rate_norm if self._rate_norm else None
         return Estimate(
-            self.model.name, self._session_trial, params, values, p_choice,
-            self._prediction_error(), self._last_surprise, best, exploration, p_best,
-            p_prefers, rate,
+            self.model.name,
+            self._session_trial,
+            params,
+            values,
+            p_choice,
+            self._prediction_error(),
+            self._last_surprise,
+            best,
+            exploration,
+            p_best,
+            p_prefers,
+            rate,
         )
 
     def p_choice_at_least(self, label: str, level: float) -> float | None:
@@ -354,11 +375,10 @@ class OnlineEstimator:
         }
 
     @classmethod
-    def from_state(cls, state: Mapping[str, Any]) -> "OnlineEstimator":
+    def from_state(cls, state: Mapping[str, Any]) -> OnlineEstimator:
         """Rebuild an estimator exactly as `state_dict` left it."""
         if state.get("format") != STATE_FORMAT:
-            raise ValueError(f"estimator state format {state.get('format')!r} is not "
-                             f"{STATE_FORMAT}")
+            raise ValueError(f"estimator state format {state.get('format')!r} is not {STATE_FORMAT}")
         est = cls(state["model"], state["options"], **state["config"])
         w = np.array(state["weights"], dtype=float)
         q = np.array(state["values"], dtype=float)
@@ -375,9 +395,9 @@ class OnlineEstimator:
         return est
 
     @classmethod
-    def replay(cls, trials: Iterable[tuple[Any, str | None, float]],
-               state: Mapping[str, Any] | None = None,
-               **config: Any) -> tuple["OnlineEstimator", list[Estimate]]:
+    def replay(
+        cls, trials: Iterable[tuple[Any, str | None, float]], state: Mapping[str, Any] | None = None, **config: Any
+    ) -> tuple[OnlineEstimator, list[Estimate]]:
         """Rebuild from stored (session, choice, reward) trials in order.
 
         Starts from `state` (the end of an earlier session) or fresh from `config`; a new

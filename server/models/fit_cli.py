@@ -12,7 +12,8 @@ import csv
 import json
 import math
 import sys
-from typing import Sequence, TextIO
+from collections.abc import Sequence
+from typing import TextIO
 
 from .batch import ValueSettings
 from .choice import CHOICE_MODELS, get_choice_model
@@ -28,27 +29,28 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.description = (
         "Fit a learning model to each animal's choices (maximum likelihood, or MAP with "
         "--map) from a trials CSV (header animal,session,trial,choice,reward; empty choice "
-        "= omission) or from the session database.")
+        "= omission) or from the session database."
+    )
     parser.add_argument("trials", nargs="?", metavar="TRIALS.csv", help="trials CSV file")
     parser.add_argument("--db", metavar="PATH", help="read trials from a Vigil database")
-    parser.add_argument("--animal", action="append", metavar="ID",
-                        help="fit only this animal (repeatable; default: every animal)")
-    parser.add_argument("--model", default="q_learning", metavar="NAME",
-                        help=f"one of {', '.join(CHOICE_MODELS)} (default q_learning)")
+    parser.add_argument(
+        "--animal", action="append", metavar="ID", help="fit only this animal (repeatable; default: every animal)"
+    )
+    parser.add_argument(
+        "--model", default="q_learning", metavar="NAME", help=f"one of {', '.join(CHOICE_MODELS)} (default q_learning)"
+    )
     parser.add_argument("--json", action="store_true", help="print results as JSON")
-    parser.add_argument("--map", action="store_true",
-                        help="maximise the posterior under the models' declared priors")
-    parser.add_argument("--compare", action="store_true",
-                        help="fit every choice model and rank them by BIC")
-    parser.add_argument("--regressors", metavar="OUT.csv",
-                        help="write per-trial values, choice probabilities and prediction "
-                             "errors at the fitted parameters")
-    parser.add_argument("--carry-values", action="store_true",
-                        help="keep learned values from one session to the next")
+    parser.add_argument("--map", action="store_true", help="maximise the posterior under the models' declared priors")
+    parser.add_argument("--compare", action="store_true", help="fit every choice model and rank them by BIC")
+    parser.add_argument(
+        "--regressors",
+        metavar="OUT.csv",
+        help="write per-trial values, choice probabilities and prediction errors at the fitted parameters",
+    )
+    parser.add_argument("--carry-values", action="store_true", help="keep learned values from one session to the next")
 
 
-def run(args: argparse.Namespace, out: TextIO | None = None,
-        err: TextIO | None = None) -> int:
+def run(args: argparse.Namespace, out: TextIO | None = None, err: TextIO | None = None) -> int:
     out = out or sys.stdout
     err = err or sys.stderr
 
@@ -64,8 +66,11 @@ def run(args: argparse.Namespace, out: TextIO | None = None,
         except ValueError as exc:
             return fail(str(exc), 2)
     try:
-        animals = (read_trials_db(args.db, args.animal) if args.db
-                   else _select(read_trials_csv(args.trials), args.animal, args.trials))
+        animals = (
+            read_trials_db(args.db, args.animal)
+            if args.db
+            else _select(read_trials_csv(args.trials), args.animal, args.trials)
+        )
     except FitInputError as exc:
         return fail(str(exc), 1)
     usable = []
@@ -98,8 +103,7 @@ def run(args: argparse.Namespace, out: TextIO | None = None,
     return 0
 
 
-def _select(animals: list[AnimalTrials], wanted: Sequence[str] | None,
-            source: str) -> list[AnimalTrials]:
+def _select(animals: list[AnimalTrials], wanted: Sequence[str] | None, source: str) -> list[AnimalTrials]:
     if not wanted:
         return animals
     by_name = {a.animal: a for a in animals}
@@ -128,11 +132,20 @@ def _comparison_json(comparison: Comparison) -> list[dict]:
     for rank, (name, bic) in enumerate(comparison.totals(), 1):
         fits = comparison.fits[name]
         ll = sum(f.loglik for f in fits)
-        rows.append(_clean({
-            "animal": None, "model": name, "params": {}, "loglik": ll,
-            "n_trials": sum(f.n_trials for f in fits), "aic": sum(f.aic for f in fits),
-            "bic": bic, "rank": rank,
-        }))
+        rows.append(
+            _clean(
+                {
+                    "animal": None,
+                    "model": name,
+                    "params": {},
+                    "loglik": ll,
+                    "n_trials": sum(f.n_trials for f in fits),
+                    "aic": sum(f.aic for f in fits),
+                    "bic": bic,
+                    "rank": rank,
+                }
+            )
+        )
     return rows
 
 
@@ -151,8 +164,7 @@ def _print_table(rows: list[list[str]], out: TextIO) -> None:
 def _print_fits(fits: list[FitResult], out: TextIO) -> None:
     first = fits[0]
     kind = "MAP under the declared priors" if first.objective == "map" else "maximum likelihood"
-    print(f"{first.model} ({kind}); intervals are Wald 95 % from the observed information",
-          file=out)
+    print(f"{first.model} ({kind}); intervals are Wald 95 % from the observed information", file=out)
     names = list(first.params)
     rows = [["animal", "trials", "loglik", "AIC", "BIC"] + names]
     for f in fits:
@@ -171,22 +183,43 @@ def _print_comparison(comparison: Comparison, out: TextIO) -> None:
     for i, animal in enumerate(comparison.animals):
         ranked = comparison.ranking(i)
         for rank, f in enumerate(ranked, 1):
-            rows.append([animal, str(rank), f.model, _num(f.bic, 6),
-                         _num(f.bic - ranked[0].bic, 3), _num(f.loglik, 6), str(f.k),
-                         str(f.n_trials)])
+            rows.append(
+                [
+                    animal,
+                    str(rank),
+                    f.model,
+                    _num(f.bic, 6),
+                    _num(f.bic - ranked[0].bic, 3),
+                    _num(f.loglik, 6),
+                    str(f.k),
+                    str(f.n_trials),
+                ]
+            )
     totals = comparison.totals()
     for rank, (name, bic) in enumerate(totals, 1):
-        rows.append(["(all)", str(rank), name, _num(bic, 6), _num(bic - totals[0][1], 3),
-                     _num(sum(f.loglik for f in comparison.fits[name]), 6), "", ""])
+        rows.append(
+            [
+                "(all)",
+                str(rank),
+                name,
+                _num(bic, 6),
+                _num(bic - totals[0][1], 3),
+                _num(sum(f.loglik for f in comparison.fits[name]), 6),
+                "",
+                "",
+            ]
+        )
     _print_table(rows, out)
 
 
-def _write_regressors(path: str, animals: list[AnimalTrials], fits: list[FitResult],
-                      values: ValueSettings) -> None:
+def _write_regressors(path: str, animals: list[AnimalTrials], fits: list[FitResult], values: ValueSettings) -> None:
     labels = list(dict.fromkeys(lab for a in animals for lab in a.options))
-    header = (["animal", "session", "trial", "model", "choice", "reward"]
-              + [f"value_{lab}" for lab in labels] + [f"p_{lab}" for lab in labels]
-              + ["prediction_error"])
+    header = (
+        ["animal", "session", "trial", "model", "choice", "reward"]
+        + [f"value_{lab}" for lab in labels]
+        + [f"p_{lab}" for lab in labels]
+        + ["prediction_error"]
+    )
     with open(path, "w", newline="", encoding="utf-8") as fh:
         writer = csv.writer(fh)
         writer.writerow(header)
@@ -195,12 +228,16 @@ def _write_regressors(path: str, animals: list[AnimalTrials], fits: list[FitResu
             col = {lab: j for j, lab in enumerate(a.options)}
             for t in range(len(a.choice)):
                 c = a.choice[t]
-                row = [a.animal, a.session[t], a.trial[t], fit.model,
-                       a.options[c] if c >= 0 else "", repr(float(a.reward[t]))]
-                row += [repr(float(reg.values[t, col[lab]])) if lab in col else ""
-                        for lab in labels]
-                row += [repr(float(reg.p_choice[t, col[lab]])) if lab in col else ""
-                        for lab in labels]
+                row = [
+                    a.animal,
+                    a.session[t],
+                    a.trial[t],
+                    fit.model,
+                    a.options[c] if c >= 0 else "",
+                    repr(float(a.reward[t])),
+                ]
+                row += [repr(float(reg.values[t, col[lab]])) if lab in col else "" for lab in labels]
+                row += [repr(float(reg.p_choice[t, col[lab]])) if lab in col else "" for lab in labels]
                 pe = reg.prediction_error[t]
                 row.append("" if math.isnan(pe) else repr(float(pe)))
                 writer.writerow(row)

@@ -10,8 +10,8 @@ from __future__ import annotations
 import csv
 import math
 import sqlite3
+from collections.abc import Sequence
 from pathlib import Path
-from typing import Sequence
 
 from .trials import AnimalTrials, encode_animal
 
@@ -50,9 +50,7 @@ def _parse_csv(path: str, fh) -> list[AnimalTrials]:
         if not fields or all(not f.strip() for f in fields):
             continue
         if len(fields) != len(HEADER):
-            raise FitInputError(
-                f"{path}:{line}: expected {len(HEADER)} fields ({','.join(HEADER)}), "
-                f"got {len(fields)}")
+            raise FitInputError(f"{path}:{line}: expected {len(HEADER)} fields ({','.join(HEADER)}), got {len(fields)}")
         animal, session, trial_s, choice, reward_s = (f.strip() for f in fields)
         if not animal:
             raise FitInputError(f"{path}:{line}: animal is empty")
@@ -61,8 +59,7 @@ def _parse_csv(path: str, fh) -> list[AnimalTrials]:
         try:
             trial = int(trial_s)
         except ValueError:
-            raise FitInputError(
-                f"{path}:{line}: trial {trial_s!r} is not a whole number") from None
+            raise FitInputError(f"{path}:{line}: trial {trial_s!r} is not a whole number") from None
         try:
             reward = float(reward_s)
         except ValueError:
@@ -73,14 +70,16 @@ def _parse_csv(path: str, fh) -> list[AnimalTrials]:
         if prev is not None and prev[0] == session and trial <= prev[1]:
             raise FitInputError(
                 f"{path}:{line}: trial {trial} of session {session} (animal {animal}) "
-                f"comes after trial {prev[1]}; trials must increase within a session")
+                f"comes after trial {prev[1]}; trials must increase within a session"
+            )
         if prev is not None and prev[0] != session:
             closed = done.setdefault(animal, set())
             closed.add(prev[0])
             if session in closed:
                 raise FitInputError(
                     f"{path}:{line}: session {session} of animal {animal} resumes after "
-                    f"session {prev[0]}; keep each session's rows together")
+                    f"session {prev[0]}; keep each session's rows together"
+                )
         last[animal] = (session, trial)
         rows.setdefault(animal, []).append((session, trial, choice or None, reward))
     if not rows:
@@ -117,7 +116,8 @@ def read_trials_db(path: str, animals: Sequence[str] | None) -> list[AnimalTrial
     for animal, session, trial, choice, reward, omission in found:
         label = None if (omission or choice is None or choice == "") else str(choice)
         rows.setdefault(str(animal), []).append(
-            (str(session), int(trial), label, 0.0 if reward is None else float(reward)))
+            (str(session), int(trial), label, 0.0 if reward is None else float(reward))
+        )
     missing = [a for a in (animals or []) if a not in rows]
     if missing:
         raise FitInputError(f"{path}: no trials for animal {missing[0]!r}")

@@ -16,8 +16,8 @@ optimum), taken on the fitting scale: symmetric for rates, symmetric in log for 
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
-from typing import Mapping, Sequence
 
 import numpy as np
 
@@ -76,13 +76,19 @@ class FitResult:
 class _Problem:
     """The objective for one model over a stack of animals, on the unit cube of free params."""
 
-    def __init__(self, model: ChoiceModel, stack: TrialStack, free: Sequence[Param],
-                 fixed: Mapping[str, float], use_prior: bool, values: ValueSettings):
+    def __init__(
+        self,
+        model: ChoiceModel,
+        stack: TrialStack,
+        free: Sequence[Param],
+        fixed: Mapping[str, float],
+        use_prior: bool,
+        values: ValueSettings,
+    ):
         self.model, self.stack, self.free = model, stack, list(free)
         self.fixed, self.use_prior, self.values = dict(fixed), use_prior, values
 
-    def _objective(self, theta: dict, qshape: tuple[int, ...],
-                   stack: TrialStack) -> tuple[np.ndarray, np.ndarray]:
+    def _objective(self, theta: dict, qshape: tuple[int, ...], stack: TrialStack) -> tuple[np.ndarray, np.ndarray]:
         ll = loglik(self.model, theta, stack, qshape, self.values)
         f = -ll
         if self.use_prior:
@@ -124,8 +130,7 @@ def _starts(f: np.ndarray, centres: np.ndarray, count: int) -> tuple[np.ndarray,
     ranked = np.argsort(np.where(is_min.reshape(n_animals, -1), flat, np.inf), axis=1)
     pick = ranked[:, :count]
     best = flat.argmin(1)[:, None]
-    pick = np.where(is_min.reshape(n_animals, -1)[np.arange(n_animals)[:, None], pick],
-                    pick, best)
+    pick = np.where(is_min.reshape(n_animals, -1)[np.arange(n_animals)[:, None], pick], pick, best)
     idx = np.stack(np.unravel_index(pick, f.shape[1:]), axis=-1)
     return centres[idx], np.take_along_axis(flat, pick, 1)
 
@@ -197,8 +202,7 @@ def _damped_steps(u: np.ndarray, grad: np.ndarray, hess: np.ndarray) -> np.ndarr
     return np.clip(u[..., None, :] + steps, 0.0, 1.0)
 
 
-def _refine(problem: _Problem, u: np.ndarray, fu: np.ndarray,
-            rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def _refine(problem: _Problem, u: np.ndarray, fu: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Damped Newton from every start (u: (M, d)); only unconverged starts are evaluated."""
     u, fu = u.copy(), fu.copy()
     active = np.ones(len(u), dtype=bool)
@@ -219,8 +223,7 @@ def _refine(problem: _Problem, u: np.ndarray, fu: np.ndarray,
     return u, fu
 
 
-def _intervals(free: Sequence[Param], u: np.ndarray, grad: np.ndarray,
-               hess: np.ndarray) -> list[dict]:
+def _intervals(free: Sequence[Param], u: np.ndarray, grad: np.ndarray, hess: np.ndarray) -> list[dict]:
     """Wald 95 % intervals on the unit cube, mapped back to each parameter's scale.
 
     A parameter held on a bound by its gradient gets no interval; the others use the
@@ -245,15 +248,20 @@ def _intervals(free: Sequence[Param], u: np.ndarray, grad: np.ndarray,
     return out
 
 
-def _fit_stack(model: ChoiceModel, animals: Sequence[AnimalTrials], free: list[Param],
-               fixed: dict, use_prior: bool, values: ValueSettings,
-               chunk: int) -> list[FitResult]:
+def _fit_stack(
+    model: ChoiceModel,
+    animals: Sequence[AnimalTrials],
+    free: list[Param],
+    fixed: dict,
+    use_prior: bool,
+    values: ValueSettings,
+    chunk: int,
+) -> list[FitResult]:
     problem = _Problem(model, stack_animals(animals), free, fixed, use_prior, values)
     n, d = len(animals), len(free)
     starts, f_starts = [], []
     for c0 in range(0, n, chunk):  # the coarse grid is the memory-hungry stage
-        part = _Problem(model, problem.stack.take(np.arange(c0, min(n, c0 + chunk))), free,
-                        fixed, use_prior, values)
+        part = _Problem(model, problem.stack.take(np.arange(c0, min(n, c0 + chunk))), free, fixed, use_prior, values)
         f, centres = part.coarse(COARSE_POINTS.get(d, 7))
         u, fu = _starts(f, centres, STARTS)
         starts.append(u)
@@ -272,17 +280,31 @@ def _fit_stack(model: ChoiceModel, animals: Sequence[AnimalTrials], free: list[P
         params.update(fixed)
         ordered = {name: params[name] for name in model.names}
         ll = float(ll_best[i])
-        results.append(FitResult(
-            a.animal, model.name, ordered, intervals[i], ll, a.n_choices, d,
-            "map" if use_prior else "ml",
-            float(-f_best[i] - ll) if use_prior else None, tuple(sorted(fixed)),
-        ))
+        results.append(
+            FitResult(
+                a.animal,
+                model.name,
+                ordered,
+                intervals[i],
+                ll,
+                a.n_choices,
+                d,
+                "map" if use_prior else "ml",
+                float(-f_best[i] - ll) if use_prior else None,
+                tuple(sorted(fixed)),
+            )
+        )
     return results
 
 
-def fit_animals(model: ChoiceModel, animals: Sequence[AnimalTrials], *,
-                use_prior: bool = False, fixed: Mapping[str, float] | None = None,
-                values: ValueSettings = ValueSettings()) -> list[FitResult]:
+def fit_animals(
+    model: ChoiceModel,
+    animals: Sequence[AnimalTrials],
+    *,
+    use_prior: bool = False,
+    fixed: Mapping[str, float] | None = None,
+    values: ValueSettings = ValueSettings(),
+) -> list[FitResult]:
     """Fit one model to each animal (ML, or MAP with the declared priors); keeps order.
 
     `fixed` holds parameters to keep at given values (they do not count in k).
@@ -308,7 +330,6 @@ def fit_animals(model: ChoiceModel, animals: Sequence[AnimalTrials], *,
         t_max = max(len(animals[i].choice) for i in idx)
         per_animal = max(1, t_max * q_cells * k, n_coarse ** len(free) * k)
         chunk = max(1, _STACK_ELEMENTS // per_animal)
-        fits = _fit_stack(model, [animals[i] for i in idx], free, fixed, use_prior, values,
-                          chunk)
+        fits = _fit_stack(model, [animals[i] for i in idx], free, fixed, use_prior, values, chunk)
         out.update(zip(idx, fits))
     return [out[i] for i in range(len(animals))]

@@ -11,8 +11,8 @@ setting of the learning rates.
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Mapping
 
 import numpy as np
 
@@ -58,19 +58,20 @@ class Grid:
             np.cumsum(m, out=cdf[1:])
             lo_u, hi_u = np.interp(_TAILS * cdf[-1], cdf, self.edges[i])
             lo, hi = p.grid_range()
-            out.append((
-                float(m @ self.centres[i]) / float(cdf[-1]),
-                float(p.from_unit(lo_u, lo, hi)),
-                float(p.from_unit(hi_u, lo, hi)),
-            ))
+            out.append(
+                (
+                    float(m @ self.centres[i]) / float(cdf[-1]),
+                    float(p.from_unit(lo_u, lo, hi)),
+                    float(p.from_unit(hi_u, lo, hi)),
+                )
+            )
         return out
 
 
 _TAILS = np.array([0.025, 0.975])
 
 
-def build_grid(model: ChoiceModel, sizes: Mapping[str, int] | None = None,
-               use_prior: bool = True) -> Grid:
+def build_grid(model: ChoiceModel, sizes: Mapping[str, int] | None = None, use_prior: bool = True) -> Grid:
     """Cell-centred product grid over each parameter's grid range."""
     sizes = dict(sizes or {})
     unknown = [k for k in sizes if k not in model.names]

@@ -8,8 +8,8 @@ lets grids, optimisers and priors be built from the declaration alone.
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Mapping
 
 import numpy as np
 
@@ -71,31 +71,24 @@ class Param:
     grid_high: float | None = None
 
     def check(self, model: str, value: object) -> float:
-        ok = isinstance(value, (int, float, np.floating, np.integer)) and not isinstance(
-            value, bool
-        )
+        ok = isinstance(value, (int, float, np.floating, np.integer)) and not isinstance(value, bool)
         if ok:
             v = float(value)
             ok = math.isfinite(v) and self.low <= v <= self.high
         if not ok:
-            raise ParamError(
-                f"{model}: {self.name} must be a number in [{self.low:g}, {self.high:g}],"
-                f" got {value!r}"
-            )
+            raise ParamError(f"{model}: {self.name} must be a number in [{self.low:g}, {self.high:g}], got {value!r}")
         return v
 
     # --- the unit cube: linear or log spacing of [low, high] onto [0, 1]
 
-    def to_unit(self, x: np.ndarray | float, low: float | None = None,
-                high: float | None = None) -> np.ndarray:
+    def to_unit(self, x: np.ndarray | float, low: float | None = None, high: float | None = None) -> np.ndarray:
         lo, hi = (self.low if low is None else low), (self.high if high is None else high)
         x = np.asarray(x, dtype=float)
         if self.scale == "log":
             return (np.log(x) - math.log(lo)) / (math.log(hi) - math.log(lo))
         return (x - lo) / (hi - lo)
 
-    def from_unit(self, u: np.ndarray | float, low: float | None = None,
-                  high: float | None = None) -> np.ndarray:
+    def from_unit(self, u: np.ndarray | float, low: float | None = None, high: float | None = None) -> np.ndarray:
         lo, hi = (self.low if low is None else low), (self.high if high is None else high)
         u = np.asarray(u, dtype=float)
         if self.scale == "log":
@@ -108,15 +101,12 @@ class Param:
         return lo, hi
 
 
-def check_params(model: str, declared: tuple[Param, ...],
-                 values: Mapping[str, object]) -> dict[str, float]:
+def check_params(model: str, declared: tuple[Param, ...], values: Mapping[str, object]) -> dict[str, float]:
     """Validate a full parameter set; every failure has the same shape of message."""
     names = [p.name for p in declared]
     unknown = [k for k in values if k not in names]
     if unknown:
-        raise ParamError(
-            f"{model}: unknown parameter {unknown[0]!r} (expected {', '.join(names)})"
-        )
+        raise ParamError(f"{model}: unknown parameter {unknown[0]!r} (expected {', '.join(names)})")
     missing = [n for n in names if n not in values]
     if missing:
         raise ParamError(f"{model}: missing parameter {missing[0]!r}")
@@ -131,7 +121,14 @@ def learning_rate(name: str, doc: str, grid: int = 48) -> Param:
 
 def inverse_temperature(grid: int = 64) -> Param:
     return Param(
-        "beta", 0.01, 50.0, "log", Prior("gamma", 1.2, 5.0), False, grid,
+        "beta",
+        0.01,
+        50.0,
+        "log",
+        Prior("gamma", 1.2, 5.0),
+        False,
+        grid,
         "inverse temperature of the softmax choice rule (higher = more exploitative)",
-        grid_low=0.1, grid_high=30.0,
+        grid_low=0.1,
+        grid_high=30.0,
     )

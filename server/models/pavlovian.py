@@ -8,8 +8,8 @@ probability of responding on a trial, which is what a fit or a status page can u
 
 from __future__ import annotations
 
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import Mapping, Sequence
 
 import numpy as np
 
@@ -53,21 +53,39 @@ class PavlovianModel:
 RESCORLA_WAGNER = PavlovianModel(
     "rescorla_wagner",
     (
-        Param("alpha", 0.0, 1.0, "linear", Prior("beta", 1.1, 1.1), True, 48,
-              "salience of each CS"),
-        Param("beta", 0.0, 1.0, "linear", Prior("beta", 1.1, 1.1), True, 48,
-              "learning rate set by the US"),
-        Param("slope", 0.0, 50.0, "linear", Prior("gamma", 1.2, 5.0), False, 32,
-              "gain from associative strength to responding"),
-        Param("bias", -10.0, 10.0, "linear", Prior("normal", -2.0, 2.0), False, 32,
-              "log-odds of responding to a CS with no associative strength"),
+        Param("alpha", 0.0, 1.0, "linear", Prior("beta", 1.1, 1.1), True, 48, "salience of each CS"),
+        Param("beta", 0.0, 1.0, "linear", Prior("beta", 1.1, 1.1), True, 48, "learning rate set by the US"),
+        Param(
+            "slope",
+            0.0,
+            50.0,
+            "linear",
+            Prior("gamma", 1.2, 5.0),
+            False,
+            32,
+            "gain from associative strength to responding",
+        ),
+        Param(
+            "bias",
+            -10.0,
+            10.0,
+            "linear",
+            Prior("normal", -2.0, 2.0),
+            False,
+            32,
+            "log-odds of responding to a CS with no associative strength",
+        ),
     ),
     "Rescorla-Wagner with a logistic mapping to anticipatory responding",
 )
 
 
-def rw_session(params: Mapping[str, float], present: Sequence[Sequence[bool]],
-               lam: Sequence[float], v0: Sequence[float] | None = None) -> dict[str, np.ndarray]:
+def rw_session(
+    params: Mapping[str, float],
+    present: Sequence[Sequence[bool]],
+    lam: Sequence[float],
+    v0: Sequence[float] | None = None,
+) -> dict[str, np.ndarray]:
     """Run Rescorla-Wagner over trials; returns strengths before each trial and P(response).
 
     `present[t]` flags which CSs are on in trial t, `lam[t]` the US asymptote of trial t.

@@ -10,8 +10,9 @@ from __future__ import annotations
 import numpy as np
 
 
-def td0_update(v: np.ndarray, state: int, reward: float, next_state: int | None,
-               alpha: float, gamma: float = 1.0) -> float:
+def td0_update(
+    v: np.ndarray, state: int, reward: float, next_state: int | None, alpha: float, gamma: float = 1.0
+) -> float:
     """V(s) <- V(s) + alpha [r + gamma V(s') - V(s)] in place; returns the TD error.
 
     Sutton & Barto (2018), ch. 6. `next_state` None means the episode ended (V = 0).
@@ -22,8 +23,7 @@ def td0_update(v: np.ndarray, state: int, reward: float, next_state: int | None,
     return float(delta)
 
 
-def td0_episode(v: np.ndarray, states: list[int], rewards: list[float], alpha: float,
-                gamma: float = 1.0) -> np.ndarray:
+def td0_episode(v: np.ndarray, states: list[int], rewards: list[float], alpha: float, gamma: float = 1.0) -> np.ndarray:
     """Apply TD(0) along one episode: states[i] -> states[i+1] with rewards[i]; last exits."""
     for i, s in enumerate(states):
         nxt = states[i + 1] if i + 1 < len(states) else None
@@ -31,8 +31,9 @@ def td0_episode(v: np.ndarray, states: list[int], rewards: list[float], alpha: f
     return v
 
 
-def random_walk_td0(episodes: int, alpha: float, rng: np.random.Generator,
-                    n_states: int = 5, v0: float = 0.5) -> np.ndarray:
+def random_walk_td0(
+    episodes: int, alpha: float, rng: np.random.Generator, n_states: int = 5, v0: float = 0.5
+) -> np.ndarray:
     """TD(0) on the bounded random walk: start in the middle, +1 only on exiting right."""
     v = np.full(n_states, v0)
     for _ in range(episodes):

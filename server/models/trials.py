@@ -9,8 +9,8 @@ padding with omissions.
 from __future__ import annotations
 
 import math
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
-from typing import Iterable, Sequence
 
 import numpy as np
 
@@ -57,8 +57,9 @@ class AnimalTrials:
         return out
 
 
-def encode_animal(animal: str, rows: Iterable[tuple[str, int, str | None, float]],
-                  options: Sequence[str] = ()) -> AnimalTrials:
+def encode_animal(
+    animal: str, rows: Iterable[tuple[str, int, str | None, float]], options: Sequence[str] = ()
+) -> AnimalTrials:
     """Encode (session, trial, choice label or None, reward) rows, in order.
 
     The option set is the declared `options` followed by every other label seen, in order
@@ -81,8 +82,9 @@ def encode_animal(animal: str, rows: Iterable[tuple[str, int, str | None, float]
         reward.append(rew)
         session.append(str(sess))
         trial.append(int(num))
-    return AnimalTrials(animal, tuple(labels), np.array(choice, dtype=int),
-                        np.array(reward, dtype=float), tuple(session), tuple(trial))
+    return AnimalTrials(
+        animal, tuple(labels), np.array(choice, dtype=int), np.array(reward, dtype=float), tuple(session), tuple(trial)
+    )
 
 
 @dataclass(frozen=True, slots=True, eq=False)
@@ -101,14 +103,12 @@ class TrialStack:
         """(options, trials, animals)"""
         return self.chosen.shape
 
-    def take(self, rows: np.ndarray) -> "TrialStack":
+    def take(self, rows: np.ndarray) -> TrialStack:
         """The stack of the given animals (repeats allowed), in that order."""
-        return _stack(self.chosen[:, :, rows], self.reward[:, rows], self.start[:, rows],
-                      self.previous[:, :, rows])
+        return _stack(self.chosen[:, :, rows], self.reward[:, rows], self.start[:, rows], self.previous[:, :, rows])
 
 
-def _stack(chosen: np.ndarray, reward: np.ndarray, start: np.ndarray,
-           previous: np.ndarray) -> TrialStack:
+def _stack(chosen: np.ndarray, reward: np.ndarray, start: np.ndarray, previous: np.ndarray) -> TrialStack:
     start_any = start.any(1)
     start_any[0] = False
     return TrialStack(chosen, reward, start, previous, start_any, chosen.any((0, 2)))

@@ -14,7 +14,7 @@ FORMS = ("fixed", "uniform", "exponential", "list")
 MAX_SECONDS = 24 * 3600.0
 
 
-def read_duration(r: "Reader", node: Marked | None, where: str) -> Duration | None:
+def read_duration(r: Reader, node: Marked | None, where: str) -> Duration | None:
     """`5`, `{fixed: 5}`, `{uniform: [4, 8]}`, `{exponential: {mean: 6, min: 2, max: 20}}`
     (truncated to [min, max]) or `{list: [3, 5, 7], order: shuffled|in_turn}`."""
     if node is None:

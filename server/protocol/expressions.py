@@ -33,7 +33,10 @@ METRICS: dict[str, tuple[bool, str]] = {
     "pca": (False, "Pavlovian conditioned approach index so far (Meyer et al. 2012)"),
     "exploration": (False, "estimated probability of not choosing the best-valued option"),
     "p_prefers_best": (False, "estimated probability the animal prefers its best-valued option"),
-    "p_prefers_correct": (False, "posterior probability the animal chooses the option that is best now with probability >= 0.75"),
+    "p_prefers_correct": (
+        False,
+        "posterior probability the animal chooses the option that is best now with probability >= 0.75",
+    ),
     "reward_rate": (False, "exponentially filtered reward rate from the estimator"),
     "prediction_error": (False, "prediction error of the last trial"),
 }
@@ -72,31 +75,31 @@ class Quantity:
 @dataclass(frozen=True, slots=True)
 class Arithmetic:
     op: str  # + - * /
-    left: "Node"
-    right: "Node"
+    left: Node
+    right: Node
 
 
 @dataclass(frozen=True, slots=True)
 class Negate:
-    operand: "Node"
+    operand: Node
 
 
 @dataclass(frozen=True, slots=True)
 class Compare:
     op: str
-    left: "Node"
-    right: "Node"
+    left: Node
+    right: Node
 
 
 @dataclass(frozen=True, slots=True)
 class Logic:
     op: str  # and | or
-    parts: tuple["Node", ...]
+    parts: tuple[Node, ...]
 
 
 @dataclass(frozen=True, slots=True)
 class Not:
-    operand: "Node"
+    operand: Node
 
 
 Node = Number | Quantity | Arithmetic | Negate | Compare | Logic | Not
@@ -225,7 +228,9 @@ class _Parser:
             self.take()
             kind, field, f_offset = self.take()
             if field not in PARAMETER_FIELDS:
-                raise ExpressionError(f"expected mean, low or high after '{name}.', found {_show(kind, field)}", f_offset)
+                raise ExpressionError(
+                    f"expected mean, low or high after '{name}.', found {_show(kind, field)}", f_offset
+                )
             q = Quantity(name, field=field)
         elif name in METRICS:
             windowed = METRICS[name][0]
@@ -236,7 +241,9 @@ class _Parser:
                 self.take()
                 kind, value, w_offset = self.take()
                 if kind != "num" or not value.isdigit() or int(value) < 1:
-                    raise ExpressionError(f"window of '{name}' must be a whole number of trials, found {_show(kind, value)}", w_offset)
+                    raise ExpressionError(
+                        f"window of '{name}' must be a whole number of trials, found {_show(kind, value)}", w_offset
+                    )
                 window = int(value)
                 self.expect(")")
             q = Quantity(name, window)

@@ -93,12 +93,16 @@ class _Compiler(Reader):
     # ------------------------------------------------------------ top level
 
     def compile(self, root: Marked, sha256: str) -> Protocol | None:
-        top = self.mapping(root, "protocol", TOP_KEYS, required=("vigil_protocol", "name", "wiring", "trial_types", "blocks"))
+        top = self.mapping(
+            root, "protocol", TOP_KEYS, required=("vigil_protocol", "name", "wiring", "trial_types", "blocks")
+        )
         if top is None:
             return None
         version = self.number(top.get("vigil_protocol"), "vigil_protocol", integer=True)
         if version is not None and version != FORMAT_VERSION:
-            self.error(top["vigil_protocol"].mark, f"vigil_protocol: this Vigil reads format {FORMAT_VERSION}, found {version}")
+            self.error(
+                top["vigil_protocol"].mark, f"vigil_protocol: this Vigil reads format {FORMAT_VERSION}, found {version}"
+            )
         name = self.text(top.get("name"), "name") or ""
         about = self.text(top.get("about"), "about") if "about" in top else ""
         wiring = self.wiring(top.get("wiring"))
@@ -136,7 +140,7 @@ class _Compiler(Reader):
         outputs: dict[str, OutputLine] = {}
         channels: dict[int, str] = {}
         declared_held: list[str] = []
-        for name, value, key_mark in self.items(top.get("outputs"), "wiring.outputs"):
+        for name, value, _ in self.items(top.get("outputs"), "wiring.outputs"):
             kind_node = value.value.get("kind") if value.is_mapping else None
             if kind_node is None or kind_node.value not in PULSED_OUTPUT_KINDS:
                 declared_held.append(name)
@@ -170,7 +174,9 @@ class _Compiler(Reader):
             channel = self.channel(fields.get("channel"), where, channels, name)
             presented_by = None
             if "presented_by" in fields:
-                presented_by = self.reference(fields["presented_by"], f"{where}.presented_by", declared_held, "held output")
+                presented_by = self.reference(
+                    fields["presented_by"], f"{where}.presented_by", declared_held, "held output"
+                )
             if kind is not None and channel is not None and (presented_by or "presented_by" not in fields):
                 inputs[name] = InputLine(name, kind, channel, presented_by)
             else:
@@ -221,13 +227,18 @@ class _Compiler(Reader):
         used: dict[str, str] = {}
         for label, value, _ in self.items(node, "options"):
             where = f"options.{label}"
-            fields = self.mapping(value, where, ("input", "reward_probability"), required=("input", "reward_probability"))
+            fields = self.mapping(
+                value, where, ("input", "reward_probability"), required=("input", "reward_probability")
+            )
             if fields is None or wiring is None:
                 continue
             input_name = self.reference(fields.get("input"), f"{where}.input", wiring.inputs, "input")
             p = self.probability(fields.get("reward_probability"), f"{where}.reward_probability")
             if input_name is not None and input_name in used:
-                self.error(fields["input"].mark, f"{where}.input: '{input_name}' already belongs to option '{used[input_name]}'")
+                self.error(
+                    fields["input"].mark,
+                    f"{where}.input: '{input_name}' already belongs to option '{used[input_name]}'",
+                )
                 continue
             if input_name is not None and p is not None:
                 used[input_name] = label
@@ -258,7 +269,7 @@ class _Compiler(Reader):
             )  # fmt: skip
             names = [n for n, _, _ in named]
             steps = []
-            for i, (step_name, step_fields, step_node) in enumerate(named):
+            for i, (step_name, step_fields, _) in enumerate(named):
                 following = names[i + 1] if i + 1 < len(names) else END_TRIAL
                 step = self.step(step_name, step_fields, f"{where}.{step_name}", names, following, wiring, options)
                 if step is not None:
@@ -322,7 +333,10 @@ class _Compiler(Reader):
         respond: dict[str, str] = {}
         for input_name, target_node, key_mark in self.items(f.get("respond"), f"{where}.respond"):
             if input_name not in wiring.inputs:
-                self.error(key_mark, f"{where}.respond: no input named '{input_name}'" + did_you_mean(input_name, wiring.inputs))
+                self.error(
+                    key_mark,
+                    f"{where}.respond: no input named '{input_name}'" + did_you_mean(input_name, wiring.inputs),
+                )
                 continue
             target = self.target(target_node, f"{where}.respond.{input_name}", names)
             if target is not None:
@@ -332,7 +346,11 @@ class _Compiler(Reader):
             label = self.reference(item, f"{where}.choose", options, "option")
             if label is not None:
                 if options[label].input in respond:
-                    self.error(item.mark, f"{where}.choose: option '{label}' uses input '{options[label].input}', which 'respond' also handles")
+                    self.error(
+                        item.mark,
+                        f"{where}.choose: option '{label}' uses input '{options[label].input}', "
+                        "which 'respond' also handles",
+                    )
                 choose.append(label)
         branch = {}
         for key in ("if_rewarded", "if_unrewarded"):
@@ -367,7 +385,9 @@ class _Compiler(Reader):
         )  # fmt: skip
 
     def schedule(self, node: Marked | None, where: str, names: list[str], wiring: Wiring) -> Schedule | None:
-        f = self.mapping(node, where, ("input", "kind", "value", "intervals", "then"), required=("input", "kind", "value"))
+        f = self.mapping(
+            node, where, ("input", "kind", "value", "intervals", "then"), required=("input", "kind", "value")
+        )
         if f is None:
             return None
         input_name = self.reference(f.get("input"), f"{where}.input", wiring.inputs, "input")
@@ -376,7 +396,9 @@ class _Compiler(Reader):
         if kind in ("FR", "VR"):
             value = self.number(f.get("value"), f"{where}.value (responses per reinforcer)", low=1, integer=True)
         elif kind == "RR":
-            value = self.number(f.get("value"), f"{where}.value (probability per response)", low=0, high=1, low_open=True)
+            value = self.number(
+                f.get("value"), f"{where}.value (probability per response)", low=0, high=1, low_open=True
+            )
         elif kind in ("FI", "VI"):
             value = self.number(f.get("value"), f"{where}.value (seconds)", low=0, low_open=True)
         intervals = 12
@@ -391,9 +413,7 @@ class _Compiler(Reader):
 
     # ------------------------------------------------------------ blocks
 
-    def blocks(
-        self, node: Marked | None, trial_types: dict[str, TrialType], options: dict[str, Option]
-    ) -> list[Block]:
+    def blocks(self, node: Marked | None, trial_types: dict[str, TrialType], options: dict[str, Option]) -> list[Block]:
         nodes = self.listing(node, "blocks")
         if node is not None and node.is_list and not nodes:
             self.error(node.mark, "blocks: needs at least one block")
@@ -461,7 +481,9 @@ class _Compiler(Reader):
                 if a == b:
                     self.error(pair.mark, f"{where}.swap: cannot swap '{a}' with itself")
                 swaps.append((a, b))
-        withhold = self.flag(f["withhold_outcomes"], f"{where}.withhold_outcomes") if "withhold_outcomes" in f else False
+        withhold = (
+            self.flag(f["withhold_outcomes"], f"{where}.withhold_outcomes") if "withhold_outcomes" in f else False
+        )
         iti = self.duration(f["iti"], f"{where}.iti") if "iti" in f else None
         if len(self.problems) > before:
             return None
@@ -484,11 +506,15 @@ class _Compiler(Reader):
         if "minutes" in f:
             values["minutes"] = self.number(f["minutes"], f"{where}.minutes", low=0, low_open=True)
         if "accuracy" in f:
-            acc = self.mapping(f["accuracy"], f"{where}.accuracy", ("at_least", "window"), required=("at_least", "window"))
+            acc = self.mapping(
+                f["accuracy"], f"{where}.accuracy", ("at_least", "window"), required=("at_least", "window")
+            )
             if acc:
                 values["accuracy"] = self.probability(acc.get("at_least"), f"{where}.accuracy.at_least")
                 values["window"] = self.number(acc.get("window"), f"{where}.accuracy.window", low=1, integer=True)
-        return BlockEnd(**{k: (int(v) if k != "minutes" and k != "accuracy" and v is not None else v) for k, v in values.items()})
+        return BlockEnd(
+            **{k: (int(v) if k != "minutes" and k != "accuracy" and v is not None else v) for k, v in values.items()}
+        )
 
     # ------------------------------------------------------------ limits
 
@@ -496,8 +522,12 @@ class _Compiler(Reader):
         f = self.mapping(node, "limits", ("max_minutes", "max_rewards", "max_trials"))
         if not f:
             return Limits()
-        minutes = self.number(f["max_minutes"], "limits.max_minutes", low=0, low_open=True) if "max_minutes" in f else None
-        rewards = self.number(f["max_rewards"], "limits.max_rewards", low=0, integer=True) if "max_rewards" in f else None
+        minutes = (
+            self.number(f["max_minutes"], "limits.max_minutes", low=0, low_open=True) if "max_minutes" in f else None
+        )
+        rewards = (
+            self.number(f["max_rewards"], "limits.max_rewards", low=0, integer=True) if "max_rewards" in f else None
+        )
         trials = self.number(f["max_trials"], "limits.max_trials", low=1, integer=True) if "max_trials" in f else None
         return Limits(
             max_minutes=minutes,

@@ -27,7 +27,7 @@ if TYPE_CHECKING:
 RULE_KEYS = ("rule", "when", "then", "hold_for", "cooldown", "max_firings")
 
 
-def read_estimator(r: "Reader", node: Marked | None) -> EstimatorSpec | None:
+def read_estimator(r: Reader, node: Marked | None) -> EstimatorSpec | None:
     f = r.mapping(node, "estimator", ("model", "drift"))
     if f is None:
         return None
@@ -38,7 +38,7 @@ def read_estimator(r: "Reader", node: Marked | None) -> EstimatorSpec | None:
     return EstimatorSpec(model, float(drift))
 
 
-def read_iti_bounds(r: "Reader", node: Marked | None) -> tuple[float, float] | None:
+def read_iti_bounds(r: Reader, node: Marked | None) -> tuple[float, float] | None:
     items = r.listing(node, "iti_bounds")
     if node is None or (node.is_list and len(items) != 2) or not node.is_list:
         if node is not None and node.is_list:
@@ -55,7 +55,7 @@ def read_iti_bounds(r: "Reader", node: Marked | None) -> tuple[float, float] | N
 
 
 def read_pavlovian(
-    r: "Reader", node: Marked | None, wiring: Wiring | None, types: dict[str, TrialType]
+    r: Reader, node: Marked | None, wiring: Wiring | None, types: dict[str, TrialType]
 ) -> Pavlovian | None:
     f = r.mapping(node, "pavlovian", ("cs_step", "lever", "magazine"), required=("cs_step", "lever", "magazine"))
     if f is None or wiring is None:
@@ -73,7 +73,7 @@ def read_pavlovian(
     return Pavlovian(cs, lever, magazine, wait.value)
 
 
-def read_settings(r: "Reader", node: Marked | None) -> dict[str, float]:
+def read_settings(r: Reader, node: Marked | None) -> dict[str, float]:
     settings: dict[str, float] = {}
     for name, value, key_mark in r.items(node, "settings"):
         if name in METRICS or name in ESTIMATE_PARAMETERS:
@@ -86,7 +86,7 @@ def read_settings(r: "Reader", node: Marked | None) -> dict[str, float]:
 
 
 def read_rules(
-    r: "Reader",
+    r: Reader,
     node: Marked | None,
     blocks: list[Block],
     options: dict[str, Option],
@@ -111,25 +111,40 @@ def read_rules(
         condition = _condition(r, f.get("when"), f"{where}.when", tuple(settings))
         actions = []
         then = f.get("then")
-        for item in r.listing(then, f"{where}.then", allow_single=True) if then is not None and not then.is_mapping else ([then] if then is not None else []):
+        for item in (
+            r.listing(then, f"{where}.then", allow_single=True)
+            if then is not None and not then.is_mapping
+            else ([then] if then is not None else [])
+        ):
             action = _action(r, item, f"{where}.then", block_names, options)
             if action is not None:
                 actions.append(action)
                 if action.kind in ("set_iti", "scale_iti") and iti_bounds is None:
-                    r.error(item.mark, f"{where}.then.{action.kind}: declare iti_bounds: [shortest, longest] at the top level")
+                    r.error(
+                        item.mark,
+                        f"{where}.then.{action.kind}: declare iti_bounds: [shortest, longest] at the top level",
+                    )
                 if action.kind == "set_iti" and iti_bounds and not iti_bounds[0] <= action.seconds <= iti_bounds[1]:
-                    r.error(item.mark, f"{where}.then.set_iti: {action.seconds:g} s is outside iti_bounds {iti_bounds[0]:g}-{iti_bounds[1]:g}")
+                    r.error(
+                        item.mark,
+                        f"{where}.then.set_iti: {action.seconds:g} s is outside "
+                        f"iti_bounds {iti_bounds[0]:g}-{iti_bounds[1]:g}",
+                    )
         hold = r.number(f["hold_for"], f"{where}.hold_for", low=1, integer=True) if "hold_for" in f else 1
         cooldown = r.number(f["cooldown"], f"{where}.cooldown", low=0, integer=True) if "cooldown" in f else 0
         most = r.number(f["max_firings"], f"{where}.max_firings", low=1, integer=True) if "max_firings" in f else None
         if len(r.problems) > before or name is None or condition is None or not actions:
             continue
         text, tree, reads = condition
-        rules.append(Rule(name, text, tree, reads, tuple(actions), int(hold or 1), int(cooldown or 0), int(most) if most else None))
+        rules.append(
+            Rule(
+                name, text, tree, reads, tuple(actions), int(hold or 1), int(cooldown or 0), int(most) if most else None
+            )
+        )
     return tuple(rules)
 
 
-def _condition(r: "Reader", node: Marked | None, where: str, settings: tuple[str, ...]):
+def _condition(r: Reader, node: Marked | None, where: str, settings: tuple[str, ...]):
     text = r.text(node, where)
     if text is None:
         return None
@@ -145,7 +160,7 @@ def _condition(r: "Reader", node: Marked | None, where: str, settings: tuple[str
     return text, tree, reads
 
 
-def _action(r: "Reader", node: Marked, where: str, blocks: list[str], options: dict[str, Option]) -> RuleAction | None:
+def _action(r: Reader, node: Marked, where: str, blocks: list[str], options: dict[str, Option]) -> RuleAction | None:
     f = r.mapping(node, where, ACTION_KINDS)
     if not f:
         if f is not None:

@@ -93,15 +93,11 @@ class _Converter:
                 key = _scalar(key_node)
                 if not isinstance(key, str):
                     # YAML 1.1 turns on/off/yes/no into booleans; say so plainly.
-                    self.problems.append(
-                        Problem(key_mark, f"key {key_node.value!r} must be a name; quote it")
-                    )
+                    self.problems.append(Problem(key_mark, f"key {key_node.value!r} must be a name; quote it"))
                     continue
                 if key in out:
                     first = keys[key]
-                    self.problems.append(
-                        Problem(key_mark, f"duplicate key '{key}' (first at line {first.line})")
-                    )
+                    self.problems.append(Problem(key_mark, f"duplicate key '{key}' (first at line {first.line})"))
                     continue
                 keys[key] = key_mark
                 out[key] = self.convert(value_node)
@@ -131,8 +127,6 @@ def load_marked(text: str, file: str) -> tuple[Marked | None, list[Problem]]:
     try:
         return converter.convert(node), problems
     except _Budget:
-        return None, [
-            Problem(_mark(file, node), f"too many values (over {NODE_BUDGET}); are aliases nested?")
-        ]
+        return None, [Problem(_mark(file, node), f"too many values (over {NODE_BUDGET}); are aliases nested?")]
     except RecursionError:
         return None, [Problem(_mark(file, node), "values nested too deeply")]

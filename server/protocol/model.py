@@ -31,7 +31,7 @@ class Duration:
     shuffled: bool = True  # list: draw without replacement (True) or cycle in order
 
     @staticmethod
-    def fixed(seconds: float) -> "Duration":
+    def fixed(seconds: float) -> Duration:
         return Duration("fixed", value=seconds)
 
 
@@ -106,9 +106,7 @@ class BlockEnd:
     window: int | None = None
 
     def __bool__(self) -> bool:
-        return any(
-            v is not None for v in (self.trials, self.minutes, self.rewards, self.streak, self.accuracy)
-        )
+        return any(v is not None for v in (self.trials, self.minutes, self.rewards, self.streak, self.accuracy))
 
 
 @dataclass(frozen=True, slots=True)

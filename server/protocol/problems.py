@@ -11,7 +11,7 @@ if TYPE_CHECKING:
 
 @dataclass(frozen=True, slots=True)
 class Problem:
-    mark: "Mark"
+    mark: Mark
     message: str
 
     def __str__(self) -> str:

@@ -9,7 +9,8 @@ from __future__ import annotations
 
 import difflib
 import math
-from typing import Any, Iterable
+from collections.abc import Iterable
+from typing import Any
 
 from server.protocol.marked import Mark, Marked
 from server.protocol.problems import Problem
@@ -144,9 +145,7 @@ class Reader:
     def probability(self, node: Marked | None, where: str) -> float | None:
         return self.number(node, where, low=0.0, high=1.0)
 
-    def reference(
-        self, node: Marked | None, where: str, known: Iterable[str], what: str
-    ) -> str | None:
+    def reference(self, node: Marked | None, where: str, known: Iterable[str], what: str) -> str | None:
         """A name that must refer to something defined elsewhere in the file."""
         name = self.text(node, where)
         if name is None:

@@ -153,7 +153,9 @@ class RuleBook:
             if session.finished:
                 return
             changes = self._changes[rule.name]
-            fired = self._consider(rule, self.state[rule.name], session, trial, allowed=not (changes and schedule_changed))
+            fired = self._consider(
+                rule, self.state[rule.name], session, trial, allowed=not (changes and schedule_changed)
+            )
             if fired and changes:
                 schedule_changed = True
                 if session.first_criterion_trial is None:  # what rehearsal reports as criterion

@@ -113,11 +113,15 @@ class SessionMetrics:
 
     def win_stay(self, n: int) -> float | None:
         trials = self.window(n)
-        return None if trials is None else win_stay_lose_shift([t.choice for t in trials], [t.rewarded for t in trials])[0]
+        return (
+            None if trials is None else win_stay_lose_shift([t.choice for t in trials], [t.rewarded for t in trials])[0]
+        )
 
     def lose_shift(self, n: int) -> float | None:
         trials = self.window(n)
-        return None if trials is None else win_stay_lose_shift([t.choice for t in trials], [t.rewarded for t in trials])[1]
+        return (
+            None if trials is None else win_stay_lose_shift([t.choice for t in trials], [t.rewarded for t in trials])[1]
+        )
 
     def median_latency(self, n: int) -> float | None:
         trials = self.window(n)

@@ -13,8 +13,8 @@ from __future__ import annotations
 import queue
 import threading
 import time
+from collections.abc import Callable, Iterator
 from contextlib import contextmanager
-from typing import Callable, Iterator
 
 from server.engine.records import Record
 from server.store.errors import StoreError
@@ -70,7 +70,7 @@ class BackgroundWriter:
                     return
                 with self._lock:
                     if item is not None:
-                        self._guard(lambda: self.store.write(*item))
+                        self._guard(lambda item=item: self.store.write(*item))
                     self._guard(lambda: self.store.flush_due(time.monotonic()))
             finally:
                 if item is not None:

@@ -27,7 +27,8 @@ def open_readonly(path: str | Path, *, check_same_thread: bool = True) -> sqlite
         raise StoreError(f"cannot read database {path}: no such file")
     try:
         conn = sqlite3.connect(
-            f"file:{pathname2url(str(path))}?mode=ro", uri=True,
+            f"file:{pathname2url(str(path))}?mode=ro",
+            uri=True,
             check_same_thread=check_same_thread,
         )
         version = schema_version(conn)
@@ -39,8 +40,7 @@ def open_readonly(path: str | Path, *, check_same_thread: bool = True) -> sqlite
     if version > latest_version():
         conn.close()
         raise StoreError(
-            f"cannot read database {path}: schema version {version} is newer than this vigil "
-            f"knows ({latest_version()})"
+            f"cannot read database {path}: schema version {version} is newer than this vigil knows ({latest_version()})"
         )
     conn.row_factory = sqlite3.Row
     return conn
@@ -92,23 +92,26 @@ def animal_history(conn: sqlite3.Connection, animal: str) -> list[dict[str, Any]
 
     accuracy is the fraction correct over trials where correctness applies (None if none).
     """
-    return _dicts(conn, (
-        "SELECT s.*,"
-        " (SELECT avg(correct) FROM trials WHERE session_id = s.id AND correct IS NOT NULL)"
-        "   AS accuracy,"
-        " (SELECT coalesce(sum(omission), 0) FROM trials WHERE session_id = s.id) AS omissions"
-        " FROM sessions s WHERE s.animal = ? ORDER BY s.started_at, s.id"
-    ), (animal,))
+    return _dicts(
+        conn,
+        (
+            "SELECT s.*,"
+            " (SELECT avg(correct) FROM trials WHERE session_id = s.id AND correct IS NOT NULL)"
+            "   AS accuracy,"
+            " (SELECT coalesce(sum(omission), 0) FROM trials WHERE session_id = s.id) AS omissions"
+            " FROM sessions s WHERE s.animal = ? ORDER BY s.started_at, s.id"
+        ),
+        (animal,),
+    )
 
 
 # ---------------------------------------------------------------- per session
 
 
-def session_trials(
-    conn: sqlite3.Connection, session_id: int, *, after_trial: int = 0
-) -> list[dict[str, Any]]:
+def session_trials(conn: sqlite3.Connection, session_id: int, *, after_trial: int = 0) -> list[dict[str, Any]]:
     return _dicts(
-        conn, "SELECT * FROM trials WHERE session_id = ? AND trial > ? ORDER BY trial",
+        conn,
+        "SELECT * FROM trials WHERE session_id = ? AND trial > ? ORDER BY trial",
         (session_id, after_trial),
     )
 
@@ -116,9 +119,7 @@ def session_trials(
 def trial_records(conn: sqlite3.Connection, session_id: int) -> list[TrialRecord]:
     """The session's trials as the engine emitted them, for replay through a model."""
     conn.row_factory = sqlite3.Row
-    found = conn.execute(
-        "SELECT * FROM trials WHERE session_id = ? ORDER BY trial", (session_id,)
-    )
+    found = conn.execute("SELECT * FROM trials WHERE session_id = ? ORDER BY trial", (session_id,))
     return [rows.trial_from_row(row) for row in found]
 
 
@@ -139,27 +140,23 @@ def session_events(
     if tail is None:
         return _dicts(conn, sql + " ORDER BY id", tuple(params))
     params.append(int(tail))
-    return _dicts(conn, f"SELECT * FROM ({sql} ORDER BY id DESC LIMIT ?) ORDER BY id",
-                  tuple(params))
+    return _dicts(conn, f"SELECT * FROM ({sql} ORDER BY id DESC LIMIT ?) ORDER BY id", tuple(params))
 
 
 def session_blocks(conn: sqlite3.Connection, session_id: int) -> list[dict[str, Any]]:
-    return _dicts(conn, "SELECT * FROM blocks WHERE session_id = ? ORDER BY block_index",
-                  (session_id,))
+    return _dicts(conn, "SELECT * FROM blocks WHERE session_id = ? ORDER BY block_index", (session_id,))
 
 
-def session_estimates(
-    conn: sqlite3.Connection, session_id: int, *, after_trial: int = 0
-) -> list[dict[str, Any]]:
+def session_estimates(conn: sqlite3.Connection, session_id: int, *, after_trial: int = 0) -> list[dict[str, Any]]:
     return _dicts(
-        conn, "SELECT * FROM estimates WHERE session_id = ? AND trial > ? ORDER BY trial",
+        conn,
+        "SELECT * FROM estimates WHERE session_id = ? AND trial > ? ORDER BY trial",
         (session_id, after_trial),
     )
 
 
 def session_annotations(conn: sqlite3.Connection, session_id: int) -> list[dict[str, Any]]:
-    return _dicts(conn, "SELECT * FROM annotations WHERE session_id = ? ORDER BY id",
-                  (session_id,))
+    return _dicts(conn, "SELECT * FROM annotations WHERE session_id = ? ORDER BY id", (session_id,))
 
 
 # ---------------------------------------------------------------- exports
@@ -179,8 +176,8 @@ def _write_csv(cursor: sqlite3.Cursor, header: tuple[str, ...], fileobj: TextIO)
 def export_trials_csv(conn: sqlite3.Connection, session_id: int, fileobj: TextIO) -> int:
     """Write the session's trials as CSV (one column per trials column); return the row count."""
     cursor = conn.execute(
-        f"SELECT {', '.join(rows.TRIAL_COLUMNS)} FROM trials WHERE session_id = ?"
-        " ORDER BY trial", (session_id,),
+        f"SELECT {', '.join(rows.TRIAL_COLUMNS)} FROM trials WHERE session_id = ? ORDER BY trial",
+        (session_id,),
     )
     return _write_csv(cursor, rows.TRIAL_COLUMNS, fileobj)
 
@@ -194,9 +191,7 @@ def export_events_csv(conn: sqlite3.Connection, session_id: int, fileobj: TextIO
     return _write_csv(cursor, rows.EVENT_COLUMNS, fileobj)
 
 
-def export_choices_csv(
-    conn: sqlite3.Connection, fileobj: TextIO, *, animal: str | None = None
-) -> int:
+def export_choices_csv(conn: sqlite3.Connection, fileobj: TextIO, *, animal: str | None = None) -> int:
     """Write trials in the fitting format `animal,session,trial,choice,reward` (DESIGN.md).
 
     An omission has an empty choice; reward is the pellets delivered in the trial.
@@ -218,26 +213,28 @@ def export_choices_csv(
 
 def table_exists(conn: sqlite3.Connection, name: str) -> bool:
     """True when the database holds table `name` (tables added by later migrations)."""
-    found = conn.execute(
-        "SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = ?", (name,)
-    ).fetchone()
+    found = conn.execute("SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = ?", (name,)).fetchone()
     return found is not None
 
 
 def latest_sessions_per_box(conn: sqlite3.Connection) -> list[dict[str, Any]]:
     """The newest session of every box, ordered by box name."""
-    return _dicts(conn, (
-        "SELECT s.* FROM sessions s WHERE s.id = (SELECT s2.id FROM sessions s2"
-        " WHERE s2.box = s.box ORDER BY s2.started_at DESC, s2.id DESC LIMIT 1)"
-        " ORDER BY s.box"
-    ))
+    return _dicts(
+        conn,
+        (
+            "SELECT s.* FROM sessions s WHERE s.id = (SELECT s2.id FROM sessions s2"
+            " WHERE s2.box = s.box ORDER BY s2.started_at DESC, s2.id DESC LIMIT 1)"
+            " ORDER BY s.box"
+        ),
+    )
 
 
 def session_status(conn: sqlite3.Connection, session_id: int) -> dict[str, Any]:
     """What a status tile needs from the store about one session.
 
     accuracy (None without scored trials), last_input_t and last_t (session seconds of the
-    last input onset and of the last stored event; None when there is none), block (the block entered last), link_lost (the last link event
+    last input onset and of the last stored event; None when there is none), block (the block
+    entered last), link_lost (the last link event
     was a loss), cap_events (count of cap events), paused (the last pause/resume was a pause),
     alarm (the last alarm event raised by a rule, with its t and detail, or None).
     """
@@ -250,9 +247,7 @@ def session_status(conn: sqlite3.Connection, session_id: int) -> dict[str, Any]:
         "SELECT max(t) FROM events WHERE session_id = ? AND kind = 'input' AND value > 0",
         (session_id,),
     ).fetchone()[0]
-    last = one(
-        "SELECT t FROM events WHERE session_id = ? ORDER BY id DESC LIMIT 1", (session_id,)
-    ).fetchone()
+    last = one("SELECT t FROM events WHERE session_id = ? ORDER BY id DESC LIMIT 1", (session_id,)).fetchone()
     last_t = last[0] if last else None
     block = one(
         "SELECT block FROM blocks WHERE session_id = ? ORDER BY block_index DESC LIMIT 1",
@@ -260,24 +255,26 @@ def session_status(conn: sqlite3.Connection, session_id: int) -> dict[str, Any]:
     ).fetchone()
     link = one(
         "SELECT kind FROM events WHERE session_id = ? AND kind IN ('link_lost', 'link_restored')"
-        " ORDER BY id DESC LIMIT 1", (session_id,),
+        " ORDER BY id DESC LIMIT 1",
+        (session_id,),
     ).fetchone()
-    caps = one(
-        "SELECT count(*) FROM events WHERE session_id = ? AND kind = 'cap'", (session_id,)
-    ).fetchone()[0]
+    caps = one("SELECT count(*) FROM events WHERE session_id = ? AND kind = 'cap'", (session_id,)).fetchone()[0]
     pause = one(
-        "SELECT kind FROM events WHERE session_id = ? AND kind IN ('pause', 'resume')"
-        " ORDER BY id DESC LIMIT 1", (session_id,),
+        "SELECT kind FROM events WHERE session_id = ? AND kind IN ('pause', 'resume') ORDER BY id DESC LIMIT 1",
+        (session_id,),
     ).fetchone()
     alarm = one(
-        "SELECT t, detail FROM events WHERE session_id = ? AND kind = 'alarm'"
-        " ORDER BY id DESC LIMIT 1", (session_id,),
+        "SELECT t, detail FROM events WHERE session_id = ? AND kind = 'alarm' ORDER BY id DESC LIMIT 1",
+        (session_id,),
     ).fetchone()
     return {
         "alarm": None if alarm is None else {"t": alarm[0], "detail": rows.from_json(alarm[1])},
-        "accuracy": accuracy, "last_input_t": last_input, "last_t": last_t,
+        "accuracy": accuracy,
+        "last_input_t": last_input,
+        "last_t": last_t,
         "block": block[0] if block else None,
-        "link_lost": bool(link) and link[0] == "link_lost", "cap_events": caps,
+        "link_lost": bool(link) and link[0] == "link_lost",
+        "cap_events": caps,
         "paused": bool(pause) and pause[0] == "pause",
     }
 
@@ -285,7 +282,8 @@ def session_status(conn: sqlite3.Connection, session_id: int) -> dict[str, Any]:
 def last_estimate(conn: sqlite3.Connection, session_id: int) -> dict[str, Any] | None:
     """The estimate after the session's last estimated trial, or None."""
     found = _dicts(
-        conn, "SELECT * FROM estimates WHERE session_id = ? ORDER BY trial DESC LIMIT 1",
+        conn,
+        "SELECT * FROM estimates WHERE session_id = ? ORDER BY trial DESC LIMIT 1",
         (session_id,),
     )
     return found[0] if found else None
@@ -296,8 +294,7 @@ def session_rule_firings(conn: sqlite3.Connection, session_id: int) -> list[dict
     empty when the database predates the rule_firings table."""
     if not table_exists(conn, "rule_firings"):  # a database from before rules existed
         return []
-    found = _dicts(conn, "SELECT * FROM rule_firings WHERE session_id = ? ORDER BY t, id",
-                   (session_id,))
+    found = _dicts(conn, "SELECT * FROM rule_firings WHERE session_id = ? ORDER BY t, id", (session_id,))
     for row in found:
         for key in ("actions", "reads"):
             if isinstance(row.get(key), str):

@@ -16,9 +16,7 @@ _LAST_T = (
 )
 
 
-def close_unended(
-    conn: sqlite3.Connection, closed_at: str, running: Collection[int] = ()
-) -> list[int]:
+def close_unended(conn: sqlite3.Connection, closed_at: str, running: Collection[int] = ()) -> list[int]:
     """End every session without an end reason, except `running`; return the ids closed.
 
     Runs inside the caller's transaction. ended_at is started_at plus the last stored time
@@ -26,9 +24,7 @@ def close_unended(
     stored trials; a note event records `closed_at`, when the closing happened.
     """
     closed = []
-    found = conn.execute(
-        "SELECT id, started_at FROM sessions WHERE end_reason IS NULL ORDER BY id"
-    ).fetchall()
+    found = conn.execute("SELECT id, started_at FROM sessions WHERE end_reason IS NULL ORDER BY id").fetchall()
     for session_id, started_at in found:
         if session_id in running:
             continue
@@ -40,9 +36,18 @@ def close_unended(
         started = rows.parse_wall_time(started_at, f"started_at of session {session_id}")
         ended_at = rows.iso(started + timedelta(seconds=last_t))
         conn.execute(rows.END_SESSION, (ended_at, "interrupted", trials, rewards, session_id))
-        conn.execute(rows.INSERT_EVENT, (
-            session_id, "note", "closed_interrupted", None, last_t, None, None,
-            rows.to_json({"closed_at": closed_at}, "note"),
-        ))
+        conn.execute(
+            rows.INSERT_EVENT,
+            (
+                session_id,
+                "note",
+                "closed_interrupted",
+                None,
+                last_t,
+                None,
+                None,
+                rows.to_json({"closed_at": closed_at}, "note"),
+            ),
+        )
         closed.append(session_id)
     return closed

@@ -17,24 +17,64 @@ from server.engine.records import BlockStarted, EventLogged, TrialRecord
 from server.store.errors import StoreError
 
 TRIAL_COLUMNS = (
-    "session_id", "trial", "block", "block_index", "trial_type", "t_start", "t_end", "choice",
-    "response", "latency_s", "rewarded", "reward", "correct", "omission", "interrupted",
-    "iti_s", "steps", "counts", "first_s", "extra",
+    "session_id",
+    "trial",
+    "block",
+    "block_index",
+    "trial_type",
+    "t_start",
+    "t_end",
+    "choice",
+    "response",
+    "latency_s",
+    "rewarded",
+    "reward",
+    "correct",
+    "omission",
+    "interrupted",
+    "iti_s",
+    "steps",
+    "counts",
+    "first_s",
+    "extra",
 )
 EVENT_COLUMNS = (
-    "id", "session_id", "kind", "name", "value", "t", "device_t_us", "device_seq", "detail",
+    "id",
+    "session_id",
+    "kind",
+    "name",
+    "value",
+    "t",
+    "device_t_us",
+    "device_seq",
+    "detail",
 )
 BLOCK_COLUMNS = (
-    "session_id", "block_index", "block", "t_start", "contingencies", "outcomes_withheld",
+    "session_id",
+    "block_index",
+    "block",
+    "t_start",
+    "contingencies",
+    "outcomes_withheld",
 )
 SESSION_COLUMNS = (
-    "id", "box", "animal", "protocol", "protocol_path", "protocol_sha256", "started_at",
-    "ended_at", "end_reason", "seed", "trials", "rewards", "settings",
+    "id",
+    "box",
+    "animal",
+    "protocol",
+    "protocol_path",
+    "protocol_sha256",
+    "started_at",
+    "ended_at",
+    "end_reason",
+    "seed",
+    "trials",
+    "rewards",
+    "settings",
 )
 
 # Columns holding JSON text, and 0/1 columns read back as bools, per table.
-JSON_COLUMNS = frozenset(("settings", "steps", "counts", "first_s", "extra", "detail",
-                          "contingencies", "data"))
+JSON_COLUMNS = frozenset(("settings", "steps", "counts", "first_s", "extra", "detail", "contingencies", "data"))
 BOOL_COLUMNS = frozenset(("rewarded", "correct", "omission", "interrupted", "outcomes_withheld"))
 
 SQLITE_INT_MAX = 2**63 - 1
@@ -45,9 +85,7 @@ INSERT_EVENT = (
     "INSERT OR IGNORE INTO events (session_id, kind, name, value, t, device_t_us, device_seq,"
     " detail) VALUES (?, ?, ?, ?, ?, ?, ?, ?)"
 )
-END_SESSION = (
-    "UPDATE sessions SET ended_at = ?, end_reason = ?, trials = ?, rewards = ? WHERE id = ?"
-)
+END_SESSION = "UPDATE sessions SET ended_at = ?, end_reason = ?, trials = ?, rewards = ? WHERE id = ?"
 
 
 def to_json(value: Any, what: str) -> str:
@@ -118,14 +156,21 @@ def _opt_bool(value: bool | None) -> int | None:
 def trial_params(session_id: int, rec: TrialRecord) -> tuple:
     what = f"trial {rec.trial}"
     return (
-        session_id, integer(rec.trial, "trial number"), str(rec.block),
-        integer(rec.block_index, f"{what} block_index"), str(rec.trial_type),
-        real(rec.t_start, f"{what} t_start"), real(rec.t_end, f"{what} t_end"),
+        session_id,
+        integer(rec.trial, "trial number"),
+        str(rec.block),
+        integer(rec.block_index, f"{what} block_index"),
+        str(rec.trial_type),
+        real(rec.t_start, f"{what} t_start"),
+        real(rec.t_end, f"{what} t_end"),
         None if rec.choice is None else str(rec.choice),
         None if rec.response is None else str(rec.response),
         opt_real(rec.latency_s, f"{what} latency_s"),
-        int(bool(rec.rewarded)), real(rec.reward, f"{what} reward"),
-        _opt_bool(rec.correct), int(bool(rec.omission)), int(bool(rec.interrupted)),
+        int(bool(rec.rewarded)),
+        real(rec.reward, f"{what} reward"),
+        _opt_bool(rec.correct),
+        int(bool(rec.omission)),
+        int(bool(rec.interrupted)),
         real(rec.iti_s, f"{what} iti_s"),
         to_json([[name, t] for name, t in rec.steps], f"{what} steps"),
         to_json(rec.counts, f"{what} counts"),
@@ -137,8 +182,12 @@ def trial_params(session_id: int, rec: TrialRecord) -> tuple:
 def event_params(session_id: int, rec: EventLogged) -> tuple:
     what = f"event {rec.kind}/{rec.name}"
     return (
-        session_id, str(rec.kind), str(rec.name), opt_real(rec.value, f"{what} value"),
-        real(rec.t, f"{what} t"), opt_integer(rec.device_t_us, f"{what} device_t_us"),
+        session_id,
+        str(rec.kind),
+        str(rec.name),
+        opt_real(rec.value, f"{what} value"),
+        real(rec.t, f"{what} t"),
+        opt_integer(rec.device_t_us, f"{what} device_t_us"),
         opt_integer(rec.device_seq, f"{what} device_seq"),
         None if rec.detail is None else to_json(rec.detail, f"{what} detail"),
     )
@@ -147,8 +196,11 @@ def event_params(session_id: int, rec: EventLogged) -> tuple:
 def block_params(session_id: int, rec: BlockStarted) -> tuple:
     what = f"block {rec.block_index}"
     return (
-        session_id, integer(rec.block_index, f"{what} index"), str(rec.block),
-        real(rec.t, f"{what} t"), to_json(rec.contingencies, f"{what} contingencies"),
+        session_id,
+        integer(rec.block_index, f"{what} index"),
+        str(rec.block),
+        real(rec.t, f"{what} t"),
+        to_json(rec.contingencies, f"{what} contingencies"),
         int(bool(rec.outcomes_withheld)),
     )
 
@@ -169,14 +221,23 @@ def row_dict(row: sqlite3.Row) -> dict[str, Any]:
 def trial_from_row(row: Mapping[str, Any]) -> TrialRecord:
     """Rebuild the record exactly as it was written (for replay through a model)."""
     return TrialRecord(
-        trial=row["trial"], block=row["block"], block_index=row["block_index"],
-        trial_type=row["trial_type"], t_start=row["t_start"], t_end=row["t_end"],
-        choice=row["choice"], response=row["response"], latency_s=row["latency_s"],
-        rewarded=bool(row["rewarded"]), reward=row["reward"],
+        trial=row["trial"],
+        block=row["block"],
+        block_index=row["block_index"],
+        trial_type=row["trial_type"],
+        t_start=row["t_start"],
+        t_end=row["t_end"],
+        choice=row["choice"],
+        response=row["response"],
+        latency_s=row["latency_s"],
+        rewarded=bool(row["rewarded"]),
+        reward=row["reward"],
         correct=None if row["correct"] is None else bool(row["correct"]),
-        omission=bool(row["omission"]), interrupted=bool(row["interrupted"]),
+        omission=bool(row["omission"]),
+        interrupted=bool(row["interrupted"]),
         iti_s=row["iti_s"],
         steps=tuple((name, t) for name, t in from_json(row["steps"])),
-        counts=from_json(row["counts"]), first_s=from_json(row["first_s"]),
+        counts=from_json(row["counts"]),
+        first_s=from_json(row["first_s"]),
         extra=from_json(row["extra"]),
     )

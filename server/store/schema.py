@@ -187,13 +187,8 @@ def migrate(conn: sqlite3.Connection, migrations: Sequence[Migration] = MIGRATIO
 
 def _refuse_unknown(conn: sqlite3.Connection, version: int, latest: int) -> None:
     if version > latest:
-        raise StoreError(
-            f"database schema version {version} is newer than this vigil knows ({latest}); "
-            "upgrade vigil"
-        )
+        raise StoreError(f"database schema version {version} is newer than this vigil knows ({latest}); upgrade vigil")
     if version == 0:
-        others = conn.execute(
-            "SELECT count(*) FROM sqlite_master WHERE name NOT LIKE 'sqlite_%'"
-        ).fetchone()[0]
+        others = conn.execute("SELECT count(*) FROM sqlite_master WHERE name NOT LIKE 'sqlite_%'").fetchone()[0]
         if others:
             raise StoreError("not a vigil database: it already holds tables of another program")

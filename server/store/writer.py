@@ -24,8 +24,8 @@ from server.engine.records import (
     BlockStarted,
     EstimateUpdated,
     EventLogged,
-    RuleFired,
     Record,
+    RuleFired,
     SessionEnded,
     SessionStarted,
     TrialRecord,
@@ -38,25 +38,15 @@ from server.store.schema import migrate
 T = TypeVar("T")
 
 _INSERT_TRIAL = (
-    f"INSERT INTO trials ({', '.join(rows.TRIAL_COLUMNS)})"
-    f" VALUES ({', '.join('?' * len(rows.TRIAL_COLUMNS))})"
+    f"INSERT INTO trials ({', '.join(rows.TRIAL_COLUMNS)}) VALUES ({', '.join('?' * len(rows.TRIAL_COLUMNS))})"
 )
-_COUNT_TRIAL = (
-    "UPDATE sessions SET trials = max(trials, ?), rewards = rewards + ? WHERE id = ?"
-)
-_INSERT_RULE_FIRING = (
-    "INSERT INTO rule_firings (session_id, trial, t, rule, actions, reads) VALUES (?, ?, ?, ?, ?, ?)"
-)
+_COUNT_TRIAL = "UPDATE sessions SET trials = max(trials, ?), rewards = rewards + ? WHERE id = ?"
+_INSERT_RULE_FIRING = "INSERT INTO rule_firings (session_id, trial, t, rule, actions, reads) VALUES (?, ?, ?, ?, ?, ?)"
 _INSERT_BLOCK = (
-    f"INSERT INTO blocks ({', '.join(rows.BLOCK_COLUMNS)})"
-    f" VALUES ({', '.join('?' * len(rows.BLOCK_COLUMNS))})"
+    f"INSERT INTO blocks ({', '.join(rows.BLOCK_COLUMNS)}) VALUES ({', '.join('?' * len(rows.BLOCK_COLUMNS))})"
 )
-_UPSERT_ESTIMATE = (
-    "INSERT OR REPLACE INTO estimates (session_id, trial, model, data) VALUES (?, ?, ?, ?)"
-)
-_INSERT_ANNOTATION = (
-    "INSERT INTO annotations (session_id, t, wall_time, origin, text) VALUES (?, ?, ?, ?, ?)"
-)
+_UPSERT_ESTIMATE = "INSERT OR REPLACE INTO estimates (session_id, trial, model, data) VALUES (?, ?, ?, ?)"
+_INSERT_ANNOTATION = "INSERT INTO annotations (session_id, t, wall_time, origin, text) VALUES (?, ?, ?, ?, ?)"
 _INSERT_SESSION = (
     "INSERT INTO sessions (box, animal, protocol, protocol_path, protocol_sha256, started_at,"
     " seed, settings) VALUES (?, ?, ?, ?, ?, ?, ?, ?)"
@@ -172,10 +162,13 @@ class Store:
             started_at = rows.iso(self._wall_clock())
         started = rows.parse_wall_time(started_at, "started_at")
         params = (
-            str(box), str(animal), str(protocol),
+            str(box),
+            str(animal),
+            str(protocol),
             None if protocol_path is None else str(protocol_path),
             None if protocol_sha256 is None else str(protocol_sha256),
-            started_at, rows.integer(seed, "seed"),
+            started_at,
+            rows.integer(seed, "seed"),
             rows.to_json(dict(settings or {}), "session settings"),
         )
         session_id = self._commit(lambda conn: conn.execute(_INSERT_SESSION, params).lastrowid)
@@ -193,38 +186,46 @@ class Store:
         """
         running = self._running(session_id)
         if isinstance(record, EventLogged):
-            self._pending.append(_Pending(
-                session_id, f"{record.kind} event of session {session_id}",
-                ((rows.INSERT_EVENT, rows.event_params(session_id, record)),),
-                device_event=record.device_seq is not None,
-            ))
+            self._pending.append(
+                _Pending(
+                    session_id,
+                    f"{record.kind} event of session {session_id}",
+                    ((rows.INSERT_EVENT, rows.event_params(session_id, record)),),
+                    device_event=record.device_seq is not None,
+                )
+            )
             if len(self._pending) >= self.max_buffered and self.failure is None:
                 self._commit()
         elif isinstance(record, TrialRecord):
             if record.trial <= running.last_trial:
                 raise StoreError(
-                    f"trial {record.trial} of session {session_id} is not after trial "
-                    f"{running.last_trial}"
+                    f"trial {record.trial} of session {session_id} is not after trial {running.last_trial}"
                 )
             params = rows.trial_params(session_id, record)
-            self._pending.append(_Pending(
-                session_id, f"trial {record.trial} of session {session_id}",
-                ((_INSERT_TRIAL, params),
-                 (_COUNT_TRIAL, (record.trial, int(bool(record.rewarded)), session_id))),
-            ))
+            self._pending.append(
+                _Pending(
+                    session_id,
+                    f"trial {record.trial} of session {session_id}",
+                    ((_INSERT_TRIAL, params), (_COUNT_TRIAL, (record.trial, int(bool(record.rewarded)), session_id))),
+                )
+            )
             running.last_trial = record.trial
             self._commit()
         elif isinstance(record, BlockStarted):
-            self._pending.append(_Pending(
-                session_id, f"block {record.block_index} of session {session_id}",
-                ((_INSERT_BLOCK, rows.block_params(session_id, record)),),
-            ))
+            self._pending.append(
+                _Pending(
+                    session_id,
+                    f"block {record.block_index} of session {session_id}",
+                    ((_INSERT_BLOCK, rows.block_params(session_id, record)),),
+                )
+            )
             self._commit()
         elif isinstance(record, SessionStarted):
             note = EventLogged(
-                t=record.t, kind="note", name="session_started",
-                detail={"protocol": record.protocol, "seed": record.seed,
-                        "first_block": record.first_block},
+                t=record.t,
+                kind="note",
+                name="session_started",
+                detail={"protocol": record.protocol, "seed": record.seed, "first_block": record.first_block},
             )
             self.write(session_id, note)
         elif isinstance(record, SessionEnded):
@@ -233,65 +234,101 @@ class Store:
             self.write_estimate(session_id, record.trial, record.model, record.estimate.to_dict())
         elif isinstance(record, RuleFired):
             params = (
-                session_id, rows.integer(record.trial, "trial"), rows.real(record.t, "rule t"),
-                str(record.rule), rows.to_json(list(record.actions), f"actions of rule {record.rule}"),
+                session_id,
+                rows.integer(record.trial, "trial"),
+                rows.real(record.t, "rule t"),
+                str(record.rule),
+                rows.to_json(list(record.actions), f"actions of rule {record.rule}"),
                 rows.to_json(dict(record.values), f"values read by rule {record.rule}"),
             )
-            self._pending.append(_Pending(
-                session_id, f"firing of rule {record.rule} in session {session_id}",
-                ((_INSERT_RULE_FIRING, params),),
-            ))
+            self._pending.append(
+                _Pending(
+                    session_id,
+                    f"firing of rule {record.rule} in session {session_id}",
+                    ((_INSERT_RULE_FIRING, params),),
+                )
+            )
             self._commit()
         else:
             raise StoreError(f"cannot store a {type(record).__name__} record")
 
-    def _end(
-        self, session_id: int, running: _Running, record: SessionEnded, ended_at: str | None
-    ) -> None:
+    def _end(self, session_id: int, running: _Running, record: SessionEnded, ended_at: str | None) -> None:
         t = rows.real(record.t, "session end t")
         if ended_at is None:
             ended_at = rows.iso(running.started + timedelta(seconds=t))
         else:
             rows.parse_wall_time(ended_at, "ended_at")
-        params = (ended_at, str(record.reason), rows.integer(record.trials, "trials"),
-                  rows.integer(record.rewards, "rewards"), session_id)
-        self._pending.append(_Pending(
-            session_id, f"end of session {session_id}", ((rows.END_SESSION, params),)
-        ))
+        params = (
+            ended_at,
+            str(record.reason),
+            rows.integer(record.trials, "trials"),
+            rows.integer(record.rewards, "rewards"),
+            session_id,
+        )
+        self._pending.append(_Pending(session_id, f"end of session {session_id}", ((rows.END_SESSION, params),)))
         running.ended = True
         self._commit()
 
-    def write_estimate(
-        self, session_id: int, trial: int, model: str, data: Mapping[str, Any]
-    ) -> None:
+    def write_estimate(self, session_id: int, trial: int, model: str, data: Mapping[str, Any]) -> None:
         """Store (or replace) the learning-model estimate after `trial`; commits now."""
         params = (
-            rows.integer(session_id, "session id"), rows.integer(trial, "trial"), str(model),
+            rows.integer(session_id, "session id"),
+            rows.integer(trial, "trial"),
+            str(model),
             rows.to_json(dict(data), f"estimate after trial {trial}"),
         )
-        self._pending.append(_Pending(
-            session_id, f"estimate after trial {trial} of session {session_id}",
-            ((_UPSERT_ESTIMATE, params),),
-        ))
+        self._pending.append(
+            _Pending(
+                session_id,
+                f"estimate after trial {trial} of session {session_id}",
+                ((_UPSERT_ESTIMATE, params),),
+            )
+        )
         self._commit()
 
     def write_stage(
-        self, animal: str, stage: int, protocol: str, at: str, reason: str,
-        session_id: int | None = None, evidence: Mapping[str, Any] | None = None,
+        self,
+        animal: str,
+        stage: int,
+        protocol: str,
+        at: str,
+        reason: str,
+        session_id: int | None = None,
+        evidence: Mapping[str, Any] | None = None,
     ) -> None:
         """Record that `animal` is now at `stage` (1-based); commits now."""
         rows.parse_wall_time(at, "stage time")
-        params = (str(animal), rows.integer(stage, "stage"), str(protocol), at, session_id,
-                  str(reason), rows.to_json(dict(evidence or {}), "stage evidence"))
-        self._pending.append(_Pending(
-            session_id if session_id is not None else 0, f"stage {stage} of animal {animal}",
-            (("INSERT INTO stage_log (animal, stage, protocol, at, session_id, reason, evidence)"
-              " VALUES (?, ?, ?, ?, ?, ?, ?)", params),),
-        ))
+        params = (
+            str(animal),
+            rows.integer(stage, "stage"),
+            str(protocol),
+            at,
+            session_id,
+            str(reason),
+            rows.to_json(dict(evidence or {}), "stage evidence"),
+        )
+        self._pending.append(
+            _Pending(
+                session_id if session_id is not None else 0,
+                f"stage {stage} of animal {animal}",
+                (
+                    (
+                        "INSERT INTO stage_log (animal, stage, protocol, at, session_id, reason, evidence)"
+                        " VALUES (?, ?, ?, ?, ?, ?, ?)",
+                        params,
+                    ),
+                ),
+            )
+        )
         self._commit()
 
     def write_annotation(
-        self, session_id: int, text: str, origin: str, *, t: float | None = None,
+        self,
+        session_id: int,
+        text: str,
+        origin: str,
+        *,
+        t: float | None = None,
         wall_time: str | None = None,
     ) -> int:
         """Store an operator's note on a session (running or ended); commits now, returns its id.
@@ -405,8 +442,7 @@ class Store:
             conn.execute("COMMIT")
         except sqlite3.Error as err:
             self._rollback()
-            kept = (f"; {len(batch)} record(s) kept in memory, retried at the next flush"
-                    if batch else "")
+            kept = f"; {len(batch)} record(s) kept in memory, retried at the next flush" if batch else ""
             self.failure = StoreError(f"could not write to {self.path}: {sqlite_reason(err)}{kept}")
             raise self.failure from None
         except BaseException:

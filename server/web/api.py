@@ -39,8 +39,11 @@ def _known(state: Any, session_id: int):
 def api_router(state: Any) -> APIRouter:
     router = APIRouter(prefix="/api", tags=["read"])
 
-    @router.get("/boxes", response_model=list[BoxTile],
-                summary="One status tile per box (latest session per box when read-only)")
+    @router.get(
+        "/boxes",
+        response_model=list[BoxTile],
+        summary="One status tile per box (latest session per box when read-only)",
+    )
     async def boxes() -> Response:
         snap = await state.snapshot()
         return Response(snap.boxes_json, media_type="application/json")
@@ -50,24 +53,26 @@ def api_router(state: Any) -> APIRouter:
         snap = await state.snapshot()
         return Response(snap.board_json, media_type="application/json")
 
-    @router.get("/live", response_class=EventSourceResponse,
-                summary="Server-sent events: the board payload about once a second")
+    @router.get(
+        "/live", response_class=EventSourceResponse, summary="Server-sent events: the board payload about once a second"
+    )
     async def live() -> AsyncIterable[ServerSentEvent]:
         last = None
         while not state.stopping.is_set():
             snap = await state.snapshot()
             if snap.version != last:
                 last = snap.version
-                yield ServerSentEvent(raw_data=snap.board_json, event="board",
-                                      id=str(snap.version), retry=3000)
+                yield ServerSentEvent(raw_data=snap.board_json, event="board", id=str(snap.version), retry=3000)
             await asyncio.sleep(LIVE_EVERY_S)
 
     @router.get("/sessions", summary="Sessions, newest first")
-    def sessions(animal: str | None = None, box: str | None = None,
-                 running: bool = False, limit: int = Query(100, ge=1, le=10_000)
-                 ) -> list[dict[str, Any]]:
-        return queries.list_sessions(state.store.conn(), animal=animal, box=box,
-                                     running=running, limit=limit)
+    def sessions(
+        animal: str | None = None,
+        box: str | None = None,
+        running: bool = False,
+        limit: int = Query(100, ge=1, le=10_000),
+    ) -> list[dict[str, Any]]:
+        return queries.list_sessions(state.store.conn(), animal=animal, box=box, running=running, limit=limit)
 
     @router.get("/sessions/{session_id}", response_model=SessionOut)
     def session(session_id: int) -> dict[str, Any]:
@@ -85,16 +90,20 @@ def api_router(state: Any) -> APIRouter:
         conn = _known(state, session_id)
         return queries.session_trials(conn, session_id, after_trial=after)
 
-    @router.get("/sessions/{session_id}/estimates",
-                summary="Learning-model estimates after each trial (empty when none stored)")
+    @router.get(
+        "/sessions/{session_id}/estimates", summary="Learning-model estimates after each trial (empty when none stored)"
+    )
     def estimates(session_id: int, after: int = 0) -> list[dict[str, Any]]:
         conn = _known(state, session_id)
         return queries.session_estimates(conn, session_id, after_trial=after)
 
-    @router.get("/sessions/{session_id}/events",
-                summary="Events in stored order; `since` (event id) for polling, `tail` for the last N")
-    def events(session_id: int, since: int = 0, tail: int | None = Query(None, ge=1),
-               kind: str | None = None) -> list[dict[str, Any]]:
+    @router.get(
+        "/sessions/{session_id}/events",
+        summary="Events in stored order; `since` (event id) for polling, `tail` for the last N",
+    )
+    def events(
+        session_id: int, since: int = 0, tail: int | None = Query(None, ge=1), kind: str | None = None
+    ) -> list[dict[str, Any]]:
         conn = _known(state, session_id)
         return queries.session_events(conn, session_id, since_id=since, tail=tail, kind=kind)
 
@@ -102,21 +111,25 @@ def api_router(state: Any) -> APIRouter:
         conn = _known(state, session_id)
         out = io.StringIO()
         export(conn, session_id, out)
-        return Response(out.getvalue(), media_type="text/csv; charset=utf-8", headers={
-            "Content-Disposition": f'attachment; filename="session-{session_id}-{what}.csv"'})
+        return Response(
+            out.getvalue(),
+            media_type="text/csv; charset=utf-8",
+            headers={"Content-Disposition": f'attachment; filename="session-{session_id}-{what}.csv"'},
+        )
 
-    @router.get("/sessions/{session_id}/trials.csv", response_class=Response,
-                summary="The session's trials as CSV")
+    @router.get("/sessions/{session_id}/trials.csv", response_class=Response, summary="The session's trials as CSV")
     def trials_csv(session_id: int) -> Response:
         return _csv(session_id, "trials", queries.export_trials_csv)
 
-    @router.get("/sessions/{session_id}/events.csv", response_class=Response,
-                summary="The session's events as CSV")
+    @router.get("/sessions/{session_id}/events.csv", response_class=Response, summary="The session's events as CSV")
     def events_csv(session_id: int) -> Response:
         return _csv(session_id, "events", queries.export_events_csv)
 
-    @router.get("/animals/{animal:path}", response_model=AnimalOut,
-                summary="An animal's sessions, oldest first, with stage, accuracy and parameters")
+    @router.get(
+        "/animals/{animal:path}",
+        response_model=AnimalOut,
+        summary="An animal's sessions, oldest first, with stage, accuracy and parameters",
+    )
     def animal(animal: str) -> dict[str, Any]:
         history = animal_rows(state.store.conn(), animal)
         if not history:

@@ -32,9 +32,11 @@ ASSETS = Path(__file__).parent / "assets"
 OPEN_PATHS = ("/assets/", "/login", "/logout", "/api/openapi.json")
 # No script, style or frame from anywhere but this server; nothing inline.
 SECURITY_HEADERS = [
-    (b"content-security-policy",
-     b"default-src 'self'; script-src 'self'; style-src 'self'; img-src 'self' data:; "
-     b"object-src 'none'; base-uri 'none'; frame-ancestors 'none'; form-action 'self'"),
+    (
+        b"content-security-policy",
+        b"default-src 'self'; script-src 'self'; style-src 'self'; img-src 'self' data:; "
+        b"object-src 'none'; base-uri 'none'; frame-ancestors 'none'; form-action 'self'",
+    ),
     (b"x-content-type-options", b"nosniff"),
     (b"referrer-policy", b"no-referrer"),
     (b"x-frame-options", b"DENY"),
@@ -67,10 +69,14 @@ def _wants_json(path: str) -> bool:
 def _refusal(path: str, status: int, message: str, lab_name: str, read_only: bool) -> Response:
     if _wants_json(path):
         return JSONResponse({"detail": message}, status_code=status)
-    body = login_body(message) if status in (401, 403) and path != "/login" else el(
-        "p", message, class_="notice", role="alert")
-    return HTMLResponse(page("Refused", body, lab_name=lab_name, body_class="pg-login",
-                             read_only=read_only), status_code=status)
+    body = (
+        login_body(message)
+        if status in (401, 403) and path != "/login"
+        else el("p", message, class_="notice", role="alert")
+    )
+    return HTMLResponse(
+        page("Refused", body, lab_name=lab_name, body_class="pg-login", read_only=read_only), status_code=status
+    )
 
 
 class Gate:
@@ -102,8 +108,7 @@ class Gate:
             if not path.startswith(OPEN_PATHS):
                 self.state.guard.check_read(request)
         except Refused as refused:
-            response = _refusal(path, refused.status, refused.message, self.state.lab_name,
-                                self.state.live is None)
+            response = _refusal(path, refused.status, refused.message, self.state.lab_name, self.state.live is None)
             await response(scope, receive, send_with_headers)
             return
         await self.app(scope, receive, send_with_headers)
@@ -124,15 +129,22 @@ def create_app(
     Raises `StoreError` when the database cannot be read.
     """
     store = ReadOnlyStore(db_path)
-    board = Board(live=None if live is None else live.latest,
-                  store=None if live is not None else store, quiet_after_s=quiet_after_s)
+    board = Board(
+        live=None if live is None else live.latest,
+        store=None if live is not None else store,
+        quiet_after_s=quiet_after_s,
+    )
     if lab_name is None:
         lab_name = Path(db_path).name
-    state = WebState(store, board, Guard(operator_token=operator_token,
-                                         viewer_token=viewer_token), live, lab_name)
-    app = FastAPI(title="Vigil status page", version="1",
-                  description="Live status of a Vigil lab: boxes, sessions, animals.",
-                  docs_url=None, redoc_url=None, openapi_url="/api/openapi.json")
+    state = WebState(store, board, Guard(operator_token=operator_token, viewer_token=viewer_token), live, lab_name)
+    app = FastAPI(
+        title="Vigil status page",
+        version="1",
+        description="Live status of a Vigil lab: boxes, sessions, animals.",
+        docs_url=None,
+        redoc_url=None,
+        openapi_url="/api/openapi.json",
+    )
     app.state.vigil = state
     app.include_router(api_router(state))
     if live is not None:
@@ -148,21 +160,27 @@ def create_app(
     @app.exception_handler(StarletteHTTPException)
     async def http_error(request: Request, exc: StarletteHTTPException) -> Response:
         message = exc.detail if isinstance(exc.detail, str) else "request refused"
-        message = {"Not Found": "no such page", "Method Not Allowed": "method not allowed"
-                   }.get(message, message)
+        message = {"Not Found": "no such page", "Method Not Allowed": "method not allowed"}.get(message, message)
         if _wants_json(request.url.path):
-            return JSONResponse({"detail": message}, status_code=exc.status_code,
-                                headers=getattr(exc, "headers", None))
-        return HTMLResponse(page("Not here", el("p", message, class_="notice", role="alert"),
-                                 lab_name=lab_name, body_class="pg-error",
-                                 read_only=read_only), status_code=exc.status_code)
+            return JSONResponse({"detail": message}, status_code=exc.status_code, headers=getattr(exc, "headers", None))
+        return HTMLResponse(
+            page(
+                "Not here",
+                el("p", message, class_="notice", role="alert"),
+                lab_name=lab_name,
+                body_class="pg-error",
+                read_only=read_only,
+            ),
+            status_code=exc.status_code,
+        )
 
     @app.exception_handler(RequestValidationError)
     async def invalid(request: Request, exc: RequestValidationError) -> Response:
-        problems = [f"{'.'.join(str(p) for p in e.get('loc', ())[1:]) or 'body'}: "
-                    f"{e.get('msg', 'invalid').lower()}" for e in exc.errors()]
-        return JSONResponse({"detail": "; ".join(problems) or "invalid request"},
-                            status_code=422)
+        problems = [
+            f"{'.'.join(str(p) for p in e.get('loc', ())[1:]) or 'body'}: {e.get('msg', 'invalid').lower()}"
+            for e in exc.errors()
+        ]
+        return JSONResponse({"detail": "; ".join(problems) or "invalid request"}, status_code=422)
 
     app.add_middleware(Gate, state=state)
     return app

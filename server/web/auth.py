@@ -40,8 +40,7 @@ def same(supplied: str | None, expected: str | None) -> bool:
 def refuse_token_in_url(request: Request) -> None:
     for key in request.query_params.keys():
         if "token" in key.lower():
-            raise Refused(400, "a token in the url is refused; send it in the X-Vigil-Token "
-                               "header or a form field")
+            raise Refused(400, "a token in the url is refused; send it in the X-Vigil-Token header or a form field")
 
 
 class Guard:
@@ -51,8 +50,7 @@ class Guard:
         self._cookie = None
         if viewer_token is not None:
             # Derived, so a stolen cookie does not reveal the token (and never acts).
-            self._cookie = hmac.new(viewer_token.encode("utf-8"), b"vigil viewer cookie",
-                                    hashlib.sha256).hexdigest()
+            self._cookie = hmac.new(viewer_token.encode("utf-8"), b"vigil viewer cookie", hashlib.sha256).hexdigest()
 
     @property
     def read_is_open(self) -> bool:

@@ -63,8 +63,7 @@ class Snapshot:
 
 def strip_of(tiles: list[dict[str, Any]]) -> list[dict[str, str]]:
     """The lab-wide alarm strip: every alarm of every box, box named."""
-    return [{"box": t["box"], "kind": a["kind"], "text": a["text"]}
-            for t in tiles for a in t["alarms"]]
+    return [{"box": t["box"], "kind": a["kind"], "text": a["text"]} for t in tiles for a in t["alarms"]]
 
 
 class Board:
@@ -111,8 +110,7 @@ class Board:
         for session in queries.latest_sessions_per_box(conn):
             status = queries.session_status(conn, session["id"])
             firings = queries.session_rule_firings(conn, session["id"])
-            tiles.append(tile_from_store(session, status, firings[-1] if firings else None,
-                                         wall, self.quiet_after_s))
+            tiles.append(tile_from_store(session, status, firings[-1] if firings else None, wall, self.quiet_after_s))
         return tiles
 
     def _make(self, now: float) -> Snapshot:
@@ -121,14 +119,17 @@ class Board:
         self._version += 1
         wall_text = wall.isoformat(timespec="seconds")
         board = {
-            "version": self._version, "at": wall_text,
+            "version": self._version,
+            "at": wall_text,
             "boxes": [t["box"] for t in tiles],
-            "tiles": [{"box": t["box"], "state": t["state"], "alarms": t["alarms"],
-                       "shown": shown(t)} for t in tiles],
+            "tiles": [{"box": t["box"], "state": t["state"], "alarms": t["alarms"], "shown": shown(t)} for t in tiles],
             "strip": strip_of(tiles),
         }
         return Snapshot(
-            version=self._version, made_at=now, wall_time=wall_text, tiles=tiles,
+            version=self._version,
+            made_at=now,
+            wall_time=wall_text,
+            tiles=tiles,
             boxes_json=json.dumps(tiles, separators=(",", ":"), allow_nan=False).encode(),
             board_json=json.dumps(board, separators=(",", ":"), allow_nan=False),
         )

@@ -48,9 +48,14 @@ async def serve_page(listen_fd: int, channel_fd: int) -> int:
         return 0  # the lab ended before the page began
     try:
         setup = decode(line)["setup"]
-        app = create_app(setup["db"], live=view, operator_token=setup["operator_token"],
-                         viewer_token=setup["viewer_token"], lab_name=setup["lab_name"],
-                         quiet_after_s=setup["quiet_after_s"])
+        app = create_app(
+            setup["db"],
+            live=view,
+            operator_token=setup["operator_token"],
+            viewer_token=setup["viewer_token"],
+            lab_name=setup["lab_name"],
+            quiet_after_s=setup["quiet_after_s"],
+        )
     except (ChannelError, KeyError, TypeError) as exc:
         print(f"vigil: status page: bad setup from the lab: {exc!r}", file=sys.stderr)
         return 1

@@ -28,8 +28,7 @@ def origin_of(request: Request) -> str:
     return client.host if client is not None else "unknown"
 
 
-async def _ask(live: Any, op: str, session_id: int, origin: str,
-               text: str | None = None) -> dict[str, Any]:
+async def _ask(live: Any, op: str, session_id: int, origin: str, text: str | None = None) -> dict[str, Any]:
     """The lab's answer to one control; an HTTP error unless it was done."""
     try:
         reply = await live.ask(op, session_id, origin, text)
@@ -52,21 +51,26 @@ def controls_router(state: Any) -> APIRouter:
         async def route(session_id: int, request: Request) -> dict[str, Any]:
             origin = await operator(request)
             reply = await _ask(live, action, session_id, origin)
-            return {"session_id": session_id, "box": reply["box"], "action": action,
-                    "origin": origin}
+            return {"session_id": session_id, "box": reply["box"], "action": action, "origin": origin}
 
         route.__name__ = f"{action}_session"
         return route
 
     for action in ACTIONS:
         router.add_api_route(
-            f"/api/sessions/{{session_id}}/{action}", action_route(action), methods=["POST"],
+            f"/api/sessions/{{session_id}}/{action}",
+            action_route(action),
+            methods=["POST"],
             response_model=ActionOut,
             summary=f"{action.capitalize()} a running session (operator token required)",
         )
 
-    @router.post("/api/sessions/{session_id}/annotations", response_model=NoteOut,
-                 status_code=201, summary="Store a note on a session (operator token required)")
+    @router.post(
+        "/api/sessions/{session_id}/annotations",
+        response_model=NoteOut,
+        status_code=201,
+        summary="Store a note on a session (operator token required)",
+    )
     async def annotate(session_id: int, note: NoteIn, request: Request) -> dict[str, Any]:
         origin = await operator(request)
         reply = await _ask(live, "annotate", session_id, origin, note.text)
@@ -84,7 +88,6 @@ def controls_router(state: Any) -> APIRouter:
             await _ask(live, "annotate", session_id, origin, str(form.get("text") or ""))
         else:
             raise Refused(400, "unknown action")
-        return RedirectResponse(f"/sessions/{session_id}?done={DONE[str(action)]}",
-                                status_code=303)
+        return RedirectResponse(f"/sessions/{session_id}?done={DONE[str(action)]}", status_code=303)
 
     return router

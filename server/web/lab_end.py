@@ -113,8 +113,15 @@ def answer(lab: Any, ask: dict[str, Any]) -> dict[str, Any]:
 class LabEnd:
     """Serves one page over `reader`/`writer` until the page's end closes (`run` returns)."""
 
-    def __init__(self, lab: Any, reader: asyncio.StreamReader, writer: asyncio.StreamWriter,
-                 *, say: Callable[[str], None] = print, every_s: float = FEED_EVERY_S):
+    def __init__(
+        self,
+        lab: Any,
+        reader: asyncio.StreamReader,
+        writer: asyncio.StreamWriter,
+        *,
+        say: Callable[[str], None] = print,
+        every_s: float = FEED_EVERY_S,
+    ):
         self.lab = lab
         self.reader = reader
         self.writer = writer

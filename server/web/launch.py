@@ -42,9 +42,16 @@ async def run_lab_with_page(
     token = web.operator_token or secrets.token_urlsafe(18)
     try:
         page: PageProcess | None = await start_page(
-            lab, db_path, host=web.host, port=web.port if port is None else port,
-            operator_token=token, viewer_token=web.viewer_token, lab_name=lab.config.lab,
-            quiet_after_s=web.no_response_minutes * 60.0, say=say)
+            lab,
+            db_path,
+            host=web.host,
+            port=web.port if port is None else port,
+            operator_token=token,
+            viewer_token=web.viewer_token,
+            lab_name=lab.config.lab,
+            quiet_after_s=web.no_response_minutes * 60.0,
+            say=say,
+        )
     except (WebError, StoreError) as exc:
         say(f"warning: status page not started: {exc}")
         page = None
@@ -59,16 +66,14 @@ async def run_lab_with_page(
             await page.close()
 
 
-def serve_store(db_path: str | Path, *, host: str, port: int,
-                say: Callable[[str], None] = _say) -> int:
+def serve_store(db_path: str | Path, *, host: str, port: int, say: Callable[[str], None] = _say) -> int:
     """`vigil serve`: the status page over a database alone, read-only, until SIGINT/SIGTERM.
 
     Returns the exit code (1 when the database or the address cannot be used).
     """
     viewer = os.environ.get(VIEWER_TOKEN_ENV) or None
     if not is_loopback(host) and viewer is None:
-        say(f"vigil: listening on '{host}' reaches other computers; set {VIEWER_TOKEN_ENV} "
-            "first, or use 127.0.0.1")
+        say(f"vigil: listening on '{host}' reaches other computers; set {VIEWER_TOKEN_ENV} first, or use 127.0.0.1")
         return 1
     try:
         server = StatusServer(create_app(db_path, viewer_token=viewer), host, port)

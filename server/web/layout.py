@@ -14,9 +14,9 @@ from typing import Any
 from server.web.markup import Safe, el, join
 
 # Changes with the vendored files' contents, so a browser never keeps a stale copy.
-ASSET_VERSION = hashlib.sha256(b"".join(
-    (Path(__file__).parent / "assets" / name).read_bytes() for name in ("vigil.css", "vigil.js")
-)).hexdigest()[:10]
+ASSET_VERSION = hashlib.sha256(
+    b"".join((Path(__file__).parent / "assets" / name).read_bytes() for name in ("vigil.css", "vigil.js"))
+).hexdigest()[:10]
 
 _ICON_PATHS = {
     # two chain halves pulled apart, with a slash
@@ -40,19 +40,16 @@ _ICON_PATHS = {
 @functools.cache
 def icon(kind: str) -> Safe:
     paths = _ICON_PATHS.get(kind, _ICON_PATHS["ended_early"])
-    return el("svg", Safe(paths), viewBox="0 0 24 24", class_=f"ic ic-{kind}",
-              aria_hidden="true", focusable="false")
+    return el("svg", Safe(paths), viewBox="0 0 24 24", class_=f"ic ic-{kind}", aria_hidden="true", focusable="false")
 
 
 @functools.cache
 def icon_templates() -> Safe:
     """Hidden copies of every icon, cloned by the page script for live updates."""
-    return el("template", [el("span", icon(k), data_icon=k) for k in _ICON_PATHS],
-              id="icons")
+    return el("template", [el("span", icon(k), data_icon=k) for k in _ICON_PATHS], id="icons")
 
 
-def page(title: str, body: Any, *, lab_name: str, body_class: str, read_only: bool,
-         status: Any = None) -> str:
+def page(title: str, body: Any, *, lab_name: str, body_class: str, read_only: bool, status: Any = None) -> str:
     """A whole HTML document; `body` is Safe markup built with `el`."""
     nav = el(
         "nav",
@@ -70,10 +67,16 @@ def page(title: str, body: Any, *, lab_name: str, body_class: str, read_only: bo
         el("link", rel="icon", href="/assets/vigil.svg", type="image/svg+xml"),
         el("script", src=f"/assets/vigil.js?v={ASSET_VERSION}", defer=True),
     )
-    header = el("header", el("a", "Vigil", href="/", class_="brand"),
-                el("span", lab_name, class_="labname"), mode, nav, status,
-                class_="masthead")
-    doc = join(Safe("<!doctype html>"),
-               el("html", head, el("body", header, el("main", body), class_=body_class),
-                  lang="en"))
+    header = el(
+        "header",
+        el("a", "Vigil", href="/", class_="brand"),
+        el("span", lab_name, class_="labname"),
+        mode,
+        nav,
+        status,
+        class_="masthead",
+    )
+    doc = join(
+        Safe("<!doctype html>"), el("html", head, el("body", header, el("main", body), class_=body_class), lang="en")
+    )
     return str(doc)

@@ -46,14 +46,16 @@ def alarm_item(alarm: dict[str, str], box: str | None = None) -> Safe:
 
 def strip(tiles: list[dict[str, Any]]) -> Safe:
     items = strip_of(tiles)
-    quiet = el("p", icon("ok"), el("span", "No alarms: every box within limits"),
-               class_="quiet", hidden=bool(items))
+    quiet = el("p", icon("ok"), el("span", "No alarms: every box within limits"), class_="quiet", hidden=bool(items))
     return el(
         "section",
         el("h2", "Alarms", class_="sr"),
         quiet,
         el("ul", [alarm_item(a, a["box"]) for a in items], class_="alarmlist"),
-        id="strip", class_="strip", data_count=str(len(items)), role="status",
+        id="strip",
+        class_="strip",
+        data_count=str(len(items)),
+        role="status",
         aria_live="polite",
     )
 
@@ -64,12 +66,9 @@ def controls(state: str) -> Safe:
     running = state != "ended"
     return el(
         "div",
-        el("button", icon("paused"), "pause", type="button", data_act="pause",
-           hidden=state != "running"),
-        el("button", icon("running"), "resume", type="button", data_act="resume",
-           hidden=state != "paused"),
-        el("button", icon("ended_early"), "stop", type="button", data_act="stop",
-           class_="danger", hidden=not running),
+        el("button", icon("paused"), "pause", type="button", data_act="pause", hidden=state != "running"),
+        el("button", icon("running"), "resume", type="button", data_act="resume", hidden=state != "paused"),
+        el("button", icon("ended_early"), "stop", type="button", data_act="stop", class_="danger", hidden=not running),
         class_="acts",
     )
 
@@ -81,18 +80,26 @@ def _tile_template(slot) -> Safe:
     ]
     return el(
         "article",
-        el("header",
-           el("h2", slot("box"), class_="boxname"),
-           el("a", slot("animal"), href=slot("animal_href"), class_="animal"),
-           el("p", el("span", slot("state_icon"), data_icon_slot="state"),
-              el("span", slot("state"), data_f="state"), class_="state"),
-           class_="tile-head"),
+        el(
+            "header",
+            el("h2", slot("box"), class_="boxname"),
+            el("a", slot("animal"), href=slot("animal_href"), class_="animal"),
+            el(
+                "p",
+                el("span", slot("state_icon"), data_icon_slot="state"),
+                el("span", slot("state"), data_f="state"),
+                class_="state",
+            ),
+            class_="tile-head",
+        ),
         el("ul", slot("alarms"), class_="alarmlist", data_alarms=True),
         el("dl", figs, class_="figs"),
-        el("footer", el("a", "session ", slot("session_id"), " ›", href=slot("session_href")),
-           slot("controls")),
-        class_="tile", data_box=slot("box"), data_session=slot("session_id"),
-        data_state=slot("state_name"), data_alarmed=slot("alarmed"),
+        el("footer", el("a", "session ", slot("session_id"), " ›", href=slot("session_href")), slot("controls")),
+        class_="tile",
+        data_box=slot("box"),
+        data_session=slot("session_id"),
+        data_state=slot("state_name"),
+        data_alarmed=slot("alarmed"),
     )
 
 
@@ -105,11 +112,15 @@ def tile_markup(tile: dict[str, Any], *, with_controls: bool) -> Safe:
     state = tile["state"]
     values: dict[str, Any] = dict(shown(tile))
     values.update(
-        box=tile["box"], animal=tile["animal"], animal_href=animal_href(tile["animal"]),
-        state_icon=icon(state), state_name=state,
+        box=tile["box"],
+        animal=tile["animal"],
+        animal_href=animal_href(tile["animal"]),
+        state_icon=icon(state),
+        state_name=state,
         alarms=join(*(alarm_item(a) for a in tile["alarms"])),
         alarmed="yes" if tile["alarms"] else "no",
-        session_id=str(tile["session_id"]), session_href=f"/sessions/{tile['session_id']}",
+        session_id=str(tile["session_id"]),
+        session_href=f"/sessions/{tile['session_id']}",
         controls=controls(state) if with_controls else Safe(""),
     )
     return TILE.fill(values)
@@ -118,18 +129,32 @@ def tile_markup(tile: dict[str, Any], *, with_controls: bool) -> Safe:
 def operator_key() -> Safe:
     return el(
         "form",
-        el("label", "Operator token ",
-           el("input", type="password", id="optoken", autocomplete="off",
-              placeholder="needed to pause, stop or annotate")),
+        el(
+            "label",
+            "Operator token ",
+            el(
+                "input",
+                type="password",
+                id="optoken",
+                autocomplete="off",
+                placeholder="needed to pause, stop or annotate",
+            ),
+        ),
         el("output", id="opsay", aria_live="polite"),
-        class_="opkey", id="opkey",
+        class_="opkey",
+        id="opkey",
     )
 
 
 def overview_body(snap: Snapshot, *, with_controls: bool) -> Safe:
     if snap.tiles:
-        grid = el("div", [tile_markup(t, with_controls=with_controls) for t in snap.tiles],
-                  class_="grid", id="board", data_boxes="\n".join(t["box"] for t in snap.tiles))
+        grid = el(
+            "div",
+            [tile_markup(t, with_controls=with_controls) for t in snap.tiles],
+            class_="grid",
+            id="board",
+            data_boxes="\n".join(t["box"] for t in snap.tiles),
+        )
     else:
         grid = el("p", "No sessions yet.", class_="empty", id="board", data_boxes="")
     return el(
@@ -137,8 +162,13 @@ def overview_body(snap: Snapshot, *, with_controls: bool) -> Safe:
         strip(snap.tiles),
         operator_key() if with_controls else None,
         grid,
-        el("p", "as of ", el("time", snap.wall_time, id="asof"),
-           el("span", " · live updates", id="feed"), class_="asof"),
+        el(
+            "p",
+            "as of ",
+            el("time", snap.wall_time, id="asof"),
+            el("span", " · live updates", id="feed"),
+            class_="asof",
+        ),
         icon_templates(),
         class_="overview",
     )

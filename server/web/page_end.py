@@ -51,9 +51,14 @@ class LatestFeed:
 class LabView:
     """What the page knows of the lab, kept current by `run()` until the lab's end closes."""
 
-    def __init__(self, reader: asyncio.StreamReader, writer: asyncio.StreamWriter,
-                 *, clock: Callable[[], float] = time.monotonic,
-                 answer_timeout_s: float = ANSWER_TIMEOUT_S):
+    def __init__(
+        self,
+        reader: asyncio.StreamReader,
+        writer: asyncio.StreamWriter,
+        *,
+        clock: Callable[[], float] = time.monotonic,
+        answer_timeout_s: float = ANSWER_TIMEOUT_S,
+    ):
         self.reader = reader
         self.writer = writer
         self.latest = LatestFeed(clock)
@@ -91,8 +96,7 @@ class LabView:
     def tell_ready(self, pid: int) -> None:
         self._send({"ready": pid})
 
-    async def ask(self, op: str, session_id: int, origin: str, text: str | None = None
-                  ) -> dict[str, Any]:
+    async def ask(self, op: str, session_id: int, origin: str, text: str | None = None) -> dict[str, Any]:
         """Ask the lab to pause, resume, stop or annotate; its answer (with "status").
 
         Raises `LabGone` when the lab has gone or does not answer in time.
@@ -102,14 +106,14 @@ class LabView:
         ask_id = next(self._ids)
         waiting = asyncio.get_running_loop().create_future()
         self._asked[ask_id] = waiting
-        self._send({"ask": ask_id, "op": op, "session_id": session_id, "origin": origin,
-                    "text": text})
+        self._send({"ask": ask_id, "op": op, "session_id": session_id, "origin": origin, "text": text})
         try:
             return await asyncio.wait_for(waiting, self.answer_timeout_s)
-        except asyncio.TimeoutError:
-            raise LabGone(f"the lab did not answer within {self.answer_timeout_s:g} s; "
-                          "the action may still happen: check the session before repeating it"
-                          ) from None
+        except TimeoutError:
+            raise LabGone(
+                f"the lab did not answer within {self.answer_timeout_s:g} s; "
+                "the action may still happen: check the session before repeating it"
+            ) from None
         finally:
             self._asked.pop(ask_id, None)
 

@@ -54,8 +54,7 @@ def _child_env() -> dict[str, str]:
 class PageProcess:
     """The status page's process as the lab sees it."""
 
-    def __init__(self, proc: asyncio.subprocess.Process, end: LabEnd, url: str,
-                 say: Callable[[str], None]):
+    def __init__(self, proc: asyncio.subprocess.Process, end: LabEnd, url: str, say: Callable[[str], None]):
         self.proc = proc
         self.end = end
         self.url = url
@@ -73,8 +72,7 @@ class PageProcess:
             return
         self.end.close()
         code = await self.proc.wait()
-        self.say(f"warning: status page stopped (its process exited with code {code}); "
-                 "the sessions go on")
+        self.say(f"warning: status page stopped (its process exited with code {code}); the sessions go on")
 
     async def close(self, timeout: float = CLOSE_WAIT_S) -> int:
         """Close the channel (the child reads EOF and exits) and wait for it; returns its
@@ -83,7 +81,7 @@ class PageProcess:
         self.end.close()
         try:
             code = await asyncio.wait_for(self.proc.wait(), timeout)
-        except asyncio.TimeoutError:
+        except TimeoutError:
             self.proc.kill()
             code = await self.proc.wait()
         await asyncio.gather(self._watch, return_exceptions=True)
@@ -114,10 +112,16 @@ async def start_page(
         try:
             with _sigint_ignored():
                 proc = await asyncio.create_subprocess_exec(
-                    sys.executable, "-m", "server.web.child",
-                    "--listen-fd", str(listening.fileno()), "--channel-fd", str(page_sock.fileno()),
+                    sys.executable,
+                    "-m",
+                    "server.web.child",
+                    "--listen-fd",
+                    str(listening.fileno()),
+                    "--channel-fd",
+                    str(page_sock.fileno()),
                     pass_fds=(listening.fileno(), page_sock.fileno()),
-                    stdin=subprocess.DEVNULL, env=_child_env(),
+                    stdin=subprocess.DEVNULL,
+                    env=_child_env(),
                 )
         except OSError as exc:
             lab_sock.close()
@@ -128,9 +132,16 @@ async def start_page(
     finally:
         listening.close()  # the child listens now; its exit frees the port
     end = await open_lab_end(lab, lab_sock, say=say)
-    end.send({"setup": {
-        "db": str(Path(db_path).resolve()), "host": host, "lab_name": lab_name,
-        "operator_token": operator_token, "viewer_token": viewer_token,
-        "quiet_after_s": quiet_after_s,
-    }})
+    end.send(
+        {
+            "setup": {
+                "db": str(Path(db_path).resolve()),
+                "host": host,
+                "lab_name": lab_name,
+                "operator_token": operator_token,
+                "viewer_token": viewer_token,
+                "quiet_after_s": quiet_after_s,
+            }
+        }
+    )
     return PageProcess(proc, end, url, say)

@@ -15,9 +15,12 @@ from server.web.layout import page
 from server.web.markup import el
 from server.web.overview import overview_body
 
-NOTICES = {"paused": "Session paused.", "resumed": "Session resumed.",
-           "stopped": "Stop requested: the session ends with outputs in their safe state.",
-           "noted": "Note stored."}
+NOTICES = {
+    "paused": "Session paused.",
+    "resumed": "Session resumed.",
+    "stopped": "Stop requested: the session ends with outputs in their safe state.",
+    "noted": "Note stored.",
+}
 
 
 def login_body(message: str | None = None) -> Any:
@@ -25,10 +28,15 @@ def login_body(message: str | None = None) -> Any:
         "form",
         el("h1", "Viewer login"),
         el("p", message, class_="notice", role="alert") if message else None,
-        el("label", "Token ", el("input", type="password", name=TOKEN_FIELD,
-                                 autocomplete="current-password", required=True)),
+        el(
+            "label",
+            "Token ",
+            el("input", type="password", name=TOKEN_FIELD, autocomplete="current-password", required=True),
+        ),
         el("button", "open the status page", type="submit"),
-        method="post", action="/login", class_="login",
+        method="post",
+        action="/login",
+        class_="login",
     )
 
 
@@ -37,8 +45,9 @@ def pages_router(state: Any) -> APIRouter:
     read_only = state.live is None
 
     def html(title: str, body: Any, cls: str, status: int = 200) -> HTMLResponse:
-        return HTMLResponse(page(title, body, lab_name=state.lab_name, body_class=cls,
-                                 read_only=read_only), status_code=status)
+        return HTMLResponse(
+            page(title, body, lab_name=state.lab_name, body_class=cls, read_only=read_only), status_code=status
+        )
 
     @router.get("/")
     async def overview() -> Response:
@@ -47,8 +56,8 @@ def pages_router(state: Any) -> APIRouter:
         if text is None:  # rendered once per snapshot, shared by every client
             body = overview_body(snap, with_controls=state.controls_on)
             text = snap.cache["overview"] = page(
-                "Boxes", body, lab_name=state.lab_name, body_class="pg-overview",
-                read_only=read_only).encode()
+                "Boxes", body, lab_name=state.lab_name, body_class="pg-overview", read_only=read_only
+            ).encode()
         return Response(text, media_type="text/html; charset=utf-8")
 
     @router.get("/sessions")
@@ -65,10 +74,12 @@ def pages_router(state: Any) -> APIRouter:
     @router.get("/sessions/{session_id}")
     def session(session_id: int, done: str | None = None) -> HTMLResponse:
         found = _session(session_id)
-        controllable = (state.controls_on and found["end_reason"] is None
-                        and session_id in state.live.latest.running_sessions())
-        body = session_page.session_body(state.store.conn(), found, controllable=controllable,
-                                         notice=NOTICES.get(done or ""))
+        controllable = (
+            state.controls_on and found["end_reason"] is None and session_id in state.live.latest.running_sessions()
+        )
+        body = session_page.session_body(
+            state.store.conn(), found, controllable=controllable, notice=NOTICES.get(done or "")
+        )
         return html(f"Session {session_id}", body, "pg-session")
 
     @router.get("/sessions/{session_id}/panels")
@@ -97,8 +108,7 @@ def pages_router(state: Any) -> APIRouter:
         if not isinstance(token, str) or not state.guard.is_reader_token(token):
             return html("Login", login_body("wrong token"), "pg-login", status=403)
         response = RedirectResponse("/", status_code=303)
-        response.set_cookie(VIEW_COOKIE, state.guard.cookie_value, httponly=True,
-                            samesite="strict", path="/")
+        response.set_cookie(VIEW_COOKIE, state.guard.cookie_value, httponly=True, samesite="strict", path="/")
         return response
 
     @router.post("/logout")

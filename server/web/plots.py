@@ -44,8 +44,9 @@ def _wiring(settings: dict[str, Any] | None) -> tuple[dict[str, str], dict[str, 
     return dict(wiring.get("inputs") or {}), dict(wiring.get("outputs") or {})
 
 
-def response_inputs(settings: dict[str, Any] | None, inputs: Sequence[dict[str, Any]],
-                    trials: Sequence[dict[str, Any]]) -> list[str]:
+def response_inputs(
+    settings: dict[str, Any] | None, inputs: Sequence[dict[str, Any]], trials: Sequence[dict[str, Any]]
+) -> list[str]:
     """Which inputs count as responses: lever presses and nose pokes by their wiring kind;
     without wiring in the store, the inputs that ended a response window, else all."""
     kinds, _ = _wiring(settings)
@@ -55,8 +56,7 @@ def response_inputs(settings: dict[str, Any] | None, inputs: Sequence[dict[str, 
     return chosen or sorted({ev["name"] for ev in inputs})
 
 
-def feeder_names(settings: dict[str, Any] | None, pulses: Sequence[dict[str, Any]],
-                 rewards: int) -> set[str]:
+def feeder_names(settings: dict[str, Any] | None, pulses: Sequence[dict[str, Any]], rewards: int) -> set[str]:
     """Pulsed outputs that deliver reinforcers: feeders by wiring kind; without wiring, the
     pulse names whose delivered count equals the session's reward count."""
     _, kinds = _wiring(settings)
@@ -96,11 +96,15 @@ def cumulative_record(
         if ev["name"] in times and ev["value"]:
             times[ev["name"]].append(ev["t"])
     feeders = feeder_names(session.get("settings"), pulses, session.get("rewards") or 0)
-    pellets = [ev["t"] for ev in pulses
-               if ev["name"] in feeders and not (ev.get("detail") or {}).get("withheld")]
+    pellets = [ev["t"] for ev in pulses if ev["name"] in feeders and not (ev.get("detail") or {}).get("withheld")]
     top = max([len(v) for v in times.values()] + [1])
-    plot = Plot((0.0, _minutes(max(end_t, 1.0))), (0.0, top * 1.05),
-                title="Cumulative record", x_label="minutes", y_label="responses")
+    plot = Plot(
+        (0.0, _minutes(max(end_t, 1.0))),
+        (0.0, top * 1.05),
+        title="Cumulative record",
+        x_label="minutes",
+        y_label="responses",
+    )
     if pauses:
         plot.spans([(_minutes(a), _minutes(b)) for a, b in pauses], 0, top * 1.05, "paused")
         plot.legend("paused", "paused")
@@ -124,8 +128,7 @@ def cumulative_record(
     plot.marks(px, py, "pellet", shape="square", size=4)
     if px:
         plot.legend("pellet", "pellet")
-    plot.rules([_minutes(b["t_start"]) for b in blocks[1:]], [b["block"] for b in blocks[1:]],
-               "blk")
+    plot.rules([_minutes(b["t_start"]) for b in blocks[1:]], [b["block"] for b in blocks[1:]], "blk")
     _rule_marks(plot, firings)
     return plot.render()
 
@@ -140,8 +143,7 @@ def _rule_marks(plot: Plot, firings: Sequence[dict[str, Any]]) -> None:
     plot.rules(xs, labels, "rulefire")
 
 
-def choice_panel(trials: Sequence[dict[str, Any]],
-                 estimates: Sequence[dict[str, Any]]) -> Safe | None:
+def choice_panel(trials: Sequence[dict[str, Any]], estimates: Sequence[dict[str, Any]]) -> Safe | None:
     """Choices trial by trial with the estimator's predicted probability of the first option
     (the estimate after trial n predicts trial n + 1); without estimates, the observed
     fraction over the last 10 choices."""
@@ -153,8 +155,14 @@ def choice_panel(trials: Sequence[dict[str, Any]],
         options = sorted(set(options) | set((est["data"] or {}).get("p_choice") or {}))
     first = options[0]
     last_trial = max(t["trial"] for t in trials)
-    plot = Plot((0.5, last_trial + 0.5), (-0.12, 1.12), title=f"Choices and P({first})",
-                x_label="trial", y_ticks=[0.0, 0.25, 0.5, 0.75, 1.0], whole_x=True)
+    plot = Plot(
+        (0.5, last_trial + 0.5),
+        (-0.12, 1.12),
+        title=f"Choices and P({first})",
+        x_label="trial",
+        y_ticks=[0.0, 0.25, 0.5, 0.75, 1.0],
+        whole_x=True,
+    )
     if estimates:
         xs = [e["trial"] + 1 for e in estimates]
         ys = [((e["data"] or {}).get("p_choice") or {}).get(first, float("nan")) for e in estimates]
@@ -199,9 +207,14 @@ def parameter_panels(estimates: Sequence[dict[str, Any]]) -> list[Safe]:
         high = [r["high"] for r in rows if r]
         if not xs:
             continue
-        plot = Plot((0.0, max(xs) + 0.5), (min(low + [0.0]), max(high) * 1.05),
-                    title=PARAM_TITLES.get(name, name), x_label="trial", height=220,
-                    whole_x=True)
+        plot = Plot(
+            (0.0, max(xs) + 0.5),
+            (min(low + [0.0]), max(high) * 1.05),
+            title=PARAM_TITLES.get(name, name),
+            x_label="trial",
+            height=220,
+            whole_x=True,
+        )
         plot.band(xs, low, high, "ci")
         plot.line(xs, mean, "mean")
         plot.legend("ci", "95 % band")
@@ -210,29 +223,45 @@ def parameter_panels(estimates: Sequence[dict[str, Any]]) -> list[Safe]:
     explore = [(e["trial"], (e["data"] or {}).get("exploration")) for e in estimates]
     explore = [(t, v) for t, v in explore if isinstance(v, (int, float))]
     if explore:
-        plot = Plot((0.0, explore[-1][0] + 0.5), (0.0, 1.0), height=200,
-                    title="exploration: P(not choosing the best option next)", x_label="trial",
-                    whole_x=True)
+        plot = Plot(
+            (0.0, explore[-1][0] + 0.5),
+            (0.0, 1.0),
+            height=200,
+            title="exploration: P(not choosing the best option next)",
+            x_label="trial",
+            whole_x=True,
+        )
         plot.line([t for t, _ in explore], [v for _, v in explore], "mean")
         panels.append(plot.render())
     return panels
 
 
-def iti_timeline(trials: Sequence[dict[str, Any]], blocks: Sequence[dict[str, Any]],
-                 pauses: Sequence[tuple[float, float]], firings: Sequence[dict[str, Any]],
-                 end_t: float) -> Safe | None:
+def iti_timeline(
+    trials: Sequence[dict[str, Any]],
+    blocks: Sequence[dict[str, Any]],
+    pauses: Sequence[tuple[float, float]],
+    firings: Sequence[dict[str, Any]],
+    end_t: float,
+) -> Safe | None:
     """Trials and the ITIs between them on one time axis, with blocks, pauses, rule firings."""
     if not trials:
         return None
     rows = {3.0: "trial", 2.0: "ITI", 1.0: "paused"}
-    plot = Plot((0.0, _minutes(max(end_t, 1.0))), (0.4, 3.6), title="Timeline",
-                x_label="minutes", height=200, y_ticks=list(rows), y_tick_text=rows)
+    plot = Plot(
+        (0.0, _minutes(max(end_t, 1.0))),
+        (0.4, 3.6),
+        title="Timeline",
+        x_label="minutes",
+        height=200,
+        y_ticks=list(rows),
+        y_tick_text=rows,
+    )
     plot.spans([(_minutes(t["t_start"]), _minutes(t["t_end"])) for t in trials], 2.6, 3.4, "trial")
-    plot.spans([(_minutes(t["t_end"]), _minutes(t["t_end"] + t["iti_s"])) for t in trials
-                if t["iti_s"] > 0], 1.6, 2.4, "iti")
+    plot.spans(
+        [(_minutes(t["t_end"]), _minutes(t["t_end"] + t["iti_s"])) for t in trials if t["iti_s"] > 0], 1.6, 2.4, "iti"
+    )
     plot.spans([(_minutes(a), _minutes(b)) for a, b in pauses], 0.6, 1.4, "paused")
-    plot.rules([_minutes(b["t_start"]) for b in blocks[1:]], [b["block"] for b in blocks[1:]],
-               "blk")
+    plot.rules([_minutes(b["t_start"]) for b in blocks[1:]], [b["block"] for b in blocks[1:]], "blk")
     _rule_marks(plot, firings)
     return plot.render()
 
@@ -246,15 +275,27 @@ def animal_panels(history: Sequence[dict[str, Any]]) -> list[Safe]:
     panels = []
     acc = [(x, s["accuracy"]) for x, s in zip(xs, history) if s.get("accuracy") is not None]
     if acc:
-        plot = Plot((0.5, n + 0.5), (0.0, 1.0), title="Accuracy per session",
-                    x_label="session", height=220, y_ticks=[0.0, 0.25, 0.5, 0.75, 1.0],
-                    whole_x=True)
+        plot = Plot(
+            (0.5, n + 0.5),
+            (0.0, 1.0),
+            title="Accuracy per session",
+            x_label="session",
+            height=220,
+            y_ticks=[0.0, 0.25, 0.5, 0.75, 1.0],
+            whole_x=True,
+        )
         plot.line([x for x, _ in acc], [a for _, a in acc], "mean")
         plot.marks([x for x, _ in acc], [a for _, a in acc], "mean", shape="dot")
         panels.append(plot.render())
     counts = [float(s["trials"]) for s in history]
-    plot = Plot((0.5, n + 0.5), (0.0, max(counts + [1.0]) * 1.05), title="Trials per session",
-                x_label="session", height=200, whole_x=True)
+    plot = Plot(
+        (0.5, n + 0.5),
+        (0.0, max(counts + [1.0]) * 1.05),
+        title="Trials per session",
+        x_label="session",
+        height=200,
+        whole_x=True,
+    )
     for x, c in zip(xs, counts):
         plot.spans([(x - 0.3, x + 0.3)], 0.0, c, "bar")
     panels.append(plot.render())

@@ -36,8 +36,7 @@ def bind_socket(host: str, port: int) -> socket.socket:
         sock.listen(128)  # connections wait in the backlog until uvicorn starts accepting
     except OSError as exc:
         sock.close()
-        why = "the port is already in use" if exc.errno == errno.EADDRINUSE else (
-            exc.strerror or str(exc)).lower()
+        why = "the port is already in use" if exc.errno == errno.EADDRINUSE else (exc.strerror or str(exc)).lower()
         raise WebError(f"cannot listen on {host}:{port}: {why}") from None
     return sock
 
@@ -55,15 +54,22 @@ class _KeepOurSignals(uvicorn.Server):
 class StatusServer:
     """The status page on one socket; `serve()` until `stop()`."""
 
-    def __init__(self, app: FastAPI, host: str = "127.0.0.1", port: int = 8642, *,
-                 sock: socket.socket | None = None):
+    def __init__(self, app: FastAPI, host: str = "127.0.0.1", port: int = 8642, *, sock: socket.socket | None = None):
         self.app = app
         self.sock = sock if sock is not None else bind_socket(host, port)
         self.host = host
         self.port = self.sock.getsockname()[1]
         config = uvicorn.Config(
-            app, host=host, port=self.port, log_config=None, log_level="warning",
-            access_log=False, lifespan="off", ws="none", http="auto", server_header=False,
+            app,
+            host=host,
+            port=self.port,
+            log_config=None,
+            log_level="warning",
+            access_log=False,
+            lifespan="off",
+            ws="none",
+            http="auto",
+            server_header=False,
             timeout_graceful_shutdown=3,
         )
         self._server = _KeepOurSignals(config)

@@ -39,14 +39,15 @@ def _when(iso: str | None) -> str:
 
 
 def _table(header: list[str], rows: list[list[Any]], *, cls: str = "tbl") -> Safe:
-    return el("table",
-              el("thead", el("tr", [el("th", h, scope="col") for h in header])),
-              el("tbody", [el("tr", [el("td", c) for c in row]) for row in rows]),
-              class_=cls)
+    return el(
+        "table",
+        el("thead", el("tr", [el("th", h, scope="col") for h in header])),
+        el("tbody", [el("tr", [el("td", c) for c in row]) for row in rows]),
+        class_=cls,
+    )
 
 
-def session_end_t(session: dict[str, Any], status: dict[str, Any],
-                  trials: list[dict[str, Any]]) -> float:
+def session_end_t(session: dict[str, Any], status: dict[str, Any], trials: list[dict[str, Any]]) -> float:
     candidates = [status.get("last_t") or 0.0] + [t["t_end"] + t["iti_s"] for t in trials[-1:]]
     return max(candidates)
 
@@ -61,99 +62,141 @@ def panels(conn: sqlite3.Connection, session: dict[str, Any]) -> Safe:
     firings = queries.session_rule_firings(conn, sid)
     inputs = queries.session_events(conn, sid, kind="input")
     pulses = queries.session_events(conn, sid, kind="pulse")
-    pause_events = (queries.session_events(conn, sid, kind="pause")
-                    + queries.session_events(conn, sid, kind="resume"))
+    pause_events = queries.session_events(conn, sid, kind="pause") + queries.session_events(conn, sid, kind="resume")
     pause_events.sort(key=lambda ev: ev["id"])
     end_t = session_end_t(session, status, trials)
     pauses = plots.pause_spans(pause_events, end_t)
-    parts: list[Any] = [plots.cumulative_record(
-        session=session, inputs=inputs, pulses=pulses, trials=trials, blocks=blocks,
-        firings=firings, pauses=pauses, end_t=end_t)]
+    parts: list[Any] = [
+        plots.cumulative_record(
+            session=session,
+            inputs=inputs,
+            pulses=pulses,
+            trials=trials,
+            blocks=blocks,
+            firings=firings,
+            pauses=pauses,
+            end_t=end_t,
+        )
+    ]
     choice = plots.choice_panel(trials, estimates)
-    parts.append(choice if choice is not None else
-                 el("p", "No choice trials in this session.", class_="note"))
+    parts.append(choice if choice is not None else el("p", "No choice trials in this session.", class_="note"))
     estimated = plots.parameter_panels(estimates)
-    parts.extend(estimated or [el("p", "No learning-model estimates stored for this session.",
-                                  class_="note")])
+    parts.extend(estimated or [el("p", "No learning-model estimates stored for this session.", class_="note")])
     timeline = plots.iti_timeline(trials, blocks, pauses, firings, end_t)
     if timeline is not None:
         parts.append(timeline)
     itis = [t["iti_s"] for t in trials if t["iti_s"] > 0]
     if itis:
-        parts.append(el("p", f"ITI: {len(itis)} intervals, mean {sum(itis) / len(itis):.1f} s, "
-                             f"range {min(itis):.1f}–{max(itis):.1f} s", class_="note"))
+        parts.append(
+            el(
+                "p",
+                f"ITI: {len(itis)} intervals, mean {sum(itis) / len(itis):.1f} s, "
+                f"range {min(itis):.1f}–{max(itis):.1f} s",
+                class_="note",
+            )
+        )
     return el("div", parts, class_="panels")
 
 
 def _firings_list(firings: list[dict[str, Any]]) -> Safe:
     if not firings:
         return el("p", "No rule firings recorded.", class_="note")
-    rows = [[clock_text(row["t"]), row["trial"], rule_text(row["rule"], row["actions"]),
-             ", ".join(f"{k} = {_fmt(v)}" for k, v in (row.get("reads") or {}).items())]
-            for row in firings]
+    rows = [
+        [
+            clock_text(row["t"]),
+            row["trial"],
+            rule_text(row["rule"], row["actions"]),
+            ", ".join(f"{k} = {_fmt(v)}" for k, v in (row.get("reads") or {}).items()),
+        ]
+        for row in firings
+    ]
     return _table(["at", "after trial", "rule and action", "values read"], rows)
 
 
 def _control_form(session: dict[str, Any]) -> Safe:
     sid = session["id"]
-    buttons = [el("button", label, type="submit", name="action", value=action,
-                  class_="danger" if action == "stop" else None)
-               for action, label in (("pause", "pause"), ("resume", "resume"),
-                                     ("stop", "stop session"), ("annotate", "add note"))]
+    buttons = [
+        el("button", label, type="submit", name="action", value=action, class_="danger" if action == "stop" else None)
+        for action, label in (
+            ("pause", "pause"),
+            ("resume", "resume"),
+            ("stop", "stop session"),
+            ("annotate", "add note"),
+        )
+    ]
     return el(
         "form",
         el("h2", "Controls"),
-        el("label", "Operator token ", el("input", type="password", name="token",
-                                          autocomplete="off", required=True)),
+        el("label", "Operator token ", el("input", type="password", name="token", autocomplete="off", required=True)),
         el("label", "Note ", el("textarea", name="text", rows="2", maxlength="2000")),
         el("div", buttons, class_="acts"),
-        method="post", action=f"/sessions/{sid}/control", class_="controls", id="controls",
+        method="post",
+        action=f"/sessions/{sid}/control",
+        class_="controls",
+        id="controls",
         data_session=str(sid),
     )
 
 
-def session_body(conn: sqlite3.Connection, session: dict[str, Any], *,
-                 controllable: bool, notice: str | None) -> Safe:
+def session_body(conn: sqlite3.Connection, session: dict[str, Any], *, controllable: bool, notice: str | None) -> Safe:
     sid = session["id"]
     status = queries.session_status(conn, sid)
     running = session["end_reason"] is None
     facts = [
-        ("box", session["box"]), ("animal", el("a", session["animal"],
-                                               href=animal_href(session["animal"]))),
-        ("protocol", session["protocol"]), ("started", _when(session["started_at"])),
+        ("box", session["box"]),
+        ("animal", el("a", session["animal"], href=animal_href(session["animal"]))),
+        ("protocol", session["protocol"]),
+        ("started", _when(session["started_at"])),
         ("state", "running" if running else f"ended – {session['end_reason']}"),
-        ("trials", session["trials"]), ("pellets", session["rewards"]),
+        ("trials", session["trials"]),
+        ("pellets", session["rewards"]),
         ("correct", "–" if status["accuracy"] is None else f"{100 * status['accuracy']:.0f}\u202f%"),
-        ("block", status["block"] or "–"), ("seed", session["seed"]),
+        ("block", status["block"] or "–"),
+        ("seed", session["seed"]),
     ]
     events = queries.session_events(conn, sid, tail=EVENT_TAIL)
-    event_rows = [[clock_text(ev["t"]), f"{ev['t']:.3f}", ev["kind"], ev["name"],
-                   _fmt(ev["value"]),
-                   "" if ev["detail"] is None else json.dumps(ev["detail"], sort_keys=True)]
-                  for ev in reversed(events)]
+    event_rows = [
+        [
+            clock_text(ev["t"]),
+            f"{ev['t']:.3f}",
+            ev["kind"],
+            ev["name"],
+            _fmt(ev["value"]),
+            "" if ev["detail"] is None else json.dumps(ev["detail"], sort_keys=True),
+        ]
+        for ev in reversed(events)
+    ]
     notes = queries.session_annotations(conn, sid)
     note_rows = [[_when(n["wall_time"]), clock_text(n["t"]), n["origin"], n["text"]] for n in notes]
     return el(
         "div",
-        el("h1", f"Session {sid}: ", el("span", session["box"]), " · ",
-           el("span", session["animal"])),
+        el("h1", f"Session {sid}: ", el("span", session["box"]), " · ", el("span", session["animal"])),
         el("p", notice, class_="notice", role="status") if notice else None,
-        el("dl", [el("div", el("dt", k), el("dd", v), class_="fig") for k, v in facts],
-           class_="facts"),
-        el("p", el("a", "trials (CSV)", href=f"/api/sessions/{sid}/trials.csv"), " · ",
-           el("a", "events (CSV)", href=f"/api/sessions/{sid}/events.csv"), " · ",
-           el("a", "JSON", href=f"/api/sessions/{sid}"), class_="downloads"),
+        el("dl", [el("div", el("dt", k), el("dd", v), class_="fig") for k, v in facts], class_="facts"),
+        el(
+            "p",
+            el("a", "trials (CSV)", href=f"/api/sessions/{sid}/trials.csv"),
+            " · ",
+            el("a", "events (CSV)", href=f"/api/sessions/{sid}/events.csv"),
+            " · ",
+            el("a", "JSON", href=f"/api/sessions/{sid}"),
+            class_="downloads",
+        ),
         _control_form(session) if controllable else None,
-        el("section", panels(conn, session), id="panels",
-           data_refresh=f"/sessions/{sid}/panels" if running else None),
-        el("section", el("h2", "Rule firings"),
-           _firings_list(queries.session_rule_firings(conn, sid))),
-        el("section", el("h2", "Notes"),
-           _table(["written", "session time", "by", "note"], note_rows) if note_rows
-           else el("p", "No notes.", class_="note")),
-        el("section", el("h2", f"Event log (last {EVENT_TAIL}, newest first)"),
-           _table(["time", "t (s)", "kind", "name", "value", "detail"], event_rows,
-                  cls="tbl log")),
+        el("section", panels(conn, session), id="panels", data_refresh=f"/sessions/{sid}/panels" if running else None),
+        el("section", el("h2", "Rule firings"), _firings_list(queries.session_rule_firings(conn, sid))),
+        el(
+            "section",
+            el("h2", "Notes"),
+            _table(["written", "session time", "by", "note"], note_rows)
+            if note_rows
+            else el("p", "No notes.", class_="note"),
+        ),
+        el(
+            "section",
+            el("h2", f"Event log (last {EVENT_TAIL}, newest first)"),
+            _table(["time", "t (s)", "kind", "name", "value", "detail"], event_rows, cls="tbl log"),
+        ),
         class_="session",
     )
 
@@ -162,8 +205,7 @@ def _params_text(estimate: dict[str, Any] | None) -> str:
     if not estimate:
         return "–"
     params = (estimate["data"] or {}).get("params") or {}
-    return "; ".join(f"{name} {p['mean']:.3g} [{p['low']:.3g}–{p['high']:.3g}]"
-                     for name, p in params.items()) or "–"
+    return "; ".join(f"{name} {p['mean']:.3g} [{p['low']:.3g}–{p['high']:.3g}]" for name, p in params.items()) or "–"
 
 
 def animal_rows(conn: sqlite3.Connection, animal: str) -> list[dict[str, Any]]:
@@ -173,33 +215,79 @@ def animal_rows(conn: sqlite3.Connection, animal: str) -> list[dict[str, Any]]:
     for row in history:
         row["stage"] = queries.session_status(conn, row["id"])["block"]
         estimate = queries.last_estimate(conn, row["id"])
-        row["fitted"] = None if estimate is None else {
-            "model": estimate["model"], "trial": estimate["trial"],
-            "params": (estimate["data"] or {}).get("params") or {}}
+        row["fitted"] = (
+            None
+            if estimate is None
+            else {
+                "model": estimate["model"],
+                "trial": estimate["trial"],
+                "params": (estimate["data"] or {}).get("params") or {},
+            }
+        )
         row["fitted_text"] = _params_text(estimate)
     return history
 
 
 def animal_body(animal: str, history: list[dict[str, Any]]) -> Safe:
-    rows = [[el("a", str(s["id"]), href=f"/sessions/{s['id']}"), _when(s["started_at"]), s["box"],
-             s["protocol"], s["stage"] or "–", s["trials"], s["rewards"],
-             "–" if s["accuracy"] is None else f"{100 * s['accuracy']:.0f}\u202f%",
-             s["omissions"], s["end_reason"] or "running", s["fitted_text"]] for s in history]
+    rows = [
+        [
+            el("a", str(s["id"]), href=f"/sessions/{s['id']}"),
+            _when(s["started_at"]),
+            s["box"],
+            s["protocol"],
+            s["stage"] or "–",
+            s["trials"],
+            s["rewards"],
+            "–" if s["accuracy"] is None else f"{100 * s['accuracy']:.0f}\u202f%",
+            s["omissions"],
+            s["end_reason"] or "running",
+            s["fitted_text"],
+        ]
+        for s in history
+    ]
     return el(
         "div",
         el("h1", "Animal ", el("span", animal)),
         el("div", plots.animal_panels(history), class_="panels"),
-        _table(["session", "started", "box", "protocol", "stage", "trials", "pellets",
-                "correct", "omissions", "end", "parameters (mean [95 %])"], rows),
+        _table(
+            [
+                "session",
+                "started",
+                "box",
+                "protocol",
+                "stage",
+                "trials",
+                "pellets",
+                "correct",
+                "omissions",
+                "end",
+                "parameters (mean [95 %])",
+            ],
+            rows,
+        ),
         class_="animal",
     )
 
 
 def sessions_body(sessions: list[dict[str, Any]]) -> Safe:
-    rows = [[el("a", str(s["id"]), href=f"/sessions/{s['id']}"), _when(s["started_at"]), s["box"],
-             el("a", s["animal"], href=animal_href(s["animal"])), s["protocol"], s["trials"],
-             s["rewards"], s["end_reason"] or "running"] for s in sessions]
-    return el("div", el("h1", "Sessions"),
-              _table(["session", "started", "box", "animal", "protocol", "trials", "pellets",
-                      "end"], rows) if rows else el("p", "No sessions yet.", class_="note"),
-              class_="sessions")
+    rows = [
+        [
+            el("a", str(s["id"]), href=f"/sessions/{s['id']}"),
+            _when(s["started_at"]),
+            s["box"],
+            el("a", s["animal"], href=animal_href(s["animal"])),
+            s["protocol"],
+            s["trials"],
+            s["rewards"],
+            s["end_reason"] or "running",
+        ]
+        for s in sessions
+    ]
+    return el(
+        "div",
+        el("h1", "Sessions"),
+        _table(["session", "started", "box", "animal", "protocol", "trials", "pellets", "end"], rows)
+        if rows
+        else el("p", "No sessions yet.", class_="note"),
+        class_="sessions",
+    )

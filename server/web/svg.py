@@ -111,8 +111,9 @@ class Plot:
         return self.top + (1.0 - (y - self.y0) / (self.y1 - self.y0)) * span
 
     def _pts(self, xs: Sequence[float], ys: Sequence[float]) -> str:
-        return " ".join(f"{self.px(x):.1f},{self.py(y):.1f}" for x, y in zip(xs, ys)
-                        if math.isfinite(x) and math.isfinite(y))
+        return " ".join(
+            f"{self.px(x):.1f},{self.py(y):.1f}" for x, y in zip(xs, ys) if math.isfinite(x) and math.isfinite(y)
+        )
 
     # ------------------------------------------------------------ layers
 
@@ -135,16 +136,16 @@ class Plot:
             sy.append(y)
         self.line(sx, sy, cls)
 
-    def band(self, xs: Sequence[float], lows: Sequence[float], highs: Sequence[float],
-             cls: str) -> None:
+    def band(self, xs: Sequence[float], lows: Sequence[float], highs: Sequence[float], cls: str) -> None:
         """A shaded interval between two curves (e.g. a 95 % credible band)."""
         if not len(xs):
             return
         outline = self._pts(list(xs) + list(xs)[::-1], list(highs) + list(lows)[::-1])
         self._layers.append(el("polygon", points=outline, class_=f"band {cls}"))
 
-    def marks(self, xs: Sequence[float], ys: Sequence[float], cls: str, *,
-              shape: str = "dot", size: float = 4.0) -> None:
+    def marks(
+        self, xs: Sequence[float], ys: Sequence[float], cls: str, *, shape: str = "dot", size: float = 4.0
+    ) -> None:
         """Point marks; `shape` is dot, ring, square or tick (a short vertical bar)."""
         parts = []
         for x, y in zip(xs, ys):
@@ -154,16 +155,15 @@ class Plot:
             if shape in ("dot", "ring"):
                 parts.append(f'<circle cx="{cx:.1f}" cy="{cy:.1f}" r="{size:g}"/>')
             elif shape == "square":
-                parts.append(f'<rect x="{cx - size:.1f}" y="{cy - size:.1f}" '
-                             f'width="{2 * size:g}" height="{2 * size:g}"/>')
+                parts.append(
+                    f'<rect x="{cx - size:.1f}" y="{cy - size:.1f}" width="{2 * size:g}" height="{2 * size:g}"/>'
+                )
             else:
-                parts.append(f'<line x1="{cx:.1f}" y1="{cy - size:.1f}" '
-                             f'x2="{cx:.1f}" y2="{cy + size:.1f}"/>')
+                parts.append(f'<line x1="{cx:.1f}" y1="{cy - size:.1f}" x2="{cx:.1f}" y2="{cy + size:.1f}"/>')
         if parts:
             self._layers.append(el("g", Safe("".join(parts)), class_=f"mk {shape} {cls}"))
 
-    def spans(self, intervals: Sequence[tuple[float, float]], y_lo: float, y_hi: float,
-              cls: str) -> None:
+    def spans(self, intervals: Sequence[tuple[float, float]], y_lo: float, y_hi: float, cls: str) -> None:
         """Filled rectangles from x0 to x1 between two y values (a timeline row)."""
         top, bottom = self.py(y_hi), self.py(y_lo)
         parts = []
@@ -172,8 +172,7 @@ class Plot:
                 continue
             x = self.px(a)
             w = max(0.8, self.px(b) - x)
-            parts.append(f'<rect x="{x:.1f}" y="{top:.1f}" width="{w:.1f}" '
-                         f'height="{max(1.0, bottom - top):.1f}"/>')
+            parts.append(f'<rect x="{x:.1f}" y="{top:.1f}" width="{w:.1f}" height="{max(1.0, bottom - top):.1f}"/>')
         if parts:
             self._layers.append(el("g", Safe("".join(parts)), class_=f"sp {cls}"))
 
@@ -186,14 +185,14 @@ class Plot:
             if not math.isfinite(x):
                 continue
             cx = self.px(x)
-            parts.append(el("line", x1=f"{cx:.1f}", x2=f"{cx:.1f}", y1=f"{self.top:.1f}",
-                            y2=f"{self.height - self.bottom:.1f}"))
+            parts.append(
+                el("line", x1=f"{cx:.1f}", x2=f"{cx:.1f}", y1=f"{self.top:.1f}", y2=f"{self.height - self.bottom:.1f}")
+            )
             text = label[:28]
             for row, free in enumerate(row_free):
                 if cx >= free:
                     row_free[row] = cx + 7.5 * len(text) + 10  # ~7.5 px per 12 px glyph
-                    parts.append(el("text", text, x=f"{cx + 3:.1f}",
-                                    y=f"{self.top + 12 + 13 * row:.1f}"))
+                    parts.append(el("text", text, x=f"{cx + 3:.1f}", y=f"{self.top + 12 + 13 * row:.1f}"))
                     break
         if parts:
             self._layers.append(el("g", parts, class_=f"vr {cls}"))
@@ -203,8 +202,7 @@ class Plot:
     def _axes(self) -> Safe:
         left, bottom = self.left, self.height - self.bottom
         right, top = self.width - self.right, self.top
-        parts = [el("rect", x=left, y=top, width=right - left, height=bottom - top,
-                    class_="frame")]
+        parts = [el("rect", x=left, y=top, width=right - left, height=bottom - top, class_="frame")]
         xt = nice_ticks(self.x0, self.x1, 8, whole=self.whole_x)
         for v, text in zip(xt, tick_texts(xt)):
             x = f"{self.px(v):.1f}"
@@ -221,8 +219,9 @@ class Plot:
             parts.append(el("text", self.x_label, x=right, y=self.height - 8, class_="al x"))
         if self.y_label:  # along the left edge, turned to read upwards
             mid = (top + bottom) / 2
-            parts.append(el("text", self.y_label, x=16, y=f"{mid:.0f}", class_="al y",
-                            transform=f"rotate(-90 16 {mid:.0f})"))
+            parts.append(
+                el("text", self.y_label, x=16, y=f"{mid:.0f}", class_="al y", transform=f"rotate(-90 16 {mid:.0f})")
+            )
         return join(*parts)
 
     def _legend_svg(self) -> Safe:
@@ -236,9 +235,13 @@ class Plot:
 
     def render(self, *, css_class: str = "plot") -> Safe:
         clip = f"clip{next(_clip_ids)}"
-        inner = el("rect", x=self.left, y=self.top,
-                   width=self.width - self.left - self.right,
-                   height=self.height - self.top - self.bottom)
+        inner = el(
+            "rect",
+            x=self.left,
+            y=self.top,
+            width=self.width - self.left - self.right,
+            height=self.height - self.top - self.bottom,
+        )
         return el(
             "svg",
             el("title", self.title),
@@ -246,6 +249,9 @@ class Plot:
             self._axes(),
             el("g", self._layers, clip_path=f"url(#{clip})"),
             self._legend_svg(),
-            xmlns="http://www.w3.org/2000/svg", viewBox=f"0 0 {self.width} {self.height}",
-            role="img", class_=css_class, aria_label=self.title,
+            xmlns="http://www.w3.org/2000/svg",
+            viewBox=f"0 0 {self.width} {self.height}",
+            role="img",
+            class_=css_class,
+            aria_label=self.title,
         )

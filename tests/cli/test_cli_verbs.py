@@ -19,14 +19,18 @@ VIGIL = [sys.executable, "-m", "server.cli"]
 
 
 def vigil(*args, timeout=120, **kw):
-    return subprocess.run(VIGIL + list(args), capture_output=True, text=True, timeout=timeout, cwd=kw.pop("cwd", ROOT), **kw)
+    return subprocess.run(
+        VIGIL + list(args), capture_output=True, text=True, timeout=timeout, cwd=kw.pop("cwd", ROOT), **kw
+    )
 
 
 def test_check_exit_codes(tmp_path):
     ok = vigil("check", *[str(p) for p in sorted((ROOT / "protocols").glob("*.yaml"))])
     assert ok.returncode == 0, ok.stderr
     bad = tmp_path / "bad.yaml"
-    bad.write_text("vigil_protocol: 1\nname: x\nwiring: {outputs: {}, inputs: {}}\ntrial_types: {}\nblocks: []\nbogus: 1\n")
+    bad.write_text(
+        "vigil_protocol: 1\nname: x\nwiring: {outputs: {}, inputs: {}}\ntrial_types: {}\nblocks: []\nbogus: 1\n"
+    )
     result = vigil("check", str(bad), str(ROOT / "protocols" / "reversal.yaml"))
     assert result.returncode == 1
     lines = result.stderr.strip().splitlines()

@@ -8,8 +8,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 from scipy import stats
-
 from scripted_box import ScriptedBox
+
 from server.engine.caps import HardCaps
 from server.engine.records import BlockStarted, EventLogged, InputEvent, SessionEnded, SetOutput, TrialRecord
 from server.engine.session import Session
@@ -170,7 +170,9 @@ def test_streak_criterion_and_reversal_block_swap():
 
 def test_streak_is_broken_by_an_error_but_not_by_an_omission():
     # hand-computed: correct x3, omission, correct x4, error, correct x8 -> criterion at trial 17
-    protocol = choice_protocol("blocks:\n  - block: first\n    trial_types: [pick]\n    until: {streak: 8}\n    next: end_session\n")
+    protocol = choice_protocol(
+        "blocks:\n  - block: first\n    trial_types: [pick]\n    until: {streak: 8}\n    next: end_session\n"
+    )
     pattern = ["a"] * 3 + [None] + ["a"] * 4 + ["b"] + ["a"] * 8
     session = Session(protocol, 2)
     trials = drive(session, lambda i: None if pattern[i - 1] is None else f"press_{pattern[i - 1]}")
@@ -190,7 +192,8 @@ def test_withheld_outcomes_deliver_no_pellet():
 
 def test_lab_cap_wins_over_protocol_limit():
     protocol = choice_protocol(
-        "blocks:\n  - block: one\n    trial_types: [pick]\n    until: {trials: 50}\n", limits="limits: {max_rewards: 40}\n"
+        "blocks:\n  - block: one\n    trial_types: [pick]\n    until: {trials: 50}\n",
+        limits="limits: {max_rewards: 40}\n",
     )
     presses = [(7.0 * i + 1.0, "press_a") for i in range(50)]
     session, box = run(protocol, presses, caps=HardCaps(max_rewards=3, max_minutes=60))
@@ -201,7 +204,8 @@ def test_lab_cap_wins_over_protocol_limit():
 
 def test_time_limit_interrupts_the_trial_and_goes_safe():
     protocol = choice_protocol(
-        "blocks:\n  - block: one\n    trial_types: [pick]\n    until: {trials: 50}\n", limits="limits: {max_minutes: 0.1}\n"
+        "blocks:\n  - block: one\n    trial_types: [pick]\n    until: {trials: 50}\n",
+        limits="limits: {max_minutes: 0.1}\n",
     )
     session, box = run(protocol, [])
     trials = records_of(session, TrialRecord)
@@ -226,7 +230,6 @@ def test_pause_freezes_the_trial_and_resume_restores_outputs():
     session.advance(30.0)
     trial = [r for r in session.take_records() if isinstance(r, TrialRecord)][0]
     assert trial.latency_s == pytest.approx(5.0)
-
 
 
 def test_a_timed_block_ends_later_by_the_length_of_a_pause():
@@ -265,9 +268,13 @@ def test_every_field_of_a_trial_record():
         counts={"offer.press_b": 1}, first_s={"offer.press_b": pytest.approx(0.5)}, extra={},
     )  # fmt: skip
 
+
 def test_max_run_limits_repeats_of_one_trial_type():
-    text = WIRING.format(name="mix", pa=1.0, pb=0.0) + CHOICE.replace("iti: 5", "") + textwrap.dedent(
-        """\
+    text = (
+        WIRING.format(name="mix", pa=1.0, pb=0.0)
+        + CHOICE.replace("iti: 5", "")
+        + textwrap.dedent(
+            """\
           solo:
             steps:
               - step: wait
@@ -279,6 +286,7 @@ def test_max_run_limits_repeats_of_one_trial_type():
             max_run: 2
             until: {trials: 300}
         """
+        )
     )
     protocol = parse_protocol(text.replace("  pick:\n", "  pick:\n", 1), "mix.yaml")
     session, _ = run(protocol, [], seed=5)

@@ -71,8 +71,7 @@ def test_fixed_ratio_gives_a_press_stream_with_pellet_collection():
     assert all(any(p < e < p + 10.0 for e in entries) for p in pellets[:-1])
     assert box.pellets_eaten >= box.pellets_delivered - 1
     # ...and responding resumes afterwards, all session long.
-    per_minute = np.histogram([t for t, n, r in loop.log if n == "press_west" and r],
-                              bins=10, range=(0.0, 600.0))[0]
+    per_minute = np.histogram([t for t, n, r in loop.log if n == "press_west" and r], bins=10, range=(0.0, 600.0))[0]
     assert per_minute.min() > 0
 
 
@@ -122,8 +121,7 @@ def test_q_learner_learns_a_two_armed_bandit():
     # 0.8 / 0.2 reward odds, typical of reversal tasks (common practice).
     p_reward = {"press_west": 0.8, "press_east": 0.2}
     agent = make_agent("q_learner", alpha=0.3, beta=5.0, **QUIET)
-    loop = TrialLoop(new_box(agent, seed=9), iti_s=5.0,
-                     reward=lambda c, i: reward_rng.random() < p_reward[c])
+    loop = TrialLoop(new_box(agent, seed=9), iti_s=5.0, reward=lambda c, i: reward_rng.random() < p_reward[c])
     choices = [c for c, _ in loop.run(300)]
     late = [c for c in choices[-100:] if c is not None]
     assert sum(c == "press_west" for c in late) / len(late) > 0.75
@@ -132,8 +130,7 @@ def test_q_learner_learns_a_two_armed_bandit():
 
 def test_omissions_grow_with_satiety():
     agent = make_agent("q_learner", omission=0.0, satiety=0.004, pause_s=1e5, **QUIET)
-    loop = TrialLoop(new_box(agent, seed=10), presses=("press_west",), iti_s=5.0,
-                     reward=lambda c, i: True)
+    loop = TrialLoop(new_box(agent, seed=10), presses=("press_west",), iti_s=5.0, reward=lambda c, i: True)
     choices = [c for c, _ in loop.run(200)]
     early, late = choices[:50].count(None), choices[-50:].count(None)
     assert late >= 15 and late > 2 * early

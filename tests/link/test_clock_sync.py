@@ -78,9 +78,7 @@ def test_fit_matches_scipy_linregress_on_the_kept_samples():
     ref = stats.linregress(x, y)
     fit = sync.fit()
     assert fit.rate == pytest.approx(ref.slope, rel=1e-9)
-    assert fit.to_host(kept[0].device_us) == pytest.approx(
-        ref.intercept + ref.slope * x[0], abs=1e-7
-    )
+    assert fit.to_host(kept[0].device_us) == pytest.approx(ref.intercept + ref.slope * x[0], abs=1e-7)
 
 
 def test_kept_samples_are_the_fastest_of_each_part_of_the_window():

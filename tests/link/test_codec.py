@@ -60,9 +60,9 @@ channel = st.integers(0, 255)
 
 
 def channel_maps(kinds: tuple[str, ...]) -> st.SearchStrategy[tuple[Channel, ...]]:
-    return st.lists(
-        st.tuples(channel, st.sampled_from(kinds)), max_size=12, unique_by=lambda c: c[0]
-    ).map(lambda items: tuple(Channel(n, k) for n, k in sorted(items)))
+    return st.lists(st.tuples(channel, st.sampled_from(kinds)), max_size=12, unique_by=lambda c: c[0]).map(
+        lambda items: tuple(Channel(n, k) for n, k in sorted(items))
+    )
 
 
 device_messages = st.one_of(
@@ -302,9 +302,7 @@ def test_encode_refuses_what_is_not_a_message():
 def spec_example_lines() -> list[tuple[str, bytes]]:
     text = SPEC.read_text()
     blocks = re.findall(r"```wire\n(.*?)```", text, flags=re.S)
-    return [
-        (ln[:2], ln[3:].encode() + b"\n") for block in blocks for ln in block.splitlines() if ln
-    ]
+    return [(ln[:2], ln[3:].encode() + b"\n") for block in blocks for ln in block.splitlines() if ln]
 
 
 def test_every_example_line_in_the_spec_is_valid_and_canonical():

@@ -51,9 +51,7 @@ def random_bytes(rng, n, lo, hi, alphabet=None) -> list[bytes]:
 def damaged(rng, lines: list[bytes]) -> list[bytes]:
     """One byte changed to another printable byte: a CRC-16 catches every such error."""
     out = []
-    for line, pos, new in zip(
-        lines, rng.integers(0, 10**6, len(lines)), rng.choice(PRINTABLE, len(lines))
-    ):
+    for line, pos, new in zip(lines, rng.integers(0, 10**6, len(lines)), rng.choice(PRINTABLE, len(lines))):
         pos = int(pos) % len(line)
         if line[pos] == new:
             new = 0x21 if new != 0x21 else 0x22
@@ -62,9 +60,7 @@ def damaged(rng, lines: list[bytes]) -> list[bytes]:
 
 
 def truncated(rng, lines: list[bytes]) -> list[bytes]:
-    return [
-        ln[: int(k) % (len(ln) - 1) + 1] for ln, k in zip(lines, rng.integers(0, 10**6, len(lines)))
-    ]
+    return [ln[: int(k) % (len(ln) - 1) + 1] for ln, k in zip(lines, rng.integers(0, 10**6, len(lines)))]
 
 
 def right_crc_wrong_grammar(rng, lines: list[bytes]) -> list[bytes]:

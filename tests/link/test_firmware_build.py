@@ -159,12 +159,8 @@ def test_boot_identity_decodes_and_matches_the_channel_table(box_program):
     assert ident.version == PROTOCOL_VERSION == int(header_define("VP_PROTOCOL_VERSION"))
     kind_of_input = {c: k for k, c in INPUT_KIND_CODES.items()}
     kind_of_output = {c: k for k, c in OUTPUT_KIND_CODES.items()}
-    assert ident.inputs == tuple(
-        Channel(n, kind_of_input[c]) for n, c in enumerate(channel_table("input_codes"), 1)
-    )
-    assert ident.outputs == tuple(
-        Channel(n, kind_of_output[c]) for n, c in enumerate(channel_table("output_codes"), 1)
-    )
+    assert ident.inputs == tuple(Channel(n, kind_of_input[c]) for n, c in enumerate(channel_table("input_codes"), 1))
+    assert ident.outputs == tuple(Channel(n, kind_of_output[c]) for n, c in enumerate(channel_table("output_codes"), 1))
     assert (beat.seq, beat.device_us, beat.boot, beat.rx_rejected) == (0, 1_000_000, ident.boot, 0)
     # Every output is driven to its safe (off) state at boot.
     assert run.outputs == [(ch.number, 0, 0) for ch in ident.outputs]
@@ -198,9 +194,7 @@ def test_python_commands_are_carried_out_and_acknowledged(box_program):
     # The ack follows the change, stamped with the device clock.
     assert acks[101][0].device_us == driven[0][2]
     # A query's line comes just before its ack.
-    order = [
-        type(m).__name__ + (f":{m.command_id}" if isinstance(m, Ack) else "") for m in run.messages
-    ]
+    order = [type(m).__name__ + (f":{m.command_id}" if isinstance(m, Ack) else "") for m in run.messages]
     assert order[order.index("Ack:104") - 1] == "Beat"
     assert order[order.index("Ack:105") - 1] == "Identity"
     assert run.of(Beat)[-1].rx_rejected == 0
@@ -288,11 +282,7 @@ def bad_host_lines(rng: np.random.Generator, n: int) -> list[bytes]:
     for i in range(n):
         kind = i % 5
         if kind == 0:
-            line = (
-                rng.integers(0, 256, int(rng.integers(0, 60)), dtype=np.uint8)
-                .tobytes()
-                .replace(b"\n", b"\x0b")
-            )
+            line = rng.integers(0, 256, int(rng.integers(0, 60)), dtype=np.uint8).tobytes().replace(b"\n", b"\x0b")
         elif kind == 1:  # one byte changed
             line = bytearray(good[i % 4])
             pos = int(rng.integers(len(line)))
@@ -315,9 +305,7 @@ def test_bad_lines_are_dropped_by_the_box_and_counted(box_program):
     assert run.of(Beat)[-1].rx_rejected == len(lines)
     # The Python codec agrees that none of them is a valid host command.
     host_view = Decoder("host")
-    assert host_view.feed(b"\n".join(lines) + b"\n") == [] and host_view.rejected_total == len(
-        lines
-    )
+    assert host_view.feed(b"\n".join(lines) + b"\n") == [] and host_view.rejected_total == len(lines)
 
 
 def test_a_silent_host_gets_outputs_turned_off(box_program):

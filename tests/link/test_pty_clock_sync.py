@@ -55,6 +55,6 @@ def test_clock_estimate_is_within_half_a_millisecond_of_the_true_offset(tmp_path
     finally:
         for child in children:
             child.stop()
-    for name, (estimate, truth, newest) in results.items():
+    for name, (estimate, truth, _) in results.items():
         assert estimate == pytest.approx(truth, abs=0.0005), name
     assert results["wrapping"][2] > U32  # the estimate held across the counter's wrap

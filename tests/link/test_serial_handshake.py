@@ -6,9 +6,9 @@ from __future__ import annotations
 
 import asyncio
 import time
-from pathlib import Path
 
 import pytest
+from test_pty_link import FR1  # tests/link is on the import path under pytest
 
 from server.engine.caps import HardCaps
 from server.lab import Lab, LabError
@@ -20,7 +20,6 @@ from server.link.messages import Channel, Identity
 from server.link.serial_link import SerialLink
 from server.protocol.load import load_protocol
 from server.store.writer import Store
-from test_pty_link import FR1  # tests/link is on the import path under pytest
 
 # Two boxes of our own: the lever box of the pty link test, and one with a nose-poke port.
 LEVER_BOX = FR1
@@ -71,16 +70,13 @@ def test_every_missing_or_different_channel_is_named(lever_box):
     assert identity_problems(ident, wiring) == [
         "input 'press' (lever_press) is wired to channel 0, which is a nose_poke on the device",
         "output 'room_light' (house_light) is wired to channel 4, which the device does not have",
-        "output 'pellet' (feeder) is wired to channel 5, which is a kind this vigil does not "
-        "know ('zz') on the device",
+        "output 'pellet' (feeder) is wired to channel 5, which is a kind this vigil does not know ('zz') on the device",
     ]
 
 
 def test_a_version_we_do_not_speak_is_refused_naming_both(poke_box):
     problems = identity_problems(identity_for(poke_box.wiring, version=2), poke_box.wiring)
-    assert problems == [
-        "device 'vigil-emu-1.0' speaks wire protocol version 2, this vigil speaks version 1"
-    ]
+    assert problems == ["device 'vigil-emu-1.0' speaks wire protocol version 2, this vigil speaks version 1"]
 
 
 # ---------------------------------------------------------------- through a pty

@@ -60,8 +60,9 @@ def two_armed_reversal(t: int, every: int = 40) -> np.ndarray:
     return np.array([0.8, 0.2]) if (t // every) % 2 == 0 else np.array([0.2, 0.8])
 
 
-def simulate(model: str, p: dict, n_trials: int, rng: np.random.Generator,
-             schedule=three_armed, omission: float = 0.0) -> tuple[np.ndarray, np.ndarray]:
+def simulate(
+    model: str, p: dict, n_trials: int, rng: np.random.Generator, schedule=three_armed, omission: float = 0.0
+) -> tuple[np.ndarray, np.ndarray]:
     """Simulate animals side by side; p maps each parameter to an array (one per animal).
 
     Returns choices (animals x trials; -1 = omission) and rewards (0/1).
@@ -99,11 +100,9 @@ def simulate(model: str, p: dict, n_trials: int, rng: np.random.Generator,
     return choices, rewards
 
 
-def as_rows(choices: np.ndarray, rewards: np.ndarray, labels: str = "LRC",
-            session: str = "s1") -> list[list[tuple]]:
+def as_rows(choices: np.ndarray, rewards: np.ndarray, labels: str = "LRC", session: str = "s1") -> list[list[tuple]]:
     """Per animal: (session, trial, label or None, reward) rows."""
     return [
-        [(session, t + 1, labels[c] if c >= 0 else None, float(r))
-         for t, (c, r) in enumerate(zip(ch, rw))]
+        [(session, t + 1, labels[c] if c >= 0 else None, float(r)) for t, (c, r) in enumerate(zip(ch, rw))]
         for ch, rw in zip(choices, rewards)
     ]

@@ -37,9 +37,13 @@ def test_declarations_are_valid(model):
 def test_every_bad_value_gets_the_same_shaped_message(model, bad):
     good = {p.name: float(p.from_unit(0.5)) for p in model.params}
     for p in model.params:
-        with pytest.raises(ParamError, match=(
+        with pytest.raises(
+            ParamError,
+            match=(
                 rf"^{model.name}: {p.name} must be a number in \[{p.low:g}, {p.high:g}\],"
-                r" got .+$")):
+                r" got .+$"
+            ),
+        ):
             model.check({**good, p.name: bad})
 
 

@@ -63,8 +63,9 @@ def test_the_posterior_with_drift_does_not_depend_on_the_grid():
     # 48 x 64 points and one of 32 x 40 must give the same posterior within a small part of
     # its width (a kernel whose variance depends on the cell width fails this).
     rng = np.random.default_rng(21)
-    ch, rw = simulate("q_learning", {"alpha": np.array([0.3]), "beta": np.array([5.0])}, 600,
-                      rng, schedule=two_armed_reversal)
+    ch, rw = simulate(
+        "q_learning", {"alpha": np.array([0.3]), "beta": np.array([5.0])}, 600, rng, schedule=two_armed_reversal
+    )
     found = []
     for sizes in ({"alpha": 48, "beta": 64}, {"alpha": 32, "beta": 40}):
         est = OnlineEstimator("q_learning", options=["L", "R"], drift=0.02, grid=sizes)
@@ -75,5 +76,4 @@ def test_the_posterior_with_drift_does_not_depend_on_the_grid():
     for name in ("alpha", "beta"):
         width = fine[name].high - fine[name].low
         for field in ("mean", "low", "high"):
-            assert abs(getattr(fine[name], field) - getattr(coarse[name], field)) < 0.06 * width, (
-                name, field)
+            assert abs(getattr(fine[name], field) - getattr(coarse[name], field)) < 0.06 * width, (name, field)

@@ -16,9 +16,14 @@ from server.models.trials import stack_animals
 
 def _session_trials(seed: int, n: int = 60, model: str = "q_learning", omission: float = 0.1):
     rng = np.random.default_rng(seed)
-    p = {"alpha": np.array([0.3]), "beta": np.array([4.0]), "kappa": np.array([1.0]),
-         "alpha_pos": np.array([0.5]), "alpha_neg": np.array([0.2]),
-         "decay": np.array([0.2])}
+    p = {
+        "alpha": np.array([0.3]),
+        "beta": np.array([4.0]),
+        "kappa": np.array([1.0]),
+        "alpha_pos": np.array([0.5]),
+        "alpha_neg": np.array([0.2]),
+        "decay": np.array([0.2]),
+    }
     ch, rw = simulate(model, p, n, rng, omission=omission)
     return [(c, r) for (_, _, c, r) in as_rows(ch, rw)[0]]
 
@@ -27,13 +32,11 @@ def _session_trials(seed: int, n: int = 60, model: str = "q_learning", omission:
 def test_static_posterior_is_prior_times_the_batch_likelihood(model):
     # Bayes' rule on a grid: log posterior - log prior = log-likelihood + constant, and the
     # likelihood of every grid point is the batch one (same learn) and the plain-Python one.
-    est = OnlineEstimator(model, options=["L", "R", "C"], grid={p.name: 5 for p in
-                                                                  CHOICE_MODELS[model].params})
+    est = OnlineEstimator(model, options=["L", "R", "C"], grid={p.name: 5 for p in CHOICE_MODELS[model].params})
     trials = _session_trials(1, model=model)
     for c, r in trials:
         est.update(c, r)
-    animal = encode_animal("R1", [("s", i + 1, c, r) for i, (c, r) in enumerate(trials)],
-                           options=("L", "R", "C"))
+    animal = encode_animal("R1", [("s", i + 1, c, r) for i, (c, r) in enumerate(trials)], options=("L", "R", "C"))
     theta = {k: v[None] for k, v in est.grid.theta.items()}
     batch = loglik(CHOICE_MODELS[model], theta, stack_animals([animal]), est.grid.qshape)[0]
     logw = np.log(est._w)
@@ -44,8 +47,7 @@ def test_static_posterior_is_prior_times_the_batch_likelihood(model):
     assert np.ptp(diff) < 1e-9
     # one grid point against the independent implementation
     idx = np.unravel_index(np.argmax(logw), est.grid.sizes)
-    params = {p.name: float(est.grid.centres[i][idx[i]])
-              for i, p in enumerate(CHOICE_MODELS[model].params)}
+    params = {p.name: float(est.grid.centres[i][idx[i]]) for i, p in enumerate(CHOICE_MODELS[model].params)}
     ref = reference_loglik(model, params, [("s", c, r) for c, r in trials])
     # the reference only knows options it has seen; all three were chosen here
     assert {c for c, _ in trials if c} == {"L", "R", "C"}
@@ -171,10 +173,8 @@ def test_drift_tracks_a_drop_in_beta():
     # follows, a static one averages over the whole session
     rng = np.random.default_rng(12)
     one = {"alpha": np.array([0.3])}
-    first = simulate("q_learning", {**one, "beta": np.array([8.0])}, 150, rng,
-                     schedule=two_armed_reversal)
-    second = simulate("q_learning", {**one, "beta": np.array([0.5])}, 150, rng,
-                      schedule=two_armed_reversal)
+    first = simulate("q_learning", {**one, "beta": np.array([8.0])}, 150, rng, schedule=two_armed_reversal)
+    second = simulate("q_learning", {**one, "beta": np.array([0.5])}, 150, rng, schedule=two_armed_reversal)
     static = OnlineEstimator("q_learning", options=["L", "R"])
     drifting = OnlineEstimator("q_learning", options=["L", "R"], drift=0.15)
     for ch, rw in (first, second):
@@ -189,8 +189,15 @@ def test_estimate_is_json_ready_and_consistent():
     for c, r in _session_trials(6, n=30, model="q_dual_rate"):
         e = est.update(c, r)
     d = json.loads(json.dumps(e.to_dict(), allow_nan=False))
-    assert set(d) >= {"params", "values", "p_choice", "prediction_error", "exploration",
-                      "p_prefers_best", "reward_rate"}
+    assert set(d) >= {
+        "params",
+        "values",
+        "p_choice",
+        "prediction_error",
+        "exploration",
+        "p_prefers_best",
+        "reward_rate",
+    }
     for name, s in d["params"].items():
         assert s["low"] <= s["mean"] <= s["high"], name
     assert sum(d["p_choice"].values()) == pytest.approx(1.0)
@@ -202,13 +209,16 @@ def test_two_parameter_grid_has_at_least_2500_points():
     assert OnlineEstimator("q_learning").grid.points >= 2500
 
 
-@pytest.mark.parametrize("kwargs, message", [
-    ({"model": "q_learnin"}, r"unknown model 'q_learnin' \(did you mean 'q_learning'\?\)"),
-    ({"drift": -1.0}, r"drift must be a number >= 0"),
-    ({"temper": 0.0}, r"temper must be in \(0, 1\]"),
-    ({"options": ["L", "L"]}, r"option labels must be distinct"),
-    ({"grid": {"gamma": 4}}, r"no parameter 'gamma'"),
-])
+@pytest.mark.parametrize(
+    "kwargs, message",
+    [
+        ({"model": "q_learnin"}, r"unknown model 'q_learnin' \(did you mean 'q_learning'\?\)"),
+        ({"drift": -1.0}, r"drift must be a number >= 0"),
+        ({"temper": 0.0}, r"temper must be in \(0, 1\]"),
+        ({"options": ["L", "L"]}, r"option labels must be distinct"),
+        ({"grid": {"gamma": 4}}, r"no parameter 'gamma'"),
+    ],
+)
 def test_bad_configuration_is_refused_with_a_short_message(kwargs, message):
     with pytest.raises(ValueError, match=message):
         OnlineEstimator(**kwargs)

@@ -20,15 +20,17 @@ ROOT = Path(__file__).resolve().parents[2]
 
 def test_stored_estimates_replay_bit_for_bit_across_two_days(tmp_path):
     config = tmp_path / "lab.yaml"
-    config.write_text(textwrap.dedent(f"""\
+    config.write_text(
+        textwrap.dedent(f"""\
         lab: estimator test
         database: lab.sqlite
         boxes:
           - name: bench-2
             animal: T-12
-            protocol: {ROOT / 'protocols' / 'reversal.yaml'}
+            protocol: {ROOT / "protocols" / "reversal.yaml"}
             emulate: {{agent: q_learner, seed: 9, options: {{latency_s: 0.5}}}}
-        """))
+        """)
+    )
     for _ in range(2):
         result = subprocess.run([sys.executable, "-m", "server.cli", "run", str(config), "--minutes", "0.3"],
                                 capture_output=True, text=True, cwd=ROOT, timeout=120)  # fmt: skip
@@ -39,8 +41,13 @@ def test_stored_estimates_replay_bit_for_bit_across_two_days(tmp_path):
     trials = conn.execute(
         "SELECT session_id, trial, choice, reward, trial_type, interrupted FROM trials ORDER BY session_id, trial"
     ).fetchall()
-    fed = [(sid, trial, choice, reward) for sid, trial, choice, reward, kind, cut in trials if kind in types and not cut]
-    stored = {(sid, trial): json.loads(data) for sid, trial, data in conn.execute("SELECT session_id, trial, data FROM estimates")}
+    fed = [
+        (sid, trial, choice, reward) for sid, trial, choice, reward, kind, cut in trials if kind in types and not cut
+    ]
+    stored = {
+        (sid, trial): json.loads(data)
+        for sid, trial, data in conn.execute("SELECT session_id, trial, data FROM estimates")
+    }
     assert len({sid for sid, *_ in fed}) == 2, "both days produced choice trials"
     assert set(stored) == {(sid, trial) for sid, trial, _, _ in fed}, "every choice trial has its estimate"
 

@@ -40,8 +40,7 @@ def _encode(trials, animal="R1"):
 
 def _batch_loglik(model, params, animal, q0=0.0):
     theta = {k: np.array([[v]]) for k, v in params.items()}
-    return float(loglik(CHOICE_MODELS[model], theta, stack_animals([animal]), (1,),
-                        ValueSettings(q0=q0))[0, 0])
+    return float(loglik(CHOICE_MODELS[model], theta, stack_animals([animal]), (1,), ValueSettings(q0=q0))[0, 0])
 
 
 @pytest.mark.parametrize("model", MODELS)
@@ -50,11 +49,9 @@ def test_likelihood_equals_independent_implementation(model):
     animal = _encode(trials)
     rng = np.random.default_rng(3)
     for _ in range(5):
-        params = {p.name: float(p.from_unit(rng.uniform(0.05, 0.95)))
-                  for p in CHOICE_MODELS[model].params}
+        params = {p.name: float(p.from_unit(rng.uniform(0.05, 0.95))) for p in CHOICE_MODELS[model].params}
         # reference: plain-Python restatement in model_simulation.py (to 1e-9)
-        assert _batch_loglik(model, params, animal) == pytest.approx(
-            reference_loglik(model, params, trials), abs=1e-9)
+        assert _batch_loglik(model, params, animal) == pytest.approx(reference_loglik(model, params, trials), abs=1e-9)
 
 
 @pytest.mark.parametrize("model", MODELS)
@@ -92,10 +89,12 @@ def test_map_fit_maximises_likelihood_plus_scipy_priors():
         return -(reference_loglik("q_learning", {"alpha": x[0], "beta": x[1]}, trials) + prior)
 
     best = min(
-        (optimize.minimize(neg_post, x0, method="L-BFGS-B",
-                           bounds=[(1e-6, 1 - 1e-6), (0.01, 50)]) for x0 in
-         ([0.2, 2.0], [0.5, 5.0], [0.8, 10.0])),
-        key=lambda r: r.fun)
+        (
+            optimize.minimize(neg_post, x0, method="L-BFGS-B", bounds=[(1e-6, 1 - 1e-6), (0.01, 50)])
+            for x0 in ([0.2, 2.0], [0.5, 5.0], [0.8, 10.0])
+        ),
+        key=lambda r: r.fun,
+    )
     fit = fit_animals(CHOICE_MODELS["q_learning"], [_encode(trials)], use_prior=True)[0]
     assert fit.objective == "map"
     assert fit.loglik + fit.log_prior == pytest.approx(-best.fun, abs=1e-5)
@@ -108,8 +107,9 @@ def test_fixed_alpha_beta_equals_statsmodels_logit_slope():
     # with slope beta and no intercept: statsmodels Logit is the reference.
     alpha = 0.3
     rng = np.random.default_rng(8)
-    ch, rw = simulate("q_learning", {"alpha": np.array([alpha]), "beta": np.array([3.0])},
-                      400, rng, schedule=two_armed_reversal)
+    ch, rw = simulate(
+        "q_learning", {"alpha": np.array([alpha]), "beta": np.array([3.0])}, 400, rng, schedule=two_armed_reversal
+    )
     q = [0.0, 0.0]
     dq, chose_first = [], []
     for c, r in zip(ch[0], rw[0]):  # values by hand (Sutton & Barto 2018, ch. 2)
@@ -128,8 +128,7 @@ def test_bic_worked_example():
     # Wilson & Collins (2019), eLife 8:e49547 (CHECKS.md): Q0 = 0.5, alpha = 0.5, beta = 3;
     # choices 1,1,2,1; rewards 1,0,1,1 -> p = 0.5, 0.679179, 0.592667, 0.245085;
     # NLL 3.009292; BIC 8.791172; AIC 10.018583. An omission adds nothing.
-    rows = [("s", 1, "1", 1.0), ("s", 2, "1", 0.0), ("s", 3, None, 0.0),
-            ("s", 4, "2", 1.0), ("s", 5, "1", 1.0)]
+    rows = [("s", 1, "1", 1.0), ("s", 2, "1", 0.0), ("s", 3, None, 0.0), ("s", 4, "2", 1.0), ("s", 5, "1", 1.0)]
     animal = encode_animal("W", rows)
     params = {"alpha": 0.5, "beta": 3.0}
     reg = regressors(CHOICE_MODELS["q_learning"], animal, params, ValueSettings(q0=0.5))

@@ -11,13 +11,16 @@ import numpy as np
 from model_simulation import MODELS, as_rows, simulate, two_armed_reversal
 
 from server.models import (
-    CHOICE_MODELS, OnlineEstimator, compare_models, encode_animal, fit_animals,
+    CHOICE_MODELS,
+    OnlineEstimator,
+    compare_models,
+    encode_animal,
+    fit_animals,
 )
 
 
 def _animals(choices, rewards, prefix):
-    return [encode_animal(f"{prefix}{i}", rows)
-            for i, rows in enumerate(as_rows(choices, rewards))]
+    return [encode_animal(f"{prefix}{i}", rows) for i, rows in enumerate(as_rows(choices, rewards))]
 
 
 def test_parameter_recovery_over_300_trials():
@@ -79,8 +82,7 @@ def test_online_intervals_cover_the_truth_at_their_nominal_rate():
     alpha = rng.beta(1.1, 1.1, n)
     beta = rng.gamma(1.2, 5.0, 4 * n)
     beta = beta[(beta >= 0.1) & (beta <= 30.0)][:n]
-    ch, rw = simulate("q_learning", {"alpha": alpha, "beta": beta}, trials, rng,
-                      schedule=two_armed_reversal)
+    ch, rw = simulate("q_learning", {"alpha": alpha, "beta": beta}, trials, rng, schedule=two_armed_reversal)
     covered = {"alpha": 0, "beta": 0}
     for i in range(n):
         est = OnlineEstimator("q_learning", options=["L", "R"])

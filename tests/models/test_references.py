@@ -11,10 +11,18 @@ from scipy.special import expit, softmax
 
 from server.models.choice import CHOICE_MODELS, log_softmax
 from server.models.pavlovian import (
-    RESCORLA_WAGNER, response_probability, rw_loglik, rw_session, rw_update,
+    RESCORLA_WAGNER,
+    response_probability,
+    rw_loglik,
+    rw_session,
+    rw_update,
 )
 from server.models.td import (
-    q_learning_target, random_walk_td0, sarsa_target, td0_episode, td_step,
+    q_learning_target,
+    random_walk_td0,
+    sarsa_target,
+    td0_episode,
+    td_step,
 )
 
 # ---------------------------------------------------------------- Rescorla-Wagner
@@ -99,8 +107,7 @@ def test_sarsa_and_q_learning_targets():
     # Q(S') = {x 0.5, y 0.9}, A' = x -> SARSA 0.325, Q-learning 0.361.
     assert td_step(0.2, sarsa_target(1.0, 0.9, 0.5), 0.1) == pytest.approx(0.325, abs=1e-12)
     q_next = np.array([0.5, 0.9])
-    assert td_step(0.2, q_learning_target(1.0, 0.9, q_next), 0.1) == pytest.approx(
-        0.361, abs=1e-12)
+    assert td_step(0.2, q_learning_target(1.0, 0.9, q_next), 0.1) == pytest.approx(0.361, abs=1e-12)
 
 
 def test_q_learning_update_is_the_one_state_td_step():

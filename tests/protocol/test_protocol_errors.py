@@ -74,7 +74,9 @@ def test_example_protocols_are_valid(path):
 
 def test_unknown_key_suggests_the_close_one():
     message = one(GOOD.replace("wait_s: 5", "wiat_s: 5"))
-    assert re.fullmatch(r"p\.yaml:16:9: trial_types\.t\.steps\[1\]: unknown key 'wiat_s'; did you mean 'wait_s'\?", message)
+    assert re.fullmatch(
+        r"p\.yaml:16:9: trial_types\.t\.steps\[1\]: unknown key 'wiat_s'; did you mean 'wait_s'\?", message
+    )
 
 
 def test_duplicate_key_names_first_line():
@@ -90,13 +92,17 @@ def test_wrong_type_says_expected_and_found():
 
 
 def test_negative_duration_and_bad_probability_are_out_of_range():
-    found = problems(GOOD.replace("wait_s: 5", "wait_s: -2").replace("reward_probability: 0.5", "reward_probability: 1.5"))
+    found = problems(
+        GOOD.replace("wait_s: 5", "wait_s: -2").replace("reward_probability: 0.5", "reward_probability: 1.5")
+    )
     assert any("expected a value from 0 to 86400, found -2" in p for p in found)
     assert any("reward_probability: expected a value from 0 to 1, found 1.5" in p for p in found)
 
 
 def test_dangling_references_are_errors():
-    found = problems(GOOD.replace("if_rewarded: s2", "if_rewarded: s3").replace("trial_types: [t]", "trial_types: [tt]"))
+    found = problems(
+        GOOD.replace("if_rewarded: s2", "if_rewarded: s3").replace("trial_types: [t]", "trial_types: [tt]")
+    )
     assert any("if_rewarded: no step named 's3'" in p for p in found)
     assert any("no trial type named 'tt'; did you mean 't'?" in p for p in found)
 
@@ -153,14 +159,20 @@ def test_empty_and_binary_files(tmp_path):
 
 
 def test_draw_probabilities_must_sum_to_one():
-    text = GOOD.replace("      - step: s2\n", "      - step: pick\n        draw: {s2: 0.5, end: 0.4}\n      - step: s2\n")
+    text = GOOD.replace(
+        "      - step: s2\n", "      - step: pick\n        draw: {s2: 0.5, end: 0.4}\n      - step: s2\n"
+    )
     assert "draw: probabilities must add up to 1, found 0.9" in one(text)
 
 
 def test_schedule_values_are_checked_per_kind():
-    text = GOOD.replace("        choose: [a]\n        if_rewarded: s2\n", "        schedule: {input: press_a, kind: RR, value: 3}\n")
+    text = GOOD.replace(
+        "        choose: [a]\n        if_rewarded: s2\n", "        schedule: {input: press_a, kind: RR, value: 3}\n"
+    )
     assert "value (probability per response): expected a value above 0 up to 1, found 3" in one(text)
-    text = GOOD.replace("        choose: [a]\n        if_rewarded: s2\n", "        schedule: {input: press_a, kind: XR, value: 3}\n")
+    text = GOOD.replace(
+        "        choose: [a]\n        if_rewarded: s2\n", "        schedule: {input: press_a, kind: XR, value: 3}\n"
+    )
     assert "expected one of FR, VR, RR, FI, VI, found 'XR'" in one(text)
 
 

@@ -124,7 +124,9 @@ def test_cooldown_blocks_refiring_for_n_trials():
 
 def test_hysteresis_needs_k_consecutive_holds():
     # accuracy(2) >= 1 holds after trials 2,3 (aa), breaks at 4 (b), holds again 6,7,8...
-    protocol = protocol_with('rules:\n  - rule: r\n    when: "accuracy(2) >= 1"\n    hold_for: 3\n    then: {alarm: x}\n')
+    protocol = protocol_with(
+        'rules:\n  - rule: r\n    when: "accuracy(2) >= 1"\n    hold_for: 3\n    then: {alarm: x}\n'
+    )
     pattern = list("aaab") + list("aaaaaa")
     _, records = drive(protocol, pattern)
     # holds at trials 2,3 (run 2), breaks at 4 and 5 (window has the error), holds 6,7,8 -> fires at 8;
@@ -169,7 +171,7 @@ def test_max_firings_per_session():
 
 def test_two_reversal_rules_never_undo_each_other():
     protocol = protocol_with(
-        'rules:\n'
+        "rules:\n"
         '  - rule: first\n    when: "streak >= 3"\n    then: {reverse: [a, b]}\n'
         '  - rule: second\n    when: "streak >= 3"\n    then: {reverse: [a, b]}\n'
     )
@@ -196,13 +198,14 @@ def test_windowed_metrics_need_a_full_window():
 
 def test_iti_never_leaves_its_bounds():
     protocol = protocol_with(
-        'iti_bounds: [3, 4]\nrules:\n'
-        '  - rule: longer\n    when: "trials >= 1"\n    then: {scale_iti: 3}\n',
+        'iti_bounds: [3, 4]\nrules:\n  - rule: longer\n    when: "trials >= 1"\n    then: {scale_iti: 3}\n',
     )
     _, records = drive(protocol, list("ab" * 20))
     itis = [t.iti_s for t in records if isinstance(t, TrialRecord)][:-1]
     assert itis and all(3 <= x <= 4 for x in itis)
-    protocol = protocol_with('iti_bounds: [1, 10]\nrules:\n  - rule: set\n    when: "trials >= 2"\n    then: {set_iti: 7.5}\n')
+    protocol = protocol_with(
+        'iti_bounds: [1, 10]\nrules:\n  - rule: set\n    when: "trials >= 2"\n    then: {set_iti: 7.5}\n'
+    )
     _, records = drive(protocol, list("a" * 6))
     itis = [t.iti_s for t in records if isinstance(t, TrialRecord)]
     assert itis[1:5] == [7.5] * 4 and 2 <= itis[0] <= 6  # fires after trial 2: its ITI on
@@ -222,13 +225,17 @@ def test_devaluation_probe_delivers_no_outcome_and_ends_on_time():
 
 
 def test_end_session_action():
-    protocol = protocol_with('rules:\n  - rule: done\n    when: "rewarded_responses >= 2"\n    then: {end_session: "enough"}\n')
+    protocol = protocol_with(
+        'rules:\n  - rule: done\n    when: "rewarded_responses >= 2"\n    then: {end_session: "enough"}\n'
+    )
     session, _ = drive(protocol, list("baab"))
     assert session.end_reason == "rule done: enough" and session.trials_done == 3
 
 
 def test_settings_can_differ_per_animal():
-    protocol = protocol_with('settings: {target: 5}\nrules:\n  - rule: r\n    when: "rewards >= target"\n    then: {end_session: "target"}\n')
+    protocol = protocol_with(
+        'settings: {target: 5}\nrules:\n  - rule: r\n    when: "rewards >= target"\n    then: {end_session: "target"}\n'
+    )
     session, _ = drive(protocol, list("a" * 10))
     assert session.rewards == 5
     from dataclasses import replace
@@ -242,14 +249,18 @@ def test_settings_can_differ_per_animal():
 
 def test_malformed_rule_is_a_clear_check_error(tmp_path):
     bad = tmp_path / "bad.yaml"
-    bad.write_text(BASE + 'rules:\n  - rule: r\n    when: "streek >= 8 and accuracy > 0.5"\n    then: {reverse: [a, c]}\n')
+    bad.write_text(
+        BASE + 'rules:\n  - rule: r\n    when: "streek >= 8 and accuracy > 0.5"\n    then: {reverse: [a, c]}\n'
+    )
     result = subprocess.run([sys.executable, "-m", "server.cli", "check", str(bad)],
                             capture_output=True, text=True, cwd=ROOT)  # fmt: skip
     assert result.returncode == 1
     lines = result.stderr.strip().splitlines()
     line_no = BASE.count("\n") + 3
     # the column points at the misspelt name inside the quoted condition
-    assert re.fullmatch(rf".*bad\.yaml:{line_no}:12: rules\.r\.when: unknown quantity 'streek'; did you mean 'streak'\?", lines[0])
+    assert re.fullmatch(
+        rf".*bad\.yaml:{line_no}:12: rules\.r\.when: unknown quantity 'streek'; did you mean 'streak'\?", lines[0]
+    )
     assert any("no option named 'c'" in line for line in lines)
 
 
@@ -309,7 +320,9 @@ def test_reversal_rule_records_every_value_it_read(tmp_path):
     protocol = load_protocol(ROOT / "protocols" / "reversal.yaml")
     session = build_session(protocol, 5)
     records = []
-    run_virtual(session, EmulatedBox(protocol.wiring, make_agent("q_learner"), np.random.default_rng(5)), records.extend)
+    run_virtual(
+        session, EmulatedBox(protocol.wiring, make_agent("q_learner"), np.random.default_rng(5)), records.extend
+    )
     learned = firings(records, "learned")
     assert learned, "the estimator-driven reversal fired"
     assert all(set(f.values) == {"p_prefers_correct"} and f.values["p_prefers_correct"] >= 0.95 for f in learned)

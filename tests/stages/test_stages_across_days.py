@@ -43,7 +43,8 @@ def test_an_animal_advances_one_stage_after_two_qualifying_days(tmp_path):
     for name in ("stage one", "stage two"):
         (tmp_path / f"{name.replace(' ', '_')}.yaml").write_text(QUICK.format(name=name))
     config = tmp_path / "lab.yaml"
-    config.write_text(textwrap.dedent("""\
+    config.write_text(
+        textwrap.dedent("""\
         lab: stage test
         database: lab.sqlite
         boxes:
@@ -54,7 +55,8 @@ def test_an_animal_advances_one_stage_after_two_qualifying_days(tmp_path):
                 advance: {sessions: 2, min_trials: 3}
               - protocol: stage_two.yaml
             emulate: {agent: pavlovian, seed: 5}
-        """))
+        """)
+    )
     db = tmp_path / "lab.sqlite"
 
     def day():

@@ -5,10 +5,9 @@ from __future__ import annotations
 from datetime import datetime, timedelta, timezone
 
 import pytest
+from store_samples import STARTED_AT
 
 from server.store import Store
-
-from store_samples import STARTED_AT
 
 
 class FakeWallClock:
@@ -50,8 +49,12 @@ def begin(store):
 
     def begin_session(**overrides) -> int:
         args = dict(
-            box="shelf-2/left", animal="R-117", protocol="flip-flop",
-            protocol_path="protocols/flip-flop.yaml", protocol_sha256="ab" * 32, seed=20310407,
+            box="shelf-2/left",
+            animal="R-117",
+            protocol="flip-flop",
+            protocol_path="protocols/flip-flop.yaml",
+            protocol_sha256="ab" * 32,
+            seed=20310407,
             started_at=STARTED_AT,
             settings={"caps": {"max_rewards": 120, "max_minutes": 60}, "agent": None},
         )

@@ -15,13 +15,24 @@ def make_trial(n: int, **overrides) -> TrialRecord:
     rewarded on odd trials."""
     t0 = 20.0 * (n - 1)
     trial = TrialRecord(
-        trial=n, block="acquire", block_index=1, trial_type="free-choice",
-        t_start=t0, t_end=t0 + 3.25, choice="left" if n % 3 else "right",
-        response="press_left" if n % 3 else "press_right", latency_s=1.0 + n / 7,
-        rewarded=bool(n % 2), reward=1.0 if n % 2 else 0.0, correct=bool(n % 3), omission=False,
-        interrupted=False, iti_s=16.75,
+        trial=n,
+        block="acquire",
+        block_index=1,
+        trial_type="free-choice",
+        t_start=t0,
+        t_end=t0 + 3.25,
+        choice="left" if n % 3 else "right",
+        response="press_left" if n % 3 else "press_right",
+        latency_s=1.0 + n / 7,
+        rewarded=bool(n % 2),
+        reward=1.0 if n % 2 else 0.0,
+        correct=bool(n % 3),
+        omission=False,
+        interrupted=False,
+        iti_s=16.75,
         steps=(("cue", t0), ("choose", t0 + 0.5), ("collect", t0 + 2.0)),
-        counts={"press_left": 2, "head_entry": 1}, first_s={"press_left": 1.0 + n / 7},
+        counts={"press_left": 2, "head_entry": 1},
+        first_s={"press_left": 1.0 + n / 7},
         extra={"note": f"trial {n}", "draws": [0.1, 0.2]},
     )
     return dataclasses.replace(trial, **overrides)

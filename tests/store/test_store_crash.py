@@ -9,8 +9,7 @@ import sys
 import time
 from pathlib import Path
 
-from server.store import Store
-from server.store import queries
+from server.store import Store, queries
 
 WRITER = Path(__file__).with_name("crash_writer.py")
 
@@ -20,8 +19,9 @@ def run_and_kill(db_path: Path, box: str, kill_after: int) -> tuple[int, int, in
 
     Returns (session id, last trial reported committed, device seq written before it).
     """
-    child = subprocess.Popen([sys.executable, str(WRITER), str(db_path), box],
-                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    child = subprocess.Popen(
+        [sys.executable, str(WRITER), str(db_path), box], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True
+    )
     deadline = time.monotonic() + 15.0
     session_id = last_trial = last_seq = 0
     try:
@@ -50,8 +50,10 @@ def run_and_kill(db_path: Path, box: str, kill_after: int) -> tuple[int, int, in
 
 
 def test_sigkill_loses_no_committed_trial(db_path):
-    runs = [run_and_kill(db_path, f"shelf-4/{side}", kill_after)
-            for side, kill_after in (("left", 40), ("middle", 75), ("right", 120))]
+    runs = [
+        run_and_kill(db_path, f"shelf-4/{side}", kill_after)
+        for side, kill_after in (("left", 40), ("middle", 75), ("right", 120))
+    ]
 
     store = Store.open(db_path)
     assert store.conn.execute("PRAGMA integrity_check").fetchall() == [("ok",)]
@@ -64,10 +66,10 @@ def test_sigkill_loses_no_committed_trial(db_path):
     for session_id, last_trial, last_seq in runs:
         stored = [t.trial for t in queries.trial_records(reader, session_id)]
         # Every trial reported committed is there, numbered without gaps.
-        assert stored[: last_trial] == list(range(1, last_trial + 1))
+        assert stored[:last_trial] == list(range(1, last_trial + 1))
         # Events written before a committed trial were committed with it, once each.
         seqs = [e["device_seq"] for e in queries.session_events(reader, session_id, kind="input")]
-        assert seqs[: last_seq] == list(range(1, last_seq + 1))
+        assert seqs[:last_seq] == list(range(1, last_seq + 1))
         assert len(seqs) == len(set(seqs))
         row = queries.get_session(reader, session_id)
         assert row["end_reason"] == "interrupted"

@@ -8,12 +8,10 @@ reports a full disk (SQLITE_FULL, "database or disk is full"), which lets a test
 from __future__ import annotations
 
 import pytest
+from store_samples import make_trial
 
 from server.engine.records import EventLogged
-from server.store import StoreError
-from server.store import queries
-
-from store_samples import make_trial
+from server.store import StoreError, queries
 
 
 def fill_disk(store) -> int:
@@ -30,9 +28,10 @@ def free_disk(store, limit: int) -> None:
 
 
 def many_events(n: int, start: int = 0):
-    return [EventLogged(t=k * 0.05, kind="input", name="lick", value=float(k),
-                        device_seq=k + 1, detail={"pad": "x" * 120})
-            for k in range(start, start + n)]
+    return [
+        EventLogged(t=k * 0.05, kind="input", name="lick", value=float(k), device_seq=k + 1, detail={"pad": "x" * 120})
+        for k in range(start, start + n)
+    ]
 
 
 def test_full_disk_keeps_trials_and_events_until_space_returns(db_path, store, begin):
@@ -45,8 +44,8 @@ def test_full_disk_keeps_trials_and_events_until_space_returns(db_path, store, b
     with pytest.raises(StoreError) as caught:
         store.write(session_id, make_trial(2))
     assert str(caught.value) == (
-        f"could not write to {db_path}: disk is full; 301 record(s) kept in memory, "
-        "retried at the next flush")
+        f"could not write to {db_path}: disk is full; 301 record(s) kept in memory, retried at the next flush"
+    )
     assert store.failure is caught.value
     assert store.pending == 301
     # The session goes on: more events and another trial are buffered behind the first ones.

@@ -48,13 +48,13 @@ def open_error(path) -> str:
 
 def test_missing_folder(tmp_path):
     assert open_error(tmp_path / "no-such-room" / "lab.sqlite") == (
-        f"folder {tmp_path / 'no-such-room'} does not exist")
+        f"folder {tmp_path / 'no-such-room'} does not exist"
+    )
 
 
 def test_folder_that_is_a_file(tmp_path):
     (tmp_path / "notes.txt").write_text("not a folder")
-    assert open_error(tmp_path / "notes.txt" / "lab.sqlite") == (
-        f"{tmp_path / 'notes.txt'} is not a folder")
+    assert open_error(tmp_path / "notes.txt" / "lab.sqlite") == (f"{tmp_path / 'notes.txt'} is not a folder")
 
 
 def test_path_that_is_a_folder(tmp_path):
@@ -66,8 +66,7 @@ def test_read_only_folder_for_a_new_database(tmp_path, make_readonly):
     room = tmp_path / "room"
     room.mkdir()
     make_readonly(room)
-    assert open_error(room / "lab.sqlite") == (
-        f"folder {room} is not writable (permission denied)")
+    assert open_error(room / "lab.sqlite") == (f"folder {room} is not writable (permission denied)")
 
 
 def test_read_only_folder_with_an_existing_database(tmp_path, make_readonly):
@@ -78,8 +77,7 @@ def test_read_only_folder_with_an_existing_database(tmp_path, make_readonly):
     for leftover in room.glob("lab.sqlite-*"):
         leftover.unlink()
     make_readonly(room)
-    assert open_error(room / "lab.sqlite") == (
-        f"folder {room} is not writable (permission denied)")
+    assert open_error(room / "lab.sqlite") == (f"folder {room} is not writable (permission denied)")
 
 
 def test_read_only_database_file(db_path, make_readonly):

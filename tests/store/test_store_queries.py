@@ -8,11 +8,10 @@ import json
 import sqlite3
 
 import pytest
+from store_samples import make_trial
 
 from server.engine.records import EventLogged, SessionEnded
 from server.store import queries
-
-from store_samples import make_trial
 
 
 @pytest.fixture
@@ -26,18 +25,19 @@ def lab(store, begin, db_path):
     for n in (1, 2, 3, 4, 5, 6):
         store.write(second, make_trial(n, correct=n > 1, omission=n == 6))
     store.write(second, SessionEnded(t=130.0, reason="completed", trials=6, rewards=3))
-    other_rat = begin(box="shelf-2/right", animal="R-118",
-                      started_at="2031-04-08T21:31:00+02:00")
-    store.write(other_rat, SessionEnded(t=1.0, reason="stopped by operator", trials=0,
-                                        rewards=0))
+    other_rat = begin(box="shelf-2/right", animal="R-118", started_at="2031-04-08T21:31:00+02:00")
+    store.write(other_rat, SessionEnded(t=1.0, reason="stopped by operator", trials=0, rewards=0))
     mouse = begin(box="shelf-1/left", animal="M-07", started_at="2031-04-08T22:00:00+02:00")
     for k in range(1, 31):
-        store.write(mouse, EventLogged(t=k / 2, kind="input" if k % 3 else "output",
-                                       name="lick" if k % 3 else "cue_light", value=float(k)))
+        store.write(
+            mouse,
+            EventLogged(
+                t=k / 2, kind="input" if k % 3 else "output", name="lick" if k % 3 else "cue_light", value=float(k)
+            ),
+        )
     store.flush()
     conn = queries.open_readonly(db_path)
-    yield {"first": first, "second": second, "other_rat": other_rat, "mouse": mouse,
-           "conn": conn}
+    yield {"first": first, "second": second, "other_rat": other_rat, "mouse": mouse, "conn": conn}
     conn.close()
 
 
@@ -48,7 +48,11 @@ def ids(found):
 def test_list_sessions_filters(lab):
     conn = lab["conn"]
     assert ids(queries.list_sessions(conn)) == [
-        lab["mouse"], lab["other_rat"], lab["second"], lab["first"]]  # newest first
+        lab["mouse"],
+        lab["other_rat"],
+        lab["second"],
+        lab["first"],
+    ]  # newest first
     assert ids(queries.list_sessions(conn, animal="R-117")) == [lab["second"], lab["first"]]
     assert ids(queries.list_sessions(conn, box="shelf-2/right")) == [lab["other_rat"]]
     assert ids(queries.list_sessions(conn, running=True)) == [lab["mouse"]]
@@ -90,8 +94,7 @@ def test_trials_csv_reads_back_to_the_stored_trials(lab):
     assert queries.export_trials_csv(lab["conn"], lab["second"], out) == 6
     parsed = list(csv.DictReader(io.StringIO(out.getvalue())))
     assert [int(r["trial"]) for r in parsed] == [1, 2, 3, 4, 5, 6]
-    for row, trial in zip(parsed, (make_trial(n, correct=n > 1, omission=n == 6)
-                                   for n in range(1, 7))):
+    for row, trial in zip(parsed, (make_trial(n, correct=n > 1, omission=n == 6) for n in range(1, 7))):
         assert float(row["t_end"]) == trial.t_end
         assert float(row["latency_s"]) == trial.latency_s
         assert row["choice"] == trial.choice
@@ -106,8 +109,7 @@ def test_events_csv_keeps_empty_fields_empty(lab):
     lines = out.getvalue().splitlines()
     assert lines[0] == "id,session_id,kind,name,value,t,device_t_us,device_seq,detail"
     first = next(csv.DictReader(io.StringIO(out.getvalue())))
-    assert (first["kind"], first["value"], first["device_seq"], first["detail"]) == (
-        "input", "1.0", "", "")
+    assert (first["kind"], first["value"], first["device_seq"], first["detail"]) == ("input", "1.0", "", "")
 
 
 def test_choices_csv_uses_the_fitting_format(lab):

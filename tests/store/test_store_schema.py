@@ -18,8 +18,7 @@ def columns(conn: sqlite3.Connection, table: str) -> list[str]:
 
 def test_new_database_is_at_latest_version_with_every_table(store):
     assert schema_version(store.conn) == latest_version() == len(MIGRATIONS)
-    tables = {row[0] for row in store.conn.execute(
-        "SELECT name FROM sqlite_schema WHERE type = 'table'")}
+    tables = {row[0] for row in store.conn.execute("SELECT name FROM sqlite_schema WHERE type = 'table'")}
     assert {"sessions", "trials", "events", "blocks", "estimates", "annotations"} <= tables
 
 
@@ -32,8 +31,19 @@ def test_tables_hold_every_field_of_the_records(store):
     block_fields = {f.name for f in dataclasses.fields(BlockStarted)} - {"t"}
     assert block_fields <= set(columns(store.conn, "blocks"))
     assert columns(store.conn, "sessions") == [
-        "id", "box", "animal", "protocol", "protocol_path", "protocol_sha256", "started_at",
-        "ended_at", "end_reason", "seed", "trials", "rewards", "settings",
+        "id",
+        "box",
+        "animal",
+        "protocol",
+        "protocol_path",
+        "protocol_sha256",
+        "started_at",
+        "ended_at",
+        "end_reason",
+        "seed",
+        "trials",
+        "rewards",
+        "settings",
     ]
 
 
@@ -52,8 +62,7 @@ def test_reopening_keeps_data_and_version(db_path, begin, store):
     store.close()
     again = Store.open(db_path)
     assert schema_version(again.conn) == latest_version()
-    assert again.conn.execute("SELECT animal FROM sessions WHERE id = ?",
-                              (session_id,)).fetchone() == ("R-117",)
+    assert again.conn.execute("SELECT animal FROM sessions WHERE id = ?", (session_id,)).fetchone() == ("R-117",)
     again.close()
 
 
@@ -62,8 +71,11 @@ def test_newer_schema_is_refused_with_a_clear_message(db_path):
     conn = sqlite3.connect(db_path)
     conn.execute("PRAGMA user_version = 99")
     conn.close()
-    with pytest.raises(StoreError, match=r"^cannot use database .*schema version 99 is newer "
-                                         rf"than this vigil knows \({len(MIGRATIONS)}\); upgrade vigil$"):
+    with pytest.raises(
+        StoreError,
+        match=r"^cannot use database .*schema version 99 is newer "
+        rf"than this vigil knows \({len(MIGRATIONS)}\); upgrade vigil$",
+    ):
         Store.open(db_path)
 
 
@@ -84,8 +96,7 @@ def test_appended_migration_upgrades_an_existing_database(db_path, begin, store)
     begin()
     store.close()
     nxt = len(MIGRATIONS) + 1
-    add_stage = Migration(nxt, "training stage per session",
-                          statements("ALTER TABLE sessions ADD COLUMN stage_x TEXT"))
+    add_stage = Migration(nxt, "training stage per session", statements("ALTER TABLE sessions ADD COLUMN stage_x TEXT"))
     conn = _autocommit(db_path)
     assert migrate(conn, (*MIGRATIONS, add_stage)) == nxt
     assert "stage_x" in columns(conn, "sessions")
@@ -95,8 +106,11 @@ def test_appended_migration_upgrades_an_existing_database(db_path, begin, store)
 
 def test_failing_migration_leaves_the_previous_version_intact(db_path):
     Store.open(db_path).close()
-    broken = Migration(len(MIGRATIONS) + 1, "half done", statements(
-        "CREATE TABLE half_done (animal TEXT)", "ALTER TABLE no_such_table ADD COLUMN x"))
+    broken = Migration(
+        len(MIGRATIONS) + 1,
+        "half done",
+        statements("CREATE TABLE half_done (animal TEXT)", "ALTER TABLE no_such_table ADD COLUMN x"),
+    )
     conn = _autocommit(db_path)
     with pytest.raises(sqlite3.OperationalError):
         migrate(conn, (*MIGRATIONS, broken))

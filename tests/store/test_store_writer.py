@@ -7,6 +7,7 @@ import sqlite3
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+from store_samples import STARTED_AT, make_trial
 
 from server.engine.records import (
     BlockStarted,
@@ -15,10 +16,7 @@ from server.engine.records import (
     SessionStarted,
     TrialRecord,
 )
-from server.store import Store, StoreError
-from server.store import queries
-
-from store_samples import STARTED_AT, make_trial
+from server.store import Store, StoreError, queries
 
 
 @pytest.fixture
@@ -39,43 +37,66 @@ def test_session_row_round_trip(store, begin, reader):
     session_id = begin()
     row = queries.get_session(reader, session_id)
     assert row == {
-        "id": session_id, "box": "shelf-2/left", "animal": "R-117", "protocol": "flip-flop",
-        "protocol_path": "protocols/flip-flop.yaml", "protocol_sha256": "ab" * 32,
-        "started_at": STARTED_AT, "ended_at": None, "end_reason": None, "seed": 20310407,
-        "trials": 0, "rewards": 0,
+        "id": session_id,
+        "box": "shelf-2/left",
+        "animal": "R-117",
+        "protocol": "flip-flop",
+        "protocol_path": "protocols/flip-flop.yaml",
+        "protocol_sha256": "ab" * 32,
+        "started_at": STARTED_AT,
+        "ended_at": None,
+        "end_reason": None,
+        "seed": 20310407,
+        "trials": 0,
+        "rewards": 0,
         "settings": {"caps": {"max_rewards": 120, "max_minutes": 60}, "agent": None},
     }
 
 
 def test_every_record_type_round_trips(store, begin, reader):
     session_id = begin()
-    store.write(session_id, SessionStarted(t=0.0, protocol="flip-flop", seed=20310407,
-                                           first_block="acquire"))
-    block = BlockStarted(t=0.0, block="acquire", block_index=1,
-                         contingencies={"left": 0.8, "right": 0.2}, outcomes_withheld=False)
+    store.write(session_id, SessionStarted(t=0.0, protocol="flip-flop", seed=20310407, first_block="acquire"))
+    block = BlockStarted(
+        t=0.0, block="acquire", block_index=1, contingencies={"left": 0.8, "right": 0.2}, outcomes_withheld=False
+    )
     store.write(session_id, block)
-    press = EventLogged(t=1.234567891, kind="input", name="press_left", value=1.0,
-                        device_t_us=4_294_967_295, device_seq=1,
-                        detail={"edge": "rising", "host_t": 1.2345})
+    press = EventLogged(
+        t=1.234567891,
+        kind="input",
+        name="press_left",
+        value=1.0,
+        device_t_us=4_294_967_295,
+        device_seq=1,
+        detail={"edge": "rising", "host_t": 1.2345},
+    )
     store.write(session_id, press)
-    trials = [make_trial(1), make_trial(2, choice=None, response=None, latency_s=None,
-                                        correct=None, omission=True, rewarded=False, reward=0.0)]
+    trials = [
+        make_trial(1),
+        make_trial(
+            2, choice=None, response=None, latency_s=None, correct=None, omission=True, rewarded=False, reward=0.0
+        ),
+    ]
     for t in trials:
         store.write(session_id, t)
     store.write(session_id, SessionEnded(t=3600.25, reason="time limit", trials=2, rewards=1))
 
     events = stored_events(reader, session_id)
     assert [(e["kind"], e["name"], e["detail"]) for e in events] == [
-        ("note", "session_started",
-         {"protocol": "flip-flop", "seed": 20310407, "first_block": "acquire"}),
+        ("note", "session_started", {"protocol": "flip-flop", "seed": 20310407, "first_block": "acquire"}),
         ("input", "press_left", {"edge": "rising", "host_t": 1.2345}),
     ]
     got = events[1]
-    assert (got["t"], got["value"], got["device_t_us"], got["device_seq"]) == (
-        1.234567891, 1.0, 4_294_967_295, 1)
-    assert queries.session_blocks(reader, session_id) == [{
-        "session_id": session_id, "block_index": 1, "block": "acquire", "t_start": 0.0,
-        "contingencies": {"left": 0.8, "right": 0.2}, "outcomes_withheld": False}]
+    assert (got["t"], got["value"], got["device_t_us"], got["device_seq"]) == (1.234567891, 1.0, 4_294_967_295, 1)
+    assert queries.session_blocks(reader, session_id) == [
+        {
+            "session_id": session_id,
+            "block_index": 1,
+            "block": "acquire",
+            "t_start": 0.0,
+            "contingencies": {"left": 0.8, "right": 0.2},
+            "outcomes_withheld": False,
+        }
+    ]
     assert queries.trial_records(reader, session_id) == trials
     ended = queries.get_session(reader, session_id)
     # 21:30:00 + 3600.25 s, same UTC offset as started_at
@@ -85,19 +106,33 @@ def test_every_record_type_round_trips(store, begin, reader):
 
 def test_caller_supplied_end_time_is_kept(store, begin, reader):
     session_id = begin()
-    store.write(session_id, SessionEnded(t=5.0, reason="stopped by operator", trials=0,
-                                         rewards=0), ended_at="2031-04-07T19:31:00+00:00")
+    store.write(
+        session_id,
+        SessionEnded(t=5.0, reason="stopped by operator", trials=0, rewards=0),
+        ended_at="2031-04-07T19:31:00+00:00",
+    )
     assert queries.get_session(reader, session_id)["ended_at"] == "2031-04-07T19:31:00+00:00"
 
 
 labels = st.text(st.characters(blacklist_categories=("Cs",)), max_size=12)
 finite = st.floats(allow_nan=False, allow_infinity=False)
 trials_strategy = st.builds(
-    TrialRecord, trial=st.just(1), block=labels, block_index=st.integers(1, 10**6),
-    trial_type=labels, t_start=finite, t_end=finite, choice=st.none() | labels,
-    response=st.none() | labels, latency_s=st.none() | finite, rewarded=st.booleans(),
-    reward=finite, correct=st.none() | st.booleans(), omission=st.booleans(),
-    interrupted=st.booleans(), iti_s=finite,
+    TrialRecord,
+    trial=st.just(1),
+    block=labels,
+    block_index=st.integers(1, 10**6),
+    trial_type=labels,
+    t_start=finite,
+    t_end=finite,
+    choice=st.none() | labels,
+    response=st.none() | labels,
+    latency_s=st.none() | finite,
+    rewarded=st.booleans(),
+    reward=finite,
+    correct=st.none() | st.booleans(),
+    omission=st.booleans(),
+    interrupted=st.booleans(),
+    iti_s=finite,
     steps=st.lists(st.tuples(labels, finite), max_size=4).map(tuple),
     counts=st.dictionaries(labels, st.integers(0, 10**9), max_size=3),
     first_s=st.dictionaries(labels, finite, max_size=3),
@@ -149,8 +184,7 @@ def test_every_event_is_durable_within_one_second(store, begin, reader):
     next_tick = now
     while now < 1000.0 + seconds:
         n += 1
-        store.write(session_id, EventLogged(t=now - 1000.0, kind="input", name="lick",
-                                            value=float(n)))
+        store.write(session_id, EventLogged(t=now - 1000.0, kind="input", name="lick", value=float(n)))
         written_at[n] = now
         now += 1.0 / rate
         if now >= next_tick:
@@ -181,8 +215,7 @@ def test_first_event_after_a_quiet_spell_is_flushed_at_the_next_call(store, begi
 
 def test_a_full_buffer_commits_without_waiting(db_path, wall_clock):
     store = Store.open(db_path, wall_clock=wall_clock, max_buffered=100)
-    session_id = store.begin_session("shelf-1/right", "M-03", "bandit-4", None, None, 1,
-                                     STARTED_AT, {})
+    session_id = store.begin_session("shelf-1/right", "M-03", "bandit-4", None, None, 1, STARTED_AT, {})
     for k in range(250):
         store.write(session_id, EventLogged(t=k * 0.01, kind="input", name="lick"))
     assert store.pending == 50
@@ -194,8 +227,9 @@ def test_replayed_device_events_are_stored_once(store, begin, reader):
     other = begin(box="shelf-2/right", animal="R-118")
 
     def press(seq):
-        return EventLogged(t=seq / 10, kind="input", name="press_left", value=1.0,
-                           device_t_us=seq * 100_000, device_seq=seq)
+        return EventLogged(
+            t=seq / 10, kind="input", name="press_left", value=1.0, device_t_us=seq * 100_000, device_seq=seq
+        )
 
     for seq in (1, 2, 3):
         store.write(session_id, press(seq))
@@ -219,12 +253,17 @@ def test_replayed_device_events_are_stored_once(store, begin, reader):
 # ---------------------------------------------------------------- refusals
 
 
-@pytest.mark.parametrize("bad, message", [
-    (make_trial(1, t_end=float("nan")), "trial 1 t_end must be finite, got nan"),
-    (make_trial(1, extra={"when": object()}), "trial 1 extra cannot be stored as json"),
-    (EventLogged(t=1.0, kind="input", name="lick", device_seq=2**64),
-     "event input/lick device_seq does not fit a 64-bit integer"),
-])
+@pytest.mark.parametrize(
+    "bad, message",
+    [
+        (make_trial(1, t_end=float("nan")), "trial 1 t_end must be finite, got nan"),
+        (make_trial(1, extra={"when": object()}), "trial 1 extra cannot be stored as json"),
+        (
+            EventLogged(t=1.0, kind="input", name="lick", device_seq=2**64),
+            "event input/lick device_seq does not fit a 64-bit integer",
+        ),
+    ],
+)
 def test_unstorable_records_are_refused_at_write(store, begin, reader, bad, message):
     session_id = begin()
     with pytest.raises(StoreError, match=f"^{message}"):
@@ -248,10 +287,13 @@ def test_writes_need_a_running_session_of_this_store(store, begin):
         store.write(session_id, EventLogged(t=2.0, kind="input", name="lick"))
 
 
-@pytest.mark.parametrize("started_at, message", [
-    ("2031-04-07T21:30:00", "started_at has no UTC offset"),
-    ("last tuesday", "started_at is not an ISO 8601 time"),
-])
+@pytest.mark.parametrize(
+    "started_at, message",
+    [
+        ("2031-04-07T21:30:00", "started_at has no UTC offset"),
+        ("last tuesday", "started_at is not an ISO 8601 time"),
+    ],
+)
 def test_start_time_needs_iso_8601_with_offset(begin, started_at, message):
     with pytest.raises(StoreError, match=f"^{message}"):
         begin(started_at=started_at)
@@ -260,8 +302,11 @@ def test_start_time_needs_iso_8601_with_offset(begin, started_at, message):
 def test_a_record_the_database_refuses_does_not_block_the_others(store, begin, reader):
     session_id = begin()
     store.write(session_id, EventLogged(t=1.0, kind="input", name="lick"))
-    with pytest.raises(StoreError, match=r"^database refused estimate after trial 1 of session "
-                                         r"999 \(foreign key constraint failed\)$"):
+    with pytest.raises(
+        StoreError,
+        match=r"^database refused estimate after trial 1 of session "
+        r"999 \(foreign key constraint failed\)$",
+    ):
         store.write_estimate(999, 1, "q_learning", {"alpha": 0.3})
     assert [e["name"] for e in stored_events(reader, session_id)] == ["lick"]
     assert store.pending == 0
@@ -283,9 +328,14 @@ def test_estimates_are_stored_and_replaced(store, begin, reader):
     store.write(session_id, make_trial(1))
     store.write_estimate(session_id, 1, "q_learning", {"alpha": {"mean": 0.31}, "q": [0.2, 0.0]})
     store.write_estimate(session_id, 1, "q_learning", {"alpha": {"mean": 0.32}, "q": [0.2, 0.0]})
-    assert queries.session_estimates(reader, session_id) == [{
-        "session_id": session_id, "trial": 1, "model": "q_learning",
-        "data": {"alpha": {"mean": 0.32}, "q": [0.2, 0.0]}}]
+    assert queries.session_estimates(reader, session_id) == [
+        {
+            "session_id": session_id,
+            "trial": 1,
+            "model": "q_learning",
+            "data": {"alpha": {"mean": 0.32}, "q": [0.2, 0.0]},
+        }
+    ]
 
 
 def test_start_time_comes_from_the_injected_wall_clock(store, wall_clock, reader):
@@ -293,11 +343,12 @@ def test_start_time_comes_from_the_injected_wall_clock(store, wall_clock, reader
     assert queries.get_session(reader, session_id)["started_at"] == "2031-04-07T21:30:00.000+02:00"
 
 
-def test_interrupted_sessions_are_closed_at_their_last_stored_time(
-        db_path, store, begin, wall_clock):
+def test_interrupted_sessions_are_closed_at_their_last_stored_time(db_path, store, begin, wall_clock):
     crashed = begin()
-    store.write(crashed, BlockStarted(t=0.0, block="acquire", block_index=1,
-                                      contingencies={"left": 0.8}, outcomes_withheld=False))
+    store.write(
+        crashed,
+        BlockStarted(t=0.0, block="acquire", block_index=1, contingencies={"left": 0.8}, outcomes_withheld=False),
+    )
     for n in (1, 2, 3):
         store.write(crashed, make_trial(n))  # last t_end = 43.25
     store.write(crashed, EventLogged(t=47.5, kind="input", name="head_entry"))
@@ -317,10 +368,12 @@ def test_interrupted_sessions_are_closed_at_their_last_stored_time(
     assert queries.get_session(reader, quiet)["ended_at"] == STARTED_AT
     note = queries.session_events(reader, crashed, kind="note")[-1]
     assert (note["name"], note["t"], note["detail"]) == (
-        "closed_interrupted", 47.5, {"closed_at": "2031-04-07T22:30:00.000+02:00"})
+        "closed_interrupted",
+        47.5,
+        {"closed_at": "2031-04-07T22:30:00.000+02:00"},
+    )
     assert queries.get_session(reader, still_running)["end_reason"] is None
-    assert queries.list_sessions(reader, running=True) == [
-        queries.get_session(reader, still_running)]
+    assert queries.list_sessions(reader, running=True) == [queries.get_session(reader, still_running)]
     reader.close()
     again.close()
 

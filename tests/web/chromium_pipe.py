@@ -20,8 +20,14 @@ import time
 from pathlib import Path
 
 CHROMIUM_FLAGS = (
-    "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-    "--disable-background-networking", "--disable-component-update", "--disable-sync",
+    "--headless",
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-quic",
+    "--no-first-run",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
     "--remote-debugging-pipe",
 )
 
@@ -60,12 +66,14 @@ class Chromium:
             os.dup2(from_child_w, 4)
 
         self.proc = subprocess.Popen(
-            [exe, *CHROMIUM_FLAGS, f"--user-data-dir={profile}", f"--window-size={width},{height}",
-             "about:blank"],
-            stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+            [exe, *CHROMIUM_FLAGS, f"--user-data-dir={profile}", f"--window-size={width},{height}", "about:blank"],
+            stdin=subprocess.DEVNULL,
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.DEVNULL,
             # Python's own descriptors are not inheritable (PEP 446), so with close_fds off
             # the child keeps only 0-2 and the two duplicated above.
-            preexec_fn=fds, close_fds=False,
+            preexec_fn=fds,
+            close_fds=False,
         )
         os.close(to_child_r)
         os.close(from_child_w)
@@ -76,8 +84,14 @@ class Chromium:
         self._reader.start()
         target = self.call("Target.createTarget", url="about:blank")["targetId"]
         self.session = self.call("Target.attachToTarget", targetId=target, flatten=True)["sessionId"]
-        self.call("Emulation.setDeviceMetricsOverride", session=True, width=width, height=height,
-                  deviceScaleFactor=1, mobile=False)
+        self.call(
+            "Emulation.setDeviceMetricsOverride",
+            session=True,
+            width=width,
+            height=height,
+            deviceScaleFactor=1,
+            mobile=False,
+        )
 
     def _read(self) -> None:
         buffer = b""
@@ -120,12 +134,12 @@ class Chromium:
 
     def navigate(self, url: str, *, timeout: float = 30.0) -> None:
         self.call("Page.navigate", session=True, url=url)
-        self.wait_for("document.readyState === 'complete' && location.href !== 'about:blank'",
-                      timeout=timeout)
+        self.wait_for("document.readyState === 'complete' && location.href !== 'about:blank'", timeout=timeout)
 
     def evaluate(self, expression: str):
-        result = self.call("Runtime.evaluate", session=True, expression=expression,
-                           returnByValue=True, awaitPromise=True)
+        result = self.call(
+            "Runtime.evaluate", session=True, expression=expression, returnByValue=True, awaitPromise=True
+        )
         if "exceptionDetails" in result:
             details = result["exceptionDetails"]
             why = (details.get("exception") or {}).get("description") or details.get("text")
@@ -144,8 +158,7 @@ class Chromium:
             time.sleep(every)
 
     def screenshot(self, path: Path, *, full_page: bool = True) -> Path:
-        data = self.call("Page.captureScreenshot", session=True, format="png",
-                         captureBeyondViewport=full_page)["data"]
+        data = self.call("Page.captureScreenshot", session=True, format="png", captureBeyondViewport=full_page)["data"]
         path.write_bytes(base64.b64decode(data))
         return path
 

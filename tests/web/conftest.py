@@ -3,13 +3,18 @@
 from __future__ import annotations
 
 import pytest
+from web_samples import (
+    AUTOSHAPING,
+    EVIL_ANIMAL,
+    EVIL_BOX,
+    REVERSAL,
+    VIEWER,
+    TestClient,
+    record_session,
+)
 
 from server.store.writer import Store
 from server.web import create_app
-
-from web_samples import (
-    AUTOSHAPING, EVIL_ANIMAL, EVIL_BOX, REVERSAL, VIEWER, TestClient, record_session,
-)
 
 
 @pytest.fixture(scope="module")
@@ -18,15 +23,41 @@ def lab_db(tmp_path_factory):
     second newer), an autoshaping session, and a box and animal named with markup."""
     path = tmp_path_factory.mktemp("web") / "lab.sqlite"
     with Store.open(path) as store:
-        first = record_session(store, box="rack-1", animal="RN-0501", protocol_path=REVERSAL,
-                               agent="q_learner", seed=11, estimates=True, alpha=0.3, beta=5.0,
-                               started_at="2031-05-11T09:00:00.000+02:00")
-        second = record_session(store, box="rack-1", animal="RN-0501", protocol_path=REVERSAL,
-                                agent="q_learner", seed=12, estimates=True, alpha=0.3, beta=5.0)
-        pav = record_session(store, box="rack-2", animal="RN-0502", protocol_path=AUTOSHAPING,
-                             agent="pavlovian", seed=13, tracking="sign")
-        evil = record_session(store, box=EVIL_BOX, animal=EVIL_ANIMAL, protocol_path=REVERSAL,
-                              agent="random", seed=14, minutes=3)
+        first = record_session(
+            store,
+            box="rack-1",
+            animal="RN-0501",
+            protocol_path=REVERSAL,
+            agent="q_learner",
+            seed=11,
+            estimates=True,
+            alpha=0.3,
+            beta=5.0,
+            started_at="2031-05-11T09:00:00.000+02:00",
+        )
+        second = record_session(
+            store,
+            box="rack-1",
+            animal="RN-0501",
+            protocol_path=REVERSAL,
+            agent="q_learner",
+            seed=12,
+            estimates=True,
+            alpha=0.3,
+            beta=5.0,
+        )
+        pav = record_session(
+            store,
+            box="rack-2",
+            animal="RN-0502",
+            protocol_path=AUTOSHAPING,
+            agent="pavlovian",
+            seed=13,
+            tracking="sign",
+        )
+        evil = record_session(
+            store, box=EVIL_BOX, animal=EVIL_ANIMAL, protocol_path=REVERSAL, agent="random", seed=14, minutes=3
+        )
     return {"path": path, "first": first, "second": second, "pav": pav, "evil": evil}
 
 

@@ -19,15 +19,17 @@ class Vigil:
     """`python -m server.cli ARGS` (or `python SCRIPT ARGS`) with its output collected line
     by line."""
 
-    def __init__(self, args: list[str], cwd: Path, env: dict[str, str] | None = None,
-                 script: Path | None = None):
+    def __init__(self, args: list[str], cwd: Path, env: dict[str, str] | None = None, script: Path | None = None):
         full_env = {**os.environ, "PYTHONUNBUFFERED": "1", **(env or {})}
-        full_env["PYTHONPATH"] = os.pathsep.join(
-            p for p in (str(REPO), full_env.get("PYTHONPATH", "")) if p)
+        full_env["PYTHONPATH"] = os.pathsep.join(p for p in (str(REPO), full_env.get("PYTHONPATH", "")) if p)
         self.proc = subprocess.Popen(
             [sys.executable, *([str(script)] if script else ["-m", "server.cli"]), *args],
-            cwd=cwd, env=full_env,
-            stdin=subprocess.DEVNULL, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
+            cwd=cwd,
+            env=full_env,
+            stdin=subprocess.DEVNULL,
+            stdout=subprocess.PIPE,
+            stderr=subprocess.STDOUT,
+            text=True,
         )
         self.lines: list[str] = []
         self._queue: queue.Queue = queue.Queue()
@@ -43,7 +45,7 @@ class Vigil:
         """The first line starting with `prefix` (its remainder), reading until it comes."""
         for line in self.lines:
             if line.startswith(prefix):
-                return line[len(prefix):].strip()
+                return line[len(prefix) :].strip()
         deadline = time.monotonic() + timeout
         while True:
             try:
@@ -54,7 +56,7 @@ class Vigil:
                 raise AssertionError(f"exited before {prefix!r}: {self.lines}")
             self.lines.append(line)
             if line.startswith(prefix):
-                return line[len(prefix):].strip()
+                return line[len(prefix) :].strip()
 
     def finish(self, sig: int | None = signal.SIGINT, timeout: float = 30.0) -> int:
         """Send `sig` (None: just wait), wait for the exit, collect the rest of the output."""

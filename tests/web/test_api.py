@@ -23,19 +23,19 @@ def test_boxes_lists_the_latest_session_of_every_box(read_only, lab_db):
     conn = _db(lab_db)
     for tile in tiles:
         row = conn.execute("SELECT * FROM sessions WHERE id = ?", (tile["session_id"],)).fetchone()
-        assert (tile["animal"], tile["trials_done"], tile["rewards"]) == (
-            row["animal"], row["trials"], row["rewards"])
+        assert (tile["animal"], tile["trials_done"], tile["rewards"]) == (row["animal"], row["trials"], row["rewards"])
         assert tile["state"] == "ended" and tile["live"] is False
         assert tile["end_reason"] == row["end_reason"] == "session time limit"
         assert tile["alarms"] == []
     # accuracy = fraction correct over scored trials, recomputed here from the trials table
     scored = conn.execute(
-        "SELECT correct FROM trials WHERE session_id = ? AND correct IS NOT NULL",
-        (lab_db["second"],)).fetchall()
+        "SELECT correct FROM trials WHERE session_id = ? AND correct IS NOT NULL", (lab_db["second"],)
+    ).fetchall()
     assert by_box["rack-1"]["accuracy"] == sum(r[0] for r in scored) / len(scored)
     assert by_box["rack-2"]["accuracy"] is None  # autoshaping has no correct choice
-    t, rule = conn.execute("SELECT t, rule FROM rule_firings WHERE session_id = ?"
-                           " ORDER BY t DESC LIMIT 1", (lab_db["second"],)).fetchone()
+    t, rule = conn.execute(
+        "SELECT t, rule FROM rule_firings WHERE session_id = ? ORDER BY t DESC LIMIT 1", (lab_db["second"],)
+    ).fetchone()
     assert by_box["rack-1"]["last_rule"]["t"] == t
     assert by_box["rack-1"]["last_rule"]["text"].startswith(f"{rule}: ")
     assert by_box["rack-2"]["last_rule"] is None
@@ -46,25 +46,25 @@ def test_session_trials_estimates_and_events(read_only, lab_db):
     conn = _db(lab_db)
     detail = read_only.get(f"/api/sessions/{sid}").json()
     assert detail["session"]["id"] == sid and detail["session"]["box"] == "rack-1"
-    stored_blocks = [r[0] for r in conn.execute(
-        "SELECT block FROM blocks WHERE session_id = ? ORDER BY block_index", (sid,))]
+    stored_blocks = [
+        r[0] for r in conn.execute("SELECT block FROM blocks WHERE session_id = ? ORDER BY block_index", (sid,))
+    ]
     assert [b["block"] for b in detail["blocks"]] == stored_blocks
     assert detail["status"]["block"] == stored_blocks[-1]
     trials = read_only.get(f"/api/sessions/{sid}/trials").json()
     assert [t["trial"] for t in trials] == list(range(1, detail["session"]["trials"] + 1))
     assert read_only.get(f"/api/sessions/{sid}/trials?after=5").json()[0]["trial"] == 6
     estimates = read_only.get(f"/api/sessions/{sid}/estimates").json()
-    stored = [r[0] for r in conn.execute(
-        "SELECT trial FROM estimates WHERE session_id = ? ORDER BY trial", (sid,))]
+    stored = [r[0] for r in conn.execute("SELECT trial FROM estimates WHERE session_id = ? ORDER BY trial", (sid,))]
     assert [e["trial"] for e in estimates] == stored and len(stored) >= len(trials) - 1
     assert set(estimates[-1]["data"]["params"]) == {"alpha", "beta"}
-    firings = conn.execute("SELECT t, rule FROM rule_firings WHERE session_id = ? ORDER BY t",
-                           (sid,)).fetchall()
+    firings = conn.execute("SELECT t, rule FROM rule_firings WHERE session_id = ? ORDER BY t", (sid,)).fetchall()
     assert firings, "the reversal protocol's rules fire within a 12-minute session"
     assert [(f["t"], f["rule"]) for f in detail["rule_firings"]] == [tuple(f) for f in firings]
     tail = read_only.get(f"/api/sessions/{sid}/events?tail=5").json()
-    last_ids = [r[0] for r in conn.execute(
-        "SELECT id FROM events WHERE session_id = ? ORDER BY id DESC LIMIT 5", (sid,))]
+    last_ids = [
+        r[0] for r in conn.execute("SELECT id FROM events WHERE session_id = ? ORDER BY id DESC LIMIT 5", (sid,))
+    ]
     assert [e["id"] for e in tail] == sorted(last_ids)
     assert read_only.get(f"/api/sessions/{lab_db['pav']}/estimates").json() == []
 
@@ -88,8 +88,8 @@ def test_animal_history_across_sessions(read_only, lab_db):
     conn = _db(lab_db)
     for session in body["sessions"]:
         last_block = conn.execute(
-            "SELECT block FROM blocks WHERE session_id = ? ORDER BY block_index DESC LIMIT 1",
-            (session["id"],)).fetchone()[0]
+            "SELECT block FROM blocks WHERE session_id = ? ORDER BY block_index DESC LIMIT 1", (session["id"],)
+        ).fetchone()[0]
         assert session["stage"] == last_block
         assert set(session["fitted"]["params"]) == {"alpha", "beta"}
         low, mean, high = (session["fitted"]["params"]["alpha"][k] for k in ("low", "mean", "high"))
@@ -108,9 +108,15 @@ def test_missing_things_are_404_with_short_messages(read_only):
 def test_openapi_schema_lists_the_api(read_only):
     schema = read_only.get("/api/openapi.json").json()
     paths = schema["paths"]
-    for path in ("/api/boxes", "/api/sessions/{session_id}", "/api/sessions/{session_id}/trials",
-                 "/api/sessions/{session_id}/estimates", "/api/animals/{animal}",
-                 "/api/sessions/{session_id}/trials.csv", "/api/sessions/{session_id}/events.csv"):
+    for path in (
+        "/api/boxes",
+        "/api/sessions/{session_id}",
+        "/api/sessions/{session_id}/trials",
+        "/api/sessions/{session_id}/estimates",
+        "/api/animals/{animal}",
+        "/api/sessions/{session_id}/trials.csv",
+        "/api/sessions/{session_id}/events.csv",
+    ):
         assert "get" in paths[path], path
     tile = schema["components"]["schemas"]["BoxTile"]["properties"]
     assert {"box", "animal", "trial", "rewards", "accuracy", "alarms", "link"} <= set(tile)
@@ -120,8 +126,9 @@ def test_pages_render_with_plots(read_only, lab_db):
     overview = read_only.get("/")
     assert overview.status_code == 200
     assert overview.text.count('class="tile"') == 3
-    assert 'src="/assets/vigil.js?v=' in overview.text and "http" not in overview.text.split(
-        "<main>")[0].replace('http://www.w3.org', '')  # nothing fetched from elsewhere
+    assert 'src="/assets/vigil.js?v=' in overview.text and "http" not in overview.text.split("<main>")[0].replace(
+        "http://www.w3.org", ""
+    )  # nothing fetched from elsewhere
     session = read_only.get(f"/sessions/{lab_db['second']}")
     assert session.status_code == 200
     # cumulative record, choices, two parameters with bands, exploration, timeline
@@ -148,7 +155,7 @@ def test_live_updates_stream_the_board(read_only):
             if line.startswith("data:"):
                 break
     assert "event: board" in lines
-    board = json.loads(lines[-1][len("data:"):])
+    board = json.loads(lines[-1][len("data:") :])
     assert {t["box"] for t in board["tiles"]} == set(board["boxes"])
     assert board["tiles"][0]["shown"]["trial"].isdigit()
     # the polling fallback gets the same payload
@@ -171,13 +178,20 @@ def test_cumulative_record_counts_every_response_and_marks_every_pellet(lab_db):
     pulses = queries.session_events(conn, sid, kind="pulse")
     trials = queries.session_trials(conn, sid)
     end_t = max(e["t"] for e in inputs + pulses)
-    svg = plots.cumulative_record(session=session, inputs=inputs, pulses=pulses, trials=trials,
-                                  blocks=[], firings=[], pauses=[], end_t=end_t)
+    svg = plots.cumulative_record(
+        session=session, inputs=inputs, pulses=pulses, trials=trials, blocks=[], firings=[], pauses=[], end_t=end_t
+    )
     root = ET.fromstring(svg)
     # counted straight from the events table: lever presses (onsets) per lever
-    counts = dict(sqlite3.connect(lab_db["path"]).execute(
-        "SELECT name, count(*) FROM events WHERE session_id = ? AND kind = 'input' AND value > 0"
-        " AND name LIKE 'press%' GROUP BY name ORDER BY name", (sid,)).fetchall())
+    counts = dict(
+        sqlite3.connect(lab_db["path"])
+        .execute(
+            "SELECT name, count(*) FROM events WHERE session_id = ? AND kind = 'input' AND value > 0"
+            " AND name LIKE 'press%' GROUP BY name ORDER BY name",
+            (sid,),
+        )
+        .fetchall()
+    )
     assert list(counts) == plots.response_inputs(session["settings"], inputs, trials)
     geometry = Plot((0.0, end_t / 60), (0.0, max(counts.values()) * 1.05), title="")
     lines = [el for el in root.iter(svg_ns + "polyline") if "ln" in el.get("class").split()]

@@ -9,16 +9,16 @@ import tempfile
 from pathlib import Path
 
 import pytest
-
 from chromium_pipe import Chromium, chromium_path
 from processes import Vigil
 
 pytestmark = pytest.mark.skipif(
-    chromium_path() is None,
-    reason="chromium is not installed (Debian package 'chromium'; .ci/run installs it)")
+    chromium_path() is None, reason="chromium is not installed (Debian package 'chromium'; .ci/run installs it)"
+)
 
-TRIALS_SHOWN = ("[...document.querySelectorAll('[data-f=trial]')]"
-                ".reduce((sum, cell) => sum + Number(cell.textContent), 0)")
+TRIALS_SHOWN = (
+    "[...document.querySelectorAll('[data-f=trial]')].reduce((sum, cell) => sum + Number(cell.textContent), 0)"
+)
 
 
 @pytest.fixture
@@ -30,8 +30,9 @@ def shots() -> Path:
 
 
 def test_overview_updates_live_and_session_page_has_plots(tmp_path, shots):
-    demo = Vigil(["demo", "--boxes", "4", "--port", "0", "--db", str(tmp_path / "demo.sqlite"),
-                  "--minutes", "3"], tmp_path)
+    demo = Vigil(
+        ["demo", "--boxes", "4", "--port", "0", "--db", str(tmp_path / "demo.sqlite"), "--minutes", "3"], tmp_path
+    )
     browser = None
     try:
         url = demo.wait_for("status page: ")
@@ -46,25 +47,26 @@ def test_overview_updates_live_and_session_page_has_plots(tmp_path, shots):
         assert after > before
         assert browser.evaluate("window.vigilMark") == "same page"
         assert browser.evaluate("document.getElementById('feed').textContent").strip() == (
-            "· live updates")  # server-sent events, not the polling fallback
+            "· live updates"
+        )  # server-sent events, not the polling fallback
         # the operator pauses a box from its tile: token typed once, then the button
         box = browser.evaluate(
             "(() => { document.getElementById('optoken').value = " + repr(token) + ";"
             " const tile = document.querySelector('.tile[data-state=\"running\"]');"
             " tile.querySelector('button[data-act=\"pause\"]').click();"
-            " return tile.dataset.box; })()")
+            " return tile.dataset.box; })()"
+        )
         paused_tile = f"document.querySelector('.tile[data-box=\"{box}\"]')"
         browser.wait_for(f"{paused_tile}.dataset.state === 'paused'", timeout=15)
-        assert browser.evaluate("document.getElementById('opsay').textContent") == (
-            f"{box}: pause requested")
-        assert browser.evaluate(
-            f"{paused_tile}.querySelector('button[data-act=\"resume\"]').hidden") is False
+        assert browser.evaluate("document.getElementById('opsay').textContent") == (f"{box}: pause requested")
+        assert browser.evaluate(f"{paused_tile}.querySelector('button[data-act=\"resume\"]').hidden") is False
         overview_png = browser.screenshot(shots / "overview.png")
 
         busiest = browser.evaluate(
             "[...document.querySelectorAll('.tile')].map(t => [Number("
             "t.querySelector('[data-f=trial]').textContent), t.querySelector('footer a')"
-            ".getAttribute('href')]).sort((a, b) => b[0] - a[0])[0][1]")
+            ".getAttribute('href')]).sort((a, b) => b[0] - a[0])[0][1]"
+        )
         assert busiest.startswith("/sessions/")
         browser.navigate(url.rstrip("/") + busiest)
         # cumulative record and timeline at least (choices and estimates where the protocol has them)

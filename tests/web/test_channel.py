@@ -7,22 +7,37 @@ import asyncio
 import socket
 
 import httpx
+from web_samples import OPERATOR
 
 from server.web import create_app
 from server.web.channel import ChannelError, decode, encode
 from server.web.page_end import LatestFeed, open_lab_view
 
-from web_samples import OPERATOR
-
 
 def facts(**changes) -> dict:
     """One box's facts as the lab sends them (`tiles.facts_of_run`)."""
     base = {
-        "box": "rig-7", "animal": "RV-0101", "protocol": "two-lever reversal", "session_id": 3,
-        "finished": False, "ended_at": None, "paused": False, "block": "initial",
-        "step": "offer", "trial": 12, "trials_done": 11, "rewards": 8, "scored": 10,
-        "correct": 7, "limit_s": 3600.0, "last_input_t": 95.0, "link_lost": False,
-        "last_rule": None, "end_reason": None, "cap_reached": False, "rule_alarm": None,
+        "box": "rig-7",
+        "animal": "RV-0101",
+        "protocol": "two-lever reversal",
+        "session_id": 3,
+        "finished": False,
+        "ended_at": None,
+        "paused": False,
+        "block": "initial",
+        "step": "offer",
+        "trial": 12,
+        "trials_done": 11,
+        "rewards": 8,
+        "scored": 10,
+        "correct": 7,
+        "limit_s": 3600.0,
+        "last_input_t": 95.0,
+        "link_lost": False,
+        "last_rule": None,
+        "end_reason": None,
+        "cap_reached": False,
+        "rule_alarm": None,
     }
     base.update(changes)
     return base
@@ -39,8 +54,7 @@ class Clock:
 def test_times_tick_on_the_page_clock_between_feeds():
     clock = Clock(5000.0)  # the page's own monotonic clock: its origin means nothing here
     feed = LatestFeed(clock)
-    ended = facts(box="rig-8", session_id=4, finished=True, ended_at=1800.0, step=None,
-                  end_reason="session time limit")
+    ended = facts(box="rig-8", session_id=4, finished=True, ended_at=1800.0, step=None, end_reason="session time limit")
     feed.take({"t": 100.0, "boxes": [facts(), ended]})  # sent at session time 100 s
     live, done = feed.tiles(quiet_after_s=300.0)
     assert (live["elapsed_s"], live["since_input_s"], live["remaining_s"]) == (100.0, 5.0, 3500.0)

@@ -10,7 +10,6 @@ import urllib.error
 import urllib.request
 
 import pytest
-
 from processes import Vigil, page_process_of, wait_exited
 
 
@@ -24,8 +23,7 @@ def _get(url: str) -> tuple[int, str]:
 
 def test_demo_prints_its_url_and_token_and_keeps_its_own_ctrl_c(tmp_path):
     db = tmp_path / "demo.sqlite"
-    demo = Vigil(["demo", "--boxes", "1", "--port", "0", "--db", str(db), "--minutes", "3"],
-                 tmp_path)
+    demo = Vigil(["demo", "--boxes", "1", "--port", "0", "--db", str(db), "--minutes", "3"], tmp_path)
     try:
         url = demo.wait_for("status page: ")
         token = demo.wait_for("operator token for this run (pause, stop, notes): ")
@@ -52,8 +50,7 @@ def test_demo_prints_its_url_and_token_and_keeps_its_own_ctrl_c(tmp_path):
     assert code == 0, demo.lines
     assert any("stopped by signal (SIGINT)" in line for line in demo.lines), demo.lines
     conn = sqlite3.connect(db)
-    assert conn.execute("SELECT end_reason FROM sessions").fetchall() == [
-        ("stopped by signal (SIGINT)",)]
+    assert conn.execute("SELECT end_reason FROM sessions").fetchall() == [("stopped by signal (SIGINT)",)]
     conn.close()
 
 
@@ -63,8 +60,7 @@ def test_serve_is_read_only_and_stops_on_sigterm(tmp_path, lab_db):
         url = serve.wait_for("status page (read-only): ")
         status, body = _get(url + "api/boxes")
         assert status == 200 and {t["box"] for t in json.loads(body)} >= {"rack-1", "rack-2"}
-        request = urllib.request.Request(url + f"api/sessions/{lab_db['second']}/stop",
-                                         method="POST")
+        request = urllib.request.Request(url + f"api/sessions/{lab_db['second']}/stop", method="POST")
         try:
             urllib.request.urlopen(request, timeout=10)
             code = 200
@@ -77,8 +73,11 @@ def test_serve_is_read_only_and_stops_on_sigterm(tmp_path, lab_db):
 
 
 def test_serve_refuses_the_lan_without_a_viewer_token_and_a_missing_database(tmp_path, lab_db):
-    lan = Vigil(["serve", "--db", str(lab_db["path"]), "--host", "0.0.0.0", "--port", "0"],
-                tmp_path, env={"VIGIL_VIEWER_TOKEN": ""})
+    lan = Vigil(
+        ["serve", "--db", str(lab_db["path"]), "--host", "0.0.0.0", "--port", "0"],
+        tmp_path,
+        env={"VIGIL_VIEWER_TOKEN": ""},
+    )
     assert lan.finish(None) == 1
     assert "VIGIL_VIEWER_TOKEN" in lan.lines[-1]
     missing = Vigil(["serve", "--db", str(tmp_path / "none.sqlite"), "--port", "0"], tmp_path)

@@ -14,6 +14,8 @@ import sqlite3
 from pathlib import Path
 
 import httpx
+from web_samples import EVIL_BOX, OPERATOR, lab_config, until_tile
+from web_samples import until as _until
 
 from server.lab import Lab
 from server.lab_config import load_lab
@@ -21,8 +23,6 @@ from server.store.writer import Store
 from server.web import create_app
 from server.web.lab_end import FeedBuilder, open_lab_end
 from server.web.page_end import open_lab_view
-
-from web_samples import EVIL_BOX, OPERATOR, lab_config, until as _until, until_tile
 
 CLIENT = ("10.9.8.7", 40000)  # where the test's requests come from (the stored origin)
 
@@ -58,9 +58,12 @@ async def run_with_lab(tmp_path: Path, body) -> Path:
 
 def _events(db: Path, session_id: int, kind: str) -> list[dict]:
     conn = sqlite3.connect(db)
-    found = [{"t": t, "detail": json.loads(d) if d else None} for t, d in conn.execute(
-        "SELECT t, detail FROM events WHERE session_id = ? AND kind = ? ORDER BY id",
-        (session_id, kind))]
+    found = [
+        {"t": t, "detail": json.loads(d) if d else None}
+        for t, d in conn.execute(
+            "SELECT t, detail FROM events WHERE session_id = ? AND kind = ? ORDER BY id", (session_id, kind)
+        )
+    ]
     conn.close()
     return found
 
@@ -92,33 +95,32 @@ def test_live_tiles_and_operator_controls(tmp_path):
             assert not run.session.paused
             done = await web.post(url, headers={"X-Vigil-Token": OPERATOR})
             assert done.status_code == 200
-            assert done.json() == {"session_id": sid, "box": EVIL_BOX, "action": "pause",
-                                   "origin": CLIENT[0]}
+            assert done.json() == {"session_id": sid, "box": EVIL_BOX, "action": "pause", "origin": CLIENT[0]}
             await _until(lambda: run.session.paused)
             await until_tile(web, sid, lambda t: t["state"] == "paused")
             page = (await web.get(f"/sessions/{sid}")).text
             assert f'action="/sessions/{sid}/control"' in page  # the form, for a running session
 
             # the session page's form: token and action as form fields, then back to the page
-            resumed = await web.post(f"/sessions/{sid}/control",
-                                     data={"token": OPERATOR, "action": "resume"})
+            resumed = await web.post(f"/sessions/{sid}/control", data={"token": OPERATOR, "action": "resume"})
             assert resumed.status_code == 303
             assert resumed.headers["location"] == f"/sessions/{sid}?done=resumed"
             await _until(lambda: not run.session.paused)
-            wrong_form = await web.post(f"/sessions/{sid}/control",
-                                        data={"token": "guess", "action": "stop"})
+            wrong_form = await web.post(f"/sessions/{sid}/control", data={"token": "guess", "action": "stop"})
             assert wrong_form.status_code == 403 and not run.session.finished
 
-            note = await web.post(f"/api/sessions/{sid}/annotations",
-                                  json={"text": "rat groomed at the lever for a minute"},
-                                  headers={"X-Vigil-Token": OPERATOR})
+            note = await web.post(
+                f"/api/sessions/{sid}/annotations",
+                json={"text": "rat groomed at the lever for a minute"},
+                headers={"X-Vigil-Token": OPERATOR},
+            )
             assert note.status_code == 201 and note.json()["origin"] == CLIENT[0]
-            empty = await web.post(f"/api/sessions/{sid}/annotations", json={"text": ""},
-                                   headers={"X-Vigil-Token": OPERATOR})
+            empty = await web.post(
+                f"/api/sessions/{sid}/annotations", json={"text": ""}, headers={"X-Vigil-Token": OPERATOR}
+            )
             assert empty.status_code == 422
 
-            assert (await web.post("/api/sessions/999/stop",
-                                   headers={"X-Vigil-Token": OPERATOR})).status_code == 404
+            assert (await web.post("/api/sessions/999/stop", headers={"X-Vigil-Token": OPERATOR})).status_code == 404
             stopped = await web.post(f"/api/sessions/{sid}/stop", headers={"X-Vigil-Token": OPERATOR})
             assert stopped.status_code == 200
             await _until(lambda: run.session.finished)

@@ -18,15 +18,14 @@ from pathlib import Path
 
 import httpx
 import pytest
+from processes import Vigil, has_exited, page_process_of, wait_exited
+from web_samples import EVIL_BOX, OPERATOR, lab_config, tile_of, until, until_tile
 
 from server.lab import Lab
 from server.lab_config import load_lab
 from server.store.writer import Store
 from server.web.launch import run_lab_with_page
 from server.web.page_process import start_page
-
-from processes import Vigil, has_exited, page_process_of, wait_exited
-from web_samples import EVIL_BOX, OPERATOR, lab_config, tile_of, until, until_tile
 
 HERE = Path(__file__).resolve().parent
 TOKEN = {"X-Vigil-Token": OPERATOR}
@@ -38,9 +37,17 @@ async def run_with_page(tmp_path: Path, body, said: list[str]) -> int:
     db = tmp_path / "live.sqlite"
     store = Store.open(db)
     lab = Lab(load_lab(lab_config(tmp_path)), store, say=said.append, in_process_boxes=True)
-    page = await start_page(lab, db, host="127.0.0.1", port=0, operator_token=OPERATOR,
-                            viewer_token=None, lab_name="Bench rig 5", quiet_after_s=300.0,
-                            say=said.append)
+    page = await start_page(
+        lab,
+        db,
+        host="127.0.0.1",
+        port=0,
+        operator_token=OPERATOR,
+        viewer_token=None,
+        lab_name="Bench rig 5",
+        quiet_after_s=300.0,
+        say=said.append,
+    )
     task = asyncio.create_task(lab.run(minutes=3))
     try:
         await until(lambda: len(lab.runs) == 2)
@@ -97,14 +104,14 @@ def test_page_serves_from_its_own_process_with_live_tiles_and_controls(tmp_path)
             assert not run.session.paused
             done = await web.post(url, headers=TOKEN)
             assert done.status_code == 200
-            assert done.json() == {"session_id": sid, "box": EVIL_BOX, "action": "pause",
-                                   "origin": "127.0.0.1"}
+            assert done.json() == {"session_id": sid, "box": EVIL_BOX, "action": "pause", "origin": "127.0.0.1"}
             await until(lambda: run.session.paused)  # applied by the lab, in this process
             await until_tile(web, sid, lambda t: t["state"] == "paused")
             page_html = (await web.get(f"/sessions/{sid}")).text
             assert f'action="/sessions/{sid}/control"' in page_html
-            note = await web.post(f"/api/sessions/{sid}/annotations", headers=TOKEN,
-                                  json={"text": "checked the feeder by hand"})
+            note = await web.post(
+                f"/api/sessions/{sid}/annotations", headers=TOKEN, json={"text": "checked the feeder by hand"}
+            )
             assert note.status_code == 201
             seen["note"] = note.json()["id"]
             assert (await web.post("/api/sessions/999/stop", headers=TOKEN)).status_code == 404
@@ -128,8 +135,7 @@ def test_page_serves_from_its_own_process_with_live_tiles_and_controls(tmp_path)
     asyncio.run(run_with_page(tmp_path, body, said))
     assert seen["code"] == 0  # it exited by itself on EOF, not killed after the wait
     conn = sqlite3.connect(tmp_path / "live.sqlite")
-    note = conn.execute("SELECT session_id, origin, text FROM annotations WHERE id = ?",
-                        (seen["note"],)).fetchone()
+    note = conn.execute("SELECT session_id, origin, text FROM annotations WHERE id = ?", (seen["note"],)).fetchone()
     ended = conn.execute("SELECT end_reason FROM sessions WHERE id = ?", (seen["sid"],)).fetchone()
     conn.close()
     assert note == (seen["sid"], "127.0.0.1", "checked the feeder by hand")
@@ -152,7 +158,8 @@ def test_a_dead_page_leaves_the_sessions_running(tmp_path):
     code = asyncio.run(run_with_page(tmp_path, body, said))
     assert code == -signal.SIGKILL
     assert [line for line in said if "status page" in line] == [
-        "warning: status page stopped (its process exited with code -9); the sessions go on"]
+        "warning: status page stopped (its process exited with code -9); the sessions go on"
+    ]
 
 
 def _get(url: str) -> int:
@@ -165,8 +172,7 @@ def _get(url: str) -> int:
 
 @pytest.mark.parametrize("sig", [signal.SIGTERM, signal.SIGKILL], ids=["SIGTERM", "SIGKILL"])
 def test_the_page_exits_when_the_lab_ends_however_it_ends(tmp_path, sig):
-    lab = Vigil([str(lab_config(tmp_path)), str(tmp_path / "lab.sqlite")], tmp_path,
-                script=HERE / "lab_with_page.py")
+    lab = Vigil([str(lab_config(tmp_path)), str(tmp_path / "lab.sqlite")], tmp_path, script=HERE / "lab_with_page.py")
     try:
         url = lab.wait_for("status page: ")
         assert _get(url + "api/boxes") == 200
@@ -180,8 +186,9 @@ def test_the_page_exits_when_the_lab_ends_however_it_ends(tmp_path, sig):
     with pytest.raises(urllib.error.URLError):
         urllib.request.urlopen(url, timeout=5)
     if sig == signal.SIGTERM:  # the lab ended its sessions cleanly first
-        assert code == 0 and lab.lines[-1] == (
-            "ended: stopped by signal (SIGTERM), stopped by signal (SIGTERM)"), lab.lines
+        assert code == 0 and lab.lines[-1] == ("ended: stopped by signal (SIGTERM), stopped by signal (SIGTERM)"), (
+            lab.lines
+        )
     else:
         assert code == -signal.SIGKILL
 
@@ -196,13 +203,14 @@ def test_a_busy_port_is_one_warning_and_the_sessions_run_without_a_page(tmp_path
         store = Store.open(tmp_path / "busy.sqlite")
         lab = Lab(config, store, say=said.append, in_process_boxes=True)
         try:
-            runs = asyncio.run(run_lab_with_page(lab, tmp_path / "busy.sqlite", config.web,
-                                                 minutes=0.02, port=port, say=said.append))
+            runs = asyncio.run(
+                run_lab_with_page(lab, tmp_path / "busy.sqlite", config.web, minutes=0.02, port=port, say=said.append)
+            )
         finally:
             store.close()
     assert [line for line in said if "status page" in line] == [
-        f"warning: status page not started: cannot listen on 127.0.0.1:{port}: "
-        "the port is already in use"]
+        f"warning: status page not started: cannot listen on 127.0.0.1:{port}: the port is already in use"
+    ]
     assert [run.ended.reason for run in runs] == ["time limit", "time limit"]
     with pytest.raises(AssertionError, match="no status page process"):
         page_process_of(os.getpid())

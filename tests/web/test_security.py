@@ -6,10 +6,10 @@ import html
 from html.parser import HTMLParser
 from urllib.parse import quote
 
+from web_samples import EVIL_ANIMAL, EVIL_BOX, OPERATOR, VIEWER, TestClient
+
 from server.web import create_app
 from server.web.auth import same
-
-from web_samples import EVIL_ANIMAL, EVIL_BOX, OPERATOR, VIEWER, TestClient
 
 
 def test_viewer_token_gates_reading(guarded):
@@ -38,23 +38,28 @@ def test_login_gives_a_reading_cookie_that_is_not_the_token(guarded):
 
 
 def test_a_token_in_the_url_is_refused(guarded, read_only):
-    for url in ("/api/boxes?token=" + VIEWER, "/?X-Vigil-Token=" + VIEWER,
-                "/api/sessions/1/trials?after=2&viewer_token=x"):
+    for url in (
+        "/api/boxes?token=" + VIEWER,
+        "/?X-Vigil-Token=" + VIEWER,
+        "/api/sessions/1/trials?after=2&viewer_token=x",
+    ):
         response = guarded.get(url, headers={"X-Vigil-Token": VIEWER})
         assert response.status_code == 400, url
     assert read_only.get("/api/boxes?TOKEN=1").status_code == 400
     assert read_only.post("/login?token=x").status_code == 400
     # other query parameters are fine
-    assert guarded.get("/api/sessions/1/trials?after=2",
-                       headers={"X-Vigil-Token": VIEWER}).status_code == 200
+    assert guarded.get("/api/sessions/1/trials?after=2", headers={"X-Vigil-Token": VIEWER}).status_code == 200
 
 
 def test_read_only_serve_exposes_no_control(read_only, lab_db):
     sid = lab_db["second"]
-    for path in (f"/api/sessions/{sid}/stop", f"/api/sessions/{sid}/pause",
-                 f"/api/sessions/{sid}/annotations", f"/sessions/{sid}/control"):
-        response = read_only.post(path, headers={"X-Vigil-Token": OPERATOR},
-                                  data={"token": OPERATOR, "action": "stop"})
+    for path in (
+        f"/api/sessions/{sid}/stop",
+        f"/api/sessions/{sid}/pause",
+        f"/api/sessions/{sid}/annotations",
+        f"/sessions/{sid}/control",
+    ):
+        response = read_only.post(path, headers={"X-Vigil-Token": OPERATOR}, data={"token": OPERATOR, "action": "stop"})
         assert response.status_code in (404, 405), path
     schema = read_only.get("/api/openapi.json").json()
     assert not any("post" in ops for ops in schema["paths"].values())
@@ -63,8 +68,7 @@ def test_read_only_serve_exposes_no_control(read_only, lab_db):
     # and even with an operator token configured, no lab means no controls
     app = create_app(lab_db["path"], operator_token=OPERATOR)
     with TestClient(app) as client:
-        assert client.post(f"/api/sessions/{sid}/stop",
-                           headers={"X-Vigil-Token": OPERATOR}).status_code in (404, 405)
+        assert client.post(f"/api/sessions/{sid}/stop", headers={"X-Vigil-Token": OPERATOR}).status_code in (404, 405)
 
 
 def _pages(client, lab_db):

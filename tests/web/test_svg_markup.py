@@ -5,7 +5,8 @@ from __future__ import annotations
 import math
 import xml.etree.ElementTree as ET
 
-from hypothesis import given, strategies as st
+from hypothesis import given
+from hypothesis import strategies as st
 
 from server.web.markup import Safe, el, esc
 from server.web.svg import Plot, nice_step, nice_ticks, tick_texts
@@ -24,8 +25,9 @@ def test_text_and_attributes_are_escaped():
 
 # Characters XML allows (control characters other than tab and newline never are, escaped
 # or not), with the ones that need escaping made likely.
-XML_TEXT = st.text(st.characters(exclude_categories=("Cs", "Cc"), exclude_characters="\ufffe\uffff")
-                   | st.sampled_from("\t\n<>&\"'"))
+XML_TEXT = st.text(
+    st.characters(exclude_categories=("Cs", "Cc"), exclude_characters="\ufffe\uffff") | st.sampled_from("\t\n<>&\"'")
+)
 
 
 @given(XML_TEXT)

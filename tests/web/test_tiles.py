@@ -2,22 +2,29 @@
 
 from __future__ import annotations
 
-from datetime import datetime, timedelta, timezone
+from datetime import UTC, datetime, timedelta
+
+from web_samples import REVERSAL, TestClient, record_session
 
 from server.engine.records import EventLogged
 from server.store.writer import Store
 from server.web import create_app
 from server.web.board import Board, ReadOnlyStore
-from server.web.tiles import alarms_for, ago_text, clock_text, ended_early, rule_text, shown
-
-from web_samples import REVERSAL, TestClient, record_session
+from server.web.tiles import ago_text, alarms_for, clock_text, ended_early, rule_text, shown
 
 QUIET = 300.0
 
 
 def kinds(**kw):
-    base = dict(running=True, paused=False, link_lost=False, silent_s=10.0, cap_reached=False,
-                end_reason=None, quiet_after_s=QUIET)
+    base = dict(
+        running=True,
+        paused=False,
+        link_lost=False,
+        silent_s=10.0,
+        cap_reached=False,
+        end_reason=None,
+        quiet_after_s=QUIET,
+    )
     base.update(kw)
     return [a.kind for a in alarms_for(**base)]
 
@@ -36,17 +43,32 @@ def test_each_alarm_has_its_rule():
     assert kinds(running=False, end_reason="error: ValueError: x") == ["ended_early"]
     assert kinds(rule_alarm="accuracy fell") == ["rule_alarm"]
     assert kinds(running=False, end_reason="session time limit", rule_alarm="x") == []
-    text = alarms_for(running=True, paused=False, link_lost=False, silent_s=620.0,
-                      cap_reached=False, end_reason=None, quiet_after_s=QUIET)[0].text
+    text = alarms_for(
+        running=True,
+        paused=False,
+        link_lost=False,
+        silent_s=620.0,
+        cap_reached=False,
+        end_reason=None,
+        quiet_after_s=QUIET,
+    )[0].text
     assert text == "no response for 10 min"
 
 
 def test_normal_ends_are_not_early():
-    for reason in ("session time limit", "time limit", "trial limit reached",
-                   "protocol complete (reversed: streak of 8)"):
+    for reason in (
+        "session time limit",
+        "time limit",
+        "trial limit reached",
+        "protocol complete (reversed: streak of 8)",
+    ):
         assert not ended_early(reason), reason
-    for reason in ("stopped by signal (SIGINT)", "stopped: program shutting down",
-                   "interrupted", "time limits are odd"):
+    for reason in (
+        "stopped by signal (SIGINT)",
+        "stopped: program shutting down",
+        "interrupted",
+        "time limits are odd",
+    ):
         assert ended_early(reason), reason
 
 
@@ -54,8 +76,7 @@ def test_texts():
     assert clock_text(59.9) == "0:59" and clock_text(3725) == "1:02:05" and clock_text(None) == "–"
     assert ago_text(None) == "none yet" and ago_text(12) == "12 s ago" and ago_text(600) == "10 min ago"
     assert rule_text("flip", [{"reverse": ["west", "east"]}]) == "flip: reverse west/east"
-    assert rule_text("pace", [{"scale_iti": 1.5, "scale_now": 2.25}]) == (
-        "pace: scale_iti 1.5; scale_now 2.25")
+    assert rule_text("pace", [{"scale_iti": 1.5, "scale_now": 2.25}]) == ("pace: scale_iti 1.5; scale_now 2.25")
     assert rule_text("quiet", []) == "quiet"
 
 
@@ -63,15 +84,24 @@ def test_a_running_session_in_the_store_raises_its_alarms(tmp_path):
     """A session still open in the store, read an hour after it started: it has been silent
     for longer than the limit, its link was lost, and a rule raised an alarm."""
     db = tmp_path / "open.sqlite"
-    started = datetime.now(timezone.utc) - timedelta(hours=1)
+    started = datetime.now(UTC) - timedelta(hours=1)
     with Store.open(db) as store:
-        sid = record_session(store, box="rack-7", animal="RN-0701", protocol_path=REVERSAL,
-                             agent="q_learner", seed=1, end=False, minutes=5,
-                             started_at=started.isoformat(), alpha=0.3, beta=5.0)
+        sid = record_session(
+            store,
+            box="rack-7",
+            animal="RN-0701",
+            protocol_path=REVERSAL,
+            agent="q_learner",
+            seed=1,
+            end=False,
+            minutes=5,
+            started_at=started.isoformat(),
+            alpha=0.3,
+            beta=5.0,
+        )
         store.write(sid, EventLogged(290.0, "link_lost", "serial", detail={"why": "unplugged"}))
         store.write(sid, EventLogged(295.0, "alarm", "rule", detail={"message": "too few presses"}))
-    board = Board(store=ReadOnlyStore(db), quiet_after_s=QUIET,
-                  wall_clock=lambda: started + timedelta(hours=1))
+    board = Board(store=ReadOnlyStore(db), quiet_after_s=QUIET, wall_clock=lambda: started + timedelta(hours=1))
     tile = board.snapshot().tiles[0]
     assert tile["state"] == "running" and abs(tile["elapsed_s"] - 3600.0) < 1e-3
     assert tile["remaining_s"] is None or tile["remaining_s"] >= 0

@@ -4,22 +4,24 @@ without them; errors name file:line:col like every config error."""
 from __future__ import annotations
 
 import pytest
+from web_samples import REPO
 
 from server.lab_config import WebSettings, is_loopback, load_lab
 from server.protocol.problems import InvalidFile
 
-from web_samples import REPO
-
 
 def write(tmp_path, web: str):
     path = tmp_path / "lab.yaml"
-    path.write_text(f"""lab: Room 9
+    path.write_text(
+        f"""lab: Room 9
 boxes:
   - name: b1
     animal: A-1
-    protocol: {REPO / 'protocols' / 'reversal.yaml'}
+    protocol: {REPO / "protocols" / "reversal.yaml"}
     emulate: {{agent: random}}
-{web}""", encoding="utf-8")
+{web}""",
+        encoding="utf-8",
+    )
     return path
 
 
@@ -35,13 +37,18 @@ def test_defaults_listen_on_this_computer_only(tmp_path):
 
 
 def test_web_mapping_is_read(tmp_path):
-    web = load_lab(write(tmp_path, """web:
+    web = load_lab(
+        write(
+            tmp_path,
+            """web:
   host: 0.0.0.0
   port: 9001
   operator_token: a-long-operator-secret
   viewer_token: a-long-viewer-secret
   no_response_minutes: 2.5
-""")).web
+""",
+        )
+    ).web
     assert web == WebSettings("0.0.0.0", 9001, "a-long-operator-secret", "a-long-viewer-secret", 2.5)
 
 
@@ -57,8 +64,7 @@ def test_bad_values_are_all_reported(tmp_path):
     path = write(tmp_path, "web:\n  port: 70000\n  operator_token: short\n  viewr_token: x\n")
     found = problems(path)
     assert any(":8:9: web.port: expected" in p for p in found)
-    assert any(":9:19: web.operator_token: expected at least 16 characters, found 5" in p
-               for p in found)
+    assert any(":9:19: web.operator_token: expected at least 16 characters, found 5" in p for p in found)
     assert any("viewr_token" in p and "viewer_token" in p for p in found)  # did-you-mean
 
 

@@ -48,19 +48,29 @@ def wiring_settings(protocol) -> dict:
     }
 
 
-def record_session(store: Store, *, box: str, animal: str, protocol_path: Path, agent: str,
-                   seed: int, minutes: float = 12.0, estimates: bool = False,
-                   started_at: str = STARTED, end: bool = True, **agent_options) -> int:
+def record_session(
+    store: Store,
+    *,
+    box: str,
+    animal: str,
+    protocol_path: Path,
+    agent: str,
+    seed: int,
+    minutes: float = 12.0,
+    estimates: bool = False,
+    started_at: str = STARTED,
+    end: bool = True,
+    **agent_options,
+) -> int:
     """Run one session in virtual time, closed loop as the lab runs it (estimator and rules
     when asked for estimates), and store every record; returns the session id. With
     `end=False` the session's end is not stored, as if it were still running."""
     protocol = load_protocol(protocol_path)
-    session = build_session(protocol, seed, HardCaps(max_rewards=250, max_minutes=minutes),
-                            estimate=estimates)
-    box_ = EmulatedBox(protocol.wiring, make_agent(agent, **agent_options),
-                       np.random.default_rng(seed))
-    sid = store.begin_session(box, animal, protocol.name, str(protocol_path), protocol.sha256,
-                              seed, started_at, wiring_settings(protocol))
+    session = build_session(protocol, seed, HardCaps(max_rewards=250, max_minutes=minutes), estimate=estimates)
+    box_ = EmulatedBox(protocol.wiring, make_agent(agent, **agent_options), np.random.default_rng(seed))
+    sid = store.begin_session(
+        box, animal, protocol.name, str(protocol_path), protocol.sha256, seed, started_at, wiring_settings(protocol)
+    )
 
     def on_records(records):
         for record in records:
@@ -78,19 +88,22 @@ def record_session(store: Store, *, box: str, animal: str, protocol_path: Path, 
 def lab_config(tmp_path: Path) -> Path:
     """Two boxes of our own: a lever-training rat (many quick trials) and a reversal rat."""
     path = tmp_path / "lab.yaml"
-    path.write_text(f"""
+    path.write_text(
+        f"""
 lab: Bench rig 5
 caps: {{max_rewards: 250, max_minutes: 30}}
 boxes:
   - name: {json.dumps(EVIL_BOX)}
     animal: LT-0031
-    protocol: {REPO / 'protocols' / 'lever_training_devaluation.yaml'}
+    protocol: {REPO / "protocols" / "lever_training_devaluation.yaml"}
     emulate: {{agent: random, seed: 77}}
   - name: rig-5b
     animal: RV-0032
-    protocol: {REPO / 'protocols' / 'reversal.yaml'}
+    protocol: {REPO / "protocols" / "reversal.yaml"}
     emulate: {{agent: q_learner, seed: 78, options: {{alpha: 0.3, beta: 5.0}}}}
-""", encoding="utf-8")
+""",
+        encoding="utf-8",
+    )
     return path
 
 
