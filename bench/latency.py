@@ -177,8 +177,8 @@ async def echo_host(paths: list[str], until: asyncio.Future) -> None:
 
 async def lab_host(paths: list[str], until: asyncio.Future, folder: Path, protocol: str) -> None:
     from server.engine.caps import HardCaps
-    from server.lab import Lab
-    from server.lab_config import BoxConfig, LabConfig
+    from server.lab.config import BoxConfig, LabConfig
+    from server.lab.supervisor import Lab
     from server.protocol.load import load_protocol
     from server.store.writer import Store
 

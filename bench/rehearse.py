@@ -27,18 +27,18 @@ from machine import where_run  # noqa: E402  (bench/ is on sys.path when run as 
 
 from hardware_stubs.agents import make_agent  # noqa: E402
 from hardware_stubs.emulated_box import EmulatedBox  # noqa: E402
-from server.closed_loop import build_session  # noqa: E402
 from server.engine.caps import HardCaps  # noqa: E402
 from server.engine.records import EventLogged, InputEvent  # noqa: E402
 from server.engine.session import Session  # noqa: E402
 from server.engine.virtual import run_virtual  # noqa: E402
+from server.lab.assembly import build_session  # noqa: E402
+from server.lab.rehearsal import rehearse  # noqa: E402
 from server.protocol.load import load_protocol  # noqa: E402
-from server.rehearsal import rehearse  # noqa: E402
 
 
 def one_session(protocol, seed: int, closed_loop: bool = False) -> tuple[float, Session, list]:
     if closed_loop:
-        session = build_session(protocol, seed, HardCaps(), log_events=False)
+        session = build_session(protocol, seed, HardCaps(), log_events=False, summarise_estimates=False)
     else:
         session = Session(protocol, seed, HardCaps(), log_events=False)
     box = EmulatedBox(protocol.wiring, make_agent("q_learner"), np.random.default_rng(seed + 1))

@@ -153,7 +153,7 @@ class Latencies:
 
 def timed_feed(latencies: Latencies, costs: list):
     """FeedBuilder.line, timed: (µs, bytes sent or 0) per turn while recording."""
-    from server.web.lab_end import FeedBuilder
+    from server.lab.page_feed import FeedBuilder
 
     plain = FeedBuilder.line
 
@@ -169,25 +169,25 @@ def timed_feed(latencies: Latencies, costs: list):
 
 
 async def bench(boxes: int, clients: int, seconds: float, rounds: int) -> dict:
-    import server.lab as lab_module
+    import server.lab.supervisor as supervisor
     from server.cli import DEMO_CONFIG
-    from server.demo import demo_lab
-    from server.lab import Lab
+    from server.lab.demo import demo_lab
+    from server.lab.page_feed import FeedBuilder
+    from server.lab.page_process import start_page
+    from server.lab.supervisor import Lab
     from server.store.writer import Store
-    from server.web.lab_end import FeedBuilder
-    from server.web.page_process import start_page
 
     latencies = Latencies()
     feed_costs: list = []
-    plain_make_box = lab_module.make_box
+    plain_live = supervisor.LiveSession
     plain_feed = timed_feed(latencies, feed_costs)
 
-    def timed_make_box(box, clock, **kw):  # the in-process link, with a timing queue
-        link = plain_make_box(box, clock, **kw)
-        link.events = latencies.queue_for(link.clock)
-        return link
+    class TimedLiveSession(plain_live):  # the driver's inbox, timed from due to taken
+        def __init__(self, session, link, clock, publish):
+            super().__init__(session, link, clock, publish)
+            self.inbox = latencies.queue_for(clock)
 
-    lab_module.make_box = timed_make_box
+    supervisor.LiveSession = TimedLiveSession
     folder = Path(tempfile.mkdtemp(prefix="vigil-bench-web-"))
     db = folder / "bench.sqlite"
     store = Store.open(db)
@@ -241,7 +241,7 @@ async def bench(boxes: int, clients: int, seconds: float, rounds: int) -> dict:
     await running
     result["page_exit"] = await page.close()
     store.close()
-    lab_module.make_box = plain_make_box
+    supervisor.LiveSession = plain_live
     FeedBuilder.line = plain_feed
     return result
 

@@ -1,24 +1,21 @@
 """Live driver: runs one session against a box link on the asyncio loop's monotonic clock.
 
-The link owns the box (serial or in-process emulator). It pushes `(InputEvent, t)` pairs
-onto `events` with t already in session seconds, and accepts commands through `send`. The
-driver only decides *when* to call the core: at each input, and at each deadline.
+The driver owns one queue, its inbox: the link puts accepted input edges there (through
+`LinkSubscriber.input`, with t already in session seconds) and the lab puts operator
+controls there (`request`). What the link sees besides inputs (a loss, a restart, an edge it
+could not deliver in time) goes into the session's own record stream, so every record
+reaches the store by one path. The driver only decides *when* to call the core: at each
+input, at each control and at each deadline.
 """
 
 from __future__ import annotations
 
 import asyncio
-from collections.abc import Callable
-from typing import Protocol as TypingProtocol
+from collections.abc import Callable, Iterable
 
-from server.engine.records import Command, InputEvent, Record
+from server.engine.records import Command, ControlAction, EventLogged, InputEvent, Record
+from server.engine.seams import BoxLink
 from server.engine.session import Session
-
-
-class BoxLink(TypingProtocol):
-    events: asyncio.Queue[tuple[InputEvent, float] | ControlRequest]
-
-    def send(self, commands: list[Command]) -> None: ...
 
 
 class ControlRequest:
@@ -27,14 +24,20 @@ class ControlRequest:
 
     __slots__ = ("action", "argument")
 
-    def __init__(self, action: str, argument: str):
-        if action not in ("stop", "pause", "resume"):
-            raise ValueError(f"unknown control action '{action}'")
-        self.action = action
+    def __init__(self, action: ControlAction | str, argument: str):
+        try:
+            self.action = ControlAction(action)
+        except ValueError:
+            raise ValueError(f"unknown control action '{action}'") from None
         self.argument = argument
 
 
+InboxItem = tuple[InputEvent, float] | ControlRequest
+
+
 class LiveSession:
+    """Drives `session` against `link`; also what the link may ask of the session."""
+
     def __init__(
         self,
         session: Session,
@@ -46,20 +49,47 @@ class LiveSession:
         self.link = link
         self.clock = clock  # seconds since session start
         self.publish = publish
+        self.inbox: asyncio.Queue[InboxItem] = asyncio.Queue()
         self._last_t = 0.0
+        link.attach(self)
+
+    # ------------------------------------------------------------ from the lab
+
+    def request(self, action: ControlAction | str, argument: str) -> None:
+        self.inbox.put_nowait(ControlRequest(action, argument))
 
     def request_stop(self, reason: str) -> None:
-        self.link.events.put_nowait(ControlRequest("stop", reason))
+        self.request(ControlAction.STOP, reason)
 
-    def request(self, action: str, argument: str) -> None:
-        self.link.events.put_nowait(ControlRequest(action, argument))
+    # ------------------------------------------------------------ from the link (LinkSubscriber)
+
+    def input(self, event: InputEvent, t: float) -> None:
+        self.inbox.put_nowait((event, t))
+
+    def record(self, record: EventLogged) -> None:
+        self.session.add_record(record)
+        self._publish()
+
+    def cut_trial(self, reason: str) -> None:
+        self.session.mark_interrupted(reason)
+
+    def expected_outputs(self) -> Iterable[str]:
+        return self.session.active_outputs
+
+    def trial_index(self) -> int:
+        return self.session.trial_index
+
+    # ------------------------------------------------------------ driving
+
+    def _publish(self) -> None:
+        records = self.session.take_records()
+        if records:
+            self.publish(records)
 
     def _send(self, commands: list[Command]) -> None:
         if commands:
             self.link.send(commands)
-        records = self.session.take_records()
-        if records:
-            self.publish(records)
+        self._publish()
 
     def _t(self, t: float) -> float:
         # The core needs non-decreasing times; a device stamp can trail a deadline we ran.
@@ -68,7 +98,7 @@ class LiveSession:
 
     async def run(self) -> None:
         session = self.session
-        queue = self.link.events
+        inbox = self.inbox
         try:
             self._send(session.start(self._t(self.clock())))
             while not session.finished:
@@ -76,13 +106,13 @@ class LiveSession:
                 if delay > 0:
                     try:
                         async with asyncio.timeout(delay):
-                            item = await queue.get()
+                            item = await inbox.get()
                     except TimeoutError:
                         self._send(session.advance(self._t(self.clock())))
                         continue
                     self._handle(item)
-                    while not queue.empty() and not session.finished:
-                        self._handle(queue.get_nowait())
+                    while not inbox.empty() and not session.finished:
+                        self._handle(inbox.get_nowait())
                 else:
                     self._send(session.advance(self._t(self.clock())))
         except asyncio.CancelledError:
@@ -92,12 +122,12 @@ class LiveSession:
             self._send(session.stop(self._t(self.clock()), f"error: {type(exc).__name__}: {exc}"))
             raise
 
-    def _handle(self, item: tuple[InputEvent, float] | ControlRequest) -> None:
+    def _handle(self, item: InboxItem) -> None:
         if isinstance(item, ControlRequest):
             t = self._t(self.clock())
-            if item.action == "stop":
+            if item.action is ControlAction.STOP:
                 self._send(self.session.stop(t, item.argument))
-            elif item.action == "pause":
+            elif item.action is ControlAction.PAUSE:
                 self._send(self.session.pause(t, item.argument))
             else:
                 self._send(self.session.resume(t, item.argument))

@@ -8,6 +8,7 @@ as floats; device times travel alongside untouched so the store can keep both.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from enum import StrEnum
 from typing import Any
 
 # ---------------------------------------------------------------- box side
@@ -44,6 +45,14 @@ class PulseOutput:
 Command = SetOutput | PulseOutput
 
 
+class ControlAction(StrEnum):
+    """What an operator can tell a running session from outside its protocol."""
+
+    PAUSE = "pause"
+    RESUME = "resume"
+    STOP = "stop"
+
+
 # ---------------------------------------------------------------- record stream
 
 
@@ -73,12 +82,39 @@ class EventLogged:
 
 
 @dataclass(frozen=True, slots=True)
-class TrialRecord:
-    """One finished trial, committed by the store as soon as it is emitted.
+class TrialOutcome:
+    """A trial as the closed loop judges it when it ends: everything the store keeps of it
+    but the ITI that follows, which the estimator and rules have yet to decide.
 
-    The session builds it from positional fields (Session._end_trial): a new field goes
-    at the end, or there too.
+    The session builds it and its `TrialRecord` from the same positional fields
+    (Session._end_trial): a new field goes in both, at the same place.
     """
+
+    trial: int
+    block: str
+    block_index: int
+    trial_type: str
+    t_start: float
+    t_end: float
+    choice: str | None
+    response: str | None
+    latency_s: float | None
+    rewarded: bool
+    reward: float
+    correct: bool | None
+    omission: bool
+    interrupted: bool
+    steps: tuple[tuple[str, float], ...] = ()
+    counts: dict[str, int] = field(default_factory=dict)
+    first_s: dict[str, float] = field(default_factory=dict)
+    extra: dict[str, Any] = field(default_factory=dict)
+
+
+@dataclass(frozen=True, slots=True)
+class TrialRecord:
+    """One finished trial as stored, with the ITI the closed loop chose after it; committed
+    by the store as soon as it is emitted. Built once, after the closed loop ran, from the
+    same positional fields as its `TrialOutcome` (Session._end_trial)."""
 
     trial: int  # 1-based within the session
     block: str

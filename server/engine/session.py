@@ -4,82 +4,58 @@ It is fed input events with their time and asked to advance to the current time;
 answers with output commands, its next deadline, and a stream of records. It never reads a
 clock, touches a port or awaits anything, so the live driver, the virtual-time rehearsal and
 the tests all run exactly the same logic.
+
+Why one long module: the session is one state machine over one set of state (the trial in
+progress, the clock's deadlines, the outputs, the closed loop), and each transition touches
+most of it; split across classes it would be harder to follow, not easier. What stands on
+its own lives beside it: blocks (`block_sequence.py`, `block_progress.py`), the trial in
+progress (`trial_state.py`), steps prepared once (`step_plans.py`), draws and schedules
+(`timing.py`), caps (`caps.py`), the pause and rule-action reports (`session_controls.py`).
 """
 
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
 
 import numpy as np
 
 from server.engine.block_progress import PERFORMANCE_CRITERIA, BlockProgress
+from server.engine.block_sequence import BlockSequence
 from server.engine.caps import EffectiveLimits, HardCaps, effective_limits
 from server.engine.records import (
-    BlockStarted,
     Command,
     EstimateUpdated,
     EventLogged,
     InputEvent,
     Record,
+    RuleFired,
     SessionEnded,
     SessionStarted,
     SetOutput,
+    TrialOutcome,
     TrialRecord,
 )
-from server.engine.session_controls import SessionControls
-from server.engine.step_plans import OutputPlan, StepPlan, output_commands, output_plan, pulse_commands, step_plans
-from server.engine.timing import DurationDraw, ScheduleState
-from server.protocol.model import END_SESSION, END_TRIAL, Block, Protocol, Step, TrialType
+from server.engine.seams import EstimateSummary, RuleDecision, TrialEstimator, TrialRules
+from server.engine.session_controls import PauseState, action_done
+from server.engine.step_plans import OutputPlan, output_commands, output_plan, pulse_commands, step_plans
+from server.engine.timing import DurationDraw
+from server.engine.trial_state import TrialState
+from server.protocol.model import END_SESSION, END_TRIAL, Block, Protocol, RuleAction, Step
 
 # A trial may pass through this many steps in one instant (draws, zero waits) before the
 # session declares the protocol stuck in a loop rather than spinning forever.
 MAX_STEPS_PER_INSTANT = 1000
 
-TrialObserver = Callable[["Session", TrialRecord], None]
 
+class Session:
+    """One session of one protocol on one box, driven by whoever owns the clock.
 
-class ProtocolLoop(Exception):
-    pass
-
-
-class _Trial:
-    """Mutable state of the trial in progress."""
-
-    __slots__ = (
-        "index", "type", "plans", "t_start", "plan", "step_t0", "deadline", "schedule",
-        "steps", "counts", "first_s", "choice", "response", "latency_s", "correct",
-        "omission", "pellets", "offered_choice", "cut_reason",
-    )  # fmt: skip
-
-    def __init__(self, index: int, trial_type: TrialType, plans: dict[str, StepPlan], t: float):
-        self.index = index
-        self.type = trial_type
-        self.plans = plans  # step name -> plan, for this trial type
-        self.t_start = t
-        self.plan: StepPlan | None = None  # the step in progress (None before the first / once left)
-        self.step_t0 = t
-        self.deadline = math.inf
-        self.schedule: ScheduleState | None = None
-        self.steps: list[tuple[str, float]] = []
-        self.counts: dict[str, int] = {}
-        self.first_s: dict[str, float] = {}
-        self.choice: str | None = None
-        self.response: str | None = None
-        self.latency_s: float | None = None
-        self.correct: bool | None = None
-        self.omission = False
-        self.pellets = 0
-        self.offered_choice = False  # went through a step with `choose`
-        self.cut_reason: str | None = None  # set when something outside cut the trial short
-
-    @property
-    def step(self) -> Step:
-        return self.plan.step
-
-
-class Session(SessionControls):
-    """One session of one protocol on one box, driven by whoever owns the clock."""
+    `estimator` and `rules` close the loop: after every trial the session hands the trial
+    to the estimator (choice trials), then to the rules, and carries out what they decide.
+    `log_events` keeps every input, output and step in the record stream (the live lab);
+    `summarise_estimates` summarises the estimate after every update and puts it in the
+    stream (the live lab) rather than only when a rule reads it (rehearsal).
+    """
 
     def __init__(
         self,
@@ -88,45 +64,41 @@ class Session(SessionControls):
         caps: HardCaps = HardCaps(),
         *,
         log_events: bool = True,
-        estimator=None,
+        summarise_estimates: bool = True,
+        estimator: TrialEstimator | None = None,
+        rules: TrialRules | None = None,
     ):
         self.protocol = protocol
         self.seed = seed
         self.rng = np.random.default_rng(seed)
         self.limits: EffectiveLimits = effective_limits(protocol.limits, caps)
         self.log_events = log_events
-        self.observers: list[TrialObserver] = []
-        # Learning-model estimator (server.models): pure, fed (choice, reward) after each
-        # choice trial; its latest estimate is what rules and the status page read.
+        self.summarise_estimates = summarise_estimates
         self.estimator = estimator
-        self._estimate = None
+        self.rules = rules
+        self._closes_loop = estimator is not None or rules is not None
+        self._estimate: EstimateSummary | None = None
         self._estimate_stale = False
+        self.rule_firings: list[RuleFired] = []  # every firing of this session, in order
         self.finished = False
         self.end_reason: str | None = None
         self.ended_at: float | None = None  # session time of the end
         self.trials_done = 0
         self.rewards = 0
-        self.reversals = 0
         self.iti_scale = 1.0
         self.iti_fixed: float | None = None
         self.alarms: list[tuple[float, str]] = []
-        self._probe_blocks: dict[str, Block] = {}
         self.active_outputs: set[str] = set()  # held outputs the session has switched on
-        self.block: BlockProgress | None = None
-        self._trial: _Trial | None = None
+        self.blocks = BlockSequence(protocol, self.rng)
+        self._trial: TrialState | None = None
         self._iti_end = math.inf
         self._t_limit = self.limits.max_minutes * 60.0
         self._out: list[Command] = []
         self._records: list[Record] = []
-        self._extra_swaps: list[tuple[str, str]] = []
-        self._blocks_entered = 0
-        # (block, trials, criterion met or None) for each block left; rehearsal reports it
-        self.block_log: list[tuple[str, int, str | None]] = []
         self.first_criterion_trial: int | None = None
         self._cap_reached = False
         self._pending_end: str | None = None
         self._itis = {b.name: DurationDraw(b.iti or protocol.iti, self.rng) for b in protocol.blocks}
-        self._block_end = math.inf  # when the current block's time criterion runs out
         self._commands = output_commands(protocol.wiring)
         self._pulses = pulse_commands(protocol.wiring)
         self._plans = step_plans(protocol, self._commands, self.rng)
@@ -135,8 +107,7 @@ class Session(SessionControls):
         for option in protocol.options.values():
             self._option_of.setdefault(option.input, option.label)
         self._started = False
-        self._paused_at: float | None = None
-        self._resume_outputs: set[str] = set()
+        self._pause: PauseState | None = None
 
     # ================================================================ driver interface
 
@@ -145,30 +116,47 @@ class Session(SessionControls):
         """Session time at which `advance` must next be called (inf when finished)."""
         if self.finished:
             return math.inf
-        if self._paused_at is not None:
+        if self._pause is not None:
             return self._t_limit
         trial = self._trial
         deadline = trial.deadline if trial is not None else self._iti_end
         if self._t_limit < deadline:
             deadline = self._t_limit
-        return self._block_end if self._block_end < deadline else deadline
-
-    def _reset_block_end(self) -> None:
-        """When a block with a time criterion runs out, even in the middle of a trial; kept
-        up to date whenever the block or its start time changes."""
-        block = self.block
-        if block is None or block.block.until.minutes is None:
-            self._block_end = math.inf
-        else:
-            self._block_end = block.t0 + block.block.until.minutes * 60.0
+        block_end = self.blocks.end_time
+        return block_end if block_end < deadline else deadline
 
     @property
-    def estimate(self):
-        """The estimator's latest Estimate (None before the first choice trial)."""
-        if self._estimate_stale:
+    def estimate(self) -> EstimateSummary | None:
+        """The estimator's latest summary (None before the first choice trial)."""
+        if self._estimate_stale and self.estimator is not None:
             self._estimate = self.estimator.estimate()
             self._estimate_stale = False
         return self._estimate
+
+    @property
+    def block(self) -> BlockProgress | None:
+        """The block in progress."""
+        return self.blocks.current
+
+    @property
+    def block_log(self) -> list[tuple[str, int, str | None]]:
+        return self.blocks.log
+
+    @property
+    def reversals(self) -> int:
+        return self.blocks.reversals
+
+    @property
+    def in_probe(self) -> bool:
+        return self.blocks.in_probe
+
+    @property
+    def paused(self) -> bool:
+        return self._pause is not None
+
+    def best_options(self) -> frozenset[str]:
+        """Options with the highest reward probability now (empty when all are equal)."""
+        return self.blocks.best_options()
 
     @property
     def trial_index(self) -> int:
@@ -176,7 +164,8 @@ class Session(SessionControls):
 
     @property
     def step_name(self) -> str | None:
-        return self._trial.plan.step.name if self._trial is not None and self._trial.plan is not None else None
+        trial = self._trial
+        return trial.plan.step.name if trial is not None and trial.plan is not None else None
 
     def take_records(self) -> list[Record]:
         records, self._records = self._records, []
@@ -201,7 +190,7 @@ class Session(SessionControls):
                     t, "input", event.name, 1.0 if event.rising else 0.0, event.device_t_us, event.device_seq
                 )  # fmt: skip
             )
-        if self.finished or self._paused_at is not None:
+        if self.finished or self._pause is not None:
             return []
         self._catch_up(t)
         trial = self._trial
@@ -223,9 +212,59 @@ class Session(SessionControls):
             self._end_session(t, reason)
         return self._flush()
 
-    def safe_state(self) -> list[Command]:
+    def safe_state(self) -> list[SetOutput]:
         """Commands that put every held output in its safe (inactive) state."""
         return [off for name, (off, _) in self._commands.items() if name not in self._pulses]
+
+    # ================================================================ from outside the protocol
+
+    def pause(self, t: float, origin: str = "operator") -> list[Command]:
+        """Freeze the session clock and put outputs in their safe state until `resume`.
+
+        Inputs during a pause are logged but change nothing. The session time limit keeps
+        running: it bounds the animal's time in the box, paused or not.
+        """
+        if self.finished or self._pause is not None:
+            return []
+        self._catch_up(t)
+        if self.finished:
+            return self._flush()
+        self._pause = PauseState(t, frozenset(self.active_outputs))
+        for command in self.safe_state():
+            self._switch(command.name, command, t)
+        self._log(t, "pause", "session", detail={"origin": origin})
+        return self._flush()
+
+    def resume(self, t: float, origin: str = "operator") -> list[Command]:
+        """Continue where the pause left off: every pending deadline moves by the pause."""
+        pause = self._pause
+        if self.finished or pause is None:
+            return []
+        shift = t - pause.since
+        self._pause = None
+        trial = self._trial
+        if trial is not None:
+            trial.deadline += shift
+            trial.step_t0 += shift
+            if trial.schedule is not None:
+                trial.schedule.armed_at += shift
+        else:
+            self._iti_end += shift
+        self.blocks.shift(shift)
+        for name in sorted(pause.outputs):
+            self._set(name, True, t)
+        self._log(t, "resume", "session", detail={"origin": origin, "paused_s": shift})
+        return self._flush()
+
+    def mark_interrupted(self, reason: str) -> None:
+        """Flag the trial in progress as interrupted (e.g. the box link was lost during it);
+        it runs to its end as usual and is stored with interrupted = true."""
+        if self._trial is not None:
+            self._trial.cut_reason = reason
+
+    def add_record(self, record: EventLogged) -> None:
+        """Put something seen outside the core (by the box link) into the record stream."""
+        self._records.append(record)
 
     # ================================================================ internals: time
 
@@ -239,11 +278,11 @@ class Session(SessionControls):
             if t >= self._t_limit:
                 self._end_session(self._t_limit, "session time limit")
                 return
-            if self._paused_at is not None:
+            if self._pause is not None:
                 return
             trial = self._trial
             deadline = trial.deadline if trial is not None else self._iti_end
-            block_end = self._block_end
+            block_end = self.blocks.end_time
             if t >= block_end and block_end < deadline:
                 self._block_time_up(block_end)
                 continue
@@ -257,15 +296,16 @@ class Session(SessionControls):
     # ================================================================ internals: trials
 
     def _begin_trial(self, t: float) -> None:
-        assert self.block is not None
-        type_name = self.block.next_trial_type()
+        block = self.blocks.current
+        assert block is not None
+        type_name = block.next_trial_type()
         trial_type = self.protocol.trial_types[type_name]
-        trial = _Trial(self.trials_done + 1, trial_type, self._plans[type_name], t)
+        trial = TrialState(self.trials_done + 1, trial_type, self._plans[type_name], t)
         self._trial = trial
         self._iti_end = math.inf
         self._goto(trial, trial_type.steps[0].name, t)
 
-    def _goto(self, trial: _Trial, target: str, t: float) -> None:
+    def _goto(self, trial: TrialState, target: str, t: float) -> None:
         hops = 0
         plans = trial.plans
         while True:
@@ -320,14 +360,16 @@ class Session(SessionControls):
                 return target
         return step.draw[-1][0]
 
-    def _timeout(self, trial: _Trial, t: float) -> None:
+    def _timeout(self, trial: TrialState, t: float) -> None:
         plan = trial.plan
+        assert plan is not None
         if plan.awaits_response:
             trial.omission = True
         self._goto(trial, plan.step.next, t)
 
-    def _respond(self, trial: _Trial, input_name: str, t: float) -> None:
+    def _respond(self, trial: TrialState, input_name: str, t: float) -> None:
         plan = trial.plan
+        assert plan is not None
         step = plan.step
         key = plan.count_keys.get(input_name) or f"{step.name}.{input_name}"
         counts = trial.counts
@@ -353,8 +395,8 @@ class Session(SessionControls):
                     trial.latency_s = t - trial.step_t0
                 self._goto(trial, schedule.schedule.then, t)
 
-    def _choose(self, trial: _Trial, step: Step, label: str, input_name: str, t: float) -> None:
-        block = self.block
+    def _choose(self, trial: TrialState, step: Step, label: str, input_name: str, t: float) -> None:
+        block = self.blocks.current
         assert block is not None
         trial.choice = label
         trial.response = input_name
@@ -366,22 +408,18 @@ class Session(SessionControls):
             win = False
         self._goto(trial, step.if_rewarded if win else step.if_unrewarded, t)
 
-    def _end_trial(self, trial: _Trial, t: float, interrupted: bool, cut: str | None = None) -> None:
-        assert self.block is not None
+    def _end_trial(self, trial: TrialState, t: float, interrupted: bool, cut: str | None = None) -> None:
+        block = self.blocks.current
+        assert block is not None
         self._trial = None
         self.trials_done = trial.index
-        block = self.block
         # A trial the link cut (the box was unreachable part of it) is stored as interrupted
         # and teaches neither the criteria nor the estimator, but the session goes on.
         cut_outside = trial.cut_reason is not None
         cut = cut or trial.cut_reason
         block.record(None if interrupted or cut_outside else trial.correct, trial.pellets)
         ending = self._session_end_due(t)
-        # Every field but iti_s, in TrialRecord's order. The record takes its place in the
-        # stream now, ahead of what the trial causes (estimate, rule firings, session end),
-        # but its ITI is drawn only after the rules ran: observers see it with iti_s 0.0 and
-        # the stream gets it again with the ITI (building it anew from these fields is
-        # cheaper than dataclasses.replace). With no observer it is built once, with the ITI.
+        # The fields of TrialOutcome, and of TrialRecord around its iti_s, in their order.
         head = (
             trial.index, block.block.name, block.index, trial.type.name, trial.t_start, t,
             trial.choice, trial.response, trial.latency_s, trial.pellets > 0,
@@ -390,68 +428,124 @@ class Session(SessionControls):
             interrupted or cut_outside,
         )  # fmt: skip
         tail = (tuple(trial.steps), trial.counts, trial.first_s, {"cut_by": cut} if cut else {})
-        record = TrialRecord(*head, 0.0, *tail) if interrupted or self.observers else None
-        at = len(self._records)
-        self._records.append(record)  # None only until filled in below, unseen meanwhile
         if interrupted:
+            self._records.append(TrialRecord(*head, 0.0, *tail))
             return
-        if self.estimator is not None and trial.offered_choice and not cut_outside:
-            if self.log_events:
-                self._estimate = self.estimator.update(trial.choice, float(trial.pellets))
-                self._records.append(EstimateUpdated(trial.index, self.estimator.model.name, self._estimate))
-            else:  # rehearsal: summarise only if a rule asks for the estimate
-                self.estimator.update(trial.choice, float(trial.pellets), summarise=False)
-                self._estimate = None
-                self._estimate_stale = True
-        for observer in self.observers:
-            observer(self, record)
-        nxt = met = None
-        if self.block is block:  # no rule switched blocks
-            nxt, met = self._block_criterion(block, t)
-        if nxt == END_SESSION:
-            ending = f"protocol complete ({block.block.name}: {met})"
+        # The record goes into the stream ahead of what the trial causes (estimate, rule
+        # firings, session end), but is built once its ITI is known: after the closed loop.
+        at = len(self._records)
+        if self._closes_loop:
+            self._close_loop(trial, TrialOutcome(*head, *tail), cut_outside)
+        # (next block, what was met) when the block's criterion holds and no rule switched blocks
+        moving_on = self._block_criterion(block, t) if self.blocks.current is block else None
+        if moving_on is not None and moving_on[0] == END_SESSION:
+            ending = f"protocol complete ({block.block.name}: {moving_on[1]})"
         else:
             ending = ending or self._pending_end
         if ending is not None:
-            if record is None:
-                self._records[at] = TrialRecord(*head, 0.0, *tail)
+            self._records.insert(at, TrialRecord(*head, 0.0, *tail))
             self._end_session(t, ending)
             return
         # Drawn after the rules ran, so an ITI change applies to the interval right after
         # the trial that triggered it; the record then carries the ITI actually used.
         iti = self._next_iti(block.block.name)
-        self._records[at] = TrialRecord(*head, iti, *tail)
-        if nxt is not None:
-            self._enter_block(self._block_named(nxt), t, met)
+        self._records.insert(at, TrialRecord(*head, iti, *tail))
+        if moving_on is not None:
+            self._enter_block(self.blocks.named(moving_on[0]), t, moving_on[1])
         self._iti_end = t + iti
         if iti <= 0:
             self._begin_trial(t)
 
-    def _block_criterion(self, block: BlockProgress, t: float) -> tuple[str | None, str | None]:
-        """(next block, what was met) when the block's criterion holds, else (None, None)."""
+    def _close_loop(self, trial: TrialState, outcome: TrialOutcome, cut_outside: bool) -> None:
+        """The pipeline after a trial: estimator, then rules, then their decisions carried out."""
+        estimator = self.estimator
+        if estimator is not None and trial.offered_choice and not cut_outside:
+            if self.summarise_estimates:
+                self._estimate = estimator.update(trial.choice, float(trial.pellets))
+                self._records.append(EstimateUpdated(trial.index, estimator.model_name, self._estimate))
+            else:  # summarised only if a rule asks for the estimate
+                estimator.update(trial.choice, float(trial.pellets), summarise=False)
+                self._estimate = None
+                self._estimate_stale = True
+        if self.rules is not None:
+            for decision in self.rules.after_trial(outcome, self):
+                self._carry_out(decision, outcome)
+
+    def _carry_out(self, decision: RuleDecision, outcome: TrialOutcome) -> None:
+        t = outcome.t_end
+        done = tuple(self._act(action, t, decision.rule) for action in decision.actions)
+        fired = RuleFired(t, outcome.trial, decision.rule, done, decision.values)
+        self.rule_firings.append(fired)
+        self._records.append(fired)
+        if decision.changes_schedule and self.first_criterion_trial is None:
+            self.first_criterion_trial = outcome.trial  # what rehearsal reports as criterion
+
+    def _act(self, action: RuleAction, t: float, rule: str) -> dict:
+        """Carry out one rule action; returns what was done, for the firing record."""
+        kind = action.kind
+        why = f"rule {rule}"
+        if kind == "switch_block":
+            assert action.block is not None
+            self._enter_block(self.protocol.block(action.block), t, why)
+        elif kind == "reverse":
+            assert action.options is not None
+            a, b = action.options
+            self.blocks.reverse(a, b)
+            current = self.blocks.current
+            self._log(
+                t, "block", "reversal", detail={"swap": [a, b], "now": dict(current.contingencies) if current else {}}
+            )
+        elif kind == "probe":
+            assert action.minutes is not None
+            assert self.blocks.current is not None
+            base = self.blocks.current.block.name
+            probe = self.blocks.make_probe(action.minutes, action.block)
+            self._itis.setdefault(probe.name, self._itis[base])  # the probe keeps its block's ITIs
+            self._enter_block(probe, t, why)
+        elif kind == "set_iti":
+            assert action.seconds is not None
+            self.iti_fixed, self.iti_scale = action.seconds, 1.0  # within iti_bounds, as every ITI
+        elif kind == "scale_iti":
+            assert action.factor is not None
+            self.iti_scale *= action.factor  # cumulative; the result stays within iti_bounds
+        elif kind == "end_session":
+            self._pending_end = f"{why}: {action.message}"
+        elif kind == "note":
+            self._log(t, "note", rule, detail={"text": action.message})
+        else:
+            self._log(t, "alarm", rule, detail={"message": action.message})
+            self.alarms.append((t, action.message or ""))
+        return action_done(action, self.iti_scale)
+
+    def _block_criterion(self, block: BlockProgress, t: float) -> tuple[str, str] | None:
+        """(next block, what was met) when the block's criterion holds, else None."""
         finished = block.finished(t)
         if finished is None:
-            return None, None
+            return None
         which, met = finished
         if self.first_criterion_trial is None and which in PERFORMANCE_CRITERIA:
             self.first_criterion_trial = self.trials_done
-        return block.block.next or self._following_block(block.block.name), met
+        return block.block.next or self.blocks.following(block.block.name), met
 
     def _block_time_up(self, t: float) -> None:
         """A timed block ran out: cut the trial in progress short and move to the next block."""
-        assert self.block is not None
+        block = self.blocks.current
+        assert block is not None
         trial = self._trial
         if trial is not None:
-            if trial.plan.on_leave is not None:
+            if trial.plan is not None and trial.plan.on_leave is not None:
                 self._apply(trial.plan.on_leave, t)
             trial.plan = None  # already left
             self._end_trial(trial, t, interrupted=False, cut="block time")
             return  # _end_trial ran the block criterion
-        nxt, met = self._block_criterion(self.block, t)
+        moving_on = self._block_criterion(block, t)
+        if moving_on is None:
+            return
+        nxt, met = moving_on
         if nxt == END_SESSION:
-            self._end_session(t, f"protocol complete ({self.block.block.name}: {met})")
-        elif nxt is not None:
-            self._enter_block(self._block_named(nxt), t, met)
+            self._end_session(t, f"protocol complete ({block.block.name}: {met})")
+        else:
+            self._enter_block(self.blocks.named(nxt), t, met)
 
     def _next_iti(self, block_name: str) -> float:
         drawn = self._itis[block_name].draw()  # drawn even when overridden: keeps draws aligned
@@ -461,19 +555,6 @@ class Session(SessionControls):
             iti = min(max(iti, bounds[0]), bounds[1])
         return iti
 
-    def best_options(self) -> frozenset[str]:
-        """Options with the highest reward probability now (empty when all are equal)."""
-        if self.block is None or not self.block.contingencies:
-            return frozenset()
-        c = self.block.contingencies
-        top = max(c.values())
-        return frozenset(k for k, v in c.items() if v == top) if top > min(c.values()) else frozenset()
-
-    def _count_reversal(self, before: frozenset[str]) -> None:
-        after = self.best_options()
-        if before and after and after != before:
-            self.reversals += 1
-
     def _session_end_due(self, t: float) -> str | None:
         if self._cap_reached:
             return "reward cap reached"
@@ -481,29 +562,9 @@ class Session(SessionControls):
             return "trial limit reached"
         return None
 
-    def _following_block(self, name: str) -> str:
-        names = [b.name for b in self.protocol.blocks]
-        if name not in names:  # a probe made by a rule goes where the rule said
-            return self._probe_blocks[name].next or END_SESSION
-        i = names.index(name)
-        return names[i + 1] if i + 1 < len(names) else END_SESSION
-
-    def _block_named(self, name: str) -> Block:
-        return self._probe_blocks.get(name) or self.protocol.block(name)
-
     def _enter_block(self, block: Block, t: float, why: str) -> None:
-        before = self.best_options()
-        if self.block is not None:
-            self.block_log.append((self.block.block.name, self.block.trials, why))
-        self._blocks_entered += 1
-        name = block.name
-        self.block = BlockProgress(self.protocol, block, self._blocks_entered, t, self.rng, self._extra_swaps)
-        self._reset_block_end()
-        self._count_reversal(before)
-        self._records.append(
-            BlockStarted(t, name, self._blocks_entered, dict(self.block.contingencies), block.withhold_outcomes)
-        )
-        self._log(t, "block", name, detail={"why": why})
+        self._records.append(self.blocks.enter(block, t, why))
+        self._log(t, "block", block.name, detail={"why": why})
 
     def _end_session(self, t: float, reason: str) -> None:
         if self.finished:
@@ -514,8 +575,7 @@ class Session(SessionControls):
         self.finished = True
         self.end_reason = reason
         self.ended_at = t
-        if self.block is not None:
-            self.block_log.append((self.block.block.name, self.block.trials, None))
+        self.blocks.close()
         for command in self.safe_state():
             self._switch(command.name, command, t)
         self._records.append(SessionEnded(t, reason, self.trials_done, self.rewards))
@@ -556,7 +616,8 @@ class Session(SessionControls):
     def _pulse(self, name: str, t: float) -> None:
         command, feeder = self._pulses[name]
         if feeder:
-            if self.block is not None and self.block.block.withhold_outcomes:
+            block = self.blocks.current
+            if block is not None and block.block.withhold_outcomes:
                 self._log(t, "pulse", name, detail={"withheld": "outcomes withheld in this block"})
                 return
             if self.rewards >= self.limits.max_rewards:

@@ -250,33 +250,39 @@ class Decoder:
 
     def _decode_line(self, line: bytes) -> Message | None:
         if len(line) > MAX_LINE:
-            return self._reject(OVERLONG, line)
+            self._reject(OVERLONG, line)
+            return None
         if line[-1:] == b"\r":
             line = line[:-1]
         if not line:
-            return self._reject(EMPTY, line)
+            self._reject(EMPTY, line)
+            return None
         if not line.isascii():
-            return self._reject(NON_ASCII, line)
+            self._reject(NON_ASCII, line)
+            return None
         body, space, crc = line.rpartition(b" ")
         if not space or len(crc) != 4:
-            return self._reject(NO_CRC, line)
+            self._reject(NO_CRC, line)
+            return None
         if b"%04X" % _crc(body, CRC_INIT) != crc:
-            return self._reject(BAD_CRC, line)
+            self._reject(BAD_CRC, line)
+            return None
         parts = body.split(b" ")
         parse = self._verbs.get(parts[1]) if len(parts) > 1 else None
         if parse is None:
             reason = WRONG_SIDE if len(parts) > 1 and parts[1] in self._others else UNKNOWN_VERB
-            return self._reject(reason if len(parts) > 1 else BAD_SYNTAX, line)
+            self._reject(reason if len(parts) > 1 else BAD_SYNTAX, line)
+            return None
         msg = parse(parts)
         if msg is None:
-            return self._reject(BAD_SYNTAX, line)
+            self._reject(BAD_SYNTAX, line)
+            return None
         self.accepted += 1
         return msg
 
     def _reject(self, reason: str, line: bytes) -> None:
         self.rejected[reason] += 1
         self.last_rejected = line[:80]
-        return None
 
 
 # ---------------------------------------------------------------- encoding

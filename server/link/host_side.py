@@ -31,7 +31,7 @@ from server.link.messages import (
 )
 from server.link.pending import Pending, PendingCommands
 from server.link.sequence import SequenceTracker, Verdict
-from server.link.wrap import DeviceClockUnwrapper
+from server.link.unwrap import DeviceClockUnwrapper
 
 PING_EVERY_S = 1.0  # PROTOCOL.md section 9: `ask beat` every second
 SILENCE_S = 3.0  # no valid line this long: the link is lost

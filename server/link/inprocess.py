@@ -11,15 +11,28 @@ import math
 from collections.abc import Callable
 
 from server.engine.records import Command
+from server.engine.seams import LinkSubscriber
+from server.engine.virtual import VirtualBox
 
 
 class InProcessLink:
-    def __init__(self, box, clock: Callable[[], float]):
+    """A `BoxLink` (server/engine/seams.py) to an emulated box; it never loses its link."""
+
+    def __init__(self, box: VirtualBox, clock: Callable[[], float]):
         self.box = box
         self.clock = clock
-        self.events: asyncio.Queue = asyncio.Queue()
         self._wake = asyncio.Event()
-        self.connected = True
+        self._session: LinkSubscriber | None = None
+
+    @property
+    def connected(self) -> bool:
+        return True
+
+    async def connect(self) -> None:
+        """Nothing to reach: the box is here."""
+
+    def attach(self, subscriber: LinkSubscriber) -> None:
+        self._session = subscriber
 
     def send(self, commands: list[Command]) -> None:
         t = self.clock()
@@ -41,4 +54,8 @@ class InProcessLink:
                         timer.cancel()
                 continue
             for t, event in self.box.pop_due(self.clock()):
-                self.events.put_nowait((event, t))
+                if self._session is not None:
+                    self._session.input(event, t)
+
+    async def close(self) -> bool:
+        return True

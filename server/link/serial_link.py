@@ -1,9 +1,11 @@
 """The box link over a serial line (a device, a pty or any pyserial URL), on the asyncio loop.
 
-It implements the live driver's BoxLink: accepted input edges go onto `events` as
-`(InputEvent, session seconds)`, and `send` turns session commands into wire commands. All
-protocol state lives in HostSide (sans-I/O); this module owns the port, the clock and the
-recovery policy:
+It is a `BoxLink` (server/engine/seams.py): accepted input edges go to the session it
+serves, attached with `attach`, as `(InputEvent, session seconds)`; `send` turns session
+commands into wire commands. All protocol state lives in HostSide (sans-I/O); this module
+owns the port and the recovery policy. Both clocks come in from outside: `clock` (session
+seconds) and `host_clock` (the protocol's own, monotonic by default), so the link can run
+against a clock a test controls.
 
 - reads are callbacks on the port's file descriptor (`loop.add_reader`), the fastest path
   measured here (DESIGN.md); ports without a descriptor are read by a thread;
@@ -24,6 +26,7 @@ from collections.abc import Callable, Iterable
 from typing import Any
 
 from server.engine.records import Command, EventLogged, InputEvent, PulseOutput, SetOutput
+from server.engine.seams import LinkSubscriber
 from server.link.handshake import LinkError, check_identity, identity_problems
 from server.link.host_side import (
     SILENCE_S,
@@ -47,6 +50,25 @@ SYNC_PINGS = 12  # round trips taken at once after a greeting, to start the cloc
 RETRY_FIRST_S, RETRY_MAX_S = 0.25, 2.0  # reconnect backoff
 
 
+class _NoSession:
+    """Until a session is attached: inputs and records have nowhere to go yet."""
+
+    def input(self, event: InputEvent, t: float) -> None:
+        pass
+
+    def record(self, record: EventLogged) -> None:
+        pass
+
+    def cut_trial(self, reason: str) -> None:
+        pass
+
+    def expected_outputs(self) -> Iterable[str]:
+        return ()
+
+    def trial_index(self) -> int:
+        return 0
+
+
 class SerialLink:
     """One box's link; `connect()` before the session, `run()` beside it, `close()` after."""
 
@@ -57,6 +79,7 @@ class SerialLink:
         wiring: Wiring,
         clock: Callable[[], float],
         *,
+        host_clock: Callable[[], float] = time.monotonic,
         baudrate: int = BAUDRATE,
         say: Callable[[str], None] = print,
         on_close: Callable[[], None] | None = None,
@@ -68,10 +91,9 @@ class SerialLink:
         self.url = url
         self.wiring = wiring
         self.clock = clock  # session seconds: the times of records and input events
-        self._host = time.monotonic  # the protocol's own clock, unaffected by session start
+        self._host = host_clock  # the protocol's own clock, unaffected by session start
         self.baudrate = baudrate
         self.say = say
-        self.events: asyncio.Queue = asyncio.Queue()
         self.side = HostSide()
         self.connected = False
         self.identity: Identity | None = None
@@ -93,17 +115,17 @@ class SerialLink:
         self._warned = False
         self._sleep_until = 0.0  # when the serve loop next wakes by itself
         self._closing = False
-        self._record: Callable[[EventLogged], None] = lambda record: None
-        self._expected_outputs: Callable[[], Iterable[str]] = tuple
-        self._trial_index: Callable[[], int] = lambda: 0
-        self._cut_trial: Callable[[str], None] = lambda reason: None
+        self._session: LinkSubscriber = _NoSession()
 
-    def bind(self, session: Any, publish: Callable[[list], None]) -> None:
-        """Follow a session: what its outputs should be, its trial, and where records go."""
-        self._expected_outputs = lambda: session.active_outputs
-        self._trial_index = lambda: session.trial_index
-        self._cut_trial = session.mark_interrupted
-        self._record = lambda record: publish([record])
+    def attach(self, subscriber: LinkSubscriber) -> None:
+        """Serve a session: where inputs and records go, what its outputs should be."""
+        self._session = subscriber
+
+    def _record(self, record: EventLogged) -> None:
+        self._session.record(record)
+
+    def _trial_index(self) -> int:
+        return self._session.trial_index()
 
     # ------------------------------------------------------------ the port
 
@@ -162,7 +184,7 @@ class SerialLink:
             name = line.name if line is not None else f"channel {h.edge.channel}"
             self._record(EventLogged(t, "input", name, value, h.edge.device_us, h.seq, detail))
             return
-        self.events.put_nowait((InputEvent(line.name, h.edge.rising, h.edge.device_us, h.seq), t))
+        self._session.input(InputEvent(line.name, h.edge.rising, h.edge.device_us, h.seq), t)
 
     def _note(self, kind: str, detail: dict) -> None:
         self._record(EventLogged(self.clock(), kind, "link", None, detail=detail))
@@ -297,7 +319,7 @@ class SerialLink:
         self._close_port()
         unacked = self.side.connection_lost()
         self._lost_at, self._lost_trial = now, self._trial_index()
-        self._cut_trial("link lost")  # the trial in progress is stored as interrupted
+        self._session.cut_trial("link lost")  # the trial in progress is stored as interrupted
         self._restored_at = math.inf  # until the link returns, every edge is a missed one
         pulses = [p.command.command_id for p in unacked if isinstance(p.command, PulseCommand)]
         detail: dict[str, Any] = {"reason": reason, "trial": self._lost_trial}
@@ -331,7 +353,7 @@ class SerialLink:
         self.identity = identity
         await self._sync_burst()
         now = self.clock()
-        expected = set(self._expected_outputs())
+        expected = set(self._session.expected_outputs())
         self._drive_held(expected)
         self._restored_at = now
         self.connected = True

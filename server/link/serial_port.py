@@ -54,9 +54,10 @@ class SerialPort:
             threading.Thread(target=self._read_thread, daemon=True).start()
 
     def _readable(self) -> None:
+        assert self._fd is not None  # only a port with a descriptor is read here
         try:
             if self._raw:
-                data = os.read(self._fd, 65536)  # type: ignore[arg-type]
+                data = os.read(self._fd, 65536)
             else:
                 data = self._port.read(max(1, self._port.in_waiting))
                 if not data:
@@ -101,6 +102,7 @@ class SerialPort:
             return
         if written < len(data):
             self._unsent = data[written:]
+            assert self._fd is not None  # BlockingIOError comes from os.write on the descriptor
             self._loop.add_writer(self._fd, self._writable)
 
     def _writable(self) -> None:

@@ -1,8 +1,8 @@
 """Learning models: what each animal has learned, how fast it learns, how it explores.
 
-Pure numerics, no I/O and no clocks (except `fit_sources`, the edge that reads trials for
-`vigil fit`). The session core calls `OnlineEstimator.update(choice, reward)` after every
-trial; `vigil fit` calls `fit_cli.run`.
+Pure numerics, no I/O, no clocks and no database schema: trials come in as data. The
+session core calls `OnlineEstimator.update(choice, reward)` after every trial; `vigil fit`
+(server/cli/fit.py) reads trials from a CSV or the store and calls `fit_animals`.
 """
 
 from .batch import ValueSettings

@@ -76,6 +76,7 @@ def regressors(
     theta = model.check(params)
     stack = stack_animals([animal])
     hist, deltas = value_history(model, theta, stack, (), values, keep_delta=True)
+    assert deltas is not None  # kept: keep_delta
     probs = choice_probabilities(model, theta, stack, hist)
     pe = np.where(animal.choice >= 0, deltas[:, 0], np.nan)
     return Regressors(animal.animal, model.name, animal.options, hist[:, :, 0].T, probs[:, :, 0].T, pe)

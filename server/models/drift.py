@@ -60,7 +60,7 @@ class BetaWalk:
             pad[:, 0] = pad[:, 1]  # reflecting edges: what would step off the grid stays
             pad[:, -1] = pad[:, -2]
             if self._flat:
-                moved = np.convolve(pad.ravel(), self._kernel * scale, mode="same")
+                moved: np.ndarray = np.convolve(pad.ravel(), self._kernel * scale, mode="same")
                 moved = moved.reshape(pad.shape)[:, 1:-1]
             else:
                 moved = self._spare

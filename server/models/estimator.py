@@ -23,7 +23,7 @@ from __future__ import annotations
 import math
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Literal, TypedDict, overload
 
 import numpy as np
 
@@ -84,6 +84,18 @@ class Estimate:
         }
 
 
+class EstimatorConfig(TypedDict):
+    """The constructor's keyword arguments, as kept in the state (so from_state can pass them back)."""
+
+    grid: dict[str, int]
+    drift: float
+    temper: float
+    carry_values: bool
+    q0: float
+    reward_rate_step: float
+    use_prior: bool
+
+
 def _weights_from_logs(logw: np.ndarray) -> np.ndarray:
     """Normalised, floored weights from unnormalised log weights (a log-sum-exp round trip)."""
     top = float(logw.max())
@@ -127,7 +139,7 @@ class OnlineEstimator:
             raise ValueError(f"temper must be in (0, 1], got {temper!r}")
         if not (0 < reward_rate_step <= 1):
             raise ValueError(f"reward_rate_step must be in (0, 1], got {reward_rate_step!r}")
-        self.config = {
+        self.config: EstimatorConfig = {
             "grid": dict(grid or {}),
             "drift": float(drift),
             "temper": float(temper),
@@ -158,10 +170,20 @@ class OnlineEstimator:
 
     def _forget(self) -> None:
         """Drop what was derived from the values (they changed)."""
-        self._gap = None  # two options: logit(second) - logit(first) per point
-        self._p = None  # choice probabilities per option and point
+        self._gap: np.ndarray | None = None  # two options: logit(second) - logit(first) per point
+        self._p: np.ndarray | None = None  # choice probabilities per option and point
 
     # ------------------------------------------------------------------ trial by trial
+
+    @property
+    def model_name(self) -> str:
+        return self.model.name
+
+    @overload
+    def update(self, choice: str | None, reward: float, *, summarise: Literal[True] = True) -> Estimate: ...
+
+    @overload
+    def update(self, choice: str | None, reward: float, *, summarise: bool = True) -> Estimate | None: ...
 
     def update(self, choice: str | None, reward: float, *, summarise: bool = True) -> Estimate | None:
         """Take one finished trial (choice label, or None for an omission) and its reward.

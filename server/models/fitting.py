@@ -97,7 +97,7 @@ class _Problem:
 
     def at(self, u: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Objective and log-likelihood at points u (M, P, d) of the animals `rows` (M,)."""
-        theta = {p.name: p.from_unit(u[..., i]) for i, p in enumerate(self.free)}
+        theta: dict[str, np.ndarray | float] = {p.name: p.from_unit(u[..., i]) for i, p in enumerate(self.free)}
         theta.update(self.fixed)
         return self._objective(theta, (u.shape[1],), self.stack.take(rows))
 
@@ -240,7 +240,7 @@ def _intervals(free: Sequence[Param], u: np.ndarray, grad: np.ndarray, hess: np.
             if np.all(e > 0):
                 se = np.sqrt(np.diag(np.linalg.inv(sub)))
                 for j, i in enumerate(keep):
-                    p = free[i]
+                    p = free[int(i)]
                     lo = float(p.from_unit(max(0.0, ui[i] - Z95 * se[j])))
                     up = float(p.from_unit(min(1.0, ui[i] + Z95 * se[j])))
                     row[p.name] = (lo, up)

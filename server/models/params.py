@@ -71,8 +71,8 @@ class Param:
     grid_high: float | None = None
 
     def check(self, model: str, value: object) -> float:
-        ok = isinstance(value, (int, float, np.floating, np.integer)) and not isinstance(value, bool)
-        if ok:
+        ok = False
+        if isinstance(value, (int, float, np.floating, np.integer)) and not isinstance(value, bool):
             v = float(value)
             ok = math.isfinite(v) and self.low <= v <= self.high
         if not ok:

@@ -91,16 +91,16 @@ def rw_session(
     `present[t]` flags which CSs are on in trial t, `lam[t]` the US asymptote of trial t.
     """
     p = RESCORLA_WAGNER.check(params)
-    present = np.asarray(present, dtype=float)
-    lam = np.asarray(lam, dtype=float)
-    if present.ndim != 2 or lam.shape != present.shape[:1]:
+    on = np.asarray(present, dtype=float)
+    us = np.asarray(lam, dtype=float)
+    if on.ndim != 2 or us.shape != on.shape[:1]:
         raise ValueError("present must be trials x CSs and lam one value per trial")
-    v = np.zeros(present.shape[1]) if v0 is None else np.asarray(v0, dtype=float).copy()
-    before = np.empty_like(present)
-    for t in range(present.shape[0]):
+    v = np.zeros(on.shape[1]) if v0 is None else np.asarray(v0, dtype=float).copy()
+    before = np.empty_like(on)
+    for t in range(on.shape[0]):
         before[t] = v
-        v = rw_update(v, present[t], p["alpha"], p["beta"], lam[t])
-    prob = response_probability(before, present, p["slope"], p["bias"])
+        v = rw_update(v, on[t], p["alpha"], p["beta"], us[t])
+    prob = response_probability(before, on, p["slope"], p["bias"])
     return {"v_before": before, "v_after": v, "p_response": prob}
 
 

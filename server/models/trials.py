@@ -110,8 +110,11 @@ class TrialStack:
 
 def _stack(chosen: np.ndarray, reward: np.ndarray, start: np.ndarray, previous: np.ndarray) -> TrialStack:
     start_any = start.any(1)
+    assert isinstance(start_any, np.ndarray)  # (T, N) reduces to (T,), never to a scalar
     start_any[0] = False
-    return TrialStack(chosen, reward, start, previous, start_any, chosen.any((0, 2)))
+    chose_any = chosen.any((0, 2))
+    assert isinstance(chose_any, np.ndarray)  # (K, T, N) reduces to (T,)
+    return TrialStack(chosen, reward, start, previous, start_any, chose_any)
 
 
 def stack_animals(animals: Sequence[AnimalTrials]) -> TrialStack:

@@ -70,9 +70,10 @@ def read_duration(r: Reader, node: Marked | None, where: str) -> Duration | None
         r.error(value.mark, f"{where}.list: needs at least one duration")
         return None
     values = [r.number(item, f"{where}.list", low=0, high=MAX_SECONDS) for item in items]
-    if not items or any(v is None for v in values):
+    numbers = [v for v in values if v is not None]
+    if not items or len(numbers) < len(values):
         return None
     order = r.choice(f["order"], f"{where}.order", ORDERS) if "order" in f else "shuffled"
     if order is None:
         return None
-    return Duration("list", values=tuple(float(v) for v in values), shuffled=order == "shuffled")
+    return Duration("list", values=tuple(float(v) for v in numbers), shuffled=order == "shuffled")

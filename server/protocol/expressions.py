@@ -111,7 +111,7 @@ _TOKEN = re.compile(
 
 
 def _tokens(text: str) -> list[tuple[str, str, int]]:
-    out = []
+    out: list[tuple[str, str, int]] = []
     pos = 0
     while pos < len(text):
         if text[pos:].strip() == "":
@@ -121,6 +121,7 @@ def _tokens(text: str) -> list[tuple[str, str, int]]:
             offset = pos + (len(text[pos:]) - len(text[pos:].lstrip()))
             raise ExpressionError(f"unexpected character '{text[offset]}'", offset)
         kind = m.lastgroup
+        assert kind is not None  # every match ends inside one of the named groups
         value = m.group(kind)
         out.append((kind, value, m.start(kind)))
         pos = m.end()

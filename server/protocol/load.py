@@ -392,7 +392,7 @@ class _Compiler(Reader):
             return None
         input_name = self.reference(f.get("input"), f"{where}.input", wiring.inputs, "input")
         kind = self.choice(f.get("kind"), f"{where}.kind", SCHEDULE_KINDS)
-        value = None
+        value: float | None = None
         if kind in ("FR", "VR"):
             value = self.number(f.get("value"), f"{where}.value (responses per reinforcer)", low=1, integer=True)
         elif kind == "RR":
@@ -469,6 +469,7 @@ class _Compiler(Reader):
         swap_node = f.get("swap")
         pairs = self.listing(swap_node, f"{where}.swap")
         if pairs and all(not p.is_list for p in pairs):
+            assert swap_node is not None  # listing(None) is empty
             pairs = [swap_node]  # a single pair written flat: swap: [left, right]
         for pair in pairs:
             items = self.listing(pair, f"{where}.swap")
@@ -512,8 +513,14 @@ class _Compiler(Reader):
             if acc:
                 values["accuracy"] = self.probability(acc.get("at_least"), f"{where}.accuracy.at_least")
                 values["window"] = self.number(acc.get("window"), f"{where}.accuracy.window", low=1, integer=True)
+        counts = {k: int(v) for k in ("trials", "rewards", "streak", "window") if (v := values.get(k)) is not None}
         return BlockEnd(
-            **{k: (int(v) if k != "minutes" and k != "accuracy" and v is not None else v) for k, v in values.items()}
+            trials=counts.get("trials"),
+            minutes=values.get("minutes"),
+            rewards=counts.get("rewards"),
+            streak=counts.get("streak"),
+            accuracy=values.get("accuracy"),
+            window=counts.get("window"),
         )
 
     # ------------------------------------------------------------ limits

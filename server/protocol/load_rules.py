@@ -124,12 +124,14 @@ def read_rules(
                         item.mark,
                         f"{where}.then.{action.kind}: declare iti_bounds: [shortest, longest] at the top level",
                     )
-                if action.kind == "set_iti" and iti_bounds and not iti_bounds[0] <= action.seconds <= iti_bounds[1]:
-                    r.error(
-                        item.mark,
-                        f"{where}.then.set_iti: {action.seconds:g} s is outside "
-                        f"iti_bounds {iti_bounds[0]:g}-{iti_bounds[1]:g}",
-                    )
+                if action.kind == "set_iti" and iti_bounds:
+                    assert action.seconds is not None  # _action gives every set_iti its seconds
+                    if not iti_bounds[0] <= action.seconds <= iti_bounds[1]:
+                        r.error(
+                            item.mark,
+                            f"{where}.then.set_iti: {action.seconds:g} s is outside "
+                            f"iti_bounds {iti_bounds[0]:g}-{iti_bounds[1]:g}",
+                        )
         hold = r.number(f["hold_for"], f"{where}.hold_for", low=1, integer=True) if "hold_for" in f else 1
         cooldown = r.number(f["cooldown"], f"{where}.cooldown", low=0, integer=True) if "cooldown" in f else 0
         most = r.number(f["max_firings"], f"{where}.max_firings", low=1, integer=True) if "max_firings" in f else None

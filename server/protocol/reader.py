@@ -10,7 +10,7 @@ from __future__ import annotations
 import difflib
 import math
 from collections.abc import Iterable
-from typing import Any
+from typing import Any, Literal, overload
 
 from server.protocol.marked import Mark, Marked
 from server.protocol.problems import Problem
@@ -111,6 +111,30 @@ class Reader:
             return None
         return node.value
 
+    @overload
+    def number(
+        self,
+        node: Marked | None,
+        where: str,
+        *,
+        low: float | None = None,
+        high: float | None = None,
+        low_open: bool = False,
+        integer: Literal[True],
+    ) -> int | None: ...
+
+    @overload
+    def number(
+        self,
+        node: Marked | None,
+        where: str,
+        *,
+        low: float | None = None,
+        high: float | None = None,
+        low_open: bool = False,
+        integer: Literal[False] = False,
+    ) -> float | None: ...
+
     def number(
         self,
         node: Marked | None,
@@ -121,7 +145,7 @@ class Reader:
         low_open: bool = False,
         integer: bool = False,
     ) -> float | None:
-        """A number within [low, high] (or (low, high] when low_open)."""
+        """A number within [low, high] (or (low, high] when low_open); an int when `integer`."""
         if node is None:
             return None
         value = node.value

@@ -1,21 +1,21 @@
-"""Closed-loop rules: after every trial, evaluate each rule's condition and act on the session.
+"""Closed-loop rules: after every trial, evaluate each rule's condition and decide.
 
-Evaluation is a pure function of (metrics, estimate, rule state); the only effects are the
-session's own action methods and a `RuleFired` record carrying every value the condition
-read. Hysteresis (`hold_for`), cooldown and a cap on firings keep a noisy metric from
-flapping the schedule.
+Evaluation is a pure function of (metrics, estimate, rule state). A rule that fires hands
+the session a `RuleDecision` (its actions as data and every value its condition read); the
+session carries it out and records the firing. Hysteresis (`hold_for`), cooldown and a cap
+on firings keep a noisy metric from flapping the schedule.
 """
 
 from __future__ import annotations
 
 import operator
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 
-from server.engine.records import RuleFired, TrialRecord
-from server.engine.session import Session
+from server.engine.records import TrialOutcome
+from server.engine.seams import RuleDecision, SessionView
 from server.protocol.expressions import Arithmetic, Compare, Logic, Negate, Node, Not, Number, Quantity
-from server.protocol.model import SCHEDULE_ACTIONS, Protocol, Rule, RuleAction
+from server.protocol.model import SCHEDULE_ACTIONS, Protocol, Rule
 from server.rules.metrics import SessionMetrics
 
 _COMPARE = {"<": operator.lt, "<=": operator.le, ">": operator.gt, ">=": operator.ge,
@@ -25,7 +25,7 @@ _ARITH = {"+": operator.add, "-": operator.sub, "*": operator.mul}
 PREFERENCE_LEVEL = 0.75
 
 
-Getter = Callable[[SessionMetrics, Session, TrialRecord], "float | None"]
+Getter = Callable[[SessionMetrics, SessionView, TrialOutcome], "float | None"]
 
 
 def compile_condition(node: Node) -> Getter:
@@ -78,7 +78,7 @@ def quantity_getter(q: Quantity) -> Getter:
     if q.field is not None:
         field = q.field
 
-        def parameter(m: SessionMetrics, s: Session, t: TrialRecord) -> float | None:
+        def parameter(m: SessionMetrics, s: SessionView, t: TrialOutcome) -> float | None:
             estimate = s.estimate  # summarised on demand: costly, so only when read
             if estimate is None or name not in estimate.params:
                 return None
@@ -94,7 +94,7 @@ def quantity_getter(q: Quantity) -> Getter:
     if name == "p_prefers_correct":
         return _p_prefers_correct
 
-    def from_estimate(m: SessionMetrics, s: Session, t: TrialRecord) -> float | None:
+    def from_estimate(m: SessionMetrics, s: SessionView, t: TrialOutcome) -> float | None:
         estimate = s.estimate
         value = None if estimate is None else getattr(estimate, name)
         return None if value is None else float(value)
@@ -102,12 +102,13 @@ def quantity_getter(q: Quantity) -> Getter:
     return from_estimate
 
 
-def _p_prefers_correct(m: SessionMetrics, s: Session, t: TrialRecord) -> float | None:
+def _p_prefers_correct(m: SessionMetrics, s: SessionView, t: TrialOutcome) -> float | None:
     best = s.best_options()
-    if not best or s.estimator is None or s.trials_done == 0:
+    estimator = s.estimator
+    if not best or estimator is None or s.trials_done == 0:
         return None
-    found = [s.estimator.p_choice_at_least(o, PREFERENCE_LEVEL) for o in best]
-    found = [p for p in found if p is not None]
+    asked = (estimator.p_choice_at_least(o, PREFERENCE_LEVEL) for o in best)
+    found = [p for p in asked if p is not None]
     return max(found) if found else 0.0
 
 
@@ -131,7 +132,7 @@ class _RuleState:
 
 
 class RuleBook:
-    """A session observer that runs the protocol's rules after every finished trial."""
+    """The protocol's rules for one session, run after every finished trial."""
 
     def __init__(self, protocol: Protocol):
         self.rules = protocol.rules
@@ -140,12 +141,12 @@ class RuleBook:
         self._reads = {rule.name: [(q.label, quantity_getter(q)) for q in rule.reads] for rule in self.rules}
         self._conditions = {rule.name: compile_condition(rule.condition) for rule in self.rules}
         self._changes = {rule.name: any(a.kind in SCHEDULE_ACTIONS for a in rule.actions) for rule in self.rules}
-        self.log: list[RuleFired] = []  # every firing of this session, in order
 
-    def __call__(self, session: Session, trial: TrialRecord) -> None:
+    def after_trial(self, trial: TrialOutcome, session: SessionView) -> Iterator[RuleDecision]:
         """Evaluate every rule in order after `trial`. Only the first rule that changes the
         schedule (reverse, switch_block, probe, end_session) fires; later ones that would
-        are held back to the next trial, so two rules can never undo each other's reversal."""
+        are held back to the next trial, so two rules can never undo each other's reversal.
+        The session carries out each decision before the next rule is read."""
         self.metrics.add(trial)
         reversals = session.reversals
         schedule_changed = False
@@ -153,81 +154,32 @@ class RuleBook:
             if session.finished:
                 return
             changes = self._changes[rule.name]
-            fired = self._consider(
-                rule, self.state[rule.name], session, trial, allowed=not (changes and schedule_changed)
-            )
-            if fired and changes:
-                schedule_changed = True
-                if session.first_criterion_trial is None:  # what rehearsal reports as criterion
-                    session.first_criterion_trial = trial.trial
+            decision = self._consider(rule, self.state[rule.name], session, trial, not (changes and schedule_changed))
+            if decision is not None:
+                yield decision
+                schedule_changed = schedule_changed or changes
         if session.reversals != reversals:
             self.metrics.streak = 0  # correctness is judged against the new contingencies
 
-    def _consider(self, rule: Rule, state: _RuleState, session: Session, trial: TrialRecord, allowed: bool) -> bool:
+    def _consider(
+        self, rule: Rule, state: _RuleState, session: SessionView, trial: TrialOutcome, allowed: bool
+    ) -> RuleDecision | None:
         metrics = self.metrics
         state.run = state.run + 1 if self._conditions[rule.name](metrics, session, trial) else 0
         if not allowed or state.run < rule.hold_for:
-            return False
+            return None
         if session.in_probe and any(a.kind == "probe" for a in rule.actions):
-            return False  # a probe already runs: starting it again would never let it end
+            return None  # a probe already runs: starting it again would never let it end
         if rule.max_firings is not None and state.fired >= rule.max_firings:
-            return False
+            return None
         if state.last_fired_trial is not None and trial.trial - state.last_fired_trial <= rule.cooldown:
-            return False
+            return None
         state.fired += 1
         state.last_fired_trial = trial.trial
         state.run = 0
         # what the condition read (reads are pure, so reading again gives the same values)
         values = {label: get(metrics, session, trial) for label, get in self._reads[rule.name]}
-        done = tuple(apply_action(action, session, trial.t_end, rule.name) for action in rule.actions)
-        fired = RuleFired(trial.t_end, trial.trial, rule.name, done, values)
-        self.log.append(fired)
-        session.add_record(fired)
-        return True
+        return RuleDecision(rule.name, rule.actions, values, self._changes[rule.name])
 
     def firings(self) -> dict[str, int]:
         return {name: state.fired for name, state in self.state.items()}
-
-
-def firing_log(session: Session) -> list[RuleFired]:
-    """Every rule firing of the session so far, in order."""
-    return [f for observer in session.observers if isinstance(observer, RuleBook) for f in observer.log]
-
-
-def firing_counts(session: Session) -> dict[str, int]:
-    """How often each of the session's rules has fired so far."""
-    counts: dict[str, int] = {}
-    for observer in session.observers:
-        if isinstance(observer, RuleBook):
-            counts.update(observer.firings())
-    return counts
-
-
-def apply_action(action: RuleAction, session: Session, t: float, rule: str) -> dict:
-    """Carry out one action on the session; returns what was done, for the firing record."""
-    kind = action.kind
-    why = f"rule {rule}"
-    if kind == "switch_block":
-        session.switch_block(action.block, t, why)
-        return {"switch_block": action.block}
-    if kind == "reverse":
-        a, b = action.options
-        session.reverse(a, b, t)
-        return {"reverse": [a, b]}
-    if kind == "probe":
-        session.start_probe(action.minutes, action.block, t, why)
-        return {"probe": {"minutes": action.minutes, "then": action.block or "end_session"}}
-    if kind == "set_iti":
-        session.set_iti(action.seconds)
-        return {"set_iti": action.seconds}
-    if kind == "scale_iti":
-        session.scale_iti(action.factor)
-        return {"scale_iti": action.factor, "scale_now": session.iti_scale}
-    if kind == "end_session":
-        session.end_after_trial(f"{why}: {action.message}")
-        return {"end_session": action.message}
-    if kind == "note":
-        session.note(action.message, t, source=rule)
-        return {"note": action.message}
-    session.alarm(action.message, t, source=rule)
-    return {"alarm": action.message}

@@ -6,7 +6,7 @@ from collections import deque
 from itertools import islice
 from statistics import median
 
-from server.engine.records import TrialRecord
+from server.engine.records import TrialOutcome
 from server.protocol.model import Protocol
 from server.protocol.wiring import OPERANT_INPUT_KINDS
 
@@ -54,7 +54,7 @@ class SessionMetrics:
     def __init__(self, protocol: Protocol):
         self.pavlovian = protocol.pavlovian
         self.operant = {n for n, line in protocol.wiring.inputs.items() if line.kind in OPERANT_INPUT_KINDS}
-        self.recent: deque[TrialRecord] = deque(maxlen=HISTORY)
+        self.recent: deque[TrialOutcome] = deque(maxlen=HISTORY)
         self.streak = 0
         self.rewarded_trials = 0
         # running sums for the PCA index
@@ -63,7 +63,7 @@ class SessionMetrics:
         self._lever_trials = self._magazine_trials = 0
         self._lever_latency = self._magazine_latency = 0.0
 
-    def add(self, trial: TrialRecord) -> None:
+    def add(self, trial: TrialOutcome) -> None:
         if trial.interrupted:
             return
         self.recent.append(trial)
@@ -73,7 +73,7 @@ class SessionMetrics:
         if self.pavlovian is not None:
             self._add_pavlovian(trial, self.pavlovian)
 
-    def _add_pavlovian(self, trial: TrialRecord, pav) -> None:
+    def _add_pavlovian(self, trial: TrialOutcome, pav) -> None:
         if not any(name == pav.cs_step for name, _ in trial.steps):
             return
         lever_key, magazine_key = f"{pav.cs_step}.{pav.lever}", f"{pav.cs_step}.{pav.magazine}"
@@ -96,7 +96,7 @@ class SessionMetrics:
             self._lever_latency / n, self._magazine_latency / n, pav.cs_seconds,
         )  # fmt: skip
 
-    def window(self, n: int) -> list[TrialRecord] | None:
+    def window(self, n: int) -> list[TrialOutcome] | None:
         """The last n trials, oldest first (None until there are n)."""
         if len(self.recent) < n:
             return None

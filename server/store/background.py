@@ -15,6 +15,7 @@ import threading
 import time
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
+from functools import partial
 
 from server.engine.records import Record
 from server.store.errors import StoreError
@@ -70,7 +71,7 @@ class BackgroundWriter:
                     return
                 with self._lock:
                     if item is not None:
-                        self._guard(lambda item=item: self.store.write(*item))
+                        self._guard(partial(self.store.write, *item))
                     self._guard(lambda: self.store.flush_due(time.monotonic()))
             finally:
                 if item is not None:

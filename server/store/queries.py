@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import csv
 import sqlite3
+from collections.abc import Iterable, Sequence
 from pathlib import Path
 from typing import Any, TextIO
 from urllib.request import pathname2url
@@ -15,6 +16,7 @@ from urllib.request import pathname2url
 from server.engine.records import TrialRecord
 from server.store import rows
 from server.store.errors import StoreError, sqlite_reason
+from server.store.history import trial_history
 from server.store.schema import latest_version, schema_version
 
 CHOICE_COLUMNS = ("animal", "session", "trial", "choice", "reward")
@@ -63,7 +65,8 @@ def list_sessions(
     limit: int | None = None,
 ) -> list[dict[str, Any]]:
     """Sessions, newest first; `running` keeps those without an end reason."""
-    where, params = [], []
+    where: list[str] = []
+    params: list[str | int] = []
     if animal is not None:
         where.append("animal = ?")
         params.append(animal)
@@ -162,7 +165,7 @@ def session_annotations(conn: sqlite3.Connection, session_id: int) -> list[dict[
 # ---------------------------------------------------------------- exports
 
 
-def _write_csv(cursor: sqlite3.Cursor, header: tuple[str, ...], fileobj: TextIO) -> int:
+def _write_csv(cursor: Iterable[Sequence[Any]], header: tuple[str, ...], fileobj: TextIO) -> int:
     # None becomes an empty field; JSON columns stay as their JSON text.
     writer = csv.writer(fileobj, lineterminator="\n")
     writer.writerow(header)
@@ -196,16 +199,9 @@ def export_choices_csv(conn: sqlite3.Connection, fileobj: TextIO, *, animal: str
 
     An omission has an empty choice; reward is the pellets delivered in the trial.
     """
-    sql = (
-        "SELECT s.animal, t.session_id, t.trial, t.choice, t.reward FROM trials t"
-        " JOIN sessions s ON s.id = t.session_id"
-    )
-    params: tuple = ()
-    if animal is not None:
-        sql += " WHERE s.animal = ?"
-        params = (animal,)
-    cursor = conn.execute(sql + " ORDER BY s.animal, s.started_at, t.session_id, t.trial", params)
-    return _write_csv(cursor, CHOICE_COLUMNS, fileobj)
+    past = trial_history(conn, animals=None if animal is None else [animal])
+    past.sort(key=lambda p: p.animal)  # stable: each animal's trials stay in session order
+    return _write_csv(((p.animal, p.session_id, p.trial, p.choice, p.reward) for p in past), CHOICE_COLUMNS, fileobj)
 
 
 # ---------------------------------------------------------------- status page

@@ -7,6 +7,7 @@ from collections.abc import Collection
 from datetime import timedelta
 
 from server.store import rows
+from server.store.wall_clock import iso
 
 # Latest stored time of a session, whichever table holds it.
 _LAST_T = (
@@ -34,7 +35,7 @@ def close_unended(conn: sqlite3.Connection, closed_at: str, running: Collection[
             (session_id,),
         ).fetchone()
         started = rows.parse_wall_time(started_at, f"started_at of session {session_id}")
-        ended_at = rows.iso(started + timedelta(seconds=last_t))
+        ended_at = iso(started + timedelta(seconds=last_t))
         conn.execute(rows.END_SESSION, (ended_at, "interrupted", trials, rewards, session_id))
         conn.execute(
             rows.INSERT_EVENT,

@@ -118,10 +118,6 @@ def parse_wall_time(text: str, what: str) -> datetime:
     return moment
 
 
-def iso(moment: datetime) -> str:
-    return moment.isoformat(timespec="milliseconds")
-
-
 def real(value: Any, what: str) -> float:
     try:
         number = float(value)

@@ -18,7 +18,7 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from datetime import datetime, timedelta
 from pathlib import Path
-from typing import Any, TypeVar
+from typing import Any, TypeVar, overload
 
 from server.engine.records import (
     BlockStarted,
@@ -34,6 +34,7 @@ from server.store import rows
 from server.store.errors import StoreError, diagnose_path, sqlite_reason
 from server.store.recovery import close_unended
 from server.store.schema import migrate
+from server.store.wall_clock import iso, local_now
 
 T = TypeVar("T")
 
@@ -53,6 +54,13 @@ _INSERT_SESSION = (
 )
 
 
+def _row_id(cursor: sqlite3.Cursor) -> int:
+    """The id of the row a plain INSERT just added (sqlite3 sets it for every one that succeeds)."""
+    row_id = cursor.lastrowid
+    assert row_id is not None
+    return row_id
+
+
 @dataclass(frozen=True, slots=True)
 class _Pending:
     """Statements for one record, not yet committed; `what` names it in error messages."""
@@ -68,11 +76,6 @@ class _Running:
     started: datetime
     last_trial: int = 0
     ended: bool = False
-
-
-def local_now() -> datetime:
-    """The default wall clock: local time with its UTC offset."""
-    return datetime.now().astimezone()
 
 
 class Store:
@@ -159,7 +162,7 @@ class Store:
     ) -> int:
         """Store a new session and return its id; `started_at` defaults to the wall clock now."""
         if started_at is None:
-            started_at = rows.iso(self._wall_clock())
+            started_at = iso(self._wall_clock())
         started = rows.parse_wall_time(started_at, "started_at")
         params = (
             str(box),
@@ -171,7 +174,7 @@ class Store:
             rows.integer(seed, "seed"),
             rows.to_json(dict(settings or {}), "session settings"),
         )
-        session_id = self._commit(lambda conn: conn.execute(_INSERT_SESSION, params).lastrowid)
+        session_id = self._commit(lambda conn: _row_id(conn.execute(_INSERT_SESSION, params)))
         self._sessions[session_id] = _Running(started)
         return session_id
 
@@ -255,7 +258,7 @@ class Store:
     def _end(self, session_id: int, running: _Running, record: SessionEnded, ended_at: str | None) -> None:
         t = rows.real(record.t, "session end t")
         if ended_at is None:
-            ended_at = rows.iso(running.started + timedelta(seconds=t))
+            ended_at = iso(running.started + timedelta(seconds=t))
         else:
             rows.parse_wall_time(ended_at, "ended_at")
         params = (
@@ -340,14 +343,14 @@ class Store:
         text = str(text)
         if not text.strip():
             raise StoreError("an annotation needs some text")
-        wall = rows.iso(self._wall_clock()) if wall_time is None else wall_time
+        wall = iso(self._wall_clock()) if wall_time is None else wall_time
         rows.parse_wall_time(wall, "wall_time")
         params = (session_id, rows.opt_real(t, "annotation t"), wall, str(origin), text)
 
         def insert(conn: sqlite3.Connection) -> int:
             if conn.execute("SELECT 1 FROM sessions WHERE id = ?", (session_id,)).fetchone() is None:
                 raise StoreError(f"no session {session_id} to annotate")
-            return conn.execute(_INSERT_ANNOTATION, params).lastrowid
+            return _row_id(conn.execute(_INSERT_ANNOTATION, params))
 
         return self._commit(insert)
 
@@ -358,7 +361,7 @@ class Store:
         the wall clock) is kept in a note event saying when the session was closed.
         Sessions begun by this store and still running are left alone.
         """
-        closed_at = rows.iso(self._wall_clock()) if now_iso is None else now_iso
+        closed_at = iso(self._wall_clock()) if now_iso is None else now_iso
         rows.parse_wall_time(closed_at, "now_iso")
         running_here = {sid for sid, s in self._sessions.items() if not s.ended}
         return self._commit(lambda conn: close_unended(conn, closed_at, running_here))
@@ -412,6 +415,12 @@ class Store:
         if running.ended:
             raise StoreError(f"session {session_id} has already ended")
         return running
+
+    @overload
+    def _commit(self) -> None: ...
+
+    @overload
+    def _commit(self, then: Callable[[sqlite3.Connection], T]) -> T: ...
 
     def _commit(self, then: Callable[[sqlite3.Connection], T] | None = None) -> T | None:
         """One transaction: every pending record in order, then `then` (if given).

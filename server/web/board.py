@@ -19,6 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from server.store import queries
+from server.store.wall_clock import local_now
 from server.web.tiles import shown, tile_from_store
 
 
@@ -75,7 +76,7 @@ class Board:
         quiet_after_s: float = 300.0,
         ttl_s: float = 0.25,
         clock: Callable[[], float] = time.monotonic,
-        wall_clock: Callable[[], datetime] = lambda: datetime.now().astimezone(),
+        wall_clock: Callable[[], datetime] = local_now,
     ):
         if live is None and store is None:
             raise ValueError("a board needs a live feed or a store")

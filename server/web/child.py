@@ -30,14 +30,20 @@ import os
 import signal
 import socket
 import sys
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:  # imported when serving starts: the child ignores SIGINT before anything slow
+    from server.web.page_end import LabView
+    from server.web.serving import StatusServer
 
 PAGE_NICENESS = 5
 
 
 async def serve_page(listen_fd: int, channel_fd: int) -> int:
+    from server.lab.page_channel import ChannelError, decode
+    from server.lab.signals import on_stop_signals
     from server.store.errors import StoreError
     from server.web.app import create_app
-    from server.web.channel import ChannelError, decode
     from server.web.page_end import open_lab_view
     from server.web.serving import StatusServer
 
@@ -63,7 +69,11 @@ async def serve_page(listen_fd: int, channel_fd: int) -> int:
         print(f"vigil: status page: {exc}", file=sys.stderr)
         return 1
     server = StatusServer(app, setup["host"], 0, sock=listening)
-    asyncio.get_running_loop().add_signal_handler(signal.SIGTERM, server.stop)
+    with on_stop_signals(asyncio.get_running_loop(), lambda sig: server.stop(), (signal.SIGTERM,)):
+        return await _serve(server, view)
+
+
+async def _serve(server: StatusServer, view: LabView) -> int:
     fed = asyncio.create_task(view.run())
     serving = asyncio.create_task(server.serve())
     while not server.started and not serving.done():

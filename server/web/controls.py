@@ -2,7 +2,7 @@
 
 Only mounted when the app serves a running lab. Every route is POST and checks the operator
 token here, in the page's process; then the lab is asked over the channel and applies the
-action in its own loop (`lab_end.answer`), recording who acted: pause and resume land in the
+action in its own loop (`server.lab.page_feed.answer`), recording who acted: pause and resume land in the
 events table with their origin, a stop in the session's end reason, a note in the
 annotations table. The lab's answer becomes the HTTP status: 404 not running, 409 refused,
 422 a bad note, 503 the store failed or the lab did not answer.
@@ -10,17 +10,30 @@ annotations table. The lab's answer becomes the HTTP status: 404 not running, 40
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, Protocol
 
 from fastapi import APIRouter, HTTPException, Request
 from fastapi.responses import RedirectResponse
 
+from server.engine.records import ControlAction
 from server.web.auth import Refused, form_fields, supplied_token
-from server.web.lab_end import ACTIONS
 from server.web.page_end import LabGone
 from server.web.schemas import ActionOut, NoteIn, NoteOut
 
-DONE = {"pause": "paused", "resume": "resumed", "stop": "stopped", "annotate": "noted"}
+DONE = {
+    ControlAction.PAUSE: "paused",
+    ControlAction.RESUME: "resumed",
+    ControlAction.STOP: "stopped",
+    "annotate": "noted",
+}
+ACTIONS = tuple(action.value for action in ControlAction)
+
+
+class LabControls(Protocol):
+    """The running lab as the page's controls see it: something to ask, over the channel
+    (`server.web.page_end.LabView`); it raises `LabGone` when the lab does not answer."""
+
+    async def ask(self, op: str, session_id: int, origin: str, text: str | None = None) -> dict[str, Any]: ...
 
 
 def origin_of(request: Request) -> str:
@@ -28,7 +41,7 @@ def origin_of(request: Request) -> str:
     return client.host if client is not None else "unknown"
 
 
-async def _ask(live: Any, op: str, session_id: int, origin: str, text: str | None = None) -> dict[str, Any]:
+async def _ask(live: LabControls, op: str, session_id: int, origin: str, text: str | None = None) -> dict[str, Any]:
     """The lab's answer to one control; an HTTP error unless it was done."""
     try:
         reply = await live.ask(op, session_id, origin, text)
@@ -41,7 +54,7 @@ async def _ask(live: Any, op: str, session_id: int, origin: str, text: str | Non
 
 def controls_router(state: Any) -> APIRouter:
     router = APIRouter(tags=["controls"])
-    live = state.live
+    live: LabControls = state.live
 
     async def operator(request: Request) -> str:
         state.guard.check_operator(await supplied_token(request))

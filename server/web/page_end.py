@@ -17,7 +17,8 @@ import time
 from collections.abc import Callable
 from typing import Any
 
-from server.web.channel import LINE_LIMIT, ChannelError, decode, encode
+from server.lab.page_channel import LINE_LIMIT, ChannelError, decode, encode
+from server.lab.status import BoxFacts
 from server.web.tiles import tile_from_facts
 
 ANSWER_TIMEOUT_S = 5.0
@@ -31,7 +32,7 @@ class LatestFeed:
     def __init__(self, clock: Callable[[], float] = time.monotonic):
         self.clock = clock
         self.t = 0.0  # the lab's session clock when the feed was sent
-        self.boxes: list[dict[str, Any]] = []
+        self.boxes: list[BoxFacts] = []  # as the lab sent them (JSON)
         self.received_at: float | None = None
 
     def take(self, feed: dict[str, Any]) -> None:

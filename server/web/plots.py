@@ -169,7 +169,8 @@ def choice_panel(trials: Sequence[dict[str, Any]], estimates: Sequence[dict[str,
         plot.line(xs, ys, "pred")
         plot.legend("pred", f"predicted P({first})")
     else:
-        xs, ys, window = [], [], []
+        xs, ys = [], []
+        window: list[float] = []
         for t in choice_trials:
             window = (window + [1.0 if t["choice"] == first else 0.0])[-10:]
             xs.append(t["trial"])
@@ -220,8 +221,8 @@ def parameter_panels(estimates: Sequence[dict[str, Any]]) -> list[Safe]:
         plot.legend("ci", "95 % band")
         plot.legend("mean", "posterior mean")
         panels.append(plot.render())
-    explore = [(e["trial"], (e["data"] or {}).get("exploration")) for e in estimates]
-    explore = [(t, v) for t, v in explore if isinstance(v, (int, float))]
+    reported = [(e["trial"], (e["data"] or {}).get("exploration")) for e in estimates]
+    explore: list[tuple[Any, float]] = [(t, v) for t, v in reported if isinstance(v, (int, float))]
     if explore:
         plot = Plot(
             (0.0, explore[-1][0] + 0.5),

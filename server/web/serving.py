@@ -10,39 +10,15 @@ page's process), so a busy port is a one-line error rather than an exit from ins
 from __future__ import annotations
 
 import contextlib
-import errno
 import socket
 
 import uvicorn
 from fastapi import FastAPI
 
+from server.lab.page_socket import WebError, bind_socket, url_of
 from server.web.app import close_app, stop_live_updates
 
-
-class WebError(Exception):
-    pass
-
-
-def bind_socket(host: str, port: int) -> socket.socket:
-    """A listening TCP socket on host:port (port 0 picks a free one), so the URL can be
-    printed, and used, before the server's loop gets to it."""
-    family = socket.AF_INET6 if ":" in host else socket.AF_INET
-    # proto given explicitly: asyncio only sets TCP_NODELAY on accepted sockets whose proto
-    # is IPPROTO_TCP, and without it small responses wait ~40 ms on delayed ACKs.
-    sock = socket.socket(family, socket.SOCK_STREAM, socket.IPPROTO_TCP)
-    try:
-        sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
-        sock.bind((host, port))
-        sock.listen(128)  # connections wait in the backlog until uvicorn starts accepting
-    except OSError as exc:
-        sock.close()
-        why = "the port is already in use" if exc.errno == errno.EADDRINUSE else (exc.strerror or str(exc)).lower()
-        raise WebError(f"cannot listen on {host}:{port}: {why}") from None
-    return sock
-
-
-def url_of(host: str, port: int) -> str:
-    return f"http://[{host}]:{port}/" if ":" in host else f"http://{host}:{port}/"
+__all__ = ["StatusServer", "WebError", "bind_socket", "serve", "url_of"]
 
 
 class _KeepOurSignals(uvicorn.Server):

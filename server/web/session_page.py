@@ -8,11 +8,12 @@ import sqlite3
 from datetime import datetime
 from typing import Any
 
+from server.lab.status import rule_text
 from server.store import queries
 from server.web import plots
 from server.web.markup import Safe, el
 from server.web.overview import animal_href
-from server.web.tiles import clock_text, rule_text
+from server.web.tiles import clock_text
 
 EVENT_TAIL = 60
 

@@ -226,7 +226,7 @@ class Plot:
 
     def _legend_svg(self) -> Safe:
         parts = []
-        x = self.width - self.right
+        x: float = self.width - self.right
         for cls, text in reversed(self._legend):
             x -= 14 + 8.2 * len(text) + 18
             parts.append(el("rect", x=f"{x:.0f}", y=12, width=14, height=10, class_=f"key {cls}"))

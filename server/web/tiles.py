@@ -12,6 +12,8 @@ from dataclasses import asdict, dataclass
 from datetime import datetime
 from typing import Any
 
+from server.lab.status import BoxFacts, alarm_message, rule_text
+
 # End reasons of a session that ran its course; anything else ended it early.
 _NORMAL_ENDS = ("session time limit", "protocol complete", "trial limit reached", "time limit")
 CAP_REASON = "reward cap reached"
@@ -57,26 +59,6 @@ def alarms_for(
     return found
 
 
-def rule_text(rule: Any, actions: Any) -> str:
-    """A rule firing in a few words: its name and what it did ("flip: reverse west/east")."""
-    done = []
-    for action in actions or ():
-        if isinstance(action, dict):
-            for what, value in action.items():
-                if isinstance(value, (list, tuple)):
-                    value = "/".join(str(v) for v in value)
-                elif isinstance(value, dict):
-                    value = ", ".join(f"{k} {v}" for k, v in value.items())
-                done.append(f"{what} {value}")
-    return f"{rule}: {'; '.join(done)}" if done else str(rule)
-
-
-def _alarm_message(detail: Any) -> str | None:
-    if isinstance(detail, dict) and detail.get("message"):
-        return str(detail["message"])
-    return None
-
-
 def _tile(**fields: Any) -> dict[str, Any]:
     fields["alarms"] = [asdict(a) for a in fields["alarms"]]
     return fields
@@ -85,46 +67,8 @@ def _tile(**fields: Any) -> dict[str, Any]:
 # ---------------------------------------------------------------- from the live lab
 
 
-def facts_of_run(run: Any) -> dict[str, Any]:
-    """What a tile needs from a `server.lab.BoxRun`, as plain JSON-ready data (read only).
-
-    Read on the lab's loop and sent to the page's process, so it holds no clock reading
-    of its own: times are session seconds, and "now" travels beside the facts (see
-    `tile_from_facts`). Equal facts mean an unchanged tile, which is what lets the lab
-    skip sending a feed when nothing happened.
-    """
-    session = run.session
-    finished = session.finished
-    rule = run.last_rule
-    alarm = getattr(run, "last_alarm", None)
-    connected = getattr(run.link, "connected", True)
-    return {
-        "box": run.config.name,
-        "animal": run.config.animal,
-        "protocol": session.protocol.name,
-        "session_id": run.session_id,
-        "finished": finished,
-        "ended_at": session.ended_at if finished else None,
-        "paused": session.paused and not finished,
-        "block": session.block.block.name if session.block is not None else None,
-        "step": None if finished else session.step_name,
-        "trial": session.trial_index,
-        "trials_done": session.trials_done,
-        "rewards": session.rewards,
-        "scored": run.scored,
-        "correct": run.correct,
-        "limit_s": session.limits.max_minutes * 60.0,
-        "last_input_t": run.last_input_t,
-        "link_lost": bool(run.link_lost or not connected),
-        "last_rule": None if rule is None else {"t": rule.t, "text": rule_text(rule.rule, rule.actions)},
-        "end_reason": session.end_reason,
-        "cap_reached": run.cap_reached,
-        "rule_alarm": None if alarm is None else _alarm_message(alarm.detail),
-    }
-
-
-def tile_from_facts(facts: dict[str, Any], now: float, quiet_after_s: float) -> dict[str, Any]:
-    """A live tile from `facts_of_run` at session time `now` (ignored once the session has
+def tile_from_facts(facts: BoxFacts, now: float, quiet_after_s: float) -> dict[str, Any]:
+    """A live tile from a box's facts (server/lab/status.py) at session time `now` (ignored once the session has
     ended: its tile stops at the end)."""
     finished = facts["finished"]
     if finished and facts["ended_at"] is not None:
@@ -228,7 +172,7 @@ def tile_from_store(
             cap_reached=status["cap_events"] > 0,
             end_reason=end_reason,
             quiet_after_s=quiet_after_s,
-            rule_alarm=None if alarm is None else _alarm_message(alarm["detail"]),
+            rule_alarm=None if alarm is None else alarm_message(alarm["detail"]),
         ),
     )
 

@@ -57,8 +57,8 @@ def test_rehearse_json_is_deterministic_and_shaped():
 
 
 def test_rehearse_same_result_with_any_worker_count():
+    from server.lab.rehearsal import rehearse
     from server.protocol.load import load_protocol
-    from server.rehearsal import rehearse
 
     protocol = load_protocol(ROOT / "protocols" / "bandit.yaml")
     one = rehearse(protocol, 6, 9, "q_learner", workers=1)

@@ -337,7 +337,7 @@ def test_same_seed_same_records_different_seed_differs():
 
 def test_a_trial_cut_by_the_link_is_stored_interrupted_and_the_session_goes_on():
     protocol = choice_protocol("blocks:\n  - block: one\n    trial_types: [pick]\n    until: {trials: 3}\n")
-    from server.closed_loop import build_session
+    from server.lab.assembly import build_session
 
     session = build_session(protocol, 4)
     session.start(0.0)

@@ -7,7 +7,7 @@ import pytest
 from scipy import stats
 
 from server.link.clock_sync import ClockSync
-from server.link.wrap import WRAP, DeviceClockUnwrapper
+from server.link.unwrap import WRAP, DeviceClockUnwrapper
 
 OFFSET_S = 81_234.567_891  # host monotonic time when the device counter read 0
 DRIFT = 50e-6  # the host clock runs 50 ppm faster than the device's

@@ -11,7 +11,7 @@ from server.link.codec import encode
 from server.link.messages import PulseCommand, QueryCommand, ReplayCommand
 from server.link.pending import PendingCommands
 from server.link.sequence import SequenceTracker, Verdict
-from server.link.wrap import WRAP, DeviceClockUnwrapper
+from server.link.unwrap import WRAP, DeviceClockUnwrapper
 
 # ---------------------------------------------------------------- 32-bit counter wrap
 

@@ -28,7 +28,7 @@ from server.link.messages import (
     ReplayCommand,
 )
 from server.link.sequence import SequenceTracker, Verdict
-from server.link.wrap import WRAP, DeviceClockUnwrapper
+from server.link.unwrap import WRAP, DeviceClockUnwrapper
 
 FIRMWARE = Path(__file__).resolve().parents[2] / "hardware_stubs" / "firmware"
 FLASH_BYTES = 32 * 1024  # ATmega328P datasheet: 32 KiB flash, 2 KiB SRAM

@@ -22,8 +22,8 @@ import pytest
 
 from hardware_stubs.box_wire import U32, DeviceWire
 from server.engine.caps import HardCaps
-from server.lab import Lab
-from server.lab_config import BoxConfig, LabConfig
+from server.lab.config import BoxConfig, LabConfig
+from server.lab.supervisor import Lab
 from server.link.handshake import device_channels
 from server.protocol.load import load_protocol
 from server.store.writer import Store

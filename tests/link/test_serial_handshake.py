@@ -11,8 +11,8 @@ import pytest
 from test_pty_link import FR1  # tests/link is on the import path under pytest
 
 from server.engine.caps import HardCaps
-from server.lab import Lab, LabError
-from server.lab_config import BoxConfig, LabConfig
+from server.lab.config import BoxConfig, LabConfig
+from server.lab.supervisor import Lab, LabError
 from server.link.emulator_process import EmulatorProcess, emulator_command
 from server.link.handshake import HandshakeError, LinkError, device_channels, identity_problems
 from server.link.latency_timer import latency_timer_ms, latency_warning

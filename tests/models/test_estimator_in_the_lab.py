@@ -11,7 +11,7 @@ import sys
 import textwrap
 from pathlib import Path
 
-from server.closed_loop import choice_trial_types, estimator_config
+from server.lab.assembly import choice_trial_types, estimator_config
 from server.models.estimator import OnlineEstimator
 from server.protocol.load import load_protocol
 

@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 from model_simulation import as_rows, reference_loglik, simulate
 
-from server.models import fit_cli
+from server.cli import fit as fit_cli
 
 HEADER = "animal,session,trial,choice,reward"
 
@@ -182,7 +182,7 @@ def test_bad_input_as_a_process_gives_one_line_and_no_traceback(tmp_path):
     path = tmp_path / "bad.csv"
     path.write_text(f"{HEADER}\nR1,s1,1,L,oops\n")
     proc = subprocess.run(
-        [sys.executable, "-m", "server.models.fit_cli", str(path)], capture_output=True, text=True, timeout=60
+        [sys.executable, "-m", "server.cli.fit", str(path)], capture_output=True, text=True, timeout=60
     )
     assert proc.returncode == 1
     assert proc.stderr.strip() == f"vigil fit: {path}:2: reward 'oops' is not a finite number"

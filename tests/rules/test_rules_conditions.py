@@ -11,9 +11,9 @@ from pathlib import Path
 
 import pytest
 
-from server.closed_loop import build_session
 from server.engine.caps import HardCaps
 from server.engine.records import EventLogged, InputEvent, RuleFired, TrialRecord
+from server.lab.assembly import build_session
 from server.protocol.load import parse_protocol
 from server.protocol.problems import InvalidFile
 from server.rules.metrics import pca_index, win_stay_lose_shift
@@ -289,9 +289,10 @@ def test_iti_actions_need_declared_bounds():
 
 
 def test_rehearsal_with_rules_is_deterministic_and_reports_firings(tmp_path):
-    from server.population import parse_vary
+    from server.cli.reports import criterion_figure_svg
+    from server.lab.population import parse_vary
+    from server.lab.rehearsal import rehearse
     from server.protocol.load import load_protocol
-    from server.rehearsal import criterion_figure_svg, rehearse
 
     protocol = load_protocol(ROOT / "protocols" / "reversal.yaml")
     population = parse_vary(["alpha=0.2:0.5", "beta=lognormal:5:0.3"], "q_learner")

@@ -9,10 +9,10 @@ from __future__ import annotations
 import asyncio
 import sys
 
-from server.lab import Lab
-from server.lab_config import load_lab
+from server.lab.config import load_lab
+from server.lab.page_process import run_lab_with_page
+from server.lab.supervisor import Lab
 from server.store.writer import Store
-from server.web.launch import run_lab_with_page
 
 
 def main(config_path: str, db: str) -> int:

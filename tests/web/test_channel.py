@@ -9,8 +9,8 @@ import socket
 import httpx
 from web_samples import OPERATOR
 
+from server.lab.page_channel import ChannelError, decode, encode
 from server.web import create_app
-from server.web.channel import ChannelError, decode, encode
 from server.web.page_end import LatestFeed, open_lab_view
 
 

@@ -17,11 +17,11 @@ import httpx
 from web_samples import EVIL_BOX, OPERATOR, lab_config, until_tile
 from web_samples import until as _until
 
-from server.lab import Lab
-from server.lab_config import load_lab
+from server.lab.config import load_lab
+from server.lab.page_feed import FeedBuilder, open_lab_end
+from server.lab.supervisor import Lab
 from server.store.writer import Store
 from server.web import create_app
-from server.web.lab_end import FeedBuilder, open_lab_end
 from server.web.page_end import open_lab_view
 
 CLIENT = ("10.9.8.7", 40000)  # where the test's requests come from (the stored origin)

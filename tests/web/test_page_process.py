@@ -21,11 +21,10 @@ import pytest
 from processes import Vigil, has_exited, page_process_of, wait_exited
 from web_samples import EVIL_BOX, OPERATOR, lab_config, tile_of, until, until_tile
 
-from server.lab import Lab
-from server.lab_config import load_lab
+from server.lab.config import load_lab
+from server.lab.page_process import run_lab_with_page, start_page
+from server.lab.supervisor import Lab
 from server.store.writer import Store
-from server.web.launch import run_lab_with_page
-from server.web.page_process import start_page
 
 HERE = Path(__file__).resolve().parent
 TOKEN = {"X-Vigil-Token": OPERATOR}

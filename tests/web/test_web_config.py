@@ -6,7 +6,7 @@ from __future__ import annotations
 import pytest
 from web_samples import REPO
 
-from server.lab_config import WebSettings, is_loopback, load_lab
+from server.lab.config import WebSettings, is_loopback, load_lab
 from server.protocol.problems import InvalidFile
 
 

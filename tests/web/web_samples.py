@@ -14,10 +14,10 @@ import numpy as np
 
 from hardware_stubs.agents import make_agent
 from hardware_stubs.emulated_box import EmulatedBox
-from server.closed_loop import build_session
 from server.engine.caps import HardCaps
 from server.engine.records import SessionEnded
 from server.engine.virtual import run_virtual
+from server.lab.assembly import build_session
 from server.protocol.load import load_protocol
 from server.store.writer import Store
 

@@ -14,7 +14,7 @@ from pathlib import Path
 
 from server.protocol.problems import InvalidFile
 
-REPO_ROOT = Path(__file__).resolve().parent.parent
+REPO_ROOT = Path(__file__).resolve().parents[2]
 DEMO_CONFIG = REPO_ROOT / "config.example.yaml"
 DEMO_DB = "vigil-demo.sqlite"
 
@@ -50,10 +50,11 @@ def cmd_check(args: argparse.Namespace) -> int:
 
 
 def _run_lab(config, db_path: str, minutes: float | None, port: int | None = None) -> int:
-    from server.lab import Lab, summary_table
+    from server.cli.reports import summary_table
+    from server.lab.page_process import run_lab_with_page
+    from server.lab.supervisor import Lab
     from server.store.errors import StoreError
     from server.store.writer import Store
-    from server.web.launch import run_lab_with_page
 
     try:
         store = Store.open(db_path)
@@ -75,7 +76,7 @@ def _run_lab(config, db_path: str, minutes: float | None, port: int | None = Non
 
 
 def cmd_run(args: argparse.Namespace) -> int:
-    from server.lab_config import load_lab
+    from server.lab.config import load_lab
 
     try:
         config = load_lab(args.config)
@@ -87,7 +88,7 @@ def cmd_run(args: argparse.Namespace) -> int:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
-    from server.demo import demo_lab
+    from server.lab.demo import demo_lab
 
     try:
         config = demo_lab(DEMO_CONFIG, args.boxes)
@@ -113,8 +114,8 @@ def cmd_serve(args: argparse.Namespace) -> int:
 
 
 def cmd_stages(args: argparse.Namespace) -> int:
-    from server.stages import stage_history
     from server.store.queries import open_readonly
+    from server.store.stage_log import stage_history
 
     try:
         conn = open_readonly(args.db)
@@ -144,10 +145,11 @@ def cmd_stages(args: argparse.Namespace) -> int:
 
 def cmd_rehearse(args: argparse.Namespace) -> int:
     from hardware_stubs.agents import AGENTS
+    from server.cli.reports import criterion_figure_svg, human_report, progress_bar
     from server.engine.caps import HardCaps
-    from server.population import load_population, parse_vary
+    from server.lab.population import load_population, parse_vary
+    from server.lab.rehearsal import rehearse
     from server.protocol.load import load_protocol
-    from server.rehearsal import criterion_figure_svg, human_report, progress_bar, rehearse
 
     if args.agent not in AGENTS:
         _err(f"unknown agent '{args.agent}'; choose from {', '.join(sorted(AGENTS))}")
@@ -274,14 +276,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print JSON instead of a table")
     p.set_defaults(func=cmd_rehearse)
 
-    try:
-        from server.models import fit_cli
-    except ImportError:
-        fit_cli = None
-    if fit_cli is not None:
-        p = verbs.add_parser("fit", help="fit learning models to recorded choices")
-        fit_cli.add_arguments(p)
-        p.set_defaults(func=fit_cli.run)
+    from server.cli import fit as fit_cli
+
+    p = verbs.add_parser("fit", help="fit learning models to recorded choices")
+    fit_cli.add_arguments(p)
+    p.set_defaults(func=fit_cli.run)
     return parser
 
 
@@ -295,7 +294,3 @@ def main(argv: list[str] | None = None) -> int:
         return 130
     except BrokenPipeError:
         return 0
-
-
-if __name__ == "__main__":
-    sys.exit(main())

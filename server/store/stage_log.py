@@ -1,18 +1,11 @@
-"""Training stages across days: which protocol each animal runs next, and when it moves on.
-
-The store is the memory: `stage_log` says where each animal is, sessions carry the stage
-they ran at, and advancement is decided from the stored trials of the last sessions, with
-the figures kept as evidence.
-"""
+"""Training stages as the store keeps them: where each animal is, which sessions it ran at
+each stage, and the per-session figures that advancement is judged on."""
 
 from __future__ import annotations
 
 import json
 import sqlite3
-from dataclasses import asdict
 from typing import Any
-
-from server.lab_config import Advance, BoxConfig
 
 
 def session_figures(conn: sqlite3.Connection, session_id: int) -> dict[str, Any]:
@@ -23,7 +16,7 @@ def session_figures(conn: sqlite3.Connection, session_id: int) -> dict[str, Any]
         " FROM trials WHERE session_id = ? AND interrupted = 0",
         (session_id,),
     ).fetchone()
-    trials, rewarded, scored, correct, omitted = row
+    trials, _rewarded, scored, correct, omitted = row
     rewards = conn.execute("SELECT rewards FROM sessions WHERE id = ?", (session_id,)).fetchone()[0]
     return {
         "session": session_id,
@@ -40,6 +33,14 @@ def current_stage(conn: sqlite3.Connection, animal: str) -> int | None:
     return None if row is None else int(row[0])
 
 
+def stage_entered(conn: sqlite3.Connection, animal: str, stage: int) -> int:
+    """The stage-log id of the animal's latest entry into `stage` (0 when never logged)."""
+    row = conn.execute(
+        "SELECT id FROM stage_log WHERE animal = ? AND stage = ? ORDER BY id DESC LIMIT 1", (animal, stage)
+    ).fetchone()
+    return int(row[0]) if row else 0
+
+
 def sessions_at_stage(conn: sqlite3.Connection, animal: str, stage: int, since_log_id: int) -> list[int]:
     """Finished sessions of the animal at this stage since it entered the stage, newest first."""
     rows = conn.execute(
@@ -51,35 +52,6 @@ def sessions_at_stage(conn: sqlite3.Connection, animal: str, stage: int, since_l
     return [sid for sid, settings in rows if json.loads(settings or "{}").get("stage") == stage]
 
 
-def meets(figures: dict[str, Any], advance: Advance) -> bool:
-    if advance.min_accuracy is not None and (figures["accuracy"] is None or figures["accuracy"] < advance.min_accuracy):
-        return False
-    if advance.min_trials is not None and figures["trials"] < advance.min_trials:
-        return False
-    if advance.min_rewards is not None and figures["rewards"] < advance.min_rewards:
-        return False
-    if advance.max_omission_rate is not None and (
-        figures["omission_rate"] is None or figures["omission_rate"] > advance.max_omission_rate
-    ):
-        return False
-    return True
-
-
-def advancement(conn: sqlite3.Connection, animal: str, stage: int, advance: Advance) -> dict[str, Any] | None:
-    """Evidence for moving on from `stage`, or None when the criterion is not met yet."""
-    entered = conn.execute(
-        "SELECT id FROM stage_log WHERE animal = ? AND stage = ? ORDER BY id DESC LIMIT 1", (animal, stage)
-    ).fetchone()
-    sessions = sessions_at_stage(conn, animal, stage, entered[0] if entered else 0)[: advance.sessions]
-    if len(sessions) < advance.sessions:
-        return None
-    figures = [session_figures(conn, sid) for sid in sessions]
-    if not all(meets(f, advance) for f in figures):
-        return None
-    criterion = {k: v for k, v in asdict(advance).items() if v is not None}
-    return {"criterion": criterion, "sessions": figures}
-
-
 def stage_history(conn: sqlite3.Connection) -> list[dict[str, Any]]:
     rows = conn.execute(
         "SELECT animal, stage, protocol, at, session_id, reason, evidence FROM stage_log ORDER BY animal, id"
@@ -88,9 +60,3 @@ def stage_history(conn: sqlite3.Connection) -> list[dict[str, Any]]:
         {"animal": a, "stage": s, "protocol": p, "at": at, "session": sid, "reason": r, "evidence": json.loads(e)}
         for a, s, p, at, sid, r, e in rows
     ]
-
-
-def stage_for_box(conn: sqlite3.Connection, box: BoxConfig) -> int:
-    """The 1-based stage the box's animal should run now (1 before its first session)."""
-    stage = current_stage(conn, box.animal) or 1
-    return min(stage, len(box.stages))

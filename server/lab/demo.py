@@ -6,7 +6,7 @@ from __future__ import annotations
 from dataclasses import replace
 from pathlib import Path
 
-from server.lab_config import Emulation, LabConfig, load_lab
+from server.lab.config import Emulation, LabConfig, load_lab
 
 
 def demo_lab(config_path: Path, boxes: int) -> LabConfig:

@@ -1,8 +1,7 @@
 """Where `vigil fit` gets its trials: a trials CSV or the session database (read-only).
 
-The only I/O in the models layer, kept at its edge: rows are checked and encoded here, so
-every problem in a file is reported as `file:line: message`, and the numerics never see
-a bad row.
+Rows are checked and encoded here, before the models see them, so every problem in a file
+is reported as `file:line: message` and the numerics never see a bad row.
 """
 
 from __future__ import annotations
@@ -13,7 +12,8 @@ import sqlite3
 from collections.abc import Sequence
 from pathlib import Path
 
-from .trials import AnimalTrials, encode_animal
+from server.models.trials import AnimalTrials, encode_animal
+from server.store.history import trial_history
 
 HEADER = ["animal", "session", "trial", "choice", "reward"]
 
@@ -97,27 +97,17 @@ def read_trials_db(path: str, animals: Sequence[str] | None) -> list[AnimalTrial
     except sqlite3.Error as exc:
         raise FitInputError(f"{path}: cannot open database: {exc}") from None
     try:
-        query = (
-            "SELECT s.animal, s.id, t.trial, t.choice, t.reward, t.omission"
-            " FROM trials t JOIN sessions s ON s.id = t.session_id"
-        )
-        params: list[str] = []
-        if animals:
-            query += f" WHERE s.animal IN ({','.join('?' * len(animals))})"
-            params = list(animals)
-        query += " ORDER BY s.started_at, s.id, t.trial"
         try:
-            found = con.execute(query, params).fetchall()
+            found = trial_history(con, animals=animals)
         except sqlite3.Error as exc:
             raise FitInputError(f"{path}: cannot read trials: {exc}") from None
     finally:
         con.close()
     rows: dict[str, list[tuple[str, int, str | None, float]]] = {}
-    for animal, session, trial, choice, reward, omission in found:
-        label = None if (omission or choice is None or choice == "") else str(choice)
-        rows.setdefault(str(animal), []).append(
-            (str(session), int(trial), label, 0.0 if reward is None else float(reward))
-        )
+    for past in found:
+        label = None if (past.omission or not past.choice) else str(past.choice)
+        reward = 0.0 if past.reward is None else float(past.reward)
+        rows.setdefault(past.animal, []).append((str(past.session_id), past.trial, label, reward))
     missing = [a for a in (animals or []) if a not in rows]
     if missing:
         raise FitInputError(f"{path}: no trials for animal {missing[0]!r}")

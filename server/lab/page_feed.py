@@ -11,24 +11,47 @@ buffer is full (only the latest feed matters), and a page that goes away ends on
 from __future__ import annotations
 
 import asyncio
-from collections.abc import Callable
-from typing import Any
+from collections.abc import Callable, Sequence
+from typing import Any, Protocol
 
+from server.engine.records import ControlAction
+from server.lab.page_channel import JSON, LINE_LIMIT, ChannelError, decode, encode
+from server.lab.status import BoxFacts
 from server.store.errors import StoreError
-from server.web.channel import JSON, LINE_LIMIT, ChannelError, decode, encode
-from server.web.tiles import facts_of_run
 
 FEED_EVERY_S = 0.25
 FEED_BACKLOG_BYTES = 1 << 20  # unsent feed beyond this: the page is not reading; skip a turn
-ACTIONS = ("pause", "resume", "stop")
 NOTE_LIMIT = 2000
+
+
+class FedRun(Protocol):
+    """One box's run as the feed reads it (`server.lab.supervisor.BoxRun`)."""
+
+    @property
+    def session_id(self) -> int: ...
+    @property
+    def records_seen(self) -> int: ...
+    @property
+    def name(self) -> str: ...
+    def facts(self) -> BoxFacts: ...
+
+
+class FedLab(Protocol):
+    """The lab as its end of the page's channel sees it (`server.lab.supervisor.Lab`)."""
+
+    @property
+    def runs(self) -> Sequence[FedRun]: ...
+    @property
+    def clock(self) -> Callable[[], float]: ...
+    def control(self, box: str, action: ControlAction, origin: str) -> None: ...
+    def annotate(self, box: str, text: str, origin: str) -> int: ...
 
 
 class FeedBuilder:
     """Feed lines from the lab's runs, `None` when no tile changed since the last line.
 
     A turn reads again only the boxes whose session produced a record since the last turn
-    (`BoxRun.records_seen`: every change a tile shows comes with one), plus `SWEEP` boxes in
+    (`records_seen`: every change a tile shows comes with one), plus `SWEEP` boxes in
     rotation, so that anything changing without a record is still seen within a couple of
     seconds; and only a box whose facts changed is encoded again. Reading a box cold costs
     a few microseconds, encoding it more: most turns touch a handful of 32 boxes. Each line
@@ -37,10 +60,10 @@ class FeedBuilder:
 
     SWEEP = 4
 
-    def __init__(self, lab: Any):
+    def __init__(self, lab: FedLab):
         self.lab = lab
         self._seen: list[int] = []  # records_seen of each run when last read
-        self._facts: list[dict[str, Any]] = []
+        self._facts: list[BoxFacts] = []
         self._json: list[bytes] = []
         self._next = 0  # where the rotating sweep goes on
         self._unsent = True
@@ -49,7 +72,7 @@ class FeedBuilder:
         runs = self.lab.runs
         if len(runs) != len(self._facts):  # the lab's runs are made once, all together
             self._seen = [run.records_seen for run in runs]
-            self._facts = [facts_of_run(run) for run in runs]
+            self._facts = [run.facts() for run in runs]
             self._json = [JSON.encode(facts).encode("utf-8") for facts in self._facts]
             self._unsent = True
         else:
@@ -59,7 +82,7 @@ class FeedBuilder:
                 if run.records_seen == self._seen[i] and i not in swept:
                     continue
                 self._seen[i] = run.records_seen
-                facts = facts_of_run(run)
+                facts = run.facts()
                 if facts != self._facts[i]:
                     self._facts[i] = facts
                     self._json[i] = JSON.encode(facts).encode("utf-8")
@@ -68,8 +91,7 @@ class FeedBuilder:
             return None
         self._unsent = False
         # Every run reads the lab's one session clock: "now" goes once, beside the facts.
-        live = runs[0].live if runs else None
-        t = JSON.encode(live.clock() if live is not None else 0.0).encode("ascii")
+        t = JSON.encode(self.lab.clock() if runs else 0.0).encode("ascii")
         return b'{"feed":{"t":' + t + b',"boxes":[' + b",".join(self._json) + b"]}}\n"
 
     def resend(self) -> None:
@@ -77,7 +99,7 @@ class FeedBuilder:
         self._unsent = True
 
 
-def answer(lab: Any, ask: dict[str, Any]) -> dict[str, Any]:
+def answer(lab: FedLab, ask: dict[str, Any]) -> dict[str, Any]:
     """Apply one control the page asked for; its answer carries the HTTP status to give.
 
     404: the session is not running in this lab; 409: the lab refused (the session ended);
@@ -89,10 +111,10 @@ def answer(lab: Any, ask: dict[str, Any]) -> dict[str, Any]:
     run = next((r for r in lab.runs if r.session_id == session_id), None)
     if run is None:
         return {"status": 404, "detail": f"session {session_id} is not running in this lab"}
-    box = run.config.name
-    if op in ACTIONS:
+    box = run.name
+    if op in tuple(ControlAction):
         try:
-            lab.control(box, op, origin)
+            lab.control(box, ControlAction(op), origin)
         except ValueError as exc:
             return {"status": 409, "detail": str(exc)}
         return {"status": 200, "box": box}
@@ -115,7 +137,7 @@ class LabEnd:
 
     def __init__(
         self,
-        lab: Any,
+        lab: FedLab,
         reader: asyncio.StreamReader,
         writer: asyncio.StreamWriter,
         *,
@@ -187,7 +209,7 @@ class LabEnd:
                 self.ready.set()
 
 
-async def open_lab_end(lab: Any, sock, *, say: Callable[[str], None] = print) -> LabEnd:
+async def open_lab_end(lab: FedLab, sock: Any, *, say: Callable[[str], None] = print) -> LabEnd:
     """The lab's end over a connected stream socket (its half of a socketpair)."""
     reader, writer = await asyncio.open_unix_connection(sock=sock, limit=LINE_LIMIT)
     return LabEnd(lab, reader, writer, say=say)

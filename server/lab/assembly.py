@@ -1,8 +1,9 @@
 """Put a session together with its learning-model estimator and rules.
 
-The engine knows neither models nor rules (layers point one way), so the live lab, the
-rehearsal and the benchmarks all build sessions here: one place, so what is rehearsed is
-exactly what runs.
+The engine knows neither models nor rules (layers point one way): it sees them only as the
+`TrialEstimator` and `TrialRules` of server/engine/seams.py. The live lab, the rehearsal
+and the benchmarks all build sessions here: one place, so what is rehearsed is exactly
+what runs.
 """
 
 from __future__ import annotations
@@ -13,8 +14,10 @@ from typing import Any
 
 from server.engine.caps import HardCaps
 from server.engine.session import Session
+from server.models.estimator import OnlineEstimator
 from server.protocol.model import Protocol
 from server.rules.book import RuleBook
+from server.store.history import trial_history
 
 
 def estimator_config(protocol: Protocol) -> dict[str, Any]:
@@ -32,28 +35,21 @@ def animal_estimator_state(conn: sqlite3.Connection, animal: str, protocol: Prot
     rebuilt by replaying their stored choice trials (exactly the live updates, in order)."""
     if protocol.estimator is None:
         return None
-    from server.models.estimator import OnlineEstimator
-
-    types = choice_trial_types(protocol)
-    rows = conn.execute(
-        "SELECT t.session_id, t.choice, t.reward, t.trial_type FROM trials t JOIN sessions s ON s.id = t.session_id"
-        " WHERE s.animal = ? AND s.protocol = ? AND s.end_reason IS NOT NULL AND t.interrupted = 0"
-        " ORDER BY s.started_at, s.id, t.trial",
-        (animal, protocol.name),
-    ).fetchall()
-    trials = [(sid, choice, reward) for sid, choice, reward, trial_type in rows if trial_type in types]
+    past = trial_history(
+        conn, animals=[animal], protocol=protocol.name, trial_types=choice_trial_types(protocol),
+        ended_sessions_only=True, whole_trials_only=True,
+    )  # fmt: skip
+    trials = [(p.session_id, p.choice, p.reward or 0.0) for p in past]
     if not trials:
         return None
     estimator, _ = OnlineEstimator.replay(trials, **estimator_config(protocol))
     return estimator.state_dict()
 
 
-def make_estimator(protocol: Protocol, state: Mapping[str, Any] | None = None):
+def make_estimator(protocol: Protocol, state: Mapping[str, Any] | None = None) -> OnlineEstimator | None:
     """The protocol's estimator, continuing from an animal's stored state when given."""
     if protocol.estimator is None:
         return None
-    from server.models.estimator import OnlineEstimator
-
     if state is not None:
         estimator = OnlineEstimator.from_state(state)
         estimator.new_session()
@@ -67,11 +63,21 @@ def build_session(
     caps: HardCaps = HardCaps(),
     *,
     log_events: bool = True,
+    summarise_estimates: bool = True,
     estimator_state: Mapping[str, Any] | None = None,
     estimate: bool = True,
 ) -> Session:
-    estimator = make_estimator(protocol, estimator_state) if estimate else None
-    session = Session(protocol, seed, caps, log_events=log_events, estimator=estimator)
-    if protocol.rules:
-        session.observers.append(RuleBook(protocol))
-    return session
+    """A session with the protocol's estimator (unless `estimate` is off) and rules.
+
+    The live lab keeps both switches on; rehearsal turns both off: no event log, and the
+    estimate summarised only when a rule reads it.
+    """
+    return Session(
+        protocol,
+        seed,
+        caps,
+        log_events=log_events,
+        summarise_estimates=summarise_estimates,
+        estimator=make_estimator(protocol, estimator_state) if estimate else None,
+        rules=RuleBook(protocol) if protocol.rules else None,
+    )

@@ -12,6 +12,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import os
+import secrets
 import signal
 import socket
 import subprocess
@@ -19,11 +20,16 @@ import sys
 import threading
 from collections.abc import Callable
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING
 
+from server.lab.config import WebSettings
+from server.lab.page_feed import FedLab, LabEnd, open_lab_end
+from server.lab.page_socket import WebError, bind_socket, url_of
 from server.store import queries
-from server.web.lab_end import LabEnd, open_lab_end
-from server.web.serving import WebError, bind_socket, url_of
+from server.store.errors import StoreError
+
+if TYPE_CHECKING:  # the supervisor is what runs the page, not what the page needs
+    from server.lab.supervisor import BoxRun, Lab
 
 PACKAGE_ROOT = Path(__file__).resolve().parents[2]  # the folder holding `server`
 CLOSE_WAIT_S = 8.0  # uvicorn's graceful shutdown takes up to 3 s
@@ -89,7 +95,7 @@ class PageProcess:
 
 
 async def start_page(
-    lab: Any,
+    lab: FedLab,
     db_path: str | Path,
     *,
     host: str,
@@ -145,3 +151,49 @@ async def start_page(
         }
     )
     return PageProcess(proc, end, url, say)
+
+
+def _say(text: str) -> None:
+    print(text, flush=True)
+
+
+async def run_lab_with_page(
+    lab: Lab,
+    db_path: str | Path,
+    web: WebSettings,
+    *,
+    minutes: float | None,
+    port: int | None = None,
+    say: Callable[[str], None] = _say,
+) -> list[BoxRun]:
+    """Run the lab with its status page in a process of its own; returns the lab's runs.
+
+    Without an operator token in the config, one is drawn for this run and printed. A page
+    that cannot start (a busy port) is reported and the sessions run without it: the
+    animals are already in the boxes. The page's process ends with the lab.
+    """
+    token = web.operator_token or secrets.token_urlsafe(18)
+    try:
+        page: PageProcess | None = await start_page(
+            lab,
+            db_path,
+            host=web.host,
+            port=web.port if port is None else port,
+            operator_token=token,
+            viewer_token=web.viewer_token,
+            lab_name=lab.config.lab,
+            quiet_after_s=web.no_response_minutes * 60.0,
+            say=say,
+        )
+    except (WebError, StoreError) as exc:
+        say(f"warning: status page not started: {exc}")
+        page = None
+    if page is not None:
+        say(f"status page: {page.url}")
+        if web.operator_token is None:
+            say(f"operator token for this run (pause, stop, notes): {token}")
+    try:
+        return await lab.run(minutes)
+    finally:
+        if page is not None:
+            await page.close()

@@ -293,7 +293,7 @@ class _LabReader(Reader):
         if not (set(f) - {"sessions"}):
             self.error(node.mark, f"{where}: give at least one of {', '.join(ADVANCE_KEYS[1:])}")
             return None
-        values: dict[str, Any] = {}
+        values: dict[str, float | None] = {}
         for key in ("sessions", "min_trials", "min_rewards"):
             if key in f:
                 values[key] = self.number(f[key], f"{where}.{key}", low=1 if key == "sessions" else 0, integer=True)
@@ -302,8 +302,12 @@ class _LabReader(Reader):
                 values[key] = self.probability(f[key], f"{where}.{key}")
         if any(v is None for v in values.values()):
             return None
+        counts = {
+            k: int(v) for k, v in values.items() if v is not None and k in ("sessions", "min_trials", "min_rewards")
+        }
+        rates = {k: float(v) for k, v in values.items() if v is not None and k not in counts}
         return Advance(
-            **{k: (int(v) if k in ("sessions", "min_trials", "min_rewards") else float(v)) for k, v in values.items()}
+            **counts, min_accuracy=rates.get("min_accuracy"), max_omission_rate=rates.get("max_omission_rate")
         )
 
     def box_settings(self, node: Marked | None, where: str, protocols: list[Protocol]) -> dict[str, float]:
@@ -372,6 +376,7 @@ class _LabReader(Reader):
                 faults[key] = float(value or 0.0)
         if bad:
             return None
+        assert node is not None  # mapping(None) is None
         if ("unplug_every_s" in faults) != ("unplug_for_s" in faults):
             self.error(node.mark, f"{where}: give both unplug_every_s and unplug_for_s, or neither")
             return None

@@ -1,6 +1,6 @@
 """`vigil fit`: fit choice models to recorded trials, compare them, export regressors.
 
-The lead's `vigil` entry point builds the sub-parser with `add_arguments` and calls
+`vigil` (server/cli/__init__.py) builds the sub-parser with `add_arguments` and calls
 `run(args)`, which returns the exit code: 0 done, 1 unreadable input or nothing to fit,
 2 usage error. Every error is one line on stderr, never a traceback.
 """
@@ -15,12 +15,12 @@ import sys
 from collections.abc import Sequence
 from typing import TextIO
 
-from .batch import ValueSettings
-from .choice import CHOICE_MODELS, get_choice_model
-from .comparison import Comparison, compare_models, regressors
-from .fit_sources import FitInputError, read_trials_csv, read_trials_db
-from .fitting import FitResult, fit_animals
-from .trials import AnimalTrials
+from server.cli.fit_sources import FitInputError, read_trials_csv, read_trials_db
+from server.models.batch import ValueSettings
+from server.models.choice import CHOICE_MODELS, get_choice_model
+from server.models.comparison import Comparison, compare_models, regressors
+from server.models.fitting import FitResult, fit_animals
+from server.models.trials import AnimalTrials
 
 PROG = "vigil fit"
 

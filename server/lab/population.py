@@ -18,7 +18,7 @@ from pathlib import Path
 
 import numpy as np
 
-from server.protocol.marked import Mark, load_marked
+from server.protocol.marked import Mark, Marked, load_marked
 from server.protocol.problems import InvalidFile, Problem
 from server.protocol.reader import Reader
 
@@ -62,7 +62,7 @@ class Population:
         return drawn
 
 
-def _read_spread(r: Reader, node, where: str) -> Spread | None:
+def _read_spread(r: Reader, node: Marked, where: str) -> Spread | None:
     if not node.is_mapping:
         value = r.number(node, where)
         return None if value is None else Spread("fixed", float(value))
@@ -71,21 +71,21 @@ def _read_spread(r: Reader, node, where: str) -> Spread | None:
         if f is not None:
             r.error(node.mark, f"{where}: expected one of uniform, lognormal, normal")
         return None
-    kind, value = next(iter(f.items()))
+    kind, spec = next(iter(f.items()))
     if kind == "uniform":
-        bounds = r.listing(value, f"{where}.uniform")
+        bounds = r.listing(spec, f"{where}.uniform")
         if len(bounds) != 2:
-            r.error(value.mark, f"{where}.uniform: expected [low, high]")
+            r.error(spec.mark, f"{where}.uniform: expected [low, high]")
             return None
         low, high = r.number(bounds[0], f"{where}.uniform low"), r.number(bounds[1], f"{where}.uniform high")
         if low is None or high is None:
             return None
         if high < low:
-            r.error(value.mark, f"{where}.uniform: low {low:g} is above high {high:g}")
+            r.error(spec.mark, f"{where}.uniform: low {low:g} is above high {high:g}")
             return None
         return Spread("uniform", float(low), float(high))
     keys = ("median", "sigma") if kind == "lognormal" else ("mean", "sd")
-    g = r.mapping(value, f"{where}.{kind}", keys, required=keys)
+    g = r.mapping(spec, f"{where}.{kind}", keys, required=keys)
     if g is None:
         return None
     first = r.number(

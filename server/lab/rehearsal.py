@@ -8,22 +8,19 @@ byte-identical output.
 from __future__ import annotations
 
 import os
-import sys
 from collections.abc import Callable
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, TypedDict
 
 import numpy as np
 
-from server.closed_loop import build_session
 from server.engine.caps import HardCaps
 from server.engine.session import Session
 from server.engine.virtual import run_virtual
-from server.population import Population, Spread
+from server.lab.assembly import build_session
+from server.lab.population import Population, Spread
 from server.protocol.model import SCHEDULE_ACTIONS, Protocol
-from server.rules.book import firing_counts as rule_firings
-from server.rules.book import firing_log
 
 PARALLEL_FROM = 40  # animals; below this a process pool costs more than it saves
 
@@ -34,6 +31,23 @@ class Animal:
     session_seed: int
     agent_seed: int
     params_seed: int
+
+
+class _BlockRun(TypedDict):
+    block: str
+    trials: int
+    ended_by: str | None
+
+
+class _Day(TypedDict):
+    """One session of one animal; the result lists these (without blocks) when there are several."""
+
+    trials: int
+    rewards: int
+    duration_s: float
+    reversals: int
+    end_reason: str | None
+    blocks: list[_BlockRun]
 
 
 def cohort(seed: int, n: int) -> list[Animal]:
@@ -70,7 +84,7 @@ def rehearse_one(
     params = population.draw(np.random.default_rng(animal.params_seed))
     learned: dict = {}
     estimator_state = None
-    days = []
+    days: list[_Day] = []
     firings: dict[str, int] = {}
     log: list[dict] = []
     trials_before = 0
@@ -80,8 +94,9 @@ def rehearse_one(
         agent.restore(learned)
         if closed_loop:
             session = build_session(
-                protocol, animal.session_seed + day, caps, log_events=False, estimator_state=estimator_state
-            )
+                protocol, animal.session_seed + day, caps,
+                log_events=False, summarise_estimates=False, estimator_state=estimator_state,
+            )  # fmt: skip
         else:  # the schedule alone: no estimator, no rules (a speed baseline)
             session = Session(protocol, animal.session_seed + day, caps, log_events=False)
         box = EmulatedBox(protocol.wiring, agent, np.random.default_rng(animal.agent_seed + day))
@@ -89,13 +104,14 @@ def rehearse_one(
         learned = agent.learned_state()
         if session.estimator is not None:
             estimator_state = session.estimator.state_dict()
-        for name, count in rule_firings(session).items():
+        counts = session.rules.firings() if session.rules is not None else {}
+        for name, count in counts.items():
             firings[name] = firings.get(name, 0) + count
         if with_log:
             log.extend(
                 {"session": day + 1, "trial": f.trial, "minute": round(f.t / 60, 2), "rule": f.rule,
                  "actions": list(f.actions), "values": f.values}
-                for f in firing_log(session)
+                for f in session.rule_firings
             )  # fmt: skip
         if to_criterion is None and session.first_criterion_trial is not None:
             to_criterion = trials_before + session.first_criterion_trial
@@ -215,99 +231,3 @@ def summarise(results: list[dict], criterion: bool, sessions: int = 1) -> dict:
             round(1 - len(reached) / len(results), 4) if criterion and results else None
         ),
     }
-
-
-def progress_bar(stream=sys.stderr) -> Callable[[int, int], None] | None:
-    if not stream.isatty():
-        return None
-
-    def show(done: int, total: int) -> None:
-        width = 30
-        filled = width * done // max(total, 1)
-        stream.write(f"\r[{'#' * filled}{'.' * (width - filled)}] {done}/{total} animals")
-        if done == total:
-            stream.write("\n")
-        stream.flush()
-
-    return show
-
-
-def human_report(result: dict) -> str:
-    s = result["summary"]
-    k = result.get("sessions_per_animal", 1)
-    days = f", {k} sessions each" if k > 1 else ""
-    lines = [f"protocol '{result['protocol']}', seed {result['seed']}, {s['animals']} virtual animals{days}", ""]
-    lines.append(f"{'animal':<14}{'trials':>7}{'rewards':>9}{'minutes':>9}{'reversals':>10}  criterion    end")
-    for r in result["animals"]:
-        if r["criterion_reached"] is None:
-            crit = "-"
-        elif r["criterion_reached"]:
-            crit = f"trial {r['trials_to_criterion']}" + (f" (s{r['sessions_to_criterion']})" if k > 1 else "")
-        else:
-            crit = "never"
-        lines.append(
-            f"{r['animal']:<14}{r['trials']:>7}{r['rewards']:>9}{r['duration_s'] / 60:>9.1f}"
-            f"{r['reversals']:>10}  {crit:<12} {r['end_reason']}"
-        )
-        for f in r.get("firing_log", []):
-            values = ", ".join(f"{k} {v:.3g}" if isinstance(v, float) else f"{k} {v}" for k, v in f["values"].items())
-            did = "; ".join(", ".join(f"{k} {v}" for k, v in a.items()) for a in f["actions"])
-            lines.append(f"    s{f['session']} trial {f['trial']:>4}  {f['rule']}: {did}  ({values})")
-    lines.append("")
-
-    def fmt(spread: dict | None, scale: float = 1.0) -> str:
-        if not spread or spread["median"] is None:
-            return "-"
-        return f"median {spread['median'] / scale:.1f} (IQR {spread['q1'] / scale:.1f}-{spread['q3'] / scale:.1f})"
-
-    lines.append(f"trials per session     {fmt(s['trials'])}")
-    lines.append(f"rewards per session    {fmt(s['rewards'])}   (for food-restriction planning)")
-    lines.append(f"session minutes        {fmt(s['duration_s'], 60.0)}")
-    lines.append(f"reversals per session  {fmt(s['reversals_per_session'])}")
-    if s["trials_to_criterion"] is not None:
-        lines.append(f"trials to criterion    {fmt(s['trials_to_criterion'])}")
-        if k > 1:
-            lines.append(f"sessions to criterion  {fmt(s['sessions_to_criterion'])}")
-        lines.append(f"never reached          {s['fraction_never_reaching_criterion']:.0%} of animals")
-    if s["rule_firings"]:
-        lines.append("rule firings           " + ", ".join(f"{n}: {c}" for n, c in s["rule_firings"].items()))
-    return "\n".join(lines)
-
-
-def criterion_figure_svg(result: dict) -> str:
-    """A histogram of trials to criterion across the cohort, as a standalone SVG."""
-    from xml.sax.saxutils import escape
-
-    values = [r["trials_to_criterion"] for r in result["animals"] if r["trials_to_criterion"] is not None]
-    never = sum(1 for r in result["animals"] if r["criterion_reached"] is False)
-    width, height, left, bottom = 640, 360, 60, 50
-    plot_w, plot_h = width - left - 20, height - bottom - 40
-    title = escape(f"{result['protocol']}: trials to criterion, {len(result['animals'])} virtual animals")
-    parts = [
-        f'<svg xmlns="http://www.w3.org/2000/svg" width="{width}" height="{height}" '
-        f'viewBox="0 0 {width} {height}" font-family="sans-serif" font-size="12">',
-        f'<rect width="{width}" height="{height}" fill="white"/>',
-        f'<text x="{left}" y="22" font-size="14">{title}</text>',
-    ]
-    if values:
-        counts, edges = np.histogram(values, bins=min(20, max(1, len(set(values)))))
-        top = max(counts) or 1
-        bar_w = plot_w / len(counts)
-        for i, c in enumerate(counts):
-            h = plot_h * c / top
-            x = left + i * bar_w
-            parts.append(
-                f'<rect x="{x:.1f}" y="{40 + plot_h - h:.1f}" width="{bar_w - 2:.1f}" height="{h:.1f}" fill="#4a6fa5"/>'
-            )
-        for i in (0, len(edges) // 2, len(edges) - 1):
-            x = left + plot_w * i / (len(edges) - 1)
-            parts.append(f'<text x="{x:.1f}" y="{height - bottom + 18}" text-anchor="middle">{edges[i]:.0f}</text>')
-        parts.append(f'<text x="{left - 8}" y="{40 + 4}" text-anchor="end">{top}</text>')
-        parts.append(f'<text x="{left - 8}" y="{40 + plot_h}" text-anchor="end">0</text>')
-    parts.append(f'<line x1="{left}" y1="{40 + plot_h}" x2="{left + plot_w}" y2="{40 + plot_h}" stroke="black"/>')
-    parts.append(
-        f'<text x="{left + plot_w / 2}" y="{height - 12}" text-anchor="middle">trials to criterion (animals)</text>'
-    )
-    parts.append(f'<text x="{left + plot_w}" y="{height - 12}" text-anchor="end">never reached: {never}</text>')
-    parts.append("</svg>")
-    return "\n".join(parts) + "\n"

@@ -1,0 +1,135 @@
+"""What each box looks like right now: kept up to date from its session's record stream,
+and turned into the plain facts the status page's process is fed.
+
+Facts hold no clock reading of their own: times are session seconds, and the feed sends
+"now" beside them (server/lab/page_feed.py); the page adds the time since it received them.
+"""
+
+from __future__ import annotations
+
+from typing import Any, TypedDict
+
+from server.engine.records import EventLogged, Record, RuleFired, SessionEnded, TrialRecord
+from server.engine.session import Session
+
+
+class RuleShown(TypedDict):
+    t: float
+    text: str
+
+
+class BoxFacts(TypedDict):
+    """One box as the lab sends it to the page (JSON); equal facts mean an unchanged tile."""
+
+    box: str
+    animal: str
+    protocol: str
+    session_id: int
+    finished: bool
+    ended_at: float | None
+    paused: bool
+    block: str | None
+    step: str | None
+    trial: int
+    trials_done: int
+    rewards: int
+    scored: int
+    correct: int
+    limit_s: float
+    last_input_t: float | None
+    link_lost: bool
+    last_rule: RuleShown | None
+    end_reason: str | None
+    cap_reached: bool
+    rule_alarm: str | None
+
+
+class BoxStatus:
+    """What a status view needs of one box, from its records (constant time per record)."""
+
+    def __init__(self) -> None:
+        self.last_trial: TrialRecord | None = None
+        self.ended: SessionEnded | None = None
+        self.last_input_t: float | None = None  # session time of the last input onset
+        self.last_rule: RuleFired | None = None
+        self.last_alarm: EventLogged | None = None  # the last alarm a rule raised
+        self.link_lost = False
+        self.cap_reached = False
+        self.scored = 0  # trials where correctness applies
+        self.correct = 0
+        self.records_seen = 0  # lets a status view skip a box whose session said nothing new
+
+    def observe(self, record: Record) -> None:
+        self.records_seen += 1
+        if isinstance(record, TrialRecord):
+            self.last_trial = record
+            if record.correct is not None:
+                self.scored += 1
+                self.correct += bool(record.correct)
+        elif isinstance(record, EventLogged):
+            kind = record.kind
+            if kind == "input":
+                if record.value:
+                    self.last_input_t = record.t
+            elif kind == "alarm":
+                self.last_alarm = record
+            elif kind in ("link_lost", "link_restored"):
+                self.link_lost = kind == "link_lost"
+            elif kind == "cap":
+                self.cap_reached = True
+        elif isinstance(record, SessionEnded):
+            self.ended = record
+        elif isinstance(record, RuleFired):
+            self.last_rule = record
+
+
+def rule_text(rule: Any, actions: Any) -> str:
+    """A rule firing in a few words: its name and what it did ("flip: reverse west/east")."""
+    done = []
+    for action in actions or ():
+        if isinstance(action, dict):
+            for what, value in action.items():
+                if isinstance(value, (list, tuple)):
+                    value = "/".join(str(v) for v in value)
+                elif isinstance(value, dict):
+                    value = ", ".join(f"{k} {v}" for k, v in value.items())
+                done.append(f"{what} {value}")
+    return f"{rule}: {'; '.join(done)}" if done else str(rule)
+
+
+def alarm_message(detail: Any) -> str | None:
+    """The message of a rule's alarm event, from its stored detail."""
+    if isinstance(detail, dict) and detail.get("message"):
+        return str(detail["message"])
+    return None
+
+
+def box_facts(box: str, animal: str, session_id: int, session: Session, status: BoxStatus, connected: bool) -> BoxFacts:
+    """The facts of one running box (read on the lab's loop, sent to the page's process)."""
+    finished = session.finished
+    rule = status.last_rule
+    alarm = status.last_alarm
+    block = session.block
+    return {
+        "box": box,
+        "animal": animal,
+        "protocol": session.protocol.name,
+        "session_id": session_id,
+        "finished": finished,
+        "ended_at": session.ended_at if finished else None,
+        "paused": session.paused and not finished,
+        "block": block.block.name if block is not None else None,
+        "step": None if finished else session.step_name,
+        "trial": session.trial_index,
+        "trials_done": session.trials_done,
+        "rewards": session.rewards,
+        "scored": status.scored,
+        "correct": status.correct,
+        "limit_s": session.limits.max_minutes * 60.0,
+        "last_input_t": status.last_input_t,
+        "link_lost": bool(status.link_lost or not connected),
+        "last_rule": None if rule is None else {"t": rule.t, "text": rule_text(rule.rule, rule.actions)},
+        "end_reason": session.end_reason,
+        "cap_reached": status.cap_reached,
+        "rule_alarm": None if alarm is None else alarm_message(alarm.detail),
+    }

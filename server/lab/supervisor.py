@@ -1,0 +1,245 @@
+"""The lab supervisor: one asyncio loop drives every box's session and keeps the store fed.
+
+Long-lived lab state (store, links, signal handling, the time limit) lives here; each box's
+per-session state lives in its `Session`, and what a status view reads of it in its
+`BoxStatus`. Records flow one way: session -> store (and the status of the box).
+"""
+
+from __future__ import annotations
+
+import asyncio
+import secrets
+import shutil
+import tempfile
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+from typing import Any
+
+from server.engine.live import LiveSession
+from server.engine.records import ControlAction, Record, SessionEnded
+from server.engine.seams import BoxLink
+from server.engine.session import Session
+from server.lab.assembly import animal_estimator_state, build_session
+from server.lab.box_links import LabError, close_links, make_box
+from server.lab.config import BoxConfig, LabConfig
+from server.lab.signals import on_stop_signals
+from server.lab.stages import StageKeeper
+from server.lab.status import BoxFacts, BoxStatus, box_facts
+from server.link.handshake import LinkError
+from server.store.background import BackgroundWriter
+from server.store.wall_clock import wall_now
+from server.store.writer import Store
+
+__all__ = ["BoxRun", "Lab", "LabError"]
+
+
+@dataclass
+class BoxRun:
+    """What the lab holds for one box during a run."""
+
+    config: BoxConfig
+    session: Session
+    session_id: int
+    link: BoxLink
+    live: LiveSession
+    status: BoxStatus = field(default_factory=BoxStatus)
+
+    @property
+    def ended(self) -> SessionEnded | None:
+        return self.status.ended
+
+    @property
+    def records_seen(self) -> int:
+        return self.status.records_seen
+
+    @property
+    def name(self) -> str:
+        return self.config.name
+
+    def facts(self) -> BoxFacts:
+        """The box's tile facts for the status page (read on the lab's loop)."""
+        return box_facts(
+            self.config.name, self.config.animal, self.session_id, self.session, self.status, self.link.connected
+        )
+
+
+class Lab:
+    def __init__(
+        self,
+        config: LabConfig,
+        store: Store,
+        *,
+        say: Callable[[str], None] = print,
+        in_process_boxes: bool = False,
+    ):
+        self.config = config
+        self.store = store
+        self.writer = BackgroundWriter(store, say)  # commits off the event loop
+        self.say = say
+        self.in_process_boxes = in_process_boxes  # emulated boxes without serial (tests)
+        self.runs: list[BoxRun] = []
+        self.stages = StageKeeper(store, say)
+        self._stop_reason: str | None = None
+        self._clock: Callable[[], float] = lambda: 0.0
+
+    @property
+    def clock(self) -> Callable[[], float]:
+        """Session seconds of this run (every box starts together)."""
+        return self._clock
+
+    def stop_all(self, reason: str) -> None:
+        self._stop_reason = self._stop_reason or reason
+        for run in self.runs:
+            if not run.session.finished:
+                run.live.request_stop(reason)
+
+    # ------------------------------------------------------------ operator controls
+
+    def find(self, box: str) -> BoxRun:
+        for run in self.runs:
+            if run.config.name == box:
+                return run
+        raise KeyError(box)
+
+    def control(self, box: str, action: ControlAction, origin: str) -> None:
+        """Pause, resume or stop one box's session (the status page's controls call this).
+
+        Raises KeyError for an unknown box and ValueError when the session has ended.
+        """
+        run = self.find(box)
+        if run.session.finished:
+            raise ValueError(f"session of box '{box}' has ended")
+        action = ControlAction(action)
+        if action is ControlAction.STOP:
+            run.live.request(action, f"stopped by operator ({origin})")
+        else:
+            run.live.request(action, origin)
+
+    def annotate(self, box: str, text: str, origin: str) -> int:
+        """Store a free-text note on the box's current session at the session time now.
+
+        Raises KeyError for an unknown box; returns the annotation's id.
+        """
+        run = self.find(box)
+        t = run.ended.t if run.ended is not None else run.live.clock()
+        with self.writer.direct() as store:
+            return store.write_annotation(run.session_id, text, origin, t=t, wall_time=wall_now())
+
+    def _publisher(self, box: BoxConfig, session_id: int, status: BoxStatus) -> Callable[[list[Record]], None]:
+        def publish(records: list[Record]) -> None:
+            for record in records:
+                status.observe(record)
+                if isinstance(record, SessionEnded):
+                    self.say(
+                        f"{box.name}: session {session_id} ended ({record.reason}); "
+                        f"{record.trials} trials, {record.rewards} rewards"
+                    )
+                self.writer.write(session_id, record)
+                if isinstance(record, SessionEnded):
+                    self.stages.after_session(box, session_id, self.writer)
+
+        return publish
+
+    # ------------------------------------------------------------ the run
+
+    async def run(self, minutes: float | None = None) -> list[BoxRun]:
+        loop = asyncio.get_running_loop()
+        closed = self.store.close_interrupted(wall_now())
+        if closed:
+            self.say(f"closed {len(closed)} interrupted session(s) from an earlier run: {closed}")
+        self.config = replace(self.config, boxes=tuple(self.stages.today(box) for box in self.config.boxes))
+        t0 = loop.time()
+
+        def clock() -> float:
+            return loop.time() - t0
+
+        self._clock = clock
+        # A folder for the emulated boxes' pty links, only when some box needs one.
+        emulated = not self.in_process_boxes and any(b.emulate is not None for b in self.config.boxes)
+        folder = Path(tempfile.mkdtemp(prefix="vigil-boxes-")) if emulated else None
+        try:
+            links = await self._connect(clock, folder)
+        except BaseException:
+            if folder is not None:
+                shutil.rmtree(folder, ignore_errors=True)
+            raise
+        t0 = loop.time()  # session time starts once every box has answered
+        for box, link in zip(self.config.boxes, links):
+            self.runs.append(self._begin(box, link, clock))
+
+        with on_stop_signals(loop, lambda sig: self.stop_all(f"stopped by signal ({sig.name})")):
+            self.writer.start()
+            limit = asyncio.create_task(self._time_limit(minutes)) if minutes else None
+            link_tasks = [asyncio.create_task(run.link.run()) for run in self.runs]
+            try:
+                results = await asyncio.gather(*(run.live.run() for run in self.runs), return_exceptions=True)
+                for run, result in zip(self.runs, results):
+                    if isinstance(result, BaseException):
+                        self.say(f"{run.config.name}: session {run.session_id} failed: {result!r}")
+            finally:
+                # Sessions end with outputs off: wait for the box to acknowledge, then close.
+                await close_links([run.link for run in self.runs])
+                if folder is not None:
+                    shutil.rmtree(folder, ignore_errors=True)
+                others = link_tasks + ([limit] if limit else [])
+                for task in others:
+                    task.cancel()
+                await asyncio.gather(*others, return_exceptions=True)
+                self.writer.close()  # everything queued is committed before the lab returns
+        return self.runs
+
+    def _begin(self, box: BoxConfig, link: BoxLink, clock: Callable[[], float]) -> BoxRun:
+        """Store a new session for the box and set it up against its link."""
+        seed = box.seed if box.seed is not None else secrets.randbits(63)
+        state = animal_estimator_state(self.store.conn, box.animal, box.protocol)
+        session = build_session(box.protocol, seed, self.config.caps, estimator_state=state)
+        session_id = self.store.begin_session(
+            box.name, box.animal, box.protocol.name, box.protocol.source,
+            box.protocol.sha256, seed, wall_now(), self._settings(box),
+        )  # fmt: skip
+        status = BoxStatus()
+        live = LiveSession(session, link, clock, self._publisher(box, session_id, status))
+        self.say(f"{box.name}: animal {box.animal}, protocol '{box.protocol.name}', session {session_id}")
+        return BoxRun(box, session, session_id, link, live, status)
+
+    def _settings(self, box: BoxConfig) -> dict[str, Any]:
+        """What the store keeps of how the session was set up."""
+        caps = self.config.caps
+        emulate = box.emulate
+        return {
+            "caps": {"max_rewards": caps.max_rewards, "max_minutes": caps.max_minutes},
+            "emulate": None if emulate is None else {
+                "agent": emulate.agent, "seed": emulate.seed, "options": emulate.options, "faults": emulate.faults,
+            },
+            "port": box.port,
+            "stage": self.stages.running.get(box.name),
+            "protocol_settings": box.protocol.settings,
+            # Line kinds let a reader of the store tell a feeder pulse from a sync pulse.
+            "wiring": {
+                "inputs": {n: line.kind for n, line in box.protocol.wiring.inputs.items()},
+                "outputs": {n: line.kind for n, line in box.protocol.wiring.outputs.items()},
+            },
+        }  # fmt: skip
+
+    async def _connect(self, clock: Callable[[], float], folder: Path | None) -> Sequence[BoxLink]:
+        """A link per box, each greeted and checked against its protocol's wiring before
+        any session starts; every box's problem is reported at once."""
+        links = [
+            make_box(box, clock, folder=folder, say=self.say, in_process=self.in_process_boxes)
+            for box in self.config.boxes
+        ]
+        results = await asyncio.gather(*(link.connect() for link in links), return_exceptions=True)
+        failures = [r for r in results if isinstance(r, BaseException)]
+        if failures:
+            await close_links(links)
+            bugs = [r for r in failures if not isinstance(r, LinkError)]
+            if bugs:
+                raise bugs[0]
+            raise LabError("\n".join(str(r) for r in failures))
+        return links
+
+    async def _time_limit(self, minutes: float) -> None:
+        await asyncio.sleep(minutes * 60.0)
+        self.say(f"time limit of {minutes:g} min reached; ending sessions")
+        self.stop_all("time limit")

@@ -1,0 +1,63 @@
+"""Each animal's trial history across sessions, as plain data: what the estimator replays
+at the start of a session, what `vigil fit --db` fits and what the choices CSV exports.
+
+One query for all three, so they cannot disagree about which trials an animal has had or
+in which order (sessions in the order they started, trials in order within each).
+"""
+
+from __future__ import annotations
+
+import sqlite3
+from collections.abc import Collection, Sequence
+from dataclasses import dataclass
+
+
+@dataclass(frozen=True, slots=True)
+class PastTrial:
+    animal: str
+    session_id: int
+    trial: int
+    choice: str | None  # as stored: None (or empty) when no option was chosen
+    reward: float | None  # pellets delivered
+    omission: bool
+
+
+def trial_history(
+    conn: sqlite3.Connection,
+    *,
+    animals: Sequence[str] | None = None,
+    protocol: str | None = None,
+    trial_types: Collection[str] | None = None,
+    ended_sessions_only: bool = False,
+    whole_trials_only: bool = False,
+) -> list[PastTrial]:
+    """Trials of the given animals (every animal when None), optionally only of one protocol,
+    of some trial types, of sessions that have ended, or not interrupted. Only the columns
+    a filter names are read beyond the choice table's own, so a database holding just those
+    (an export, a hand-made one) can be read too."""
+    where: list[str] = []
+    params: list[object] = []
+    if animals:
+        where.append(f"s.animal IN ({','.join('?' * len(animals))})")
+        params += list(animals)
+    if protocol is not None:
+        where.append("s.protocol = ?")
+        params.append(protocol)
+    if trial_types is not None:
+        kinds = sorted(trial_types)
+        where.append(f"t.trial_type IN ({','.join('?' * len(kinds))})")
+        params += kinds
+    if ended_sessions_only:
+        where.append("s.end_reason IS NOT NULL")
+    if whole_trials_only:
+        where.append("t.interrupted = 0")
+    sql = (
+        "SELECT s.animal, t.session_id, t.trial, t.choice, t.reward, t.omission"
+        " FROM trials t JOIN sessions s ON s.id = t.session_id"
+        + (" WHERE " + " AND ".join(where) if where else "")
+        + " ORDER BY s.started_at, s.id, t.trial"
+    )
+    return [
+        PastTrial(str(a), int(sid), int(n), choice, reward, bool(omitted))
+        for a, sid, n, choice, reward, omitted in conn.execute(sql, params)
+    ]
