@@ -107,10 +107,14 @@ class HostSide:
         return command
 
     def drive(self, channel: int, on: bool, now: float) -> HostCommand:
-        return self._send(DriveCommand(self.pending.next_id(), channel, on), now)
+        command = DriveCommand(self.pending.next_id(), channel, on)
+        self.pending.supersede(command)  # an older resend must not overtake this one
+        return self._send(command, now)
 
     def pulse(self, channel: int, ms: int, now: float) -> HostCommand:
-        return self._send(PulseCommand(self.pending.next_id(), channel, ms), now)
+        command = PulseCommand(self.pending.next_id(), channel, ms)
+        self.pending.supersede(command)
+        return self._send(command, now)
 
     def ask(self, topic: str, now: float) -> HostCommand:
         return self._send(QueryCommand(self.pending.next_id(), topic), now)
