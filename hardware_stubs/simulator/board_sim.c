@@ -397,6 +397,7 @@ int main(int argc, char **argv) {
         uint64_t now = now_cycle(), end = now + SLICE_CYCLES;
         /* Keep simulated time in step with the host's clock: a slice runs only once the
          * host's clock has passed its end, so the board is never ahead of the host. */
+        int watch_host = wire.master >= 0;
         for (;;) {
             double wait_s = (double)(end - c0) / FREQ - (monotonic_s() - t0);
             if (-wait_s > lag_max_s) lag_max_s = -wait_s;
@@ -409,10 +410,13 @@ int main(int argc, char **argv) {
             struct pollfd fds[2] = {{.fd = 0, .events = POLLIN},
                                     {.fd = wire.master, .events = POLLIN}};
             struct timespec wait = {0, wait_s > 0 ? (long)(wait_s * 1e9) : 0};
-            int ready = ppoll(fds, wire.master >= 0 ? 2 : 1, &wait, NULL);
+            int ready = ppoll(fds, watch_host && wire.master >= 0 ? 2 : 1, &wait, NULL);
             if (ready > 0) {
                 if (fds[0].revents & (POLLIN | POLLHUP | POLLERR)) read_control(now);
-                if (wire.master >= 0 && (fds[1].revents & POLLIN)) read_host(now);
+                if (watch_host && wire.master >= 0) {
+                    if (fds[1].revents & POLLIN) read_host(now);
+                    if (fds[1].revents & POLLHUP) watch_host = 0; /* no host: look next slice */
+                }
                 fflush(stdout);
             }
             if (quitting || wait_s <= 0) break;

@@ -34,9 +34,12 @@ int cable_plug(cable *c) {
         errno = saved;
         return -1;
     }
-    /* Holding the slave open keeps the master readable while no host has the port open. */
+    /* The slave is not held open here: like a real device node, the port is open only
+     * while a host has it (so `vigil doctor` sees no other process holding it). Meanwhile
+     * the master reports a hang-up and bytes written to it go nowhere, as on a real line. */
+    close(slave);
     c->master = master;
-    c->slave = slave;
+    c->slave = -1;
     return 0;
 }
 
@@ -44,7 +47,7 @@ void cable_unplug(cable *c) {
     if (c->master < 0) return;
     unlink(c->link);
     close(c->master);
-    close(c->slave);
+    if (c->slave >= 0) close(c->slave);
     c->master = c->slave = -1;
 }
 
