@@ -76,7 +76,7 @@ async def run(samples: int, warmup: int, folder: Path, lab_host) -> dict:
         try:
             if not board.wait_for(lambda b: any(c.channel == LEVER and c.level for c in b.outputs), 30):
                 return
-            for _ in range(samples + warmup):
+            for _ in range(samples + warmup + 5):  # a few spare: the first `samples` count
                 pellets = sum(1 for c in board.output_log(FEEDER) if c.level)
                 presses.append(board.press(LEVER, HOLD_US))
                 board.wait_for(lambda b: sum(1 for c in b.outputs if c.channel == FEEDER and c.level)
@@ -100,6 +100,7 @@ async def run(samples: int, warmup: int, folder: Path, lab_host) -> dict:
         answer = next((f for f in feeder_on if f > press), None)
         if answer is not None:
             latencies.append((answer - press) / FREQ_HZ)
+    latencies = latencies[:samples]
     # Typical line lengths: event numbers in the thousands, a board time of 9 digits, a
     # host command id of 10 (random 31-bit start, PROTOCOL.md section 3).
     wire = line_ms(1_000, 123_456_789, 1_234_567_890)
