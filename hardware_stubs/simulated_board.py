@@ -189,7 +189,7 @@ class SimulatedBoard:
         self.now()
 
     def noise(self, direction: str, every: int) -> None:
-        """Change one byte of every `every`-th line: 'rx' host to board, 'tx' board to host."""
+        """Change one byte in 1 of `every` lines (drawn): 'rx' host to board, 'tx' board to host."""
         self._send(f"noise {direction} {every}\n")
         self.now()
 

@@ -10,7 +10,7 @@
  *   in CH LEVEL [AFTER_US]   input channel CH (1-8) active (1) or idle (0)
  *   unplug | plug            pull the cable out (the link path disappears) / put it back
  *   reset                    reset the board (as the reset button; EEPROM is kept)
- *   noise rx|tx EVERY        change one byte of every EVERY-th line to / from the board
+ *   noise rx|tx EVERY        change one byte in 1 of EVERY lines (drawn) to / from the board
  *   sync TOKEN               answered "synced TOKEN CYCLE" once everything before it ran
  *   stats                    answered with one "stats key=value ..." line
  *   quit                     (end of stdin too)

@@ -61,8 +61,9 @@ static uint32_t next_noise(cable_line *l) {
 
 int cable_send(cable_line *l, uint8_t byte, uint64_t now, uint64_t byte_cycles, int *corrupted) {
     *corrupted = 0;
+    if (l->pos == 0) l->chosen = l->every && next_noise(l) % l->every == 0;
     /* The third byte of a chosen line is always inside the body that the CRC covers. */
-    if (l->every && l->line_no % l->every == l->every - 1 && l->pos == 2 && byte != '\n') {
+    if (l->chosen && l->pos == 2 && byte != '\n') {
         uint8_t shift = (uint8_t)(1 + next_noise(l) % 94); /* another printable character */
         byte = (uint8_t)(0x20 + (byte - 0x20 + shift) % 95);
         l->corrupted++;

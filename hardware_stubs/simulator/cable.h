@@ -15,7 +15,8 @@ typedef struct {
     uint8_t byte[CABLE_QUEUE];
     uint32_t head, tail;        /* tail: next to deliver */
     uint64_t free_at;           /* cycle the line is free for the next byte */
-    uint32_t every;             /* corrupt one byte of every `every`-th line (0: never) */
+    uint32_t every;             /* corrupt one byte in 1 of `every` lines (0: never) */
+    uint8_t chosen;             /* the current line is one of them */
     uint32_t line_no, pos;      /* line count and position within the current line */
     uint32_t corrupted, lines;  /* lines corrupted, lines carried */
     uint32_t dropped;           /* bytes lost: queue full, or nobody on the other end */
@@ -34,7 +35,9 @@ int cable_plug(cable *c);       /* 0 ok, -1 with errno */
 void cable_unplug(cable *c);
 
 /* Queue one byte on a line at cycle `now`; `byte_cycles` is one frame on the wire. Returns
- * 1 when the byte is the end of a line (LF). Corrupts it first when its line is chosen. */
+ * 1 when the byte is the end of a line (LF). Corrupts it first when its line is chosen: each
+ * line with odds 1 in `every`, drawn (not every n-th, which can fall in step with a resend
+ * period and damage the same command every time). */
 int cable_send(cable_line *l, uint8_t byte, uint64_t now, uint64_t byte_cycles, int *corrupted);
 
 /* The next byte whose time has come (due <= now), or -1. */

@@ -27,3 +27,24 @@ def test_a_newer_pulse_replaces_a_set_but_not_another_pulse():
     assert 2 in pending  # a pellet the session counted is still owed
     # Nothing superseded is resent.
     assert [c.command_id for c in pending.due(1.0).resend] == [2]
+
+
+def test_a_pulse_waits_for_the_earlier_pulse_on_its_output_to_end():
+    # Two pellets 0.4 s apart whose first line is damaged and resent must not reach the
+    # device 10 ms apart: the second would only restart the first (PROTOCOL.md section 4).
+    from server.link.codec import Decoder, encode
+    from server.link.host_side import HostSide
+    from server.link.messages import Ack, Identity
+
+    side = HostSide(first_id=10)
+    side.receive(encode(Identity(0, "t", 1, 1, (), ())), 0.0)
+    first = side.pulse(7, 30, 0.0)
+    assert first is not None
+    side.take_output()
+    assert side.pulse(7, 30, 0.4) is None  # the first is not acknowledged yet: held
+    assert Decoder("host").feed(side.take_output()) == []
+    side.receive(encode(Ack(0, first.command_id, "ok", 5, 0)), 0.41)
+    assert Decoder("host").feed(side.take_output()) == []  # the first is still on until 0.44
+    side.poll(0.45)
+    (second,) = [m for m in Decoder("host").feed(side.take_output()) if isinstance(m, PulseCommand)]
+    assert second.channel == 7 and side.next_deadline() < float("inf")
