@@ -61,7 +61,11 @@ def test_a_glitch_is_ignored_a_press_is_one_edge_stamped_at_its_first_change(boa
         (48_000, 4, False),
         (60_000, 3, True), (61_900, 3, False),               # 1.9 ms: still below 2 ms
     ])  # fmt: skip
-    edges = [m for m in read_for(port, decoder, 0.3) if isinstance(m, Edge)]
+    edges: list = []
+    end = time.monotonic() + 3  # a busy machine may hold the lines back a while
+    while len(edges) < 4 and time.monotonic() < end:
+        edges += [m for m in read_for(port, decoder, 0.1) if isinstance(m, Edge)]
+    edges += [m for m in read_for(port, decoder, 0.2) if isinstance(m, Edge)]  # and no more
     assert [(e.channel, e.rising) for e in edges] == [(2, True), (2, False), (4, True), (4, False)]
     assert [e.seq for e in edges] == [1, 2, 3, 4]
     # Device time of each edge against the pin script: README "Inputs are debounced on the
