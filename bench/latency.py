@@ -8,11 +8,15 @@ the SQLite store. Baseline in the same run: the same device against a bare async
 answers each press line with a pulse line at once (pty + event loop, no Vigil), so the ratio
 is what our stack adds.
 
-    python bench/latency.py [--json] [--boxes 32] [--samples 2000] [--rate 200]
+    python bench/latency.py [--json] [--boxes 32] [--samples 2000] [--rate 200] [--firmware]
 
 `--rate` is the press rate over all boxes together (presses per second); `--json` prints one
 line {"n", "p50_ms", "p99_ms", "max_ms"} for the full stack. The first 3 presses of each box
 are left out (the lab is still starting the other sessions then).
+
+`--firmware` adds the same loop through the reference firmware on a simulated board
+(bench/firmware_latency.py: lever pin edge -> feeder pin edge, in simulated cycles), printed
+beside the pty figures, with the share of it that the serial line alone takes.
 """
 
 from __future__ import annotations
@@ -240,6 +244,12 @@ def main() -> int:
         metavar="DIR",
         help="folder for the bench database (default: the system's temporary folder)",
     )
+    p.add_argument(
+        "--firmware", action="store_true", help="also through the reference firmware on a simulated board (simavr)"
+    )
+    p.add_argument(
+        "--firmware-samples", type=int, default=1000, metavar="N", help="presses on the simulated board (default 1000)"
+    )
     p.add_argument("--device", action="store_true", help=argparse.SUPPRESS)
     p.add_argument("--per-box", type=int, default=0, help=argparse.SUPPRESS)
     p.add_argument("--pause", type=float, default=0.005, help=argparse.SUPPRESS)
@@ -253,6 +263,12 @@ def main() -> int:
         folder = Path(tmp)
         base = summary(asyncio.run(phase("echo", args.boxes, args.samples, args.rate, folder)))
         stack = summary(asyncio.run(phase("lab", args.boxes, args.samples, args.rate, folder)))
+        board = None
+        if args.firmware:
+            board = firmware_phase(args.firmware_samples, folder)
+            if isinstance(board, str):
+                print(f"firmware: skipped: {board}")
+                board = None
     if args.json:
         print(json.dumps(stack))
         return 0
@@ -266,7 +282,43 @@ def main() -> int:
         f"p99 x{stack['p99_ms'] / base['p99_ms']:.1f}"
     )
     print(f"target p99 <= 2 ms (stretch 0.5 ms): {'met' if stack['p99_ms'] <= 2 else 'NOT met'}")
+    if board is not None:
+        print_firmware(board, stack)
     return 0
+
+
+def firmware_phase(samples: int, folder: Path) -> dict | str:
+    """The loop through the simulated board, or why it cannot run here (one line)."""
+    from firmware_latency import run  # bench/ is this script's folder
+
+    from hardware_stubs.simulated_board import BoardError
+
+    try:
+        result = asyncio.run(run(samples, WARMUP, folder, lab_host))
+    except BoardError as exc:
+        return str(exc)
+    result["summary"] = summary(result["samples"]) if result["samples"] else None
+    return result if result["summary"] else "no press was answered"
+
+
+def print_firmware(board: dict, pty: dict) -> None:
+    s, wire = board["summary"], board["line_ms"]
+    print()
+    print("through the reference firmware on a simulated ATmega328P (simavr, 16 MHz, 115,200 baud):")
+    print("lever pin edge -> feeder pin edge, in simulated cycles (debounce 2 ms, both lines on")
+    print(
+        f"the wire, firmware, pty, vigil); simulated clock at most {board['lag_max_us'] / 1e3:.1f} ms "
+        f"behind the host's, {board['resyncs']:.0f} restarts of the clock"
+    )
+    print(f"{'':28}{'n':>6}{'p50 ms':>9}{'p99 ms':>9}{'max ms':>9}")
+    print(f"{'vigil over pty (above)':28}{pty['n']:>6}{pty['p50_ms']:>9.3f}{pty['p99_ms']:>9.3f}{pty['max_ms']:>9.3f}")
+    print(f"{'firmware + line + vigil':28}{s['n']:>6}{s['p50_ms']:>9.3f}{s['p99_ms']:>9.3f}{s['max_ms']:>9.3f}")
+    rest = s["p50_ms"] - wire - 2.0
+    print(
+        f"of the p50: serial line {wire:.2f} ms ({wire / s['p50_ms']:.0%}; edge line + pulse line, "
+        f"10 bits a byte), debounce 2.00 ms ({2.0 / s['p50_ms']:.0%}), the rest {rest:.2f} ms "
+        f"(firmware, pty, host stack)"
+    )
 
 
 if __name__ == "__main__":

@@ -23,6 +23,8 @@ static uint8_t levels;
 
 static void put(uint8_t byte) { putchar(byte); }
 
+static uint32_t clock_now(void) { return now_us; }
+
 static void set_output(uint8_t channel, uint8_t on) {
     printf("@out %u %u %lu\n", channel, on, (unsigned long)now_us);
 }
@@ -47,7 +49,7 @@ int main(void) {
     char *line = NULL;
     size_t cap = 0;
     ssize_t len;
-    vp_init(&box, &box_channels, set_output, 1, 0, now_us);
+    vp_init(&box, &box_channels, set_output, clock_now, 1, 0, now_us);
     loop_pass();
     while ((len = getline(&line, &cap, stdin)) > 0) {
         if (line[0] == '@') {
@@ -63,7 +65,7 @@ int main(void) {
                 vp_input_changed(&box, (uint8_t)(a - 1), now_us);
                 loop_pass();
             } else if (sscanf(line, "@boot %llu", &a) == 1) {
-                vp_init(&box, &box_channels, set_output, (uint16_t)a, levels, now_us);
+                vp_init(&box, &box_channels, set_output, clock_now, (uint16_t)a, levels, now_us);
                 loop_pass();
             } else {
                 fprintf(stderr, "host_sim: unknown directive: %s", line);

@@ -71,7 +71,12 @@ static uint32_t clock_us_locked(void) {
     uint16_t ticks = TCNT1;
     uint32_t overflows = timer_overflows;
     if ((TIFR1 & _BV(TOV1)) && ticks < 0x8000u) overflows++; /* overflow not yet serviced */
-    return (overflows << 15) + (ticks >> 1);
+    /* overflows * 32768 + ticks / 2, mod 2^32. Written as a shift by 16 (byte moves) plus
+     * one bit, because avr-gcc turns a 32-bit shift by 15 into a 15-pass loop: with four
+     * clock reads a pass, that alone made the idle main loop take about 60 us. */
+    uint32_t t = (overflows >> 1) << 16;
+    if (overflows & 1u) t += 0x8000u;
+    return t + (ticks >> 1);
 }
 
 static uint32_t clock_us(void) {
@@ -121,9 +126,17 @@ ISR(USART_UDRE_vect) {
     UDR0 = tx_ring[tx_tail++];
 }
 
+/* Pulse ends are checked between every step of the main loop and every byte written: one
+ * pass takes 50-100 us, a line to format or check longer, and a pulse should end within a
+ * few tens of microseconds of its time. */
+static void end_pulses_now(void) {
+    if (box.pulsing) vp_end_pulses(&box, clock_us());
+}
+
 static void transmit(uint8_t byte) {
     tx_ring[tx_head++] = byte; /* the caller checked there is room */
     UCSR0B |= _BV(UDRIE0);
+    end_pulses_now(); /* a whole line takes a while to format */
 }
 
 static uint8_t tx_free(void) { return (uint8_t)(255u - (uint8_t)(tx_head - tx_tail)); }
@@ -173,7 +186,7 @@ static void setup(void) {
     uint16_t boot = (uint16_t)(eeprom_read_word((uint16_t *)0) + 1u);
     eeprom_update_word((uint16_t *)0, boot);
 
-    vp_init(&box, &box_channels, set_output, boot, input_levels(), 0);
+    vp_init(&box, &box_channels, set_output, clock_us, boot, input_levels(), 0);
     wdt_enable(WDTO_500MS);
     sei();
 }
@@ -186,11 +199,13 @@ int main(void) {
         while (rx_tail != rx_head && vp_can_receive(&box)) {
             vp_receive(&box, rx_ring[rx_tail], now);
             rx_tail = (uint8_t)((rx_tail + 1) % sizeof rx_ring);
+            end_pulses_now();
         }
         ATOMIC_BLOCK(ATOMIC_RESTORESTATE) { /* the pin-change ISRs share the debouncers */
             vp_poll_inputs(&box, input_levels(), clock_us_locked());
         }
         vp_tick(&box, clock_us());
         if (tx_free() >= VP_LINE_MAX) vp_write_next(&box, clock_us(), transmit);
+        end_pulses_now();
     }
 }

@@ -11,10 +11,12 @@
 #include <avr/pgmspace.h>
 #define VP_FLASH PROGMEM
 #define VP_FLASH_BYTE(p) pgm_read_byte(p)
+#define VP_FLASH_WORD(p) pgm_read_word(p)
 #define VP_FLASH_DWORD(p) pgm_read_dword(p)
 #else
 #define VP_FLASH
 #define VP_FLASH_BYTE(p) (*(const uint8_t *)(p))
+#define VP_FLASH_WORD(p) (*(const uint16_t *)(p))
 #define VP_FLASH_DWORD(p) (*(const uint32_t *)(p))
 #endif
 

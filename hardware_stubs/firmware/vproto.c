@@ -28,11 +28,12 @@ static void write_channels(vl_writer *w, uint8_t n, const char (*codes)[3]) {
 
 /* ------------------------------------------------------------------ state */
 
-void vp_init(vp_device *d, const vp_channel_map *map, vp_output_fn set_output, uint16_t boot,
-             uint8_t input_levels, uint32_t now_us) {
+void vp_init(vp_device *d, const vp_channel_map *map, vp_output_fn set_output,
+             vp_clock_fn clock, uint16_t boot, uint8_t input_levels, uint32_t now_us) {
     memset(d, 0, sizeof *d);
     d->map = map;
     d->set_output = set_output;
+    d->clock = clock;
     d->boot = boot;
     d->cursor = 1;
     d->want_identity = 1; /* announce ourselves after every boot */
@@ -40,6 +41,7 @@ void vp_init(vp_device *d, const vp_channel_map *map, vp_output_fn set_output, u
     d->host_silent = 1; /* outputs start off: already safe */
     for (uint8_t i = 0; i < map->n_inputs && i < VP_MAX_INPUTS; i++)
         d->inputs[i].stable = (input_levels >> i) & 1u;
+    d->stable_levels = (uint8_t)(input_levels & (uint8_t)((1u << map->n_inputs) - 1u));
     for (uint8_t ch = 1; ch <= map->n_outputs; ch++) set_output(ch, 0);
 }
 
@@ -63,22 +65,29 @@ void vp_input_changed(vp_device *d, uint8_t index, uint32_t when_us) {
     if (!in->pending) {
         in->pending = 1;
         in->first_us = when_us;
+        d->pending_mask |= (uint8_t)(1u << index);
     }
     in->last_us = when_us;
 }
 
 void vp_poll_inputs(vp_device *d, uint8_t levels, uint32_t now_us) {
-    for (uint8_t i = 0; i < d->map->n_inputs && i < VP_MAX_INPUTS; i++) {
+    /* A moving mask, not levels >> i: an 8-bit core shifts by a variable count in a loop. */
+    uint8_t used = (uint8_t)((1u << d->map->n_inputs) - 1u);
+    if (!d->pending_mask && (levels & used) == d->stable_levels) return; /* most passes */
+    uint8_t mask = 1u;
+    for (uint8_t i = 0; i < d->map->n_inputs && i < VP_MAX_INPUTS; i++, mask <<= 1) {
         vp_debounce *in = &d->inputs[i];
-        uint8_t level = (levels >> i) & 1u;
+        uint8_t level = (levels & mask) ? 1u : 0u;
         if (!in->pending) {
             if (level != in->stable) vp_input_changed(d, i, now_us); /* a change missed */
             continue;
         }
         if (!reached(now_us, in->last_us + VP_DEBOUNCE_US)) continue;
         in->pending = 0;
+        d->pending_mask &= (uint8_t)~mask;
         if (level == in->stable) continue; /* a flicker that came back: no edge */
         in->stable = level;
+        d->stable_levels = (uint8_t)(level ? d->stable_levels | mask : d->stable_levels & ~mask);
         vp_add_event(d, (uint8_t)(i + 1), level, in->first_us);
     }
 }
@@ -96,16 +105,20 @@ static void all_off(vp_device *d) {
     d->pulsing = 0;
 }
 
-void vp_tick(vp_device *d, uint32_t now_us) {
-    if (d->pulsing) {
-        for (uint8_t ch = 1; ch <= d->map->n_outputs; ch++) {
-            uint16_t bit = (uint16_t)(1u << (ch - 1));
-            if ((d->pulsing & bit) && reached(now_us, d->pulse_end_us[ch - 1])) {
-                d->pulsing &= (uint16_t)~bit;
-                drive(d, ch, 0);
-            }
+void vp_end_pulses(vp_device *d, uint32_t now_us) {
+    /* A moving bit, and a stop after the last pulsing channel: 1 << (ch - 1) is a loop on an
+     * 8-bit core, and this runs many times a pass while a pulse is on. */
+    uint16_t bit = 1u;
+    for (uint8_t ch = 1; ch <= d->map->n_outputs && d->pulsing >= bit; ch++, bit <<= 1) {
+        if ((d->pulsing & bit) && reached(now_us, d->pulse_end_us[ch - 1])) {
+            d->pulsing &= (uint16_t)~bit;
+            drive(d, ch, 0);
         }
     }
+}
+
+void vp_tick(vp_device *d, uint32_t now_us) {
+    vp_end_pulses(d, now_us);
     if (!d->host_silent && reached(now_us, d->host_seen_us + VP_HOST_SILENCE_US)) {
         d->host_silent = 1;
         all_off(d);
@@ -144,7 +157,9 @@ static uint8_t actuate(vp_device *d, uint8_t pulse, uint32_t ch, uint32_t arg, u
     if (ch < 1 || ch > d->map->n_outputs) return VP_NO_CHANNEL;
     uint16_t bit = (uint16_t)(1u << (ch - 1));
     if (pulse) {
-        d->pulse_end_us[ch - 1] = now_us + arg * 1000UL;
+        /* The width counts from the output's turning on, read just before it does. */
+        uint32_t on_us = d->clock ? d->clock() : now_us;
+        d->pulse_end_us[ch - 1] = on_us + arg * 1000UL;
         d->pulsing |= bit;
         drive(d, (uint8_t)ch, 1);
     } else {

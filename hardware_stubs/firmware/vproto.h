@@ -40,6 +40,8 @@ typedef struct {
 } vp_channel_map;
 
 typedef void (*vp_output_fn)(uint8_t channel, uint8_t on);
+/* The device clock read at the instant it is called (microseconds, mod 2^32). */
+typedef uint32_t (*vp_clock_fn)(void);
 
 typedef struct {
     uint32_t t_us;
@@ -69,6 +71,7 @@ typedef struct {
 typedef struct {
     const vp_channel_map *map;
     vp_output_fn set_output;
+    vp_clock_fn clock;
     uint16_t boot;
 
     vp_event ring[VP_RING];
@@ -95,10 +98,14 @@ typedef struct {
     uint32_t rx_rejected;
 
     vp_debounce inputs[VP_MAX_INPUTS];
+    uint8_t stable_levels; /* bit i: inputs[i].stable */
+    uint8_t pending_mask;  /* bit i: inputs[i].pending */
 } vp_device;
 
-void vp_init(vp_device *d, const vp_channel_map *map, vp_output_fn set_output, uint16_t boot,
-             uint8_t input_levels, uint32_t now_us);
+/* `clock` times pulses from the instant their output turns on: the `now_us` handed to
+ * vp_receive was read before the line was checked and parsed, which takes a while. */
+void vp_init(vp_device *d, const vp_channel_map *map, vp_output_fn set_output,
+             vp_clock_fn clock, uint16_t boot, uint8_t input_levels, uint32_t now_us);
 
 /* Receiving: feed bytes only while vp_can_receive() (the ack queue has room). */
 uint8_t vp_can_receive(const vp_device *d);
@@ -111,6 +118,9 @@ void vp_add_event(vp_device *d, uint8_t channel, uint8_t rising, uint32_t t_us);
 
 /* Timing on the device: pulse ends, heartbeat, host silence. */
 void vp_tick(vp_device *d, uint32_t now_us);
+/* Pulse ends only: cheap, and safe to call from inside vp_write_next's `put` or between
+ * received bytes, so that a long line does not hold a pulse on past its end. */
+void vp_end_pulses(vp_device *d, uint32_t now_us);
 
 /* Writes the next line through `put`, if any is due; returns its length (0: nothing).
  * Call it only with room for VP_LINE_MAX bytes. */

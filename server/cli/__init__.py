@@ -1,4 +1,4 @@
-"""`vigil` command line: check, run, demo, serve, rehearse, fit.
+"""`vigil` command line: check, run, demo, serve, rehearse, fit, doctor.
 
 Exit codes: 0 success, 1 invalid input or a failed run, 2 usage error. Problems with
 files are printed as `file:line:col: message`; a traceback never reaches the user.
@@ -184,6 +184,39 @@ def cmd_rehearse(args: argparse.Namespace) -> int:
     return 0
 
 
+# ---------------------------------------------------------------- doctor
+
+
+def cmd_doctor(args: argparse.Namespace) -> int:
+    """One line per finding about each box's serial port; 1 when any is a problem."""
+    from server.link import doctor
+
+    if args.config:
+        from server.lab.config import load_lab
+
+        try:
+            config = load_lab(args.config)
+        except InvalidFile as exc:
+            for problem in exc.problems:
+                sys.stderr.write(f"{problem}\n")
+            return 1
+        if not any(box.port for box in config.boxes):
+            print(f"{args.config}: no box has a `port:`; nothing to check")
+            return 0
+        findings = doctor.check_lab(config.boxes)
+    else:
+        ports = doctor.serial_ports()
+        if not ports:
+            print("no serial ports found (is a board plugged in?)")
+            return 1
+        findings = [f for port in ports for f in doctor.check_port(port, port)]
+    for f in findings:
+        print(f"{f.target}: {f.level}: {f.message}" + (f" -> {f.advice}" if f.advice else ""))
+    bad = sum(f.level == "problem" for f in findings)
+    print(f"{bad} problem(s)" if bad else "all good")
+    return 1 if bad else 0
+
+
 # ---------------------------------------------------------------- parser
 
 
@@ -275,6 +308,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--firings", action="store_true", help="list every rule firing with the values its condition read")
     p.add_argument("--json", action="store_true", help="print JSON instead of a table")
     p.set_defaults(func=cmd_rehearse)
+
+    p = verbs.add_parser("doctor", help="check the serial ports and boards of a lab config")
+    p.add_argument("config", nargs="?", metavar="CONFIG", help="lab config (default: every serial port found)")
+    p.set_defaults(func=cmd_doctor)
 
     from server.cli import fit as fit_cli
 

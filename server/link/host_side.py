@@ -98,6 +98,8 @@ class HostSide:
         self._replay_asked_s: float | None = None
         self._clock_window = clock_window
         self._out = bytearray()
+        self._pulse_until: dict[int, float] = {}  # channel -> when its last pulse is surely over
+        self._held_pulses: dict[int, list[int]] = {}  # channel -> widths (ms) waiting their turn
 
     # ------------------------------------------------------------ sending
 
@@ -107,10 +109,37 @@ class HostSide:
         return command
 
     def drive(self, channel: int, on: bool, now: float) -> HostCommand:
-        return self._send(DriveCommand(self.pending.next_id(), channel, on), now)
+        command = DriveCommand(self.pending.next_id(), channel, on)
+        self.pending.supersede(command)  # an older resend must not overtake this one
+        return self._send(command, now)
 
-    def pulse(self, channel: int, ms: int, now: float) -> HostCommand:
-        return self._send(PulseCommand(self.pending.next_id(), channel, ms), now)
+    def pulse(self, channel: int, ms: int, now: float) -> HostCommand | None:
+        """Pulse an output; held back (None) while an earlier pulse there may still be on.
+
+        A pulse that reaches the device while another runs on its output only restarts the
+        time (PROTOCOL.md section 4), so two pellets would drop as one. An earlier pulse whose
+        line was damaged and resent can arrive just before the next one: found on the
+        simulated board. So the next pulse on an output waits for the earlier one's ack and
+        its width.
+        """
+        if self._pulse_busy(channel, now) or self._held_pulses.get(channel):
+            self._held_pulses.setdefault(channel, []).append(ms)
+            return None
+        return self._send_pulse(channel, ms, now)
+
+    def _send_pulse(self, channel: int, ms: int, now: float) -> HostCommand:
+        command = PulseCommand(self.pending.next_id(), channel, ms)
+        self.pending.supersede(command)
+        self._pulse_until[channel] = math.inf  # until its ack says when it started
+        return self._send(command, now)
+
+    def _pulse_busy(self, channel: int, now: float) -> bool:
+        return now < self._pulse_until.get(channel, -math.inf)
+
+    def _release_pulses(self, now: float) -> None:
+        for channel, queued in self._held_pulses.items():
+            if queued and not self._pulse_busy(channel, now):
+                self._send_pulse(channel, queued.pop(0), now)
 
     def ask(self, topic: str, now: float) -> HostCommand:
         return self._send(QueryCommand(self.pending.next_id(), topic), now)
@@ -137,6 +166,8 @@ class HostSide:
         while len(self.pending):  # run every command through its resends at once
             unacked.extend(self.pending.due(math.inf).given_up)
         self._out.clear()
+        self._pulse_until.clear()
+        self._held_pulses.clear()  # never sent: dropped with the link, like pulses asked while it is down
         return tuple(unacked)
 
     # ------------------------------------------------------------ receiving
@@ -198,6 +229,10 @@ class HostSide:
         done = self.pending.acknowledge(msg.command_id)
         if done is None:
             return  # an ack repeated for a resend we already had answered
+        if isinstance(done.command, PulseCommand):
+            # The ack is written right after the output went on: it is off by now + width.
+            self._pulse_until[done.command.channel] = now + done.command.ms / 1000.0
+            self._release_pulses(now)
         if isinstance(done.command, QueryCommand) and done.attempts == 1 and self.tracker:
             # Round trips of pings only (PROTOCOL.md section 9): about one a second keeps the
             # fit cheap; Karn & Partridge (1987): only a command sent once gives a clean one.
@@ -224,6 +259,10 @@ class HostSide:
         for command in plan.resend:
             self._out += encode(command)
         out.extend(CommandFailed(p) for p in plan.given_up)
+        for p in plan.given_up:  # a pulse never acknowledged no longer holds its output
+            if isinstance(p.command, PulseCommand):
+                self._pulse_until.pop(p.command.channel, None)
+        self._release_pulses(now)
         self._ask_replay(now)
         if self.tracker is not None and now >= self._next_ping_s:
             self.ask(TOPIC_BEAT, now)
@@ -236,6 +275,8 @@ class HostSide:
         resend = self.pending.next_deadline()
         if resend is not None:
             due.append(resend)
+        due.extend(self._pulse_until[c] for c, q in self._held_pulses.items()
+                   if q and c in self._pulse_until)  # fmt: skip
         if self.tracker is not None and self.tracker.missing and self._replay_asked_s is not None:
             due.append(self._replay_asked_s + self.tracker.holdoff_s)
         return min(due) if due else float("inf")

@@ -11,7 +11,7 @@ from __future__ import annotations
 from dataclasses import dataclass, replace
 
 from server.link.codec import U32_MAX
-from server.link.messages import HostCommand
+from server.link.messages import DriveCommand, HostCommand, PulseCommand
 
 
 @dataclass(frozen=True, slots=True)
@@ -54,6 +54,24 @@ class PendingCommands:
         if command.command_id in self._pending:
             raise ValueError(f"command id already pending: {command.command_id}")
         self._pending[command.command_id] = Pending(command, now, now, 1)
+
+    def supersede(self, command: DriveCommand | PulseCommand) -> tuple[Pending, ...]:
+        """Stop resending older commands that `command` makes stale; returns them.
+
+        A resend can arrive after a newer command for the same output: a `set 1 1` lost twice
+        and resent after the `set 1 0` that followed it would leave the lever out. A new
+        `set` replaces any pending `set` or `pulse` on its channel (a set cancels a pulse on
+        the device too); a new `pulse` replaces a pending `set` there, but not another pulse
+        (each pulse is a pellet the session counted).
+        """
+        stale = [
+            cid
+            for cid, p in self._pending.items()
+            if isinstance(p.command, (DriveCommand, PulseCommand))
+            and p.command.channel == command.channel
+            and (isinstance(command, DriveCommand) or isinstance(p.command, DriveCommand))
+        ]
+        return tuple(self._pending.pop(cid) for cid in stale)
 
     def acknowledge(self, command_id: int) -> Pending | None:
         """Forget an acknowledged command; None for an unknown id (a late repeat ack)."""

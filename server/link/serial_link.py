@@ -170,6 +170,10 @@ class SerialLink:
                                      "new_boot": h.new_boot, "trial": self._trial_index()})  # fmt: skip
                 self.say(f"{self.box}: the device restarted (boot {h.old_boot} -> {h.new_boot}); "
                          f"events it held are gone")  # fmt: skip
+                # A restarted board has every output off (its reset state): drive back what
+                # the session expects now, as after a reconnect.
+                if self.connected:
+                    self._drive_held(set(self._session.expected_outputs()))
             elif isinstance(h, EventsLost):
                 self._note("alarm", {"events_lost": h.count, "first_seq": h.first})
                 self.say(f"{self.box}: {h.count} device event(s) from #{h.first} were lost")
