@@ -11,9 +11,10 @@ from types import MappingProxyType
 
 from hardware_stubs.agents.base import Agent, VirtualAnimal
 from hardware_stubs.agents.draws import Draws
-from hardware_stubs.agents.options import AgentError, AgentOption, did_you_mean, resolve_options
+from hardware_stubs.agents.options import AgentError, AgentOption, resolve_options
 from hardware_stubs.agents.pavlovian import PavlovianApproacher
 from hardware_stubs.agents.responders import QLearner, RandomResponder
+from server.protocol.reader import did_you_mean
 
 AGENTS: Mapping[str, type[VirtualAnimal]] = MappingProxyType(
     {cls.name: cls for cls in (RandomResponder, QLearner, PavlovianApproacher)}
@@ -24,7 +25,7 @@ def validate_agent(name: str, options: Mapping[str, object]) -> list[str]:
     """Every problem with an agent name and its options, as short messages ([] if none)."""
     cls = AGENTS.get(name)
     if cls is None:
-        return [f"unknown agent {name!r}{did_you_mean(name, AGENTS)}; known: {', '.join(AGENTS)}"]
+        return [f"unknown agent {name!r}{did_you_mean(name, AGENTS, aside=True)}; known: {', '.join(AGENTS)}"]
     values, errors = resolve_options(name, cls.OPTIONS, options)
     return errors or cls.cross_check(values)
 

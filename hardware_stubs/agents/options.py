@@ -2,9 +2,10 @@
 
 from __future__ import annotations
 
-import difflib
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
+
+from server.protocol.reader import did_you_mean
 
 
 class AgentError(ValueError):
@@ -13,12 +14,6 @@ class AgentError(ValueError):
     def __init__(self, errors: Iterable[str]) -> None:
         self.errors = tuple(errors)
         super().__init__("; ".join(self.errors))
-
-
-def did_you_mean(word: str, candidates: Iterable[str]) -> str:
-    """' (did you mean 'x'?)' for a close candidate, else ''."""
-    close = difflib.get_close_matches(word, list(candidates), n=1, cutoff=0.6)
-    return f" (did you mean {close[0]!r}?)" if close else ""
 
 
 @dataclass(frozen=True, slots=True)
@@ -38,7 +33,7 @@ class AgentOption:
         if self.choices:
             if isinstance(value, str) and value in self.choices:
                 return None
-            hint = did_you_mean(value, self.choices) if isinstance(value, str) else ""
+            hint = did_you_mean(value, self.choices, aside=True) if isinstance(value, str) else ""
             return f"{where} must be one of {', '.join(self.choices)}, got {value!r}{hint}"
         if isinstance(value, bool) or not isinstance(value, (int, float)):
             return f"{where} must be a number, got {value!r}"
@@ -61,7 +56,7 @@ def resolve_options(
     for key, value in given.items():
         option = by_name.get(key)
         if option is None:
-            errors.append(f"unknown option {key!r} for agent {agent!r}{did_you_mean(key, by_name)}")
+            errors.append(f"unknown option {key!r} for agent {agent!r}{did_you_mean(key, by_name, aside=True)}")
             continue
         problem = None if value is None and option.default is None else option.problem(agent, value)
         if problem:

@@ -19,11 +19,12 @@ replaying stored trials reproduces the online result exactly. Parameter values i
 
 from __future__ import annotations
 
-import difflib
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 
 import numpy as np
+
+from server.protocol.reader import did_you_mean
 
 from .params import Param, Prior, check_params, inverse_temperature, learning_rate
 
@@ -156,8 +157,7 @@ def get_choice_model(name: str) -> ChoiceModel:
     try:
         return CHOICE_MODELS[name]
     except KeyError:
-        close = difflib.get_close_matches(name, CHOICE_MODELS, n=1)
-        hint = f" (did you mean {close[0]!r}?)" if close else ""
+        hint = did_you_mean(name, CHOICE_MODELS, aside=True)
         known = ", ".join(CHOICE_MODELS)
         raise ValueError(f"unknown model {name!r}{hint}; known: {known}") from None
 

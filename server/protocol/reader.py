@@ -31,9 +31,13 @@ def describe(value: Any) -> str:
     return repr(value)
 
 
-def did_you_mean(word: str, choices: Iterable[str]) -> str:
+def did_you_mean(word: str, choices: Iterable[str], *, aside: bool = False) -> str:
+    """The closest of `choices` to a mistyped `word`, as a hint to end a message with:
+    "; did you mean 'x'?" (or " (did you mean 'x'?)" as an aside); "" when none is close."""
     close = difflib.get_close_matches(word, list(choices), n=1, cutoff=0.6)
-    return f"; did you mean '{close[0]}'?" if close else ""
+    if not close:
+        return ""
+    return f" (did you mean {close[0]!r}?)" if aside else f"; did you mean '{close[0]}'?"
 
 
 class Reader:
