@@ -63,9 +63,12 @@ def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("rev", help="git revision to compare against")
     parser.add_argument("--rounds", type=int, default=3)
-    parser.add_argument("command", nargs=argparse.REMAINDER, help="-- BENCH.py [ARGS]")
-    args = parser.parse_args()
-    command = args.command[1:] if args.command[:1] == ["--"] else args.command
+    argv = sys.argv[1:]
+    if "--" not in argv:
+        parser.error("give the benchmark after --: against.py REV [--rounds N] -- BENCH.py [ARGS]")
+    split = argv.index("--")
+    args = parser.parse_args(argv[:split])
+    command = argv[split + 1 :]
     if not command:
         parser.error("give the benchmark after --")
     print(f"machine: {where_run()}")
