@@ -6,20 +6,17 @@ import hashlib
 from pathlib import Path
 
 from server.protocol.durations import read_duration
+from server.protocol.load_blocks import read_blocks
 from server.protocol.load_rules import read_estimator, read_iti_bounds, read_pavlovian, read_rules, read_settings
+from server.protocol.load_wiring import ACTION_KEYS, read_action_fields, read_actions, read_options, read_wiring
 from server.protocol.marked import Mark, Marked, load_marked
 from server.protocol.model import (
-    END_SESSION,
     END_TRIAL,
-    ORDERS,
     SCHEDULE_KINDS,
-    Block,
-    BlockEnd,
     Duration,
     EstimatorSpec,
     Limits,
     Option,
-    OutputActions,
     Protocol,
     Schedule,
     Step,
@@ -27,15 +24,7 @@ from server.protocol.model import (
 )
 from server.protocol.problems import InvalidFile, Problem
 from server.protocol.reader import Reader, did_you_mean
-from server.protocol.wiring import (
-    HELD_OUTPUT_KINDS,
-    INPUT_KINDS,
-    OUTPUT_KINDS,
-    PULSED_OUTPUT_KINDS,
-    InputLine,
-    OutputLine,
-    Wiring,
-)
+from server.protocol.wiring import Wiring
 
 FORMAT_VERSION = 1
 TOP_KEYS = (
@@ -47,11 +36,6 @@ STEP_KEYS = (
     "step", "activate", "deactivate", "pulse", "on_leave", "wait_s", "next",
     "respond", "choose", "if_rewarded", "if_unrewarded", "schedule", "draw",
 )  # fmt: skip
-BLOCK_KEYS = (
-    "block", "trial_types", "order", "max_run", "until", "next",
-    "reward_probability", "swap", "withhold_outcomes", "iti",
-)  # fmt: skip
-ACTION_KEYS = ("activate", "deactivate", "pulse")
 MAX_FILE_BYTES = 1_000_000
 
 
@@ -105,13 +89,13 @@ class _Compiler(Reader):
             )
         name = self.text(top.get("name"), "name") or ""
         about = self.text(top.get("about"), "about") if "about" in top else ""
-        wiring = self.wiring(top.get("wiring"))
-        options = self.options(top.get("options"), wiring)
+        wiring = read_wiring(self, top.get("wiring"))
+        options = read_options(self, top.get("options"), wiring)
         trial_types = self.trial_types(top.get("trial_types"), wiring, options)
-        blocks = self.blocks(top.get("blocks"), trial_types, options)
+        blocks = read_blocks(self, top.get("blocks"), trial_types, options, self.declared_types)
         iti = self.duration(top.get("iti"), "iti") if "iti" in top else Duration.fixed(0.0)
         limits = self.limits(top.get("limits"))
-        at_start = self.actions(top.get("at_start"), "at_start", wiring, allowed=ACTION_KEYS)
+        at_start = read_actions(self, top.get("at_start"), "at_start", wiring, allowed=ACTION_KEYS)
         estimator = read_estimator(self, top.get("estimator"))
         if estimator is None and "estimator" not in top and options:
             estimator = EstimatorSpec()  # choice protocols get the default estimator
@@ -130,122 +114,6 @@ class _Compiler(Reader):
 
     def duration(self, node: Marked | None, where: str) -> Duration | None:
         return read_duration(self, node, where)
-
-    # ------------------------------------------------------------ wiring
-
-    def wiring(self, node: Marked | None) -> Wiring | None:
-        top = self.mapping(node, "wiring", ("outputs", "inputs"), required=("outputs", "inputs"))
-        if top is None:
-            return None
-        outputs: dict[str, OutputLine] = {}
-        channels: dict[int, str] = {}
-        declared_held: list[str] = []
-        for name, value, _ in self.items(top.get("outputs"), "wiring.outputs"):
-            kind_node = value.value.get("kind") if value.is_mapping else None
-            if kind_node is None or kind_node.value not in PULSED_OUTPUT_KINDS:
-                declared_held.append(name)
-            where = f"wiring.outputs.{name}"
-            fields = self.mapping(value, where, ("kind", "channel", "pulse_ms"), required=("kind", "channel"))
-            if fields is None:
-                continue
-            kind = self.choice(fields.get("kind"), f"{where}.kind", OUTPUT_KINDS)
-            channel = self.channel(fields.get("channel"), where, channels, name)
-            pulse_ms = 0
-            if "pulse_ms" in fields:
-                pulse_ms = self.number(fields["pulse_ms"], f"{where}.pulse_ms", low=1, high=60_000, integer=True) or 0
-                if kind in HELD_OUTPUT_KINDS:
-                    self.error(fields["pulse_ms"].mark, f"{where}.pulse_ms: only feeder and sync outputs are pulsed")
-            elif kind in PULSED_OUTPUT_KINDS:
-                self.error(value.mark, f"{where}: missing required key 'pulse_ms' for a {kind} output")
-            if kind is not None and channel is not None:
-                outputs[name] = OutputLine(name, kind, channel, int(pulse_ms))
-            else:
-                self.broken.add(name)
-        inputs: dict[str, InputLine] = {}
-        channels = {}
-        for name, value, key_mark in self.items(top.get("inputs"), "wiring.inputs"):
-            where = f"wiring.inputs.{name}"
-            if name in outputs:
-                self.error(key_mark, f"{where}: '{name}' is already an output name")
-            fields = self.mapping(value, where, ("kind", "channel", "presented_by"), required=("kind", "channel"))
-            if fields is None:
-                continue
-            kind = self.choice(fields.get("kind"), f"{where}.kind", INPUT_KINDS)
-            channel = self.channel(fields.get("channel"), where, channels, name)
-            presented_by = None
-            if "presented_by" in fields:
-                presented_by = self.reference(
-                    fields["presented_by"], f"{where}.presented_by", declared_held, "held output"
-                )
-            if kind is not None and channel is not None and (presented_by or "presented_by" not in fields):
-                inputs[name] = InputLine(name, kind, channel, presented_by)
-            else:
-                self.broken.add(name)
-        return Wiring(outputs, inputs)
-
-    def channel(self, node: Marked | None, where: str, taken: dict[int, str], name: str) -> int | None:
-        channel = self.number(node, f"{where}.channel", low=0, high=63, integer=True)
-        if channel is None:
-            return None
-        if channel in taken:
-            assert node is not None
-            self.error(node.mark, f"{where}.channel: channel {channel} is already used by '{taken[channel]}'")
-            return None
-        taken[int(channel)] = name
-        return int(channel)
-
-    def actions(
-        self, node: Marked | None, where: str, wiring: Wiring | None, allowed: tuple[str, ...]
-    ) -> OutputActions:
-        fields = self.mapping(node, where, allowed) if node is not None else None
-        if not fields or wiring is None:
-            return OutputActions()
-        return self.action_fields(fields, where, wiring)
-
-    def action_fields(self, fields: dict[str, Marked], where: str, wiring: Wiring) -> OutputActions:
-        lists: dict[str, tuple[str, ...]] = {}
-        for key in ACTION_KEYS:
-            names: list[str] = []
-            for item in self.listing(fields.get(key), f"{where}.{key}", allow_single=True):
-                name = self.reference(item, f"{where}.{key}", wiring.outputs, "output")
-                if name is None:
-                    continue
-                pulsed = wiring.outputs[name].pulsed
-                if key == "pulse" and not pulsed:
-                    self.error(item.mark, f"{where}.pulse: '{name}' is a held output; use activate/deactivate")
-                elif key != "pulse" and pulsed:
-                    self.error(item.mark, f"{where}.{key}: '{name}' is a pulsed output; use pulse")
-                else:
-                    names.append(name)
-            lists[key] = tuple(names)
-        return OutputActions(**lists)
-
-    # ------------------------------------------------------------ options
-
-    def options(self, node: Marked | None, wiring: Wiring | None) -> dict[str, Option]:
-        options: dict[str, Option] = {}
-        used: dict[str, str] = {}
-        for label, value, _ in self.items(node, "options"):
-            where = f"options.{label}"
-            fields = self.mapping(
-                value, where, ("input", "reward_probability"), required=("input", "reward_probability")
-            )
-            if fields is None or wiring is None:
-                continue
-            input_name = self.reference(fields.get("input"), f"{where}.input", wiring.inputs, "input")
-            p = self.probability(fields.get("reward_probability"), f"{where}.reward_probability")
-            if input_name is not None and input_name in used:
-                self.error(
-                    fields["input"].mark,
-                    f"{where}.input: '{input_name}' already belongs to option '{used[input_name]}'",
-                )
-                continue
-            if input_name is not None and p is not None:
-                used[input_name] = label
-                options[label] = Option(label, input_name, float(p))
-            else:
-                self.broken.add(label)
-        return options
 
     # ------------------------------------------------------------ trial types
 
@@ -278,36 +146,6 @@ class _Compiler(Reader):
                 types[name] = TrialType(name, tuple(steps))
         return types
 
-    def named_list(
-        self,
-        nodes: list[Marked],
-        where: str,
-        owner: str,
-        keys: tuple[str, ...],
-        required: tuple[str, ...],
-        name_key: str,
-        reserved: str,
-        reserved_for: str,
-    ) -> list[tuple[str, dict[str, Marked], Marked]]:
-        """Entries of a list of mappings each named by `name_key`, names unique and never
-        the reserved word; (name, fields, node) for every well-formed entry, in order."""
-        named: list[tuple[str, dict[str, Marked], Marked]] = []
-        seen: set[str] = set()
-        for i, node in enumerate(nodes):
-            fields = self.mapping(node, f"{where}[{i + 1}]", keys, required=required)
-            if fields is None:
-                continue
-            name = self.text(fields.get(name_key), f"{where}[{i + 1}].{name_key}")
-            if name is None:
-                continue
-            if name in seen or name == reserved:
-                why = f"is reserved for {reserved_for}" if name == reserved else "is used twice"
-                self.error(fields[name_key].mark, f"{owner}: {name_key} name '{name}' {why}")
-                continue
-            seen.add(name)
-            named.append((name, fields, node))
-        return named
-
     def target(self, node: Marked | None, where: str, names: list[str]) -> str | None:
         return self.reference(node, where, names + [END_TRIAL], "step")
 
@@ -322,8 +160,8 @@ class _Compiler(Reader):
         options: dict[str, Option],
     ) -> Step | None:
         before = len(self.problems)
-        on_enter = self.action_fields(f, where, wiring)
-        on_leave = self.actions(f.get("on_leave"), f"{where}.on_leave", wiring, ACTION_KEYS)
+        on_enter = read_action_fields(self, f, where, wiring)
+        on_leave = read_actions(self, f.get("on_leave"), f"{where}.on_leave", wiring, ACTION_KEYS)
         wait = self.duration(f["wait_s"], f"{where}.wait_s") if "wait_s" in f else None
         # A response window that runs out ends the trial unless told otherwise: falling through
         # to the following step (often the reward) on an omission would be a dangerous default.
@@ -412,116 +250,6 @@ class _Compiler(Reader):
         return Schedule(input_name, kind, float(value), int(intervals), then)
 
     # ------------------------------------------------------------ blocks
-
-    def blocks(self, node: Marked | None, trial_types: dict[str, TrialType], options: dict[str, Option]) -> list[Block]:
-        nodes = self.listing(node, "blocks")
-        if node is not None and node.is_list and not nodes:
-            self.error(node.mark, "blocks: needs at least one block")
-        parsed = [(n, f) for n, f, _ in self.named_list(
-            nodes, "blocks", "blocks", BLOCK_KEYS, ("block", "trial_types"), "block",
-            END_SESSION, "ending the session",
-        )]  # fmt: skip
-        names = [n for n, _ in parsed]
-        return [b for b in (self.block(n, f, names, trial_types, options) for n, f in parsed) if b]
-
-    def block(
-        self,
-        name: str,
-        f: dict[str, Marked],
-        names: list[str],
-        trial_types: dict[str, TrialType],
-        options: dict[str, Option],
-    ) -> Block | None:
-        where = f"blocks.{name}"
-        before = len(self.problems)
-        mix: list[tuple[str, float]] = []
-        mix_node = f.get("trial_types")
-        if mix_node is not None and mix_node.is_list:
-            for item in mix_node.value:
-                t = self.reference(item, f"{where}.trial_types", self.declared_types, "trial type")
-                if t in trial_types:
-                    mix.append((t, 1.0))
-        else:
-            for t_name, w_node, key_mark in self.items(mix_node, f"{where}.trial_types"):
-                t = self.reference(Marked(t_name, key_mark), f"{where}.trial_types", self.declared_types, "trial type")
-                w = self.number(w_node, f"{where}.trial_types.{t_name}", low=0, low_open=True)
-                if t in trial_types and w is not None:
-                    mix.append((t, float(w)))
-        if mix_node is not None and not mix and len(self.problems) == before and not self.declared_types:
-            self.error(mix_node.mark, f"{where}.trial_types: needs at least one trial type")
-        order = self.choice(f["order"], f"{where}.order", ORDERS) if "order" in f else "shuffled"
-        max_run = None
-        if "max_run" in f:
-            max_run = self.number(f["max_run"], f"{where}.max_run", low=1, integer=True)
-            if max_run is not None and len(mix) < 2:
-                self.error(f["max_run"].mark, f"{where}.max_run: needs at least two trial types to alternate")
-        until = self.block_end(f.get("until"), f"{where}.until")
-        nxt = None
-        if "next" in f:
-            nxt = self.reference(f["next"], f"{where}.next", names + [END_SESSION], "block")
-        probs: dict[str, float] = {}
-        for label, p_node, key_mark in self.items(f.get("reward_probability"), f"{where}.reward_probability"):
-            if self.reference(Marked(label, key_mark), f"{where}.reward_probability", options, "option"):
-                p = self.probability(p_node, f"{where}.reward_probability.{label}")
-                if p is not None:
-                    probs[label] = float(p)
-        swaps: list[tuple[str, str]] = []
-        swap_node = f.get("swap")
-        pairs = self.listing(swap_node, f"{where}.swap")
-        if pairs and all(not p.is_list for p in pairs):
-            assert swap_node is not None  # listing(None) is empty
-            pairs = [swap_node]  # a single pair written flat: swap: [left, right]
-        for pair in pairs:
-            items = self.listing(pair, f"{where}.swap")
-            if len(items) != 2:
-                self.error(pair.mark, f"{where}.swap: expected a pair of options, found {len(items)} names")
-                continue
-            a = self.reference(items[0], f"{where}.swap", options, "option")
-            b = self.reference(items[1], f"{where}.swap", options, "option")
-            if a and b:
-                if a == b:
-                    self.error(pair.mark, f"{where}.swap: cannot swap '{a}' with itself")
-                swaps.append((a, b))
-        withhold = (
-            self.flag(f["withhold_outcomes"], f"{where}.withhold_outcomes") if "withhold_outcomes" in f else False
-        )
-        iti = self.duration(f["iti"], f"{where}.iti") if "iti" in f else None
-        if len(self.problems) > before:
-            return None
-        return Block(
-            name=name, mix=tuple(mix), order=order or "shuffled",
-            max_run=int(max_run) if max_run else None, until=until, next=nxt,
-            reward_probability=probs, swap=tuple(swaps), withhold_outcomes=bool(withhold), iti=iti,
-        )  # fmt: skip
-
-    def block_end(self, node: Marked | None, where: str) -> BlockEnd:
-        f = self.mapping(node, where, ("trials", "minutes", "rewards", "streak", "accuracy"))
-        if not f:
-            if node is not None and node.is_mapping and not node.value:
-                self.error(node.mark, f"{where}: give at least one of trials, minutes, rewards, streak, accuracy")
-            return BlockEnd()
-        values: dict[str, float | None] = {}
-        for key in ("trials", "rewards", "streak"):
-            if key in f:
-                values[key] = self.number(f[key], f"{where}.{key}", low=1, integer=True)
-        if "minutes" in f:
-            values["minutes"] = self.number(f["minutes"], f"{where}.minutes", low=0, low_open=True)
-        if "accuracy" in f:
-            acc = self.mapping(
-                f["accuracy"], f"{where}.accuracy", ("at_least", "window"), required=("at_least", "window")
-            )
-            if acc:
-                values["accuracy"] = self.probability(acc.get("at_least"), f"{where}.accuracy.at_least")
-                values["window"] = self.number(acc.get("window"), f"{where}.accuracy.window", low=1, integer=True)
-        counts = {k: int(v) for k in ("trials", "rewards", "streak", "window") if (v := values.get(k)) is not None}
-        return BlockEnd(
-            trials=counts.get("trials"),
-            minutes=values.get("minutes"),
-            rewards=counts.get("rewards"),
-            streak=counts.get("streak"),
-            accuracy=values.get("accuracy"),
-            window=counts.get("window"),
-        )
 
     # ------------------------------------------------------------ limits
 

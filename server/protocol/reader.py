@@ -202,6 +202,36 @@ class Reader:
             return None
         return name
 
+    def named_list(
+        self,
+        nodes: list[Marked],
+        where: str,
+        owner: str,
+        keys: tuple[str, ...],
+        required: tuple[str, ...],
+        name_key: str,
+        reserved: str,
+        reserved_for: str,
+    ) -> list[tuple[str, dict[str, Marked], Marked]]:
+        """Entries of a list of mappings each named by `name_key`, names unique and never
+        the reserved word; (name, fields, node) for every well-formed entry, in order."""
+        named: list[tuple[str, dict[str, Marked], Marked]] = []
+        seen: set[str] = set()
+        for i, node in enumerate(nodes):
+            fields = self.mapping(node, f"{where}[{i + 1}]", keys, required=required)
+            if fields is None:
+                continue
+            name = self.text(fields.get(name_key), f"{where}[{i + 1}].{name_key}")
+            if name is None:
+                continue
+            if name in seen or name == reserved:
+                why = f"is reserved for {reserved_for}" if name == reserved else "is used twice"
+                self.error(fields[name_key].mark, f"{owner}: {name_key} name '{name}' {why}")
+                continue
+            seen.add(name)
+            named.append((name, fields, node))
+        return named
+
 
 def _range(low: float | None, high: float | None, low_open: bool) -> str:
     if low is not None and high is not None:
