@@ -30,7 +30,7 @@ from server.engine.records import (
     SessionStarted,
     TrialRecord,
 )
-from server.store import rows
+from server.store import rows, statements
 from server.store.errors import StoreError, diagnose_path, sqlite_reason
 from server.store.recovery import close_unended
 from server.store.schema import migrate
@@ -38,37 +38,12 @@ from server.store.wall_clock import iso, local_now
 
 T = TypeVar("T")
 
-_INSERT_TRIAL = (
-    f"INSERT INTO trials ({', '.join(rows.TRIAL_COLUMNS)}) VALUES ({', '.join('?' * len(rows.TRIAL_COLUMNS))})"
-)
-_COUNT_TRIAL = "UPDATE sessions SET trials = max(trials, ?), rewards = rewards + ? WHERE id = ?"
-_INSERT_RULE_FIRING = "INSERT INTO rule_firings (session_id, trial, t, rule, actions, reads) VALUES (?, ?, ?, ?, ?, ?)"
-_INSERT_BLOCK = (
-    f"INSERT INTO blocks ({', '.join(rows.BLOCK_COLUMNS)}) VALUES ({', '.join('?' * len(rows.BLOCK_COLUMNS))})"
-)
-_UPSERT_ESTIMATE = "INSERT OR REPLACE INTO estimates (session_id, trial, model, data) VALUES (?, ?, ?, ?)"
-_INSERT_ANNOTATION = "INSERT INTO annotations (session_id, t, wall_time, origin, text) VALUES (?, ?, ?, ?, ?)"
-_INSERT_SESSION = (
-    "INSERT INTO sessions (box, animal, protocol, protocol_path, protocol_sha256, started_at,"
-    " seed, settings) VALUES (?, ?, ?, ?, ?, ?, ?, ?)"
-)
-
 
 def _row_id(cursor: sqlite3.Cursor) -> int:
     """The id of the row a plain INSERT just added (sqlite3 sets it for every one that succeeds)."""
     row_id = cursor.lastrowid
     assert row_id is not None
     return row_id
-
-
-@dataclass(frozen=True, slots=True)
-class _Pending:
-    """Statements for one record, not yet committed; `what` names it in error messages."""
-
-    session_id: int
-    what: str
-    statements: tuple[tuple[str, tuple], ...]
-    device_event: bool = False
 
 
 @dataclass(slots=True)
@@ -95,7 +70,7 @@ class Store:
         self.batch_s = batch_s
         self.max_buffered = max_buffered
         self._wall_clock = wall_clock
-        self._pending: list[_Pending] = []
+        self._pending: list[statements.Pending] = []
         self._sessions: dict[int, _Running] = {}
         self._duplicates: Counter[int] = Counter()
         self._last_flush: float | None = None
@@ -174,7 +149,7 @@ class Store:
             rows.integer(seed, "seed"),
             rows.to_json(dict(settings or {}), "session settings"),
         )
-        session_id = self._commit(lambda conn: _row_id(conn.execute(_INSERT_SESSION, params)))
+        session_id = self._commit(lambda conn: _row_id(conn.execute(statements.INSERT_SESSION, params)))
         self._sessions[session_id] = _Running(started)
         return session_id
 
@@ -189,14 +164,7 @@ class Store:
         """
         running = self._running(session_id)
         if isinstance(record, EventLogged):
-            self._pending.append(
-                _Pending(
-                    session_id,
-                    f"{record.kind} event of session {session_id}",
-                    ((rows.INSERT_EVENT, rows.event_params(session_id, record)),),
-                    device_event=record.device_seq is not None,
-                )
-            )
+            self._pending.append(statements.event(session_id, record))
             if len(self._pending) >= self.max_buffered and self.failure is None:
                 self._commit()
         elif isinstance(record, TrialRecord):
@@ -204,24 +172,11 @@ class Store:
                 raise StoreError(
                     f"trial {record.trial} of session {session_id} is not after trial {running.last_trial}"
                 )
-            params = rows.trial_params(session_id, record)
-            self._pending.append(
-                _Pending(
-                    session_id,
-                    f"trial {record.trial} of session {session_id}",
-                    ((_INSERT_TRIAL, params), (_COUNT_TRIAL, (record.trial, int(bool(record.rewarded)), session_id))),
-                )
-            )
+            self._pending.append(statements.trial(session_id, record))
             running.last_trial = record.trial
             self._commit()
         elif isinstance(record, BlockStarted):
-            self._pending.append(
-                _Pending(
-                    session_id,
-                    f"block {record.block_index} of session {session_id}",
-                    ((_INSERT_BLOCK, rows.block_params(session_id, record)),),
-                )
-            )
+            self._pending.append(statements.block(session_id, record))
             self._commit()
         elif isinstance(record, SessionStarted):
             note = EventLogged(
@@ -236,21 +191,7 @@ class Store:
         elif isinstance(record, EstimateUpdated):
             self.write_estimate(session_id, record.trial, record.model, record.estimate.to_dict())
         elif isinstance(record, RuleFired):
-            params = (
-                session_id,
-                rows.integer(record.trial, "trial"),
-                rows.real(record.t, "rule t"),
-                str(record.rule),
-                rows.to_json(list(record.actions), f"actions of rule {record.rule}"),
-                rows.to_json(dict(record.values), f"values read by rule {record.rule}"),
-            )
-            self._pending.append(
-                _Pending(
-                    session_id,
-                    f"firing of rule {record.rule} in session {session_id}",
-                    ((_INSERT_RULE_FIRING, params),),
-                )
-            )
+            self._pending.append(statements.rule_firing(session_id, record))
             self._commit()
         else:
             raise StoreError(f"cannot store a {type(record).__name__} record")
@@ -261,32 +202,13 @@ class Store:
             ended_at = iso(running.started + timedelta(seconds=t))
         else:
             rows.parse_wall_time(ended_at, "ended_at")
-        params = (
-            ended_at,
-            str(record.reason),
-            rows.integer(record.trials, "trials"),
-            rows.integer(record.rewards, "rewards"),
-            session_id,
-        )
-        self._pending.append(_Pending(session_id, f"end of session {session_id}", ((rows.END_SESSION, params),)))
+        self._pending.append(statements.session_end(session_id, ended_at, record.reason, record.trials, record.rewards))
         running.ended = True
         self._commit()
 
     def write_estimate(self, session_id: int, trial: int, model: str, data: Mapping[str, Any]) -> None:
         """Store (or replace) the learning-model estimate after `trial`; commits now."""
-        params = (
-            rows.integer(session_id, "session id"),
-            rows.integer(trial, "trial"),
-            str(model),
-            rows.to_json(dict(data), f"estimate after trial {trial}"),
-        )
-        self._pending.append(
-            _Pending(
-                session_id,
-                f"estimate after trial {trial} of session {session_id}",
-                ((_UPSERT_ESTIMATE, params),),
-            )
-        )
+        self._pending.append(statements.estimate(session_id, trial, model, data))
         self._commit()
 
     def write_stage(
@@ -301,28 +223,7 @@ class Store:
     ) -> None:
         """Record that `animal` is now at `stage` (1-based); commits now."""
         rows.parse_wall_time(at, "stage time")
-        params = (
-            str(animal),
-            rows.integer(stage, "stage"),
-            str(protocol),
-            at,
-            session_id,
-            str(reason),
-            rows.to_json(dict(evidence or {}), "stage evidence"),
-        )
-        self._pending.append(
-            _Pending(
-                session_id if session_id is not None else 0,
-                f"stage {stage} of animal {animal}",
-                (
-                    (
-                        "INSERT INTO stage_log (animal, stage, protocol, at, session_id, reason, evidence)"
-                        " VALUES (?, ?, ?, ?, ?, ?, ?)",
-                        params,
-                    ),
-                ),
-            )
-        )
+        self._pending.append(statements.stage(animal, stage, protocol, at, reason, session_id, evidence))
         self._commit()
 
     def write_annotation(
@@ -350,7 +251,7 @@ class Store:
         def insert(conn: sqlite3.Connection) -> int:
             if conn.execute("SELECT 1 FROM sessions WHERE id = ?", (session_id,)).fetchone() is None:
                 raise StoreError(f"no session {session_id} to annotate")
-            return _row_id(conn.execute(_INSERT_ANNOTATION, params))
+            return _row_id(conn.execute(statements.INSERT_ANNOTATION, params))
 
         return self._commit(insert)
 
