@@ -6,75 +6,22 @@ Protocols named by a box are loaded and validated here, before anything starts.
 
 from __future__ import annotations
 
-import ipaddress
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
 
 from server.engine.caps import HardCaps
+from server.lab.config_link import Emulation, read_emulation, read_port
+from server.lab.config_web import WebSettings, read_web
 from server.protocol.load import load_protocol
 from server.protocol.marked import Mark, Marked, load_marked
 from server.protocol.model import Protocol
 from server.protocol.problems import InvalidFile, Problem
 from server.protocol.reader import Reader, did_you_mean
 
-
-def _url_handlers():
-    """pyserial's URL handlers (modules serial.urlhandler.protocol_<scheme>)."""
-    import pkgutil
-
-    import serial.urlhandler
-
-    return [m for m in pkgutil.iter_modules(serial.urlhandler.__path__) if m.name.startswith("protocol_")]
-
-
 TOP_KEYS = ("lab", "database", "caps", "boxes", "web")
 BOX_KEYS = ("name", "animal", "protocol", "stages", "settings", "port", "emulate", "seed")
 STAGE_KEYS = ("protocol", "advance")
 ADVANCE_KEYS = ("sessions", "min_accuracy", "min_trials", "min_rewards", "max_omission_rate")
-EMULATE_KEYS = ("agent", "seed", "options", "faults")
-# Faults an emulated box can inject (hardware_stubs/box.py): key -> (low, high, low excluded).
-FAULT_RANGES = {
-    "unplug_every_s": (0.0, 24 * 3600.0, True),
-    "unplug_for_s": (0.0, 3600.0, True),
-    "drop_rate": (0.0, 0.5, False),
-    "garbage_rate": (0.0, 0.5, False),
-}
-WEB_KEYS = ("host", "port", "operator_token", "viewer_token", "no_response_minutes")
-MIN_TOKEN_CHARS = 16
-
-
-def is_loopback(host: str) -> bool:
-    """True when `host` only accepts connections from this computer."""
-    if host == "localhost":
-        return True
-    try:
-        return ipaddress.ip_address(host).is_loopback
-    except ValueError:
-        return False
-
-
-@dataclass(frozen=True)
-class WebSettings:
-    """The status page: where it listens and the tokens that guard it (config key `web`).
-
-    Listening beyond this computer needs both tokens: the viewer token to read, the
-    operator token to pause, stop or annotate.
-    """
-
-    host: str = "127.0.0.1"
-    port: int = 8642
-    operator_token: str | None = None
-    viewer_token: str | None = None
-    no_response_minutes: float = 5.0  # alarm when a running box saw no input this long
-
-
-@dataclass(frozen=True)
-class Emulation:
-    agent: str
-    seed: int
-    options: dict[str, Any] = field(default_factory=dict)
-    faults: dict[str, float] = field(default_factory=dict)  # keys of FAULT_RANGES
 
 
 @dataclass(frozen=True)
@@ -173,44 +120,8 @@ class _LabReader(Reader):
                 seen[box.name] = i + 1
                 animals[box.animal] = box.name
                 boxes.append(box)
-        web = self.web(top.get("web"))
+        web = read_web(self, top.get("web"))
         return LabConfig(file, name or "lab", database, caps, tuple(boxes), web)
-
-    def web(self, node: Marked | None) -> WebSettings:
-        f = self.mapping(node, "web", WEB_KEYS)
-        default = WebSettings()
-        if not f:
-            return default
-        host = self.text(f["host"], "web.host") if "host" in f else default.host
-        port = self.number(f["port"], "web.port", low=1, high=65535, integer=True) if "port" in f else default.port
-        tokens = {}
-        for key in ("operator_token", "viewer_token"):
-            token = self.text(f[key], f"web.{key}") if key in f else None
-            if token is not None and len(token) < MIN_TOKEN_CHARS:
-                self.error(
-                    f[key].mark, f"web.{key}: expected at least {MIN_TOKEN_CHARS} characters, found {len(token)}"
-                )
-                token = None
-            tokens[key] = token
-        quiet = (
-            self.number(f["no_response_minutes"], "web.no_response_minutes", low=0, low_open=True)
-            if "no_response_minutes" in f
-            else default.no_response_minutes
-        )
-        host = host or default.host
-        if "host" in f and not is_loopback(host) and not (tokens["operator_token"] and tokens["viewer_token"]):
-            self.error(
-                f["host"].mark,
-                f"web.host: listening on '{host}' reaches other computers; "
-                "set web.operator_token and web.viewer_token first, or use 127.0.0.1",
-            )
-        return WebSettings(
-            host,
-            int(port or default.port),
-            tokens["operator_token"],
-            tokens["viewer_token"],
-            float(quiet or default.no_response_minutes),
-        )
 
     def caps(self, node: Marked | None) -> HardCaps:
         f = self.mapping(node, "caps", ("max_rewards", "max_minutes"))
@@ -255,8 +166,8 @@ class _LabReader(Reader):
             f"{where}.settings",
             [protocol] if protocol and not stages else [s.protocol for s in stages],
         )
-        port = self.port(f["port"], f"{where}.port") if "port" in f else None
-        emulate = self.emulation(f["emulate"], f"{where}.emulate") if "emulate" in f else None
+        port = read_port(self, f["port"], f"{where}.port") if "port" in f else None
+        emulate = read_emulation(self, f["emulate"], f"{where}.emulate") if "emulate" in f else None
         if ("port" in f) == ("emulate" in f):
             self.error(
                 node.mark, f"{where}: give exactly one of 'port' (a serial port) or 'emulate' (a virtual animal)"
@@ -340,67 +251,3 @@ class _LabReader(Reader):
                 self.problems.extend(exc.problems)
                 self._protocols[path] = None
         return self._protocols[path]
-
-    def emulation(self, node: Marked, where: str) -> Emulation | None:
-        from hardware_stubs.agents import AGENTS, AgentError, make_agent
-
-        f = self.mapping(node, where, EMULATE_KEYS, required=("agent",))
-        if f is None:
-            return None
-        agent = self.choice(f.get("agent"), f"{where}.agent", sorted(AGENTS))
-        seed = self.number(f["seed"], f"{where}.seed", low=0, integer=True) if "seed" in f else 0
-        options: dict[str, Any] = {}
-        for key, value, _ in self.items(f.get("options"), f"{where}.options"):
-            options[key] = value.value
-        if agent is not None and "options" in f:
-            try:
-                make_agent(agent, **options)
-            except AgentError as exc:
-                self.error(f["options"].mark, f"{where}.options: {exc}")
-                return None
-        faults = self.faults(f.get("faults"), f"{where}.faults")
-        if agent is None or seed is None or faults is None:
-            return None
-        return Emulation(agent, int(seed), options, faults)
-
-    def faults(self, node: Marked | None, where: str) -> dict[str, float] | None:
-        f = self.mapping(node, where, FAULT_RANGES)
-        if f is None:
-            return {} if node is None else None
-        faults: dict[str, float] = {}
-        bad = False
-        for key, (low, high, low_open) in FAULT_RANGES.items():
-            if key in f:
-                value = self.number(f[key], f"{where}.{key}", low=low, high=high, low_open=low_open)
-                bad = bad or value is None
-                faults[key] = float(value or 0.0)
-        if bad:
-            return None
-        assert node is not None  # mapping(None) is None
-        if ("unplug_every_s" in faults) != ("unplug_for_s" in faults):
-            self.error(node.mark, f"{where}: give both unplug_every_s and unplug_for_s, or neither")
-            return None
-        if faults.get("unplug_for_s", 0.0) >= faults.get("unplug_every_s", 1.0):
-            self.error(
-                f["unplug_for_s"].mark,
-                f"{where}.unplug_for_s: expected less than unplug_every_s ({faults['unplug_every_s']:g}), "
-                f"found {faults['unplug_for_s']:g}",
-            )
-            return None
-        return faults
-
-    def port(self, node: Marked, where: str) -> str | None:
-        """A device path, or a pyserial URL whose scheme this pyserial knows."""
-        text = self.text(node, where)
-        if text is None or "://" not in text:
-            return text
-        scheme = text.split("://", 1)[0]
-        known = sorted(m.name.removeprefix("protocol_") for m in _url_handlers())
-        if scheme not in known:
-            self.error(
-                node.mark,
-                f"{where}: unknown serial URL scheme '{scheme}' "
-                f"(pyserial knows {', '.join(known)}){did_you_mean(scheme, known)}",
-            )
-            return None
-        return text

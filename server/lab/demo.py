@@ -6,7 +6,8 @@ from __future__ import annotations
 from dataclasses import replace
 from pathlib import Path
 
-from server.lab.config import Emulation, LabConfig, load_lab
+from server.lab.config import LabConfig, load_lab
+from server.lab.config_link import Emulation
 
 
 def demo_lab(config_path: Path, boxes: int) -> LabConfig:

@@ -22,7 +22,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-from server.lab.config import WebSettings
+from server.lab.config_web import WebSettings
 from server.lab.page_feed import FedLab, LabEnd, open_lab_end
 from server.lab.page_socket import WebError, bind_socket, url_of
 from server.store import queries

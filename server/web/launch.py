@@ -9,7 +9,7 @@ import os
 from collections.abc import Callable
 from pathlib import Path
 
-from server.lab.config import is_loopback
+from server.lab.config_web import is_loopback
 from server.lab.signals import on_stop_signals
 from server.store.errors import StoreError
 from server.web.app import create_app

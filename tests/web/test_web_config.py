@@ -6,7 +6,8 @@ from __future__ import annotations
 import pytest
 from web_samples import REPO
 
-from server.lab.config import WebSettings, is_loopback, load_lab
+from server.lab.config import load_lab
+from server.lab.config_web import WebSettings, is_loopback
 from server.protocol.problems import InvalidFile
 
 
