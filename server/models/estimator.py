@@ -16,6 +16,10 @@ differences, so one exponential per grid point is all a trial needs.
 Per-animal state is plain JSON (`state_dict` / `from_state`); the next session starts from
 the last posterior, broadened by tempering, and `replay` rebuilds it bit for bit from the
 stored trials. No clocks and no I/O here: the caller passes each trial in.
+
+One module of over 400 lines on purpose: update, summary, persistence and replay all work on
+the same grid, weight and value arrays, and the two-option shortcut must stay next to the
+general path it stands in for; split apart, every piece would reach into the others' arrays.
 """
 
 from __future__ import annotations
