@@ -82,6 +82,22 @@ class EventLogged:
 
 
 @dataclass(frozen=True, slots=True)
+class SecondStage:
+    """Where a two-stage trial's first choice led, and what the animal did there.
+
+    `choice` is the second-stage option chosen; None where the state offers a single response
+    (then `response` names it) or the animal did not respond there (`omitted`).
+    """
+
+    state: str  # the second-stage state reached
+    common: bool  # reached through the first choice's common transition
+    choice: str | None = None
+    response: str | None = None  # the input that answered in the second stage, if any
+    latency_s: float | None = None  # from the state's lights on to that response
+    omitted: bool = False  # the second-stage window ran out
+
+
+@dataclass(frozen=True, slots=True)
 class TrialOutcome:
     """A trial as the closed loop judges it when it ends: everything the store keeps of it
     but the ITI that follows, which the estimator and rules have yet to decide.
@@ -108,6 +124,7 @@ class TrialOutcome:
     counts: dict[str, int] = field(default_factory=dict)
     first_s: dict[str, float] = field(default_factory=dict)
     extra: dict[str, Any] = field(default_factory=dict)
+    second: SecondStage | None = None  # two-stage trials only
 
 
 @dataclass(frozen=True, slots=True)
@@ -135,6 +152,7 @@ class TrialRecord:
     counts: dict[str, int] = field(default_factory=dict)  # responses per input in this trial
     first_s: dict[str, float] = field(default_factory=dict)  # first response latency per input
     extra: dict[str, Any] = field(default_factory=dict)
+    second: SecondStage | None = None  # two-stage trials only: what happened after the first choice
 
 
 @dataclass(frozen=True, slots=True)

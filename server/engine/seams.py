@@ -16,7 +16,7 @@ from dataclasses import dataclass
 from typing import Any, Literal, Protocol, overload
 
 from server.engine.block_progress import BlockProgress
-from server.engine.records import Command, EventLogged, InputEvent, TrialOutcome
+from server.engine.records import Command, EventLogged, InputEvent, SecondStage, TrialOutcome
 from server.protocol.model import Protocol as TaskProtocol
 from server.protocol.model import RuleAction
 
@@ -51,12 +51,24 @@ class TrialEstimator(Protocol):
     def model_name(self) -> str: ...
 
     @overload
-    def update(self, choice: str | None, reward: float, *, summarise: Literal[True] = ...) -> EstimateSummary: ...
+    def update(
+        self,
+        choice: str | None,
+        reward: float,
+        *,
+        second: SecondStage | None = ...,
+        summarise: Literal[True] = ...,
+    ) -> EstimateSummary: ...
     @overload
-    def update(self, choice: str | None, reward: float, *, summarise: bool) -> EstimateSummary | None: ...
-    def update(self, choice: str | None, reward: float, *, summarise: bool = True) -> EstimateSummary | None:
-        """Learn from one choice trial; the summary costs more than the update, so a caller
-        that does not need it at once (rehearsal) asks for it later with `estimate`."""
+    def update(
+        self, choice: str | None, reward: float, *, second: SecondStage | None = ..., summarise: bool
+    ) -> EstimateSummary | None: ...
+    def update(
+        self, choice: str | None, reward: float, *, second: SecondStage | None = None, summarise: bool = True
+    ) -> EstimateSummary | None:
+        """Learn from one choice trial (`choice` is the first-stage choice of a two-stage trial,
+        `second` what followed it); the summary costs more than the update, so a caller that
+        does not need it at once (rehearsal) asks for it later with `estimate`."""
         ...
 
     def estimate(self) -> EstimateSummary: ...

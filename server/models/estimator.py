@@ -31,6 +31,8 @@ from typing import Any, Literal, TypedDict, overload
 
 import numpy as np
 
+from server.engine.records import SecondStage
+
 from .choice import get_choice_model
 from .drift import beta_walk
 from .grid import build_grid
@@ -184,16 +186,30 @@ class OnlineEstimator:
         return self.model.name
 
     @overload
-    def update(self, choice: str | None, reward: float, *, summarise: Literal[True] = True) -> Estimate: ...
+    def update(
+        self,
+        choice: str | None,
+        reward: float,
+        *,
+        second: SecondStage | None = None,
+        summarise: Literal[True] = True,
+    ) -> Estimate: ...
 
     @overload
-    def update(self, choice: str | None, reward: float, *, summarise: bool = True) -> Estimate | None: ...
+    def update(
+        self, choice: str | None, reward: float, *, second: SecondStage | None = None, summarise: bool = True
+    ) -> Estimate | None: ...
 
-    def update(self, choice: str | None, reward: float, *, summarise: bool = True) -> Estimate | None:
+    def update(
+        self, choice: str | None, reward: float, *, second: SecondStage | None = None, summarise: bool = True
+    ) -> Estimate | None:
         """Take one finished trial (choice label, or None for an omission) and its reward.
 
         With summarise=False the posterior is updated but no Estimate is built (the caller
-        asks for `estimate()` only when it needs one: rehearsal of many animals)."""
+        asks for `estimate()` only when it needs one: rehearsal of many animals). `second`
+        is a two-stage trial's second stage, which these single-stage models cannot use."""
+        if second is not None:
+            raise ValueError(f"model {self.model_name!r} learns single-stage choices, not two-stage trials")
         reward = float(reward)
         if not math.isfinite(reward):
             raise ValueError(f"reward must be a finite number, got {reward!r}")

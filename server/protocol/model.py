@@ -179,6 +179,42 @@ class Limits:
 
 
 @dataclass(frozen=True, slots=True)
+class RewardWalk:
+    """A bounded Gaussian random walk of each second-stage reward probability, one step per
+    trial, reflected at the bounds (drawn from the session's seeded generator)."""
+
+    sd: float
+    low: float = 0.0
+    high: float = 1.0
+
+
+@dataclass(frozen=True, slots=True)
+class SecondState:
+    """One second-stage state of a two-stage trial: its own choice, or a single response."""
+
+    name: str
+    options: tuple[str, ...] = ()  # second-stage option labels (of `Protocol.options`)
+    response: str | None = None  # the one input answered in a single-response state
+    reward_probability: float | None = None  # single-response states: P(reward) on responding
+
+
+@dataclass(frozen=True, slots=True)
+class TwoStage:
+    """The structure of a two-stage task: a first choice leads, by a declared transition
+    probability, to one of the second-stage states, where the outcome is decided."""
+
+    first: tuple[str, ...]  # first-stage option labels
+    states: dict[str, SecondState]
+    transitions: dict[str, dict[str, float]]  # first option -> state -> probability (sum 1)
+    walk: RewardWalk | None = None
+
+    def common_state(self, first: str) -> str:
+        """The state a first-stage option most often leads to (its common transition)."""
+        row = self.transitions[first]
+        return max(row, key=lambda state: (row[state], state))
+
+
+@dataclass(frozen=True, slots=True)
 class Protocol:
     name: str
     source: str  # file path it was loaded from
@@ -196,6 +232,7 @@ class Protocol:
     iti_bounds: tuple[float, float] | None = None  # rules may set/scale the ITI within these
     pavlovian: Pavlovian | None = None
     settings: dict[str, float] = field(default_factory=dict)  # named numbers rules may read
+    two_stage: TwoStage | None = None
 
     def block(self, name: str) -> Block:
         for b in self.blocks:
