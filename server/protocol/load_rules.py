@@ -187,6 +187,14 @@ def _action(r: Reader, node: Marked, where: str, blocks: list[str], options: dic
         if a and b and a == b:
             r.error(value.mark, f"{here}: cannot swap '{a}' with itself")
             return None
+        first_stage = [x for x in (a, b) if x and options[x].reward_probability is None]
+        if first_stage:
+            r.error(
+                value.mark,
+                f"{here}: '{first_stage[0]}' is a first-stage option; its outcome comes from the state "
+                "it leads to, so reverse second-stage options",
+            )
+            return None
         return RuleAction(kind, options=(a, b)) if a and b else None
     if kind == "probe":
         p = r.mapping(value, here, ("minutes", "then"), required=("minutes",))
