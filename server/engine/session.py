@@ -156,8 +156,15 @@ class Session:
         return self._pause is not None
 
     def best_options(self) -> frozenset[str]:
-        """Options with the highest reward probability now (empty when all are equal)."""
-        return self.blocks.best_options()
+        """Options with the highest reward probability now (empty when all are equal); in a
+        two-stage task, the first choices with the highest expected reward."""
+        two_stage = self.protocol.two_stage
+        block = self.blocks.current
+        if two_stage is None or block is None:
+            return self.blocks.best_options()
+        values = {o: two_stage.expected_reward(o, block.contingencies) for o in two_stage.first}
+        top = max(values.values())
+        return frozenset(o for o, v in values.items() if v == top) if top > min(values.values()) else frozenset()
 
     @property
     def trial_index(self) -> int:
@@ -449,12 +456,8 @@ class Session:
     def _first_choice_correct(self, label: str) -> bool | None:
         """Whether `label` is a first choice with the best expected reward under the second
         stage's current reward probabilities; None when every first choice is as good."""
-        two_stage = self.protocol.two_stage
-        block = self.blocks.current
-        assert two_stage is not None and block is not None
-        values = {o: two_stage.expected_reward(o, block.contingencies) for o in two_stage.first}
-        best, worst = max(values.values()), min(values.values())
-        return None if best == worst else values[label] == best
+        best = self.best_options()
+        return label in best if best else None
 
     def _walk_rewards(self, walk: RewardWalk) -> None:
         """One step of every second-stage option's reward probability, reflected at the bounds."""

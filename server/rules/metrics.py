@@ -50,6 +50,39 @@ def win_stay_lose_shift(choices: list[str | None], rewarded: list[bool]) -> tupl
     return (stays / wins if wins else None, shifts / losses if losses else None)
 
 
+def stay_contrasts(trials: list[TrialOutcome]) -> tuple[float | None, float | None]:
+    """How the previous two-stage trial's outcome and transition move the next first choice.
+
+    Over successive pairs of trials with a first choice (the earlier one's second stage
+    played out), P(stay) is the probability of repeating the earlier first choice:
+      reward effect = P(stay | rewarded) - P(stay | unrewarded)
+      interaction   = [P(stay | rewarded, common) - P(stay | rewarded, rare)]
+                      - [P(stay | unrewarded, common) - P(stay | unrewarded, rare)]
+    A model-free learner shows the reward effect alone; a model-based one the interaction
+    (Daw, Gershman, Seymour, Dayan & Dolan 2011, Neuron 69:1204). None while a condition has
+    no trial yet.
+    """
+    counts = {(r, c): [0, 0] for r in (True, False) for c in (True, False)}  # -> [stays, pairs]
+    for prev, cur in zip(trials, trials[1:]):
+        second = prev.second
+        if prev.choice is None or cur.choice is None or second is None or second.omitted:
+            continue
+        cell = counts[(prev.rewarded, second.common)]
+        cell[0] += cur.choice == prev.choice
+        cell[1] += 1
+    p = {key: stays / n for key, (stays, n) in counts.items() if n}
+    rewarded = [counts[(True, c)] for c in (True, False)]
+    unrewarded = [counts[(False, c)] for c in (True, False)]
+    won, lost = sum(n for _, n in rewarded), sum(n for _, n in unrewarded)
+    effect = None
+    if won and lost:
+        effect = sum(st for st, _ in rewarded) / won - sum(st for st, _ in unrewarded) / lost
+    interaction = None
+    if len(p) == 4:
+        interaction = (p[(True, True)] - p[(True, False)]) - (p[(False, True)] - p[(False, False)])
+    return effect, interaction
+
+
 class SessionMetrics:
     def __init__(self, protocol: Protocol):
         self.pavlovian = protocol.pavlovian
@@ -122,6 +155,14 @@ class SessionMetrics:
         return (
             None if trials is None else win_stay_lose_shift([t.choice for t in trials], [t.rewarded for t in trials])[1]
         )
+
+    def stay_reward_effect(self, n: int) -> float | None:
+        trials = self.window(n)
+        return None if trials is None else stay_contrasts(trials)[0]
+
+    def stay_interaction(self, n: int) -> float | None:
+        trials = self.window(n)
+        return None if trials is None else stay_contrasts(trials)[1]
 
     def median_latency(self, n: int) -> float | None:
         trials = self.window(n)
