@@ -7,6 +7,7 @@ from itertools import islice
 from statistics import median
 
 from server.engine.records import TrialOutcome
+from server.engine.stay import stay_contrasts
 from server.protocol.model import Protocol
 from server.protocol.wiring import OPERANT_INPUT_KINDS
 
@@ -48,39 +49,6 @@ def win_stay_lose_shift(choices: list[str | None], rewarded: list[bool]) -> tupl
             losses += 1
             shifts += cur != prev
     return (stays / wins if wins else None, shifts / losses if losses else None)
-
-
-def stay_contrasts(trials: list[TrialOutcome]) -> tuple[float | None, float | None]:
-    """How the previous two-stage trial's outcome and transition move the next first choice.
-
-    Over successive pairs of trials with a first choice (the earlier one's second stage
-    played out), P(stay) is the probability of repeating the earlier first choice:
-      reward effect = P(stay | rewarded) - P(stay | unrewarded)
-      interaction   = [P(stay | rewarded, common) - P(stay | rewarded, rare)]
-                      - [P(stay | unrewarded, common) - P(stay | unrewarded, rare)]
-    A model-free learner shows the reward effect alone; a model-based one the interaction
-    (Daw, Gershman, Seymour, Dayan & Dolan 2011, Neuron 69:1204). None while a condition has
-    no trial yet.
-    """
-    counts = {(r, c): [0, 0] for r in (True, False) for c in (True, False)}  # -> [stays, pairs]
-    for prev, cur in zip(trials, trials[1:]):
-        second = prev.second
-        if prev.choice is None or cur.choice is None or second is None or second.omitted:
-            continue
-        cell = counts[(prev.rewarded, second.common)]
-        cell[0] += cur.choice == prev.choice
-        cell[1] += 1
-    p = {key: stays / n for key, (stays, n) in counts.items() if n}
-    rewarded = [counts[(True, c)] for c in (True, False)]
-    unrewarded = [counts[(False, c)] for c in (True, False)]
-    won, lost = sum(n for _, n in rewarded), sum(n for _, n in unrewarded)
-    effect = None
-    if won and lost:
-        effect = sum(st for st, _ in rewarded) / won - sum(st for st, _ in unrewarded) / lost
-    interaction = None
-    if len(p) == 4:
-        interaction = (p[(True, True)] - p[(True, False)]) - (p[(False, True)] - p[(False, False)])
-    return effect, interaction
 
 
 class SessionMetrics:

@@ -8,6 +8,7 @@ import sqlite3
 from datetime import datetime
 from typing import Any
 
+from server.engine.stay import stay_counts
 from server.lab.status import rule_text
 from server.store import queries
 from server.web import plots
@@ -79,8 +80,15 @@ def panels(conn: sqlite3.Connection, session: dict[str, Any]) -> Safe:
             end_t=end_t,
         )
     ]
-    choice = plots.choice_panel(trials, estimates)
-    parts.append(choice if choice is not None else el("p", "No choice trials in this session.", class_="note"))
+    two_stage = plots.two_stage_panels(trials)
+    if two_stage:
+        parts.extend(two_stage)
+        stay = plots.stay_panel(stay_counts(queries.trial_records(conn, sid)))
+        if stay is not None:
+            parts.append(stay)
+    else:
+        choice = plots.choice_panel(trials, estimates)
+        parts.append(choice if choice is not None else el("p", "No choice trials in this session.", class_="note"))
     estimated = plots.parameter_panels(estimates)
     parts.extend(estimated or [el("p", "No learning-model estimates stored for this session.", class_="note")])
     timeline = plots.iti_timeline(trials, blocks, pauses, firings, end_t)

@@ -5,8 +5,9 @@ from __future__ import annotations
 from pathlib import Path
 
 from server.engine.records import SecondStage, TrialOutcome
+from server.engine.stay import stay_contrasts
 from server.protocol.load import parse_protocol
-from server.rules.metrics import SessionMetrics, stay_contrasts
+from server.rules.metrics import SessionMetrics
 
 ROOT = Path(__file__).resolve().parents[2]
 
