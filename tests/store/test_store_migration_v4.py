@@ -16,6 +16,7 @@ import pytest
 
 from server.engine.records import SecondStage, TrialRecord
 from server.store import Store, schema_version
+from server.store.history import trial_history
 from server.store.queries import trial_records
 from server.store.schema import latest_version
 
@@ -64,5 +65,9 @@ def test_two_stage_trials_go_in_beside_the_old_ones(old_db):
             (sid,),
         ).fetchone()
         (back,) = trial_records(conn, sid)
+        history = trial_history(conn, animals=["R-931", "R-930"], two_stage=True)
     assert row == ("north", "rare", None, "poke_north", 0.8125, 0)
     assert back == record
+    # The animals' histories: the old animal's trials have no second stage, the new one's has.
+    assert [(p.animal, p.second) for p in history if p.animal == "R-931"] == [("R-931", second)]
+    assert all(p.second is None for p in history if p.animal == "R-930")
