@@ -38,6 +38,9 @@ def cmd_check(args: argparse.Namespace) -> int:
             for problem in exc.problems:
                 sys.stderr.write(f"{problem}\n")
             continue
+        for warning in protocol.warnings:
+            mark = warning.mark
+            sys.stderr.write(f"{mark.file}:{mark.line}:{mark.col}: warning: {warning.message}\n")
         if not args.quiet:
             print(
                 f"{file}: ok ('{protocol.name}': {len(protocol.trial_types)} trial types, "
