@@ -214,7 +214,7 @@ class Lab:
         return {
             "caps": {"max_rewards": caps.max_rewards, "max_minutes": caps.max_minutes},
             "emulate": None if emulate is None else {
-                "agent": emulate.agent, "seed": emulate.seed, "options": emulate.options, "faults": emulate.faults,
+                "agent": emulate.agent, "seed": emulate.seed, "traits": emulate.traits, "faults": emulate.faults,
             },
             "port": box.port,
             "stage": self.stages.running.get(box.name),
