@@ -19,8 +19,8 @@ from server.web.tiles import shown
 # and wide rows for texts that run long
 FIELDS = (
     ("trial", "trial", "big"),
-    ("rewards", "pellets", "big"),
-    ("accuracy", "correct", "big"),
+    ("rewards", "rewards", "big"),
+    ("accuracy", "accuracy", "big"),
     ("protocol", "protocol", "wide"),
     ("block", "block", ""),
     ("elapsed", "elapsed", ""),

@@ -128,7 +128,7 @@ def cumulative_record(
         py.append(y)
     plot.marks(px, py, "pellet", shape="square", size=4)
     if px:
-        plot.legend("pellet", "pellet")
+        plot.legend("pellet", "reward")
     plot.rules([_minutes(b["t_start"]) for b in blocks[1:]], [b["block"] for b in blocks[1:]], "blk")
     _rule_marks(plot, firings)
     return plot.render()

@@ -159,8 +159,8 @@ def session_body(conn: sqlite3.Connection, session: dict[str, Any], *, controlla
         ("started", _when(session["started_at"])),
         ("state", "running" if running else f"ended – {session['end_reason']}"),
         ("trials", session["trials"]),
-        ("pellets", session["rewards"]),
-        ("correct", "–" if status["accuracy"] is None else f"{100 * status['accuracy']:.0f}\u202f%"),
+        ("rewards", session["rewards"]),
+        ("accuracy", "–" if status["accuracy"] is None else f"{100 * status['accuracy']:.0f}\u202f%"),
         ("block", status["block"] or "–"),
         ("seed", session["seed"]),
     ]
@@ -287,8 +287,8 @@ def animal_body(animal: str, history: list[dict[str, Any]]) -> Safe:
                 "protocol",
                 "stage",
                 "trials",
-                "pellets",
-                "correct",
+                "rewards",
+                "accuracy",
                 "omissions",
                 "end",
                 "parameters (mean [95 %])",
@@ -316,7 +316,7 @@ def sessions_body(sessions: list[dict[str, Any]]) -> Safe:
     return el(
         "div",
         el("h1", "Sessions"),
-        _table(["session", "started", "box", "animal", "protocol", "trials", "pellets", "end"], rows)
+        _table(["session", "started", "box", "animal", "protocol", "trials", "rewards", "end"], rows)
         if rows
         else el("p", "No sessions yet.", class_="note"),
         class_="sessions",
