@@ -8,13 +8,10 @@ from __future__ import annotations
 
 import asyncio
 import re
-import sqlite3
-import subprocess
-import sys
 import time
 
 import test_board_image as reference  # tests/firmware is on the import path under pytest
-import yaml
+from test_board_animal import vigil_run_with_animal
 from test_board_timing import open_port, read_for
 
 from hardware_stubs.board_animal import BoardAnimal
@@ -205,22 +202,11 @@ def test_each_input_pin_is_its_channels_edge_and_each_output_channel_its_pin(por
 
 def test_vigil_run_of_a_five_port_protocol_on_the_board(ports_board, tmp_path):
     board, protocol = ports_board, five_port_protocol(tmp_path)
-    config = {"lab": "five-port bench", "database": str(tmp_path / "lab.sqlite"),
-              "caps": {"max_rewards": 100, "max_minutes": 5},
-              "boxes": [{"name": "sim-five", "animal": "FP-07", "protocol": str(protocol),
-                         "port": str(board.link), "seed": 17}]}  # fmt: skip
-    lab = tmp_path / "lab.yaml"
-    lab.write_text(yaml.safe_dump(config))
     wiring = load_protocol(protocol).wiring
     animal = BoardAnimal(board, wiring, "random", seed=23, latency_s=0.25, irt_s=0.5, omission=0.0,
-                         collect_s=0.3, eat_s=0.4, check_every_s=0.0).start()  # fmt: skip
-    try:
-        done = subprocess.run([sys.executable, "-m", "server.cli", "run", str(lab), "--minutes", "0.25",
-                               "--port", "0"], capture_output=True, text=True, timeout=90, cwd=tmp_path)  # fmt: skip
-    finally:
-        animal.stop()
-    assert done.returncode == 0, done.stdout + done.stderr
-    conn = sqlite3.connect(tmp_path / "lab.sqlite")
+                         collect_s=0.3, eat_s=0.4, check_every_s=0.0)  # fmt: skip
+    box = {"name": "sim-five", "animal": "FP-07", "seed": 17}
+    conn = vigil_run_with_animal(board, protocol, animal, 0.25, box, tmp_path)
     ((session, ended),) = conn.execute("SELECT id, end_reason FROM sessions").fetchall()
     assert ended == "time limit"
     stored = conn.execute("SELECT name, value FROM events WHERE session_id = ? AND kind = 'input'"
