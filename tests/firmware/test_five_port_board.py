@@ -10,6 +10,7 @@ import asyncio
 import re
 import time
 
+import pytest
 import test_board_image as reference  # tests/firmware is on the import path under pytest
 from test_board_animal import vigil_run_with_animal
 from test_board_timing import open_port, read_for
@@ -29,7 +30,7 @@ US = FREQ_HZ // 1_000_000
 # rather than read from channels_ports.c.
 FIVE_PORT_INPUTS = ["nose_poke"] * 5 + ["head_entry", "pellet_sensor"]
 FIVE_PORT_OUTPUTS = ["cue_light"] * 5 + ["house_light", "feeder", "sync", "cue_light", "tone"]
-CENTRE, WEST, EAST, NORTH, SOUTH, TRAY, PELLET_SENSOR = range(1, 8)
+CENTRE, NORTH, SOUTH = 1, 4, 5  # inputs; west 2, east 3, magazine 6, pellet sensor 7
 HOUSE_LIGHT, FEEDER, SYNC, TRAY_LIGHT, TONE = 6, 7, 8, 9, 10
 
 # A trial in the shape of the two-stage task (centre poke to start, two side ports, then two
@@ -157,25 +158,29 @@ def test_both_boxes_pins_are_the_readmes(ports_board, board):
     assert len(ports_board.pins()["in"]) == 7 and len(board.pins()["in"]) == 8
 
 
-def test_each_input_pin_is_its_channels_edge_and_each_output_channel_its_pin(ports_board):
-    board = ports_board
+@pytest.mark.parametrize("box", ["ports", "ref"])
+def test_each_input_pin_is_its_channels_edge_and_each_output_channel_its_pin(box, request):
+    """On both boxes' images: their pins are worked out from boxes.h at compile time."""
+    board = request.getfixturevalue("ports_board" if box == "ports" else "board")
+    pins = board.pins()
+    n_in, n_out = len(pins["in"]), len(pins["out"])
+    assert (n_in, n_out) == ((7, 10) if box == "ports" else (8, 10))
     port, decoder = open_port(board)
     # Inputs: a 5 ms poke on each channel in turn, 20 ms apart; one edge each way per channel.
-    t0 = board.script([(k * 20_000 + d, ch, on) for k, ch in enumerate(range(1, 8))
+    t0 = board.script([(k * 20_000 + d, ch, on) for k, ch in enumerate(range(1, n_in + 1))
                        for d, on in ((0, True), (5_000, False))])  # fmt: skip
     edges: list[Edge] = []
     end = time.monotonic() + 4
-    while len(edges) < 14 and time.monotonic() < end:
+    while len(edges) < 2 * n_in and time.monotonic() < end:
         edges += [m for m in read_for(port, decoder, 0.1) if isinstance(m, Edge)]
-    assert [(e.channel, e.rising) for e in edges] == [(ch, on) for ch in range(1, 8) for on in (True, False)]
+    assert [(e.channel, e.rising) for e in edges] == [(ch, on) for ch in range(1, n_in + 1) for on in (True, False)]
     # Each stamped at its own pin's change (one offset: the board's clock starts at its setup).
     offsets = [e.device_us - (t0 // US + (e.channel - 1) * 20_000 + (0 if e.rising else 5_000)) for e in edges]
     assert max(offsets) - min(offsets) <= 20, offsets
-    assert [c.channel for c in board.inputs] == [ch for ch in range(1, 8) for _ in (0, 1)]
 
     # Outputs: each channel on then off, one at a time; only that channel's pin moves.
     first = before = len(board.outputs)
-    for ch in range(1, 11):
+    for ch in range(1, n_out + 1):
         for on in (True, False):
             port.write(encode(DriveCommand(100 + 2 * ch + on, ch, on)))
             end = time.monotonic() + 2
@@ -184,14 +189,20 @@ def test_each_input_pin_is_its_channels_edge_and_each_output_channel_its_pin(por
             before += 1
     read_for(port, decoder, 0.1)
     moved = [(c.channel, c.level) for c in board.outputs[first:]]
-    assert moved == [(ch, level) for ch in range(1, 11) for level in (1, 0)]
+    assert moved == [(ch, level) for ch in range(1, n_out + 1) for level in (1, 0)]
+    port.close()
 
-    # Host silence, as on the reference image (vproto.h VP_HOST_SILENCE_US): every output off
-    # 5 s after the host's last line, to within a main-loop pass.
+
+def test_host_silence_turns_the_five_port_boards_outputs_off(ports_board):
+    # As on the reference image (vproto.h VP_HOST_SILENCE_US, PROTOCOL.md section 9): every
+    # output off 5 s after the host's last line, to within a main-loop pass.
+    board = ports_board
+    port, decoder = open_port(board)
     lit = (CENTRE, NORTH, HOUSE_LIGHT, TRAY_LIGHT, TONE)
     for cid, ch in enumerate(lit, 300):
         port.write(encode(DriveCommand(cid, ch, True)))
     read_for(port, decoder, 0.2)
+    assert {c.channel for c in board.outputs if c.level} == set(lit)
     last_host_line = board.host_lines[-1]
     assert board.wait_for(lambda b: sum(1 for c in b.outputs if c.cycle > last_host_line + FREQ_HZ) >= len(lit), 7.0)
     offs = [c for c in board.outputs if c.cycle > last_host_line + FREQ_HZ]
@@ -206,7 +217,7 @@ def test_vigil_run_of_a_five_port_protocol_on_the_board(ports_board, tmp_path):
     animal = BoardAnimal(board, wiring, "random", seed=23, latency_s=0.25, irt_s=0.5, omission=0.0,
                          collect_s=0.3, eat_s=0.4, check_every_s=0.0)  # fmt: skip
     box = {"name": "sim-five", "animal": "FP-07", "seed": 17}
-    conn = vigil_run_with_animal(board, protocol, animal, 0.25, box, tmp_path)
+    conn = vigil_run_with_animal(board, protocol, animal, 0.2, box, tmp_path)
     ((session, ended),) = conn.execute("SELECT id, end_reason FROM sessions").fetchall()
     assert ended == "time limit"
     stored = conn.execute("SELECT name, value FROM events WHERE session_id = ? AND kind = 'input'"
