@@ -2,12 +2,14 @@
  * Vigil reference firmware: ATmega328P board layer (16 MHz, e.g. an Uno-class board).
  *
  * Pins: the box's lists in boxes.h (the reference box by default, the five-port box with
- * make BOX=ports; both tables are in the README's hardware section); kinds in channels.c.
+ * make BOX=ports; both tables are in the README's hardware section); kinds in channels.c
+ * or channels_ports.c.
  *   inputs, active low (internal pull-up; a switch or open-collector sensor pulls to GND):
  *     channels 1-6 on PD2-PD7, further ones from PC4 up
  *   outputs, active high (to driver transistors or relay boards; low at reset = safe):
  *     any of PB0-PB5 and PC0-PC5
- *   spare pins of those ports: inputs with their pull-ups, so none floats
+ *   spare pins of those ports: inputs with their pull-ups, so none floats (ATmega328P
+ *     datasheet, I/O ports, "Unconnected Pins")
  *   serial: PD0 RX, PD1 TX (USB bridge), 8N1 at BAUD (default 115200)
  *   PB3-PB5 double as the ISP programming pins: unplug their loads while programming.
  *
@@ -71,7 +73,8 @@
 #define ONE(ch, port, bit) +1
 _Static_assert(1 BOX_INPUT_PINS(INPUT_SHAPE), "inputs 1-6 on PD2-PD7, then PC4 up (boxes.h)");
 _Static_assert((0 BOX_INPUT_PINS(ONE)) == BOX_INPUTS, "one input pin per input channel");
-_Static_assert((0 BOX_OUTPUT_PINS(ONE)) == BOX_OUTPUTS, "one output pin per output channel");
+_Static_assert(__builtin_popcount(OUTPUTS_B) + __builtin_popcount(OUTPUTS_C) == BOX_OUTPUTS,
+               "one output pin per output channel, none shared");
 _Static_assert(INPUTS_D == USABLE_D && OUTPUTS_D == 0, "port D carries inputs 1-6 only");
 _Static_assert(((OUTPUTS_B & ~USABLE_B) | (OUTPUTS_C & ~USABLE_C) | (OUTPUTS_C & INPUTS_C)) == 0,
                "outputs on usable pins, none shared with an input");

@@ -189,6 +189,34 @@ def test_the_five_port_build_names_itself_and_its_own_channels(tmp_path):
     assert refused.returncode == 2  # it has no input 8
 
 
+@pytest.mark.skipif(
+    shutil.which("avr-gcc") is None, reason="avr-gcc not installed (Debian: gcc-avr avr-libc binutils-avr)"
+)
+@pytest.mark.parametrize(
+    ("line", "wrong", "message"),
+    [
+        (
+            "X(10, C, 3) /* tone gate */",
+            "X(10, C, 2) /* tone gate */",
+            "one output pin per output channel, none shared",
+        ),
+        ("X(7, C, 4)  /* pellet sensor */", "X(7, C, 5)  /* pellet sensor */", "inputs 1-6 on PD2-PD7, then PC4 up"),
+        ("X(3, D, 4)  /* east", "X(3, D, 5)  /* east", "inputs 1-6 on PD2-PD7, then PC4 up"),
+    ],
+)
+def test_a_box_wired_in_a_way_the_board_layer_cannot_read_does_not_build(tmp_path, line, wrong, message):
+    """boxes.h is checked at compile time: a shared output pin or an input out of its place."""
+    for source in FIRMWARE.glob("*.[ch]"):
+        shutil.copy(source, tmp_path)
+    boxes = (tmp_path / "boxes.h").read_text()
+    ports = boxes.index("PORTS_INPUT_PINS(X)")  # change the five-port box's lists only
+    assert line in boxes[ports:]
+    (tmp_path / "boxes.h").write_text(boxes[:ports] + boxes[ports:].replace(line, wrong, 1))
+    done = subprocess.run(["avr-gcc", "-mmcu=atmega328p", "-Os", "-DBOX_PORTS", "-c", "main_avr.c", "-o", "x.o"],
+                          cwd=tmp_path, capture_output=True, text=True, timeout=60)  # fmt: skip
+    assert done.returncode != 0 and f'static assertion failed: "{message}' in done.stderr, done.stderr
+
+
 @pytest.mark.skipif(shutil.which("make") is None, reason="make not installed")
 def test_an_unknown_box_is_one_line_from_make(tmp_path):
     done = make("all", tmp_path, box="sixport")
