@@ -17,6 +17,7 @@ from test_board_timing import open_port, read_for
 
 from hardware_stubs.board_animal import BoardAnimal
 from hardware_stubs.simulated_board import FREQ_HZ, HERE
+from server.lab.supervisor import RUN_TIME_LIMIT
 from server.link.codec import encode
 from server.link.handshake import identity_problems
 from server.link.messages import INPUT_KIND_CODES, OUTPUT_KIND_CODES, Channel, DriveCommand, Edge, Identity
@@ -138,6 +139,9 @@ def test_the_image_fits_and_the_handshake_names_the_five_port_box(ports_build, p
     assert identity.inputs == tuple(Channel(n, k) for n, k in enumerate(FIVE_PORT_INPUTS, 1))
     assert identity.outputs == tuple(Channel(n, k) for n, k in enumerate(FIVE_PORT_OUTPUTS, 1))
     assert identity_problems(identity, wiring) == []
+    # The example two-stage protocol is written for this box.
+    two_stage = load_protocol(ROOT / "protocols" / "two_stage.yaml").wiring
+    assert identity_problems(identity, two_stage) == []
     # A lever protocol is refused on this board, channel by channel ...
     lever_box = identity_problems(identity, load_protocol(ROOT / "protocols" / "reversal.yaml").wiring)
     assert "output 'lever_west' (lever) is wired to channel 1, which is a cue_light on the device" in lever_box
@@ -219,7 +223,7 @@ def test_vigil_run_of_a_five_port_protocol_on_the_board(ports_board, tmp_path):
     box = {"name": "sim-five", "animal": "FP-07", "seed": 17}
     conn = vigil_run_with_animal(board, protocol, animal, 0.2, box, tmp_path)
     ((session, ended),) = conn.execute("SELECT id, end_reason FROM sessions").fetchall()
-    assert ended == "time limit"
+    assert ended == RUN_TIME_LIMIT
     stored = conn.execute("SELECT name, value FROM events WHERE session_id = ? AND kind = 'input'"
                           " ORDER BY device_seq", (session,)).fetchall()  # fmt: skip
     name_of = {line.channel: line.name for line in wiring.inputs.values()}
