@@ -46,7 +46,11 @@ def test_an_agent_on_the_pins_earns_pellets_through_vigil_run(board, tmp_path):
     presses = [c for c in board.inputs if c.channel == 1 and c.level]
     print(f"\nthe animal made {animal.edges} edges; {stored[0]} stored, {rewarded} rewarded trials, "
           f"{len(board.pulses_us(7))} pellets on the pin")  # fmt: skip
-    assert presses and rewarded > 0 and stored[0] == stored[1] == len(board.inputs)
+    # Every edge stored once; only a last falling edge may come after the session's end and be
+    # missing (a switch opens 0.1-0.3 s after its press, a head leaves the magazine later).
+    assert presses and rewarded > 0 and stored[0] == stored[1]
+    missing = board.inputs[stored[0] :]
+    assert len(missing) <= 1 and all(c is board.inputs[-1] and not c.level for c in missing), missing
     # Physics of the box (EmulatedBox): a press only while the lever's pin is high.
     for press in presses:
         level = [c.level for c in lever if c.cycle <= press.cycle]
