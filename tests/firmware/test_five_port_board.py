@@ -16,7 +16,7 @@ from test_board_animal import vigil_run_with_animal
 from test_board_timing import open_port, read_for
 
 from hardware_stubs.board_animal import BoardAnimal
-from hardware_stubs.simulated_board import FREQ_HZ, HERE
+from hardware_stubs.simulated_board import FREQ_HZ, HERE, BoardError, SimulatedBoard
 from server.lab.supervisor import RUN_TIME_LIMIT
 from server.link.codec import encode
 from server.link.handshake import identity_problems
@@ -160,6 +160,16 @@ def test_both_boxes_pins_are_the_readmes(ports_board, board):
     assert ports_board.pins() == readme_pins("Pin map of the five-port box")
     assert board.pins() == readme_pins("Pin map of the reference box")
     assert len(ports_board.pins()["in"]) == 7 and len(board.pins()["in"]) == 8
+
+
+def test_the_harness_takes_the_box_from_the_image_and_refuses_a_wrong_one(ports_build, board_build, tmp_path):
+    harness, ports_hex, _ = ports_build
+    ref_hex = board_build[1]
+    with SimulatedBoard(harness, ports_hex, tmp_path / "a.tty") as board:  # no box named
+        assert board.box == "ports" and len(board.pins()["in"]) == 7
+    # Pins read with the wrong box's map would be silently wrong: the harness says so instead.
+    with pytest.raises(BoardError, match=r"is not an image for box 'ports' \(no 'vigil-ports-1.0' in it\)"):
+        SimulatedBoard(harness, ref_hex, tmp_path / "b.tty", box="ports")
 
 
 @pytest.mark.parametrize("box", ["ports", "ref"])
