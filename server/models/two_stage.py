@@ -290,6 +290,8 @@ def model_based_values(task: TwoStageTask, q2: np.ndarray, valid: np.ndarray | N
 
 def _log_prob_among(logits: np.ndarray, offered: np.ndarray, chosen: np.ndarray) -> np.ndarray:
     """log P(chosen) under a softmax over the offered slots only; 0 where nothing was chosen."""
+    if len(logits) == 2:
+        return _log_prob_pair(logits, chosen, offered[1])
     z = np.where(offered > 0, logits, -np.inf)
     top = z.max(0)
     top = np.where(np.isfinite(top), top, 0.0)
@@ -297,6 +299,13 @@ def _log_prob_among(logits: np.ndarray, offered: np.ndarray, chosen: np.ndarray)
     lse = top + np.log(np.maximum(total, 1e-300))
     picked = np.where(chosen > 0, logits, 0.0).sum(0)
     return np.where(chosen.sum(0) > 0, picked - lse, 0.0)
+
+
+def _log_prob_pair(logits: np.ndarray, chosen: np.ndarray, both: np.ndarray | float = 1.0) -> np.ndarray:
+    """Two options: log P(chosen) = -log(1 + exp(z_other - z_chosen)), one ufunc instead of a
+    log-sum-exp; 0 where nothing was chosen or (`both` = 0) only one option was offered."""
+    gap = (logits[1] - logits[0]) * (chosen[0] - chosen[1])
+    return -np.logaddexp(0.0, gap) * ((chosen[0] + chosen[1]) * both)
 
 
 def hybrid_step(
@@ -312,7 +321,7 @@ def hybrid_step(
     w = theta["w"]
     q_net = w * q_mb + (1.0 - w) * q1
     logits1 = theta["beta1"] * (q_net + theta["persev"] * prev)
-    logp = log_choice_probability(logits1, first)
+    logp = _log_prob_pair(logits1, first) if len(first) == 2 else log_choice_probability(logits1, first)
     # second stage: softmax with beta2 over the options of the state reached
     q2_state = (q2 * reached[:, None]).sum(0)  # (B, *P)
     logp = logp + _log_prob_among(theta["beta2"] * q2_state, offered, second)

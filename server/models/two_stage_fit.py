@@ -22,7 +22,7 @@ from .params import Param
 from .two_stage import HYBRID_PARAMS, TWO_STAGE_MODELS, TwoStageModel, get_two_stage_model
 from .two_stage_trials import TwoStageStack, TwoStageTrials, run_hybrid, stack_two_stage
 
-START_POINTS = 128  # Halton points evaluated per animal
+START_POINTS = 256  # Halton points evaluated per animal
 STARTS = 3  # of which the best are refined
 _PRIMES = (2, 3, 5, 7, 11, 13, 17, 19)
 
