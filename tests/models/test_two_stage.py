@@ -34,7 +34,9 @@ TASK = TwoStageTask.build(
 
 
 def _rows(sim):
-    return [TwoStageRow(s, t, a, st, None if tt is None else tt == "common", b, False, r) for s, t, a, tt, st, b, r in sim]
+    return [
+        TwoStageRow(s, t, a, st, None if tt is None else tt == "common", b, False, r) for s, t, a, tt, st, b, r in sim
+    ]
 
 
 def _animal(name, sim, task=TASK):
