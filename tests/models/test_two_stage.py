@@ -46,7 +46,9 @@ def _animal(name, sim, task=TASK):
 # ---------------------------------------------------------------- by hand
 
 HAND = dict(alpha1=0.5, alpha2=0.5, beta1=1.0, beta2=1.0, w=0.5, persev=0.2, **{"lambda": 0.5})
-AB = TwoStageTask.build(["A", "B"], {"X": ["x1", "x2"], "Y": ["y1", "y2"]}, {"A": {"X": 0.7, "Y": 0.3}, "B": {"X": 0.3, "Y": 0.7}})  # fmt: skip
+AB = TwoStageTask.build(
+    ["A", "B"], {"X": ["x1", "x2"], "Y": ["y1", "y2"]}, {"A": {"X": 0.7, "Y": 0.3}, "B": {"X": 0.3, "Y": 0.7}}
+)
 
 
 def test_likelihood_and_values_by_hand_on_five_trials():
