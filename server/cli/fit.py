@@ -17,7 +17,7 @@ from typing import TextIO
 
 from server.cli import fit_two_stage
 from server.cli.fit_sources import FitInputError, csv_kind, read_trials_csv, read_trials_db
-from server.cli.fit_tables import clean, comparison_json, print_comparison, print_fits, select
+from server.cli.fit_tables import clean, comparison_json, print_comparison, print_fits, select, with_choices
 from server.models.batch import ValueSettings
 from server.models.choice import CHOICE_MODELS, get_choice_model
 from server.models.comparison import compare_models, regressors
@@ -101,12 +101,7 @@ def run(args: argparse.Namespace, out: TextIO | None = None, err: TextIO | None 
         )
     except FitInputError as exc:
         return fail(str(exc), 1)
-    usable = []
-    for a in animals:
-        if a.n_choices == 0:
-            print(f"{PROG}: animal {a.animal} has no choice trials; skipped", file=err)
-        else:
-            usable.append(a)
+    usable = with_choices(animals, err)
     if not usable:
         return fail("nothing to fit", 1)
     values = ValueSettings(carry_values=args.carry_values)

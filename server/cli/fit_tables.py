@@ -15,6 +15,8 @@ from server.models.fitting import FitResult
 class _Named(Protocol):
     @property
     def animal(self) -> str: ...
+    @property
+    def n_choices(self) -> int: ...
 
 
 A = TypeVar("A", bound=_Named)
@@ -128,3 +130,14 @@ def print_comparison(comparison: Comparison, out: TextIO) -> None:
             ]
         )
     print_table(rows, out)
+
+
+def with_choices(animals: list[A], err: TextIO) -> list[A]:
+    """The animals that made a choice; the others are named on `err` as skipped."""
+    usable = []
+    for a in animals:
+        if a.n_choices == 0:
+            print(f"vigil fit: animal {a.animal} has no choice trials; skipped", file=err)
+        else:
+            usable.append(a)
+    return usable

@@ -11,13 +11,23 @@ from collections.abc import Callable
 from typing import TextIO
 
 from server.cli.fit_sources import FitInputError, read_two_stage_csv
-from server.cli.fit_tables import clean, comparison_json, num, print_comparison, print_fits, print_table, select
+from server.cli.fit_tables import (
+    clean,
+    comparison_json,
+    num,
+    print_comparison,
+    print_fits,
+    print_table,
+    select,
+    with_choices,
+)
 from server.engine.stay import StayAnalysis
 from server.models.batch import ValueSettings
 from server.models.choice import CHOICE_MODELS
+from server.models.comparison import compare_models
 from server.models.fitting import FitResult
 from server.models.two_stage import TWO_STAGE_MODELS, get_two_stage_model
-from server.models.two_stage_fit import compare_two_stage, fit_two_stage, two_stage_regressors
+from server.models.two_stage_fit import fit_two_stage, two_stage_regressors
 from server.models.two_stage_trials import TwoStageTrials
 
 
@@ -39,18 +49,13 @@ def run(args: argparse.Namespace, out: TextIO, err: TextIO, fail: Callable[[str,
         animals = select(read_two_stage_csv(args.trials, p_common), args.animal, args.trials)
     except FitInputError as exc:
         return fail(str(exc), 1)
-    usable = []
-    for a in animals:
-        if a.n_choices == 0:
-            print(f"vigil fit: animal {a.animal} has no choice trials; skipped", file=err)
-        else:
-            usable.append(a)
+    usable = with_choices(animals, err)
     if not usable:
         return fail("nothing to fit", 1)
     values = ValueSettings(carry_values=args.carry_values)
     stay = {a.animal: a.stay(args.stay_lags) for a in usable}
     if args.compare:
-        comparison = compare_two_stage(usable, use_prior=args.map, values=values)
+        comparison = compare_models(usable, use_prior=args.map, values=values)
         best = [comparison.best(i) for i in range(len(usable))]
         if args.json:
             rows = comparison_json(comparison)

@@ -39,7 +39,7 @@ like any second-stage value.
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import NamedTuple
 
 import numpy as np
@@ -47,7 +47,7 @@ import numpy as np
 from server.protocol.reader import did_you_mean
 
 from .choice import log_choice_probability
-from .params import Param, Prior, check_params, learning_rate
+from .params import DeclaredParams, Param, Prior, learning_rate
 
 Theta = Mapping[str, np.ndarray | float]
 
@@ -80,30 +80,16 @@ HYBRID_PARAMS: tuple[Param, ...] = (
 
 
 @dataclass(frozen=True, slots=True)
-class TwoStageModel:
+class TwoStageModel(DeclaredParams):
     """A named variant of the hybrid: which parameters it fixes, and at what values."""
 
     name: str
     fixed: dict[str, float]
     summary: str
+    params: tuple[Param, ...] = field(init=False)  # the free ones, in declaration order
 
-    @property
-    def params(self) -> tuple[Param, ...]:
-        """The free parameters, in declaration order."""
-        return tuple(p for p in HYBRID_PARAMS if p.name not in self.fixed)
-
-    @property
-    def names(self) -> tuple[str, ...]:
-        return tuple(p.name for p in self.params)
-
-    def param(self, name: str) -> Param:
-        for p in self.params:
-            if p.name == name:
-                return p
-        raise KeyError(name)
-
-    def check(self, values: Mapping[str, object]) -> dict[str, float]:
-        return check_params(self.name, self.params, values)
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "params", tuple(p for p in HYBRID_PARAMS if p.name not in self.fixed))
 
     def theta(self, free: Mapping[str, np.ndarray | float]) -> dict[str, np.ndarray | float]:
         """The full parameter set of `hybrid_step`: the free values plus the fixed ones."""

@@ -16,10 +16,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from .batch import ValueSettings
-from .comparison import Comparison
 from .fitting import FitResult, fit_results, refine
 from .params import Param
-from .two_stage import HYBRID_PARAMS, TWO_STAGE_MODELS, TwoStageModel, get_two_stage_model
+from .two_stage import HYBRID_PARAMS, TwoStageModel
 from .two_stage_trials import TwoStageStack, TwoStageTrials, run_hybrid, stack_two_stage
 
 START_POINTS = 256  # Halton points evaluated per animal
@@ -100,20 +99,6 @@ def fit_two_stage(
     for g in groups:
         out.update(zip(g, _fit_group(model, [animals[i] for i in g], use_prior, values)))
     return [out[i] for i in range(len(animals))]
-
-
-def compare_two_stage(
-    animals: Sequence[TwoStageTrials],
-    models: Sequence[str] | None = None,
-    *,
-    use_prior: bool = False,
-    values: ValueSettings = ValueSettings(),
-) -> Comparison:
-    """Fit the model-free, model-based and hybrid variants (or those named) to every animal."""
-    names = list(models) if models else list(TWO_STAGE_MODELS)
-    return Comparison(
-        {name: fit_two_stage(get_two_stage_model(name), animals, use_prior=use_prior, values=values) for name in names}
-    )
 
 
 @dataclass(frozen=True, slots=True, eq=False)
