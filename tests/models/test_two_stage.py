@@ -103,6 +103,19 @@ def test_single_response_states_by_hand():
     assert step.logp[0] == pytest.approx(-math.log(1 + math.exp(0.525 - 0.05)))
 
 
+@pytest.mark.parametrize("name", list(TWO_STAGE_MODELS))
+def test_every_variant_declares_its_parameters_as_data(name):
+    model = TWO_STAGE_MODELS[name]
+    for p in model.params:
+        mid = float(p.from_unit(0.5))
+        assert np.isfinite(p.prior.logpdf(mid)) and model.param(p.name) is p
+        with pytest.raises(ValueError, match=f"{name}: {p.name} must be a number in"):
+            model.check({**{q.name: float(q.from_unit(0.5)) for q in model.params}, p.name: p.high + 1})
+    with pytest.raises(ValueError, match="unknown parameter 'gamma'"):
+        model.check({"gamma": 1.0})
+    assert set(model.theta({p.name: 0.5 for p in model.params})) == set(NAMES)
+
+
 def test_variants_fix_what_they_say():
     assert TWO_STAGE_MODELS["hybrid"].names == tuple(NAMES)
     assert TWO_STAGE_MODELS["model_free"].fixed == {"w": 0.0}
