@@ -17,7 +17,15 @@ from typing import TextIO
 
 from server.cli import fit_two_stage
 from server.cli.fit_sources import FitInputError, csv_kind, read_trials_csv, read_trials_db
-from server.cli.fit_tables import clean, comparison_json, print_comparison, print_fits, select, with_choices
+from server.cli.fit_tables import (
+    clean,
+    comparison_json,
+    print_comparison,
+    print_fits,
+    select,
+    with_choices,
+    write_or_fail,
+)
 from server.models.batch import ValueSettings
 from server.models.choice import CHOICE_MODELS, get_choice_model
 from server.models.comparison import compare_models, regressors
@@ -118,12 +126,7 @@ def run(args: argparse.Namespace, out: TextIO | None = None, err: TextIO | None 
             print(json.dumps([clean(f.to_dict()) for f in best]), file=out)
         else:
             print_fits(best, out)
-    if args.regressors:
-        try:
-            _write_regressors(args.regressors, usable, best, values)
-        except OSError as exc:
-            return fail(f"cannot write {args.regressors}: {exc.strerror or exc}", 1)
-    return 0
+    return write_or_fail(args.regressors, lambda path: _write_regressors(path, usable, best, values), fail)
 
 
 def _write_regressors(path: str, animals: list[AnimalTrials], fits: list[FitResult], values: ValueSettings) -> None:

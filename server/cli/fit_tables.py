@@ -4,7 +4,7 @@ single-stage (server/cli/fit.py) and two-stage (server/cli/fit_two_stage.py) pat
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from typing import Protocol, TextIO, TypeVar
 
 from server.cli.fit_sources import FitInputError
@@ -141,3 +141,13 @@ def with_choices(animals: list[A], err: TextIO) -> list[A]:
         else:
             usable.append(a)
     return usable
+
+
+def write_or_fail(path: str | None, write: Callable[[str], None], fail: Callable[[str, int], int]) -> int:
+    """Write `path` (when given) with `write`; 0, or `fail`'s code on an OSError."""
+    if path:
+        try:
+            write(path)
+        except OSError as exc:
+            return fail(f"cannot write {path}: {exc.strerror or exc}", 1)
+    return 0

@@ -20,6 +20,7 @@ from server.cli.fit_tables import (
     print_table,
     select,
     with_choices,
+    write_or_fail,
 )
 from server.engine.stay import StayAnalysis
 from server.models.batch import ValueSettings
@@ -76,12 +77,7 @@ def run(args: argparse.Namespace, out: TextIO, err: TextIO, fail: Callable[[str,
         given = "given" if p_common is not None else "the file's share of common transitions"
         print(f"\nmodel-based transition model: P(common) = {num(float(t.max(1).min()), 4)} ({given})", file=out)
         print_stay(stay, out)
-    if args.regressors:
-        try:
-            write_regressors(args.regressors, usable, best, values)
-        except OSError as exc:
-            return fail(f"cannot write {args.regressors}: {exc.strerror or exc}", 1)
-    return 0
+    return write_or_fail(args.regressors, lambda path: write_regressors(path, usable, best, values), fail)
 
 
 def print_stay(stay: dict[str, StayAnalysis], out: TextIO) -> None:

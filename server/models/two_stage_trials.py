@@ -16,6 +16,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from server.engine.records import TrialOutcome, TrialRecord
 from server.engine.stay import StayAnalysis, stay_analysis
 
 from .batch import ValueSettings
@@ -36,6 +37,18 @@ class TwoStageRow:
     choice2: str | None = None
     omitted2: bool = False
     reward: float = 0.0
+
+    @classmethod
+    def from_record(cls, session: str, record: TrialRecord | TrialOutcome) -> TwoStageRow:
+        """The row of a stored or just-finished trial (a trial with no second stage, or an
+        omission, is a first-stage omission)."""
+        second = record.second
+        if record.omission or record.choice is None or second is None:
+            return cls(session, record.trial, None, reward=float(record.reward))
+        return cls(
+            session, record.trial, record.choice, second.state, second.common,
+            None if second.omitted else second.choice, second.omitted, float(record.reward),
+        )  # fmt: skip
 
 
 @dataclass(frozen=True, slots=True, eq=False)

@@ -259,3 +259,27 @@ def test_w_is_recovered_by_the_mle_at_300_trials():
         animals.append(_animal(f"RAT-{i}", simulate_two_stage(p, 300, seed=3000 + i)))
     ml = fit_two_stage(TWO_STAGE_MODELS["hybrid"], animals)
     assert np.corrcoef(truth, [f.params["w"] for f in ml])[0, 1] >= 0.75
+
+
+def test_rows_from_trial_records_encode_like_csv_rows():
+    from server.engine.records import SecondStage, TrialRecord
+
+    def record(i, choice, second, reward):
+        return TrialRecord(
+            i, "main", 1, "two_stage", float(i), i + 0.5, choice, None, 0.3, reward > 0, reward, None,
+            choice is None, False, 2.0, second=second,
+        )  # fmt: skip
+
+    recs = [
+        record(1, "A", SecondStage("X", True, choice="x1"), 1.0),
+        record(2, None, None, 0.0),
+        record(3, "B", SecondStage("X", False, omitted=True), 0.0),
+    ]
+    rows = [TwoStageRow.from_record("s7", r) for r in recs]
+    assert rows == [
+        TwoStageRow("s7", 1, "A", "X", True, "x1", False, 1.0),
+        TwoStageRow("s7", 2, None, reward=0.0),
+        TwoStageRow("s7", 3, "B", "X", False, None, True, 0.0),
+    ]
+    animal = encode_two_stage("RAT-2", rows, AB)
+    assert animal.n_choices == 2 and animal.second[2].sum() == 0 and animal.first[2].tolist() == [0.0, 1.0]
