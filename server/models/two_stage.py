@@ -25,6 +25,9 @@ The interface an online estimator runs, one call per trial
   singleton axes so they broadcast against values with `ndim` trailing axes.
 - `hybrid_step` never mutates its inputs; particles can be resampled by indexing the value
   arrays' trailing axes (`values.take(index)`).
+- A new session starts from `initial_values` again (or, keeping what was learned, from the
+  same `q1` and `q2` with `prev` zeroed: the perseveration term never spans two sessions),
+  as `run_hybrid` (server/models/two_stage_trials.py) does for the batch fit.
 
 Omissions. A first-stage omission (no choice) adds nothing to the log-likelihood and
 changes no value, and the previous choice used by the perseveration term stays the last

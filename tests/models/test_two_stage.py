@@ -116,6 +116,23 @@ def test_every_variant_declares_its_parameters_as_data(name):
     assert set(model.theta({p.name: 0.5 for p in model.params})) == set(NAMES)
 
 
+def test_three_options_by_hand():
+    # the general (log-sum-exp) path: three first-stage options, a state with three options
+    # and one with two; HAND parameters
+    task = TwoStageTask.build(
+        ["A", "B", "C"],
+        {"X": ["x1", "x2", "x3"], "Y": ["y1", "y2"]},
+        {"A": {"X": 0.7, "Y": 0.3}, "B": {"X": 0.3, "Y": 0.7}, "C": {"X": 0.5, "Y": 0.5}},
+    )
+    step = hybrid_step(HAND, initial_values(task, (1,)), task, task.encode("A", "X", "x3", 1.0).expand(1))
+    assert step.logp[0] == pytest.approx(2 * math.log(1 / 3))
+    # Q1(A) = 0.25, Q2(X, x3) = 0.5: Q_MB = (0.35, 0.15, 0.25), Q_net = (0.30, 0.075, 0.125);
+    # logits A 0.30 + 0.2, B 0.075, C 0.125; then y2 among two zero values
+    step = hybrid_step(HAND, step.values, task, task.encode("C", "Y", "y2", 0.0).expand(1))
+    expected = 0.125 - math.log(math.exp(0.5) + math.exp(0.075) + math.exp(0.125)) + math.log(0.5)
+    assert step.logp[0] == pytest.approx(expected, abs=1e-12)
+
+
 def test_variants_fix_what_they_say():
     assert TWO_STAGE_MODELS["hybrid"].names == tuple(NAMES)
     assert TWO_STAGE_MODELS["model_free"].fixed == {"w": 0.0}
@@ -176,7 +193,8 @@ def test_one_call_serves_thousands_of_particles_like_one_at_a_time():
 def _scipy_optimum(sim, model, starts, rng, use_prior=False):
     """scipy L-BFGS-B on the plain-Python likelihood over the variant's free parameters."""
     free = [p for p in HYBRID_PARAMS if p.name not in model.fixed]
-    bounds = [(p.low, p.high) for p in free]
+    inside = 1e-9 if use_prior else 0.0  # a Beta prior's log density is -inf on its bounds
+    bounds = [(p.low + inside, p.high - inside) for p in free]
 
     def nll(x):
         p = {**model.fixed, **{q.name: v for q, v in zip(free, x)}}
