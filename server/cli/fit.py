@@ -96,6 +96,8 @@ def run(args: argparse.Namespace, out: TextIO | None = None, err: TextIO | None 
         return fit_two_stage.run(args, out, err, fail)
     if args.model in TWO_STAGE_MODELS:
         return fail(f"{args.model} is a two-stage model; these trials have a single stage", 2)
+    if args.common_probability is not None or args.stay_lags != 1:
+        return fail("--common-probability and --stay-lags apply to two-stage trials only", 2)
     if not args.compare:
         try:
             model = get_choice_model(args.model or "q_learning")

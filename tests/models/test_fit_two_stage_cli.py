@@ -8,12 +8,17 @@ import csv
 import io
 import json
 import math
+import os
+import subprocess
+import sys
+from pathlib import Path
 
 import pytest
 from two_stage_simulation import reference_loglik, simulate_two_stage
 
 from server.cli import fit as fit_cli
 
+ROOT = Path(__file__).resolve().parents[2]
 HEADER = "animal,session,trial,choice,transition,state,choice2,reward"
 
 
@@ -124,6 +129,18 @@ def test_models_of_the_other_kind_are_usage_errors(two_stage_csv, tmp_path):
     single.write_text("animal,session,trial,choice,reward\nR1,s1,1,L,1\nR1,s1,2,R,0\n")
     code, _, err = _run([str(single), "--model", "hybrid"])
     assert code == 2 and "two-stage model" in err
+    code, _, err = _run([str(single), "--stay-lags", "2"])
+    assert code == 2 and "two-stage trials only" in err
+
+
+def test_as_a_process(two_stage_csv):
+    path, rows, _ = two_stage_csv
+    proc = subprocess.run(
+        [sys.executable, "-m", "server.cli", "fit", str(path), "--model", "model_free", "--animal", "MOUSE-K1"],
+        capture_output=True, text=True, timeout=120, env={**os.environ, "PYTHONPATH": str(ROOT)},
+    )  # fmt: skip
+    assert proc.returncode == 0, proc.stderr
+    assert "model_free (maximum likelihood)" in proc.stdout and "MOUSE-K2" not in proc.stdout
 
 
 GOOD = "M1,s1,1,left,common,upper,a,1"
