@@ -22,7 +22,7 @@ from server.cli.fit_tables import (
     with_choices,
     write_or_fail,
 )
-from server.engine.stay import StayAnalysis
+from server.engine.stay import CONDITION_NAMES, StayAnalysis
 from server.models.batch import ValueSettings
 from server.models.choice import CHOICE_MODELS
 from server.models.comparison import compare_models
@@ -84,10 +84,10 @@ def print_stay(stay: dict[str, StayAnalysis], out: TextIO) -> None:
     print("\nstay analysis: P(repeat the first-stage choice) after each kind of trial (Wilson 95 %)", file=out)
     rows = [["animal", "after", "n", "P(stay)", "interval"]]
     for animal, s in stay.items():
-        for c in s.cells:
+        for key, c in s.counts.items():
             iv = c.interval
             span = f"[{num(iv[0], 3)}, {num(iv[1], 3)}]" if iv else "-"
-            rows.append([animal, c.label, str(c.n), num(c.p, 3), span])
+            rows.append([animal, CONDITION_NAMES[key], str(c.pairs), num(c.p, 3), span])
     print_table(rows, out)
     print("\nlogistic regression of stay (reward and transition coded +1/-1; Wald SE, two-sided p)", file=out)
     rows = [["animal", "term", "estimate", "SE", "z", "p", "n"]]

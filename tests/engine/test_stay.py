@@ -11,27 +11,42 @@ import statsmodels.api as sm
 from statsmodels.stats.proportion import proportion_confint
 
 from server.engine.records import SecondStage, TrialRecord
-from server.engine.stay import regressor_names, stay_analysis, stay_from_records, wilson_interval
+from server.engine.stay import (
+    regressor_names,
+    stay_analysis,
+    stay_counts,
+    stay_from_records,
+    stay_pairs,
+    wilson_interval,
+)
 
 
 def test_cells_counted_by_hand():
-    # trials: (choice, common, rewarded); session s2 starts afresh, omissions are skipped
+    # trials: (choice, common, rewarded); s2 starts afresh. A pair (t-1, t) counts when t
+    # has a first choice and t-1 had one whose second stage played out.
     choices = ["L", "L", "R", None, "R", "L", "L", "R", "R"]
     common = [True, False, True, None, True, False, True, True, False]
     rewarded = [True, False, True, None, None, True, False, True, True]
     sessions = ["s1", "s1", "s1", "s1", "s1", "s1", "s2", "s2", "s2"]
-    # complete trials of s1: L(c,+) L(r,-) R(c,+) L(r,+)  [the R with no outcome is skipped]
-    # pairs: after c+ stay (L->L); after r- switch (L->R); after c+ switch (R->L)
-    # s2: L(c,-) R(c,+) R(r,+): after c- switch; after c+ stay
+    # s1: (1,2) after c+ stay; (2,3) after r- switch; (3,4) t is an omission; (4,5) t-1 is;
+    # (5,6) t-1 had no outcome. s2: (7,8) after c- switch; (8,9) after c+ stay
     s = stay_analysis(choices, common, rewarded, sessions)
-    assert (s.cell(True, True).n, s.cell(True, True).stays) == (3, 2)
-    assert (s.cell(False, False).n, s.cell(False, False).stays) == (1, 0)
-    assert (s.cell(False, True).n, s.cell(False, True).stays) == (1, 0)
-    assert s.cell(True, False).n == 0 and s.cell(True, False).p is None
-    # no rewarded-rare pair: the design is singular, which the regression says
-    assert s.regression is not None and not s.regression.converged
-    assert math.isnan(s.regression["reward"].se)
-    assert stay_analysis(choices[:4], common[:4], rewarded[:4]).regression is None  # too few pairs
+    assert (s.cell(True, True).pairs, s.cell(True, True).stays) == (2, 2)
+    assert (s.cell(False, False).pairs, s.cell(False, False).stays) == (1, 0)
+    assert (s.cell(False, True).pairs, s.cell(False, True).stays) == (1, 0)
+    assert s.cell(True, False).pairs == 0 and s.cell(True, False).p is None
+    assert s.regression is None  # 4 pairs cannot fit 4 coefficients
+    assert stay_pairs(choices, common, rewarded, sessions) == [1, 2, 7, 8]
+    assert stay_pairs(choices, common, rewarded, sessions, lags=2) == [2, 8]
+
+
+def test_a_singular_design_is_flagged():
+    # no rewarded-rare pair among six: the design is singular, which the regression says
+    choices = ["L", "L", "R", "R", "L", "L", "R"]
+    common = [True, False, True, True, False, True, True]
+    rewarded = [True, False, True, False, False, True, True]
+    reg = stay_analysis(choices, common, rewarded).regression
+    assert reg is not None and not reg.converged and math.isnan(reg["reward"].se)
 
 
 def test_wilson_interval_matches_statsmodels():
@@ -96,15 +111,21 @@ def _record(i, choice, state, common, rewarded, omitted=False):
     )  # fmt: skip
 
 
-def test_from_records():
+def test_from_records_counts_like_the_rules_and_the_page():
     recs = [
         _record(1, "left", "upper", True, True),
         _record(2, "left", "lower", False, False),
-        _record(3, None, None, True, False),
-        _record(4, "right", "lower", True, False, omitted=True),
-        _record(5, "right", "upper", False, True),
+        _record(3, "right", "lower", True, False),
+        _record(4, None, None, True, False),
+        _record(5, "right", "lower", True, False, omitted=True),
+        _record(6, "right", "upper", False, True),
+        _record(7, "left", "upper", True, True),
     ]
     s = stay_from_records(recs)
-    # complete: left(c+) left(r-) right(r+): after c+ stay, after r- switch
-    assert s.cell(True, True).stays == 1 and s.cell(False, False).n == 1 and s.cell(False, False).stays == 0
+    # (1,2) after c+ stay; (2,3) after r- switch; (3,4) omission; (4,5) after an omission;
+    # (5,6) after a missed second stage; (6,7) after r+ switch
+    assert {k: (c.stays, c.pairs) for k, c in s.counts.items()} == {
+        (True, True): (1, 1), (False, False): (0, 1), (False, True): (0, 0), (True, False): (0, 1),
+    }  # fmt: skip
+    assert s.counts == stay_counts(recs)
     assert math.isnan(wilson_interval(0, 0)[0])

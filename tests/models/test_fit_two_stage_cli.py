@@ -76,7 +76,7 @@ def test_json_fit_matches_the_independent_likelihood_and_carries_the_stay_analys
         assert r["loglik"] == pytest.approx(reference_loglik(r["params"], sim, p_common), abs=1e-9)
         cells = r["stay"]["cells"]
         assert [c["condition"] for c in cells] == [
-            "rewarded-common", "rewarded-rare", "unrewarded-common", "unrewarded-rare",
+            "rewarded, common", "rewarded, rare", "unrewarded, common", "unrewarded, rare",
         ]  # fmt: skip
         assert set(r["stay"]["regression"]["coefficients"]) == {
             "intercept", "reward", "transition", "reward:transition",
@@ -106,7 +106,7 @@ def test_human_output_regressors_and_a_given_transition_probability(two_stage_cs
                            "--regressors", str(reg_path), "--stay-lags", "2"])  # fmt: skip
     assert code == 0, err
     assert "model_based (maximum likelihood)" in out and "P(common) = 0.7 (given)" in out
-    assert "reward:transition@2" in out and "unrewarded-rare" in out
+    assert "reward:transition@2" in out and "unrewarded, rare" in out
     with open(reg_path, newline="") as fh:
         reg = list(csv.DictReader(fh))
     assert {"q_mf_left", "q_mb_right", "p_left", "q2_upper_a", "delta1", "delta2", "loglik"} <= set(reg[0])
