@@ -16,7 +16,7 @@ from collections.abc import Sequence
 from typing import TextIO
 
 from server.cli import fit_two_stage
-from server.cli.fit_sources import FitInputError, csv_kind, read_trials_csv, read_trials_db
+from server.cli.fit_sources import FitInputError, csv_kind, read_history, read_trials_csv, read_trials_db
 from server.cli.fit_tables import (
     clean,
     comparison_json,
@@ -94,6 +94,18 @@ def run(args: argparse.Namespace, out: TextIO | None = None, err: TextIO | None 
         return fail("give a trials CSV or --db PATH (one of the two)", 2)
     if args.trials and csv_kind(args.trials) == "two_stage":
         return fit_two_stage.run(args, out, err, fail)
+    found = None
+    if args.db:
+        try:
+            found = read_history(args.db, args.animal, two_stage=True)
+        except FitInputError as exc:
+            return fail(str(exc), 1)
+        two_stage = {p.session_id for p in found if p.second is not None}
+        if two_stage:
+            others = {p.session_id for p in found} - two_stage
+            if others:
+                print(f"{PROG}: {len(others)} single-stage session(s) left out; fitting two-stage sessions", file=err)
+            return fit_two_stage.run(args, out, err, fail, [p for p in found if p.session_id in two_stage])
     if args.model in TWO_STAGE_MODELS:
         return fail(f"{args.model} is a two-stage model; these trials have a single stage", 2)
     if args.common_probability is not None or args.stay_lags != 1:
@@ -105,7 +117,7 @@ def run(args: argparse.Namespace, out: TextIO | None = None, err: TextIO | None 
             return fail(str(exc), 2)
     try:
         animals = (
-            read_trials_db(args.db, args.animal)
+            read_trials_db(args.db, args.animal, found)
             if args.db
             else select(read_trials_csv(args.trials), args.animal, args.trials)
         )

@@ -10,13 +10,10 @@ import csv
 import math
 import sqlite3
 from collections.abc import Iterator, Sequence
-from dataclasses import replace
 from pathlib import Path
 
 from server.models.trials import AnimalTrials, encode_animal
-from server.models.two_stage import TwoStageTask
-from server.models.two_stage_trials import TwoStageRow, TwoStageTrials, encode_two_stage
-from server.store.history import trial_history
+from server.store.history import PastTrial, trial_history
 
 HEADER = ["animal", "session", "trial", "choice", "reward"]
 TWO_STAGE_HEADER = ["animal", "session", "trial", "choice", "transition", "state", "choice2", "reward"]
@@ -117,81 +114,9 @@ def _parse_csv(path: str, fh) -> list[AnimalTrials]:
     return [encode_animal(a, r) for a, r in rows.items()]
 
 
-def read_two_stage_csv(path: str, common_probability: float | None = None) -> list[TwoStageTrials]:
-    """Two-stage animals in order of first appearance, sharing one task read from the file:
-    first-stage options, states and their second-stage options in order of appearance, each
-    option's common state from the `transition` column, and P(common) as given or, by
-    default, the fraction of common transitions in the file."""
-    return _read(path, lambda p, fh: _parse_two_stage(p, fh, common_probability))
-
-
-def _parse_two_stage(path: str, fh, p_common: float | None) -> list[TwoStageTrials]:
-    rows: dict[str, list[TwoStageRow]] = {}
-    first: list[str] = []
-    states: dict[str, list[str]] = {}
-    common_of: dict[str, tuple[str, int]] = {}  # first option -> (common state, line)
-    rare_of: dict[tuple[str, str], int] = {}  # (first option, state) -> first line
-    n_common = n_choice = 0
-    for line, row, trial, reward in _csv_rows(path, fh, TWO_STAGE_HEADER):
-        choice, transition, state, choice2 = row["choice"], row["transition"], row["state"], row["choice2"]
-        if not choice:
-            if transition or state or choice2:
-                raise FitInputError(f"{path}:{line}: an omission (empty choice) has no transition, state or choice2")
-            rows.setdefault(row["animal"], []).append(TwoStageRow(row["session"], trial, None, reward=reward))
-            continue
-        if transition not in ("common", "rare"):
-            raise FitInputError(f"{path}:{line}: transition must be common or rare, got {transition!r}")
-        if not state:
-            raise FitInputError(f"{path}:{line}: state is empty; a first-stage choice leads to a state")
-        if choice not in first:
-            first.append(choice)
-        options = states.setdefault(state, [])
-        if choice2 and choice2 not in options:
-            options.append(choice2)
-        n_choice += 1
-        if transition == "common":
-            n_common += 1
-            known = common_of.setdefault(choice, (state, line))
-            if known[0] != state:
-                raise FitInputError(
-                    f"{path}:{line}: choice {choice} reaches state {state} by a common transition, "
-                    f"but state {known[0]} at line {known[1]}"
-                )
-        else:
-            rare_of.setdefault((choice, state), line)
-        rows.setdefault(row["animal"], []).append(
-            TwoStageRow(row["session"], trial, choice, state, transition == "common", choice2 or None, False, reward)
-        )
-    for (choice, state), line in rare_of.items():
-        if choice in common_of and common_of[choice][0] == state:
-            raise FitInputError(
-                f"{path}:{line}: choice {choice} reaches state {state} by a rare transition, "
-                f"but that is its common state (line {common_of[choice][1]})"
-            )
-    for choice in first:
-        if choice not in common_of:
-            raise FitInputError(f"{path}: choice {choice} never has a common transition; its common state is unknown")
-    if not first:
-        raise FitInputError(f"{path}: no first-stage choices to fit")
-    p = n_common / n_choice if p_common is None else p_common
-    transitions = {}
-    for choice in first:
-        common = common_of[choice][0]
-        rare = [s for (c, s) in rare_of if c == choice] or [s for s in states if s != common]
-        row_p = {common: p if rare else 1.0}
-        row_p.update({s: (1.0 - p) / len(rare) for s in rare})
-        transitions[choice] = row_p
-    task = TwoStageTask.build(first, states, transitions)
-    animals = []
-    for animal, trials in rows.items():
-        # an empty choice2 in a state that offers a choice is a second-stage omission
-        marked = [replace(r, omitted2=True) if r.state and r.choice2 is None and states[r.state] else r for r in trials]
-        animals.append(encode_two_stage(animal, marked, task))
-    return animals
-
-
-def read_trials_db(path: str, animals: Sequence[str] | None) -> list[AnimalTrials]:
-    """Trials of the given animals (all when None), sessions in the order they started."""
+def read_history(path: str, animals: Sequence[str] | None, two_stage: bool = False) -> list[PastTrial]:
+    """The stored trials of the given animals (all when None), read-only; with `two_stage`,
+    each trial's second stage too (a database from before two-stage trials has none)."""
     if not Path(path).is_file():
         raise FitInputError(f"{path}: no such database file")
     uri = Path(path).resolve().as_uri() + "?mode=ro"
@@ -201,20 +126,35 @@ def read_trials_db(path: str, animals: Sequence[str] | None) -> list[AnimalTrial
         raise FitInputError(f"{path}: cannot open database: {exc}") from None
     try:
         try:
-            found = trial_history(con, animals=animals)
+            return trial_history(con, animals=animals, two_stage=two_stage)
+        except sqlite3.OperationalError as exc:
+            if two_stage and "no such column" in str(exc):
+                return trial_history(con, animals=animals)
+            raise FitInputError(f"{path}: cannot read trials: {exc}") from None
         except sqlite3.Error as exc:
             raise FitInputError(f"{path}: cannot read trials: {exc}") from None
     finally:
         con.close()
+
+
+def check_found(path: str, animals: Sequence[str] | None, found: Sequence[str]) -> list[str]:
+    """The animals to fit, in order: those asked for (each must have trials), or all found."""
+    missing = [a for a in (animals or []) if a not in found]
+    if missing:
+        raise FitInputError(f"{path}: no trials for animal {missing[0]!r}")
+    if not found:
+        raise FitInputError(f"{path}: no trials in the database")
+    return list(dict.fromkeys(animals)) if animals else list(found)
+
+
+def read_trials_db(
+    path: str, animals: Sequence[str] | None, found: list[PastTrial] | None = None
+) -> list[AnimalTrials]:
+    """Trials of the given animals (all when None), sessions in the order they started."""
+    found = read_history(path, animals) if found is None else found
     rows: dict[str, list[tuple[str, int, str | None, float]]] = {}
     for past in found:
         label = None if (past.omission or not past.choice) else str(past.choice)
         reward = 0.0 if past.reward is None else float(past.reward)
         rows.setdefault(past.animal, []).append((str(past.session_id), past.trial, label, reward))
-    missing = [a for a in (animals or []) if a not in rows]
-    if missing:
-        raise FitInputError(f"{path}: no trials for animal {missing[0]!r}")
-    if not rows:
-        raise FitInputError(f"{path}: no trials in the database")
-    order = list(dict.fromkeys(animals)) if animals else list(rows)
-    return [encode_animal(a, rows[a]) for a in order]
+    return [encode_animal(a, rows[a]) for a in check_found(path, animals, list(rows))]

@@ -10,7 +10,7 @@ import math
 from collections.abc import Callable
 from typing import TextIO
 
-from server.cli.fit_sources import FitInputError, read_two_stage_csv
+from server.cli.fit_sources import FitInputError
 from server.cli.fit_tables import (
     clean,
     comparison_json,
@@ -22,6 +22,7 @@ from server.cli.fit_tables import (
     with_choices,
     write_or_fail,
 )
+from server.cli.two_stage_sources import read_two_stage_csv, read_two_stage_db
 from server.engine.stay import CONDITION_NAMES, StayAnalysis
 from server.models.batch import ValueSettings
 from server.models.choice import CHOICE_MODELS
@@ -30,9 +31,17 @@ from server.models.fitting import FitResult
 from server.models.two_stage import TWO_STAGE_MODELS, get_two_stage_model
 from server.models.two_stage_fit import fit_two_stage, two_stage_regressors
 from server.models.two_stage_trials import TwoStageTrials
+from server.store.history import PastTrial
 
 
-def run(args: argparse.Namespace, out: TextIO, err: TextIO, fail: Callable[[str, int], int]) -> int:
+def run(
+    args: argparse.Namespace,
+    out: TextIO,
+    err: TextIO,
+    fail: Callable[[str, int], int],
+    stored: list[PastTrial] | None = None,
+) -> int:
+    """Fit the two-stage CSV `args.trials`, or the `stored` trials of `args.db`."""
     name = args.model or "hybrid"
     if name in CHOICE_MODELS:
         return fail(f"{name} is a single-stage model; two-stage trials take {', '.join(TWO_STAGE_MODELS)}", 2)
@@ -47,7 +56,10 @@ def run(args: argparse.Namespace, out: TextIO, err: TextIO, fail: Callable[[str,
     if args.stay_lags < 1:
         return fail(f"--stay-lags must be 1 or more, got {args.stay_lags}", 2)
     try:
-        animals = select(read_two_stage_csv(args.trials, p_common), args.animal, args.trials)
+        if stored is not None:
+            animals = read_two_stage_db(args.db, args.animal, p_common, stored)
+        else:
+            animals = select(read_two_stage_csv(args.trials, p_common), args.animal, args.trials)
     except FitInputError as exc:
         return fail(str(exc), 1)
     usable = with_choices(animals, err)

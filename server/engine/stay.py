@@ -207,10 +207,13 @@ def logistic_regression(x: np.ndarray, y: np.ndarray, names: Sequence[str], lags
     mu = 1.0 / (1.0 + np.exp(-eta))
     info = x.T @ (x * (mu * (1 - mu))[:, None])
     try:
-        se = np.sqrt(np.diag(np.linalg.inv(info)))
+        var = np.diag(np.linalg.inv(info))
     except np.linalg.LinAlgError:
-        se = np.full(d, math.nan)
+        var = np.full(d, math.nan)
+    if not np.all(var > 0):  # singular, or nearly: no standard errors to give
+        var = np.full(d, math.nan)
         converged = False
+    se = np.sqrt(var)
     coefs = []
     for name, est, s in zip(names, b, se):
         z = float(est / s) if s > 0 else math.nan

@@ -9,6 +9,7 @@ import io
 import json
 import math
 import os
+import sqlite3
 import subprocess
 import sys
 from pathlib import Path
@@ -166,3 +167,60 @@ def test_a_malformed_row_is_one_line_with_its_row_number(tmp_path, bad, message)
     assert code == 1 and out == ""
     assert err.count("\n") == 1 and message in err
     assert err.startswith(f"vigil fit: {path}:3: ")
+
+
+def test_db_two_stage_sessions_are_read_from_their_columns_and_counted_like_the_page(tmp_path):
+    # two sessions of protocols/two_stage.yaml in virtual time, stored as the lab stores them
+    import numpy as np
+
+    from hardware_stubs.agents import make_agent
+    from hardware_stubs.emulated_box import EmulatedBox
+    from server.cli.fit_sources import read_history
+    from server.cli.two_stage_sources import read_two_stage_db
+    from server.engine.caps import HardCaps
+    from server.engine.stay import CONDITION_NAMES, stay_counts
+    from server.engine.virtual import run_virtual
+    from server.lab.assembly import build_session
+    from server.protocol.load import load_protocol
+    from server.store.queries import trial_records
+    from server.store.writer import Store
+
+    db = tmp_path / "lab.sqlite"
+    protocol = load_protocol(ROOT / "protocols" / "two_stage.yaml")
+    with Store.open(db) as store:
+        for day, seed in enumerate((41, 42)):
+            session = build_session(protocol, seed, HardCaps(max_rewards=250, max_minutes=8))
+            box = EmulatedBox(protocol.wiring, make_agent("q_learner"), np.random.default_rng(seed))
+            sid = store.begin_session(
+                "shelf-2", "MOUSE-T3", protocol.name, str(protocol.source), protocol.sha256, seed,
+                f"2031-06-0{day + 1}T09:00:00.000+02:00", {},
+            )  # fmt: skip
+            run_virtual(session, box, lambda records, sid=sid: [store.write(sid, r) for r in records])
+            store.flush()
+    with sqlite3.connect(db) as conn:
+        stored = conn.execute(
+            "SELECT t.session_id, t.trial, t.choice, t.transition, t.state, t.choice2, t.omitted2, t.reward"
+            " FROM trials t JOIN sessions s ON s.id = t.session_id ORDER BY s.started_at, t.trial"
+        ).fetchall()
+        sessions = [r[0] for r in conn.execute("SELECT id FROM sessions ORDER BY started_at")]
+        page_counts = [stay_counts(trial_records(conn, sid)) for sid in sessions]
+    made = [r for r in stored if r[2]]
+    assert len(made) > 30, "the virtual animal made too few first choices"
+    # the rows the fit reads are the stored columns
+    animal = read_two_stage_db(str(db), ["MOUSE-T3"], None, read_history(str(db), ["MOUSE-T3"], two_stage=True))[0]
+    rows = [
+        (int(r.session), r.trial, r.choice, r.state, r.common, r.choice2, r.omitted2, r.reward) for r in animal.rows
+    ]
+    assert rows == [
+        (sid, n, c, st if c else None, (tr == "common") if c else None, c2, bool(om) if c else False, float(rw))
+        for sid, n, c, tr, st, c2, om, rw in stored
+    ]  # fmt: skip
+    assert animal.task.common_state("west") == "north" and animal.task.common_state("east") == "south"
+    code, out, err = _run(["--db", str(db), "--animal", "MOUSE-T3", "--model", "model_based", "--json"])
+    assert code == 0, err
+    fit = json.loads(out)[0]
+    assert fit["n_trials"] == len(made) and fit["model"] == "model_based"
+    # the stay counts are the ones the session page draws, summed over the sessions
+    cells = {c["condition"]: (c["stays"], c["pairs"]) for c in fit["stay"]["cells"]}
+    for key, name in CONDITION_NAMES.items():
+        assert cells[name] == (sum(c[key].stays for c in page_counts), sum(c[key].pairs for c in page_counts))
