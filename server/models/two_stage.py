@@ -5,10 +5,10 @@ The interface an online estimator runs, one call per trial
 ----------------------------------------------------------
 ::
 
-    task = TwoStageTask.build(first, states, transitions)    # once per protocol or file
+    task = TwoStageTask.from_protocol(protocol.two_stage)     # or TwoStageTask.build(...)
     values = initial_values(task, shape=(N,))                  # N parameter sets (particles)
-    trial = task.encode("left", state="upper", choice2="a")   # what the animal did, once
-    step = hybrid_step(theta, values, task, trial)             # per trial, all N at once
+    trial = task.encode("west", "north", "north_port", 1.0)    # what the animal did
+    step = hybrid_step(theta, values, task, trial.expand(1))   # per trial, all N at once
     step.logp          # (N,) log P(first choice, second choice | each parameter set)
     step.values        # the values after the trial's update: feed to the next call
     step.delta1, step.delta2   # the stage-1 and stage-2 prediction errors, (N,)
@@ -20,6 +20,9 @@ The interface an online estimator runs, one call per trial
   second-stage values of each state's option slots, and `prev` (K1, *P) the one-hot of the
   last first-stage choice of the session (all zeros at session start). Options come first,
   parameter sets after, as in server/models/choice.py.
+- `task.encode(choice, state, choice2, reward, omitted2=...)`: `choice` None for a
+  first-stage omission, `omitted2=True` for a second-stage one, `choice2` None in a state
+  with a single response. (From a record: `TwoStageRow.from_record` gives these fields.)
 - `EncodedTrial` arrays have no parameter axes; the batch fit gives them trailing animal
   axes instead (`TrialArrays`), which broadcast the same way. `trial.expand(ndim)` appends
   singleton axes so they broadcast against values with `ndim` trailing axes.
@@ -236,11 +239,11 @@ class TwoStageTask:
             offered[: max(1, len(opts))] = 1.0
             if omitted2:
                 pass
-            elif opts:
-                if choice2 is None:
-                    raise ValueError(f"state {state!r} offers a choice: choice2 is missing")
+            elif choice2 is not None:
                 second[opts.index(choice2)] = 1.0
-            else:
+            elif len(opts) > 1:
+                raise ValueError(f"state {state!r} offers a choice: choice2 is missing")
+            else:  # a single response (or a state's one option, answered as its response)
                 second[0] = 1.0
         return EncodedTrial(first, reached, offered, second, float(reward))
 

@@ -181,6 +181,8 @@ def test_db_two_stage_sessions_are_read_from_their_columns_and_counted_like_the_
     from server.engine.stay import CONDITION_NAMES, stay_counts
     from server.engine.virtual import run_virtual
     from server.lab.assembly import build_session
+    from server.models.two_stage import TwoStageTask
+    from server.models.two_stage_trials import TwoStageRow, encode_two_stage, run_hybrid, stack_two_stage
     from server.protocol.load import load_protocol
     from server.store.queries import trial_records
     from server.store.writer import Store
@@ -216,10 +218,19 @@ def test_db_two_stage_sessions_are_read_from_their_columns_and_counted_like_the_
         for sid, n, c, tr, st, c2, om, rw in stored
     ]  # fmt: skip
     assert animal.task.common_state("west") == "north" and animal.task.common_state("east") == "south"
-    code, out, err = _run(["--db", str(db), "--animal", "MOUSE-T3", "--model", "model_based", "--json"])
+    code, out, err = _run(["--db", str(db), "--animal", "MOUSE-T3", "--model", "model_based", "--json",
+                           "--common-probability", "0.8"])  # fmt: skip
     assert code == 0, err
     fit = json.loads(out)[0]
     assert fit["n_trials"] == len(made) and fit["model"] == "model_based"
+    # what an online estimator sees: the protocol's own task and the trial records
+    with sqlite3.connect(db) as conn:
+        records = [(sid, r) for sid in sessions for r in trial_records(conn, sid)]
+    task = TwoStageTask.from_protocol(protocol.two_stage)
+    replay = encode_two_stage("MOUSE-T3", [TwoStageRow.from_record(str(sid), r) for sid, r in records], task)
+    theta = {k: np.array([[v]]) for k, v in fit["params"].items()}
+    ll, _ = run_hybrid(theta, stack_two_stage([replay]), (1,))
+    assert float(ll[0, 0]) == pytest.approx(fit["loglik"], abs=1e-9)
     # the stay counts are the ones the session page draws, summed over the sessions
     cells = {c["condition"]: (c["stays"], c["pairs"]) for c in fit["stay"]["cells"]}
     for key, name in CONDITION_NAMES.items():

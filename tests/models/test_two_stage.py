@@ -294,6 +294,11 @@ def test_rows_from_trial_records_encode_like_csv_rows():
         record(3, "B", SecondStage("X", False, omitted=True), 0.0),
     ]
     rows = [TwoStageRow.from_record("s7", r) for r in recs]
+    # a state with one option, answered as a response (choice2 None), is that option
+    one = TwoStageTask.build(["A", "B"], {"X": ["x"], "Y": ["y"]}, {"A": {"X": 1.0}, "B": {"Y": 1.0}})
+    assert one.encode("A", "X", None, 1.0).second.tolist() == one.encode("A", "X", "x", 1.0).second.tolist() == [1.0]
+    with pytest.raises(ValueError, match="offers a choice"):
+        AB.encode("A", "X", None, 1.0)
     assert rows == [
         TwoStageRow("s7", 1, "A", "X", True, "x1", False, 1.0),
         TwoStageRow("s7", 2, None, reward=0.0),
