@@ -41,8 +41,9 @@ def test_a_sessions_choices_are_that_sessions_trials(read_only, lab_db, tmp_path
     stored = conn.execute(
         "SELECT trial, choice, omission, reward FROM trials WHERE session_id = ? ORDER BY trial", (sid,)
     )
+    # An omission, or a trial cut short before a choice, has an empty choice.
     expected = [
-        {"animal": "RN-0501", "session": str(sid), "trial": str(n), "choice": "" if omitted or choice is None else choice,
+        {"animal": "RN-0501", "session": str(sid), "trial": str(n), "choice": "" if omitted else choice or "",
          "reward": str(reward)}
         for n, choice, omitted, reward in stored
     ]  # fmt: skip
