@@ -24,26 +24,24 @@ import os
 import re
 import sqlite3
 import uuid
-from collections.abc import Mapping, Sequence
+from collections.abc import Mapping
 from dataclasses import dataclass
 from datetime import date, datetime
 from pathlib import Path
 from typing import Any
 
-import numpy as np
-from hdmf.common import DynamicTable, VectorData
-from pynwb import NWBHDF5IO, NWBFile, TimeSeries
-from pynwb.epoch import TimeIntervals
-from pynwb.event import DurationVectorData, EventsTable, TimestampVectorData
+from hdmf.common import DynamicTable
+from pynwb import NWBHDF5IO, NWBFile
 from pynwb.file import Subject
 
-from server.export.columns import Column, columns_of, flatten, typed
+from server.export.columns import columns_of, flatten, typed
+from server.export.nwb_events import add_events
+from server.export.nwb_tables import events_table, intervals, json_and_keys, vectors
 from server.store import queries, rows
-from server.store.export_reads import event_table, export_session_ids, last_stored_t, trial_table
+from server.store.export_reads import export_session_ids, last_stored_t, trial_table
 
 # Vigil's own namespace for file identifiers: the same session always gets the same one.
 _ID_SPACE = uuid.uuid5(uuid.NAMESPACE_DNS, "vigil.invalid")
-NO_DEVICE_TIME = -1  # device_t_us / device_seq of an event the host originated
 
 TRIAL_NOTES = {
     "trial": "trial number, 1-based within the session",
@@ -64,17 +62,17 @@ TRIAL_NOTES = {
     "first_s": "JSON: seconds to the first response per step.input",
     "extra": "JSON: protocol-specific values",
 }
-EVENT_NOTES = {
-    "input": "input edges from the box: value 1 onset (press, entry), 0 offset",
-    "output": "held outputs driven by the host: value 1 active, 0 inactive",
-    "pulse": "pulses commanded on pulsed outputs (feeder, sync): value is the width in ms",
-    "step": "protocol steps entered",
-    "block": "blocks entered",
-    "note": "notes of the session and of its link (session start, undelivered commands, closing)",
-    "cap": "hard caps reached",
-    "alarm": "alarms raised by rules or the link",
-    "link_lost": "the box link was lost",
-    "link_restored": "the box link came back",
+BLOCK_NOTES = {
+    "block": "block name",
+    "block_index": "1-based count of blocks entered",
+    "outcomes_withheld": "outcomes withheld in this block (extinction, devaluation test)",
+    "contingencies": "reward probability per option in force",
+}
+FIRING_NOTES = {
+    "trial": "the trial after which the rule fired",
+    "rule": "rule name in the protocol",
+    "actions": "JSON list of what the rule did",
+    "reads": "what the rule's condition read",
 }
 
 
@@ -84,11 +82,6 @@ class Exported:
     path: Path
     trials: int
     events: int
-
-
-def _name(text: str) -> str:
-    """A name HDF5 groups and datasets accept ('/' separates groups)."""
-    return text.replace("/", "_") or "_"
 
 
 def file_name(animal: str, session_id: int) -> str:
@@ -169,7 +162,7 @@ def session_file(conn: sqlite3.Connection, session_id: int) -> tuple[NWBFile, tu
     )
     trials = _trials(conn, nwbfile, session_id)
     wiring = settings.get("wiring") or {}
-    events = _events(conn, nwbfile, session_id, wiring)
+    events = add_events(conn, nwbfile, session_id, wiring)
     _blocks(conn, nwbfile, session_id, end_t)
     _rule_firings(conn, nwbfile, session_id)
     _annotations(conn, nwbfile, session_id, start)
@@ -217,17 +210,6 @@ def _subject(animal: str, given: Mapping[str, Any], start: datetime) -> Subject:
 # ---------------------------------------------------------------- tables
 
 
-def _vectors(cols: Mapping[str, Column], notes: Mapping[str, str]) -> list[VectorData]:
-    return [VectorData(name=_name(k), description=_note(k, notes), data=v) for k, v in cols.items()]
-
-
-def _note(key: str, notes: Mapping[str, str]) -> str:
-    if key in notes:
-        return notes[key]
-    head = key.split(".", 1)[0]
-    return f"{notes[head]} (key {key[len(head) + 1 :]})" if head in notes else f"'{key}' as the store keeps it"
-
-
 def _trials(conn: sqlite3.Connection, nwbfile: NWBFile, session_id: int) -> list[dict[str, Any]]:
     """The trials table: every stored column, JSON columns also spread into one per key."""
     columns, found = trial_table(conn, session_id)
@@ -251,109 +233,10 @@ def _trials(conn: sqlite3.Connection, nwbfile: NWBFile, session_id: int) -> list
     text = [name for name, declared in columns if "CHAR" in declared or "TEXT" in declared or "CLOB" in declared]
     cols = columns_of(records, text=text, absent={"counts": 0})  # a count not stored is no response there
     start, stop = cols.pop("t_start"), cols.pop("t_end")
-    nwbfile.trials = _intervals(
+    nwbfile.trials = intervals(
         "trials", "every trial of the session, as the store keeps it", start, stop, cols, TRIAL_NOTES
     )
     return records
-
-
-def _intervals(
-    name: str, description: str, start: Column, stop: Column, cols: Mapping[str, Column], notes: Mapping[str, str]
-) -> TimeIntervals:
-    """A TimeIntervals table built column by column (add_row per row is slow for long sessions)."""
-    bounds = [
-        VectorData(name="start_time", description="start, seconds from session start", data=start),
-        VectorData(name="stop_time", description="end, seconds from session start", data=stop),
-    ]
-    return TimeIntervals(
-        name=name, description=description, columns=bounds + _vectors(cols, notes), id=list(range(len(start)))
-    )
-
-
-def _events_table(
-    name: str, description: str, t: Sequence[float], ids: Sequence[int], cols: Mapping[str, Column],
-    notes: Mapping[str, str], duration: Column | None = None,
-) -> EventsTable:  # fmt: skip
-    columns: list[VectorData] = [
-        TimestampVectorData(name="timestamp", description="seconds from session start (host clock)", data=np.asarray(t))
-    ]
-    if duration is not None:
-        columns.append(DurationVectorData(name="duration", description="pulse width, seconds", data=duration))
-    return EventsTable(name=name, description=description, columns=columns + _vectors(cols, notes), id=list(ids))
-
-
-# What the event's `name` column is called in each kind's table ('name' itself is taken).
-_SUBJECT_OF = {"input": "input", "output": "output", "pulse": "output", "step": "step", "block": "block"}
-
-
-def _events(conn: sqlite3.Connection, nwbfile: NWBFile, session_id: int, wiring: Mapping[str, Any]) -> int:
-    """One events table per stored kind, every event in it; each sync output's pulses as a series."""
-    columns, found = event_table(conn, session_id)
-    at = {name: i for i, (name, _) in enumerate(columns)}
-    line_kinds = {**(wiring.get("inputs") or {}), **(wiring.get("outputs") or {})}
-    by_kind: dict[str, list[tuple[Any, ...]]] = {}
-    for row in found:
-        by_kind.setdefault(row[at["kind"]], []).append(row)
-    for kind, group in by_kind.items():
-        about = _SUBJECT_OF.get(kind, "about")
-        records = []
-        for row in group:
-            record: dict[str, Any] = {about: row[at["name"]]}
-            if kind in ("input", "output", "pulse"):
-                record["line_kind"] = line_kinds.get(row[at["name"]], "")
-            for name, i in at.items():
-                if name in ("id", "kind", "name", "t"):
-                    continue
-                value = row[i]
-                if name in ("device_t_us", "device_seq"):
-                    value = NO_DEVICE_TIME if value is None else value
-                record[name] = value
-            records.append(record)
-        text = [name for name, declared in columns if "TEXT" in declared] + [about, "line_kind"]
-        cols = columns_of(records, text=text)
-        notes = {
-            about: f"the {about} the event concerns",
-            "line_kind": "kind of hardware line, from the protocol's wiring",
-            "value": "the event's value (see the table's description)",
-            "device_t_us": f"device clock, microseconds (wraps at 2**32); {NO_DEVICE_TIME}: the host made the event",
-            "device_seq": f"device sequence number; {NO_DEVICE_TIME} when the host made the event",
-            "detail": "JSON detail; empty when none",
-        }
-        widths = None
-        if kind == "pulse":
-            widths = np.array([np.nan if r[at["value"]] is None else r[at["value"]] / 1000.0 for r in group])
-        nwbfile.add_events_table(
-            _events_table(
-                _name(f"{kind}_events"),
-                EVENT_NOTES.get(kind, f"'{kind}' events"),
-                [r[at["t"]] for r in group],
-                [r[at["id"]] for r in group],
-                cols,
-                notes,
-                widths,
-            )  # fmt: skip
-        )
-    _sync_series(nwbfile, by_kind.get("pulse", []), at, line_kinds)
-    return len(found)
-
-
-def _sync_series(nwbfile: NWBFile, pulses: list[tuple[Any, ...]], at: Mapping[str, int], kinds: Mapping[str, str]):
-    """Pulses of sync outputs, what a lab aligns a neural recording with, one series per output."""
-    for output in sorted(n for n, k in kinds.items() if k == "sync"):
-        mine = [p for p in pulses if p[at["name"]] == output and p[at["value"]] is not None]
-        nwbfile.add_acquisition(
-            TimeSeries(
-                name=_name(f"sync_pulses_{output}"),
-                description=(
-                    f"pulses commanded on sync output '{output}': timestamps are the host's session seconds "
-                    "when the pulse was sent, data the pulse width the device generated"
-                ),
-                data=np.array([p[at["value"]] / 1000.0 for p in mine], dtype=np.float64),
-                unit="s",
-                timestamps=np.array([p[at["t"]] for p in mine], dtype=np.float64),
-                comments=f"{len(mine)} pulse(s); the same events are in /events/pulse_events",
-            )
-        )
 
 
 def _blocks(conn: sqlite3.Connection, nwbfile: NWBFile, session_id: int, end_t: float) -> None:
@@ -362,56 +245,27 @@ def _blocks(conn: sqlite3.Connection, nwbfile: NWBFile, session_id: int, end_t: 
         return
     starts = [b["t_start"] for b in found]
     stops = [max(s, e) for s, e in zip(starts, starts[1:] + [end_t])]
-    records = []
-    for b in found:
-        record = {"block": b["block"], "block_index": b["block_index"], "outcomes_withheld": b["outcomes_withheld"]}
-        record["contingencies"] = json.dumps(b["contingencies"], sort_keys=True)
-        record.update(flatten(b["contingencies"] or {}, "contingencies"))
-        records.append(record)
-    notes = {
-        "block": "block name",
-        "block_index": "1-based count of blocks entered",
-        "outcomes_withheld": "outcomes withheld in this block (extinction, devaluation test)",
-        "contingencies": "reward probability per option in force",
-    }
-    nwbfile.add_time_intervals(
-        _intervals(
-            "blocks",
-            "blocks of the session, each until the next began",
-            typed(starts),
-            typed(stops),
-            columns_of(records),
-            notes,
-        )  # fmt: skip
-    )
+    records = [
+        {"block": b["block"], "block_index": b["block_index"], "outcomes_withheld": b["outcomes_withheld"]}
+        | json_and_keys("contingencies", b["contingencies"])
+        for b in found
+    ]
+    about = "blocks of the session, each until the next began"
+    nwbfile.add_time_intervals(intervals("blocks", about, typed(starts), typed(stops), columns_of(records), BLOCK_NOTES))
 
 
 def _rule_firings(conn: sqlite3.Connection, nwbfile: NWBFile, session_id: int) -> None:
     found = queries.session_rule_firings(conn, session_id)
     if not found:
         return
-    records = []
-    for f in found:
-        record = {"trial": f["trial"], "rule": f["rule"], "actions": json.dumps(f["actions"], sort_keys=True)}
-        record["reads"] = json.dumps(f["reads"], sort_keys=True)
-        record.update(flatten(f["reads"] or {}, "reads"))
-        records.append(record)
-    notes = {
-        "trial": "the trial after which the rule fired",
-        "rule": "rule name in the protocol",
-        "actions": "JSON list of what the rule did",
-        "reads": "what the rule's condition read",
-    }
-    nwbfile.add_events_table(
-        _events_table(
-            "rule_firings",
-            "closed-loop rules that fired",
-            [f["t"] for f in found],
-            [f["id"] for f in found],
-            columns_of(records),
-            notes,
-        )  # fmt: skip
-    )
+    records = [
+        {"trial": f["trial"], "rule": f["rule"], "actions": json.dumps(f["actions"], sort_keys=True)}
+        | json_and_keys("reads", f["reads"])
+        for f in found
+    ]
+    times, ids = [f["t"] for f in found], [f["id"] for f in found]
+    table = events_table("rule_firings", "closed-loop rules that fired", times, ids, columns_of(records), FIRING_NOTES)
+    nwbfile.add_events_table(table)
 
 
 def _annotations(conn: sqlite3.Connection, nwbfile: NWBFile, session_id: int, start: datetime) -> None:
@@ -424,15 +278,9 @@ def _annotations(conn: sqlite3.Connection, nwbfile: NWBFile, session_id: int, st
     ]
     records = [{"text": a["text"], "origin": a["origin"], "wall_time": a["wall_time"]} for a in found]
     notes = {"text": "the note", "origin": "who wrote it", "wall_time": "when it was written (ISO 8601)"}
+    ids = [a["id"] for a in found]
     nwbfile.add_events_table(
-        _events_table(
-            "annotations",
-            "operators' notes on the session",
-            times,
-            [a["id"] for a in found],
-            columns_of(records),
-            notes,
-        )  # fmt: skip
+        events_table("annotations", "operators' notes on the session", times, ids, columns_of(records), notes)
     )
 
 
@@ -459,7 +307,7 @@ def _estimates(conn: sqlite3.Connection, nwbfile: NWBFile, session_id: int, tria
     table = DynamicTable(
         name="estimates",
         description="the online estimator's estimate after each trial; NaN where a value was undefined",
-        columns=_vectors(columns_of(records), notes),
+        columns=vectors(columns_of(records), notes),
         id=list(range(len(records))),
     )
     module = nwbfile.create_processing_module("learning_model", "per-trial estimates of the animal's learning model")

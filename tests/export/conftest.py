@@ -10,11 +10,10 @@ import pytest
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "web"))  # web_samples: the shared recorder
 
+from nwb_samples import SUBJECT  # noqa: E402
 from web_samples import AUTOSHAPING, REVERSAL, record_session  # noqa: E402
 
 from server.store.writer import Store  # noqa: E402
-
-SUBJECT = {"species": "Rattus norvegicus", "strain": "Long-Evans", "sex": "F", "age": "P11W"}
 
 
 @pytest.fixture(scope="module")

@@ -9,7 +9,7 @@ import shutil
 
 import h5py
 import pytest
-from conftest import SUBJECT
+from nwb_samples import SUBJECT
 from pynwb import NWBHDF5IO
 
 from server.cli import main
