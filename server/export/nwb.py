@@ -251,7 +251,8 @@ def _blocks(conn: sqlite3.Connection, nwbfile: NWBFile, session_id: int, end_t: 
         for b in found
     ]
     about = "blocks of the session, each until the next began"
-    nwbfile.add_time_intervals(intervals("blocks", about, typed(starts), typed(stops), columns_of(records), BLOCK_NOTES))
+    table = intervals("blocks", about, typed(starts), typed(stops), columns_of(records), BLOCK_NOTES)
+    nwbfile.add_time_intervals(table)
 
 
 def _rule_firings(conn: sqlite3.Connection, nwbfile: NWBFile, session_id: int) -> None:
