@@ -3,7 +3,9 @@
 
 from __future__ import annotations
 
+import csv
 import hashlib
+import io
 import json
 import shutil
 
@@ -15,7 +17,7 @@ from pynwb import NWBHDF5IO
 from server.cli import main
 from server.export import nwb as nwb_module
 from server.export.nwb import export_nwb, file_name
-from server.store import StoreError
+from server.store import StoreError, csv_exports, queries
 from server.store.writer import Store
 
 
@@ -78,8 +80,8 @@ def test_a_protocol_file_changed_since_the_session_is_not_passed_off_as_it(store
         store.conn.execute("UPDATE sessions SET protocol_path = ? WHERE id = ?", (str(protocol), stored_lab["first"]))
     protocol.write_text(protocol.read_text(encoding="utf-8") + "\n# edited later\n", encoding="utf-8")
     (done,) = export_nwb(db, tmp_path / "out", session_id=stored_lab["first"])
-    with NWBHDF5IO(str(done.path), "r") as io:
-        nwb = io.read()
+    with NWBHDF5IO(str(done.path), "r") as nwb_io:
+        nwb = nwb_io.read()
         assert nwb.protocol is None
         assert json.loads(nwb.notes)["protocol_text"].startswith("file changed since the session")
     # A file gone since is said so too (the same reading, without writing a file).
@@ -96,3 +98,39 @@ def test_unknown_session_or_animal_is_one_line(stored_lab, tmp_path, capsys):
     assert main(["export", "--nwb", str(tmp_path), "--db", str(tmp_path / "none.sqlite")]) == 1
     assert "no such file" in capsys.readouterr().err
     assert list(tmp_path.iterdir()) == []
+
+
+def test_trial_columns_a_later_migration_adds_are_exported_too(stored_lab, tmp_path):
+    """Columns are read from the table itself: two-stage columns (as a migration might add
+    them) reach the NWB trials table and the trials CSV with no change to the export."""
+    db = tmp_path / "two_stage.sqlite"
+    shutil.copy(stored_lab["path"], db)
+    sid = stored_lab["second"]
+    with Store.open(db) as store:
+        conn = store.conn
+        for sql in (
+            "ALTER TABLE trials ADD COLUMN second_state TEXT",
+            "ALTER TABLE trials ADD COLUMN second_common INTEGER",
+            "ALTER TABLE trials ADD COLUMN second_latency_s REAL",
+        ):
+            conn.execute(sql)
+        conn.execute(
+            "UPDATE trials SET second_state = CASE WHEN trial % 2 THEN 'left_room' ELSE 'right_room' END,"
+            " second_common = trial % 3 > 0, second_latency_s = 0.25 + trial / 1000.0"
+            " WHERE session_id = ? AND trial > 1",
+            (sid,),
+        )
+    (done,) = export_nwb(db, tmp_path / "out", session_id=sid)
+    with NWBHDF5IO(str(done.path), "r") as nwb_io:
+        trials = nwb_io.read().trials
+        states = [v.decode() if isinstance(v, bytes) else v for v in trials["second_state"].data[:]]
+        assert states[:3] == ["", "right_room", "left_room"]  # trial 1 has none: empty text
+        latency = list(trials["second_latency_s"].data[:])
+        assert latency[1:3] == [0.25 + 2 / 1000.0, 0.25 + 3 / 1000.0] and latency[0] != latency[0]  # NaN
+        assert list(trials["second_common"].data[:3])[1:] == [1.0, 0.0]
+    out = io.StringIO()
+    conn = queries.open_readonly(db)
+    csv_exports.export_trials_csv(conn, sid, out)
+    conn.close()
+    row = next(r for r in csv.DictReader(io.StringIO(out.getvalue())) if r["trial"] == "2")
+    assert (row["second_state"], row["second_common"], row["second_latency_s"]) == ("right_room", "1", "0.252")
