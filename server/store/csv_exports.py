@@ -40,6 +40,13 @@ def _ms(value: Any) -> Any:
 def _spread(name: str, value: Any) -> dict[str, Any]:
     """A JSON trial column as plain columns: a mapping's keys (nested values stay JSON) and
     the steps' entry times (the first entry of each step)."""
+    if name == "counts" and isinstance(value, dict):
+        # Each key is step.input (Session._respond); `responses.INPUT` sums an input over the steps.
+        totals: dict[str, Any] = {}
+        for key, count in value.items():
+            what = f"responses.{key.rsplit('.', 1)[-1]}"
+            totals[what] = totals.get(what, 0) + count
+        return {f"counts.{k}": v for k, v in value.items()} | totals
     if isinstance(value, dict):
         return {
             f"{name}.{k}": json.dumps(v, sort_keys=True) if isinstance(v, dict | list) else v for k, v in value.items()
@@ -56,8 +63,9 @@ def export_trials_csv(conn: sqlite3.Connection, session_id: int, fileobj: TextIO
     """Write the session's trials as CSV; return the row count.
 
     Every column of the trials table, whatever migrations added; JSON columns are spread
-    into one column per key (`counts.offer.press_east`, `first_s...`, `steps.offer` its entry
-    time, `extra...`), absent keys left empty; seconds are rounded to the millisecond."""
+    into one column per key (`counts.offer.press_east` and the input's total over the trial's
+    steps `responses.press_east`, `first_s...`, `steps.offer` its entry time, `extra...`),
+    absent keys left empty (counts: 0); seconds are rounded to the millisecond."""
     columns, found = trial_table(conn, session_id)
     names = [name for name, _ in columns]
     header: dict[str, None] = {}
@@ -74,6 +82,9 @@ def export_trials_csv(conn: sqlite3.Connection, session_id: int, fileobj: TextIO
     if not out:
         header = dict.fromkeys(["session_id", *(n for n in names if n not in rows.JSON_COLUMNS)])
     fields = list(header)
+    zero = [f for f in fields if f.startswith(("counts.", "responses."))]  # no response there is 0, not unknown
+    for r in out:
+        r.update({f: 0 for f in zero if f not in r})
     cells = ([_ms(r.get(f)) if is_time_column(f) else r.get(f) for f in fields] for r in out)
     return _write_csv(cells, fields, fileobj)
 

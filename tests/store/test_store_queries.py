@@ -104,6 +104,7 @@ def test_trials_csv_spreads_json_columns_and_rounds_times(lab):
         assert int(row["correct"]) == trial.correct
         # per-input counts as columns; steps as their entry times; extra's keys as columns
         assert {k: int(row[f"counts.{k}"]) for k in trial.counts} == trial.counts
+        assert (row["responses.press_left"], row["responses.head_entry"]) == ("2", "1")
         assert row["first_s.press_left"] == f"{trial.first_s['press_left']:.3f}"
         assert [float(row[f"steps.{name}"]) for name, _ in trial.steps] == [round(t, 3) for _, t in trial.steps]
         assert row["extra.note"] == trial.extra["note"]

@@ -68,8 +68,12 @@ def test_trials_csv_has_one_value_per_cell_and_times_to_the_millisecond(read_onl
     assert len(found) == len(stored)
     for row, (t_end, counts) in zip(found, stored):
         assert row["t_end"] == f"{t_end:.3f}"
+        per_input: dict[str, int] = {}
         for key, count in json.loads(counts).items():
             assert int(row[f"counts.{key}"]) == count
+            per_input[key.split(".")[-1]] = per_input.get(key.split(".")[-1], 0) + count
+        assert {k: int(row[f"responses.{k}"]) for k in per_input} == per_input
+        assert sum(int(v) for k, v in row.items() if k.startswith("responses.")) == sum(per_input.values())
         assert not any(v.startswith(("{", "[")) for v in row.values())
         times = [v for k, v in row.items() if k.startswith(("t_", "first_s.", "steps.")) or k.endswith("_s")]
         assert all(re.fullmatch(r"-?\d+\.\d{3}", v) for v in times if v)
