@@ -20,6 +20,10 @@ EVENT_NOTES = {
     "input": "input edges from the box: value 1 onset (press, entry), 0 offset",
     "output": "held outputs driven by the host: value 1 active, 0 inactive",
     "pulse": "pulses commanded on pulsed outputs (feeder, sync): value is the width in ms",
+    "applied": (
+        "output commands as the device acknowledged them, written right after it applied them: device_t_us is "
+        "when the output changed on the device's clock; value 1/0 for held outputs, the width in ms for pulses"
+    ),
     "step": "protocol steps entered",
     "block": "blocks entered",
     "note": "notes of the session and of its link (session start, undelivered commands, closing)",
@@ -99,6 +103,9 @@ def _sync_series(nwbfile: NWBFile, pulses: list[tuple[Any, ...]], at: Mapping[st
                 data=np.array([p[at["value"]] / 1000.0 for p in mine], dtype=np.float64),
                 unit="s",
                 timestamps=np.array([p[at["t"]] for p in mine], dtype=np.float64),
-                comments=f"{len(mine)} pulse(s); the same events are in /events/pulse_events",
+                comments=(
+                    f"{len(mine)} pulse(s); the same in /events/pulse_events, and, from a serial box, "
+                    "each as the device applied it, with the device's clock, in /events/applied_events"
+                ),
             )
         )

@@ -77,5 +77,18 @@ boxes:
     missing = conn.execute(
         "SELECT count(*) FROM events WHERE session_id = ? AND kind = 'input' AND device_t_us IS NULL", (closed,)
     ).fetchone()[0]
-    conn.close()
     assert missing == 0, "every input came over the wire with the device's clock"
+    # Each pellet pulse the box acknowledged is there as applied, with the device's clock, and
+    # in the file's applied_events (check_file compared every event kind's table above).
+    pulses = conn.execute(
+        "SELECT count(*) FROM events WHERE session_id = ? AND kind = 'pulse' AND name = 'pellet'", (closed,)
+    ).fetchone()[0]
+    applied = conn.execute(
+        "SELECT t, device_t_us FROM events WHERE session_id = ? AND kind = 'applied' AND name = 'pellet' ORDER BY id",
+        (closed,),
+    ).fetchall()
+    conn.close()
+    assert pulses - 1 <= len(applied) <= pulses and len(applied) >= 2  # the last may be unacknowledged at the kill
+    device_s = [d / 1e6 for _, d in applied]
+    assert all(b > a for a, b in zip(device_s, device_s[1:])), "the device's clock runs forward"
+    assert "applied_events" in seen["kinds"]
