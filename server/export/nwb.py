@@ -61,6 +61,13 @@ TRIAL_NOTES = {
     "counts": "JSON: responses per step.input in the trial (0 where none)",
     "first_s": "JSON: seconds to the first response per step.input",
     "extra": "JSON: protocol-specific values",
+    # two-stage trials (empty or NaN in other trials)
+    "state": "second-stage state the first choice led to",
+    "transition": "'common' or 'rare': how the first choice led there",
+    "choice2": "second-stage option chosen, where the state offers a choice",
+    "response2": "input that answered in the second stage",
+    "latency2_s": "seconds from the second stage's lights on to that response",
+    "omitted2": "the second-stage window ran out (1.0/0.0)",
 }
 BLOCK_NOTES = {
     "block": "block name",
