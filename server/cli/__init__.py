@@ -1,4 +1,4 @@
-"""`vigil` command line: check, run, demo, serve, rehearse, fit, doctor.
+"""`vigil` command line: check, run, demo, serve, rehearse, fit, export, doctor.
 
 Exit codes: 0 success, 1 invalid input or a failed run, 2 usage error. Problems with
 files are printed as `file:line:col: message`; a traceback never reaches the user.
@@ -195,6 +195,29 @@ def cmd_rehearse(args: argparse.Namespace) -> int:
     return 0
 
 
+# ---------------------------------------------------------------- export
+
+
+def cmd_export(args: argparse.Namespace) -> int:
+    """One NWB file per session; one line per file written."""
+    from server.export.nwb import export_nwb
+    from server.store.errors import StoreError
+
+    try:
+        done = export_nwb(args.db, args.nwb, session_id=args.session, animal=args.animal)
+    except StoreError as exc:
+        _err(str(exc))
+        return 1
+    except OSError as exc:
+        _err(f"cannot write to {args.nwb}: {exc.strerror or exc}")
+        return 1
+    for item in done:
+        print(f"session {item.session_id}: {item.trials} trials, {item.events} events -> {item.path}")
+    if not done:
+        print("no sessions in the database; nothing written")
+    return 0
+
+
 # ---------------------------------------------------------------- doctor
 
 
@@ -319,6 +342,14 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--firings", action="store_true", help="list every rule firing with the values its condition read")
     p.add_argument("--json", action="store_true", help="print JSON instead of a table")
     p.set_defaults(func=cmd_rehearse)
+
+    p = verbs.add_parser("export", help="write sessions as NWB files (one per session)")
+    p.add_argument("--nwb", required=True, metavar="OUT_DIR", help="folder for the .nwb files (created if missing)")
+    p.add_argument("--db", required=True, metavar="PATH", help="SQLite database to read")
+    which = p.add_mutually_exclusive_group()
+    which.add_argument("--session", type=_positive_int, metavar="ID", help="only this session")
+    which.add_argument("--animal", metavar="ID", help="every session of this animal")
+    p.set_defaults(func=cmd_export)
 
     p = verbs.add_parser("doctor", help="check the serial ports and boards of a lab config")
     p.add_argument("config", nargs="?", metavar="CONFIG", help="lab config (default: every serial port found)")

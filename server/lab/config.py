@@ -11,6 +11,7 @@ from pathlib import Path
 
 from server.engine.caps import HardCaps
 from server.lab.config_link import Emulation, read_emulation, read_port
+from server.lab.config_subject import merged_subject, read_subject
 from server.lab.config_web import WebSettings, read_web
 from server.protocol.load import load_protocol
 from server.protocol.marked import Mark, Marked, load_marked
@@ -18,8 +19,8 @@ from server.protocol.model import Protocol
 from server.protocol.problems import InvalidFile, Problem
 from server.protocol.reader import Reader, did_you_mean
 
-TOP_KEYS = ("lab", "database", "caps", "boxes", "web")
-BOX_KEYS = ("name", "animal", "protocol", "stages", "settings", "port", "emulate", "seed")
+TOP_KEYS = ("lab", "database", "caps", "subject", "boxes", "web")
+BOX_KEYS = ("name", "animal", "subject", "protocol", "stages", "settings", "port", "emulate", "seed")
 STAGE_KEYS = ("protocol", "advance")
 ADVANCE_KEYS = ("sessions", "min_accuracy", "min_trials", "min_rewards", "max_omission_rate")
 
@@ -52,6 +53,8 @@ class BoxConfig:
     seed: int | None = None  # session seed; drawn fresh (and stored) when absent
     stages: tuple[Stage, ...] = ()
     settings: dict[str, float] = field(default_factory=dict)  # per-animal protocol settings
+    # species, strain, sex, age, date_of_birth, genotype, description (config_subject.py)
+    subject: dict[str, str] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -99,6 +102,7 @@ class _LabReader(Reader):
             self.base / (self.text(top["database"], "database") or "") if "database" in top else Path("vigil.sqlite")
         )
         caps = self.caps(top.get("caps"))
+        lab_subject = read_subject(self, top.get("subject"), "subject")
         boxes: list[BoxConfig] = []
         seen: dict[str, int] = {}
         animals: dict[str, str] = {}
@@ -106,7 +110,7 @@ class _LabReader(Reader):
         if "boxes" in top and top["boxes"].is_list and not nodes:
             self.error(top["boxes"].mark, "boxes: needs at least one box")
         for i, node in enumerate(nodes):
-            box = self.box(node, f"boxes[{i + 1}]")
+            box = self.box(node, f"boxes[{i + 1}]", lab_subject)
             if box is None:
                 continue
             if box.name in seen:
@@ -145,7 +149,7 @@ class _LabReader(Reader):
             int(rewards if rewards is not None else default.max_rewards), float(minutes or default.max_minutes)
         )
 
-    def box(self, node: Marked, where: str) -> BoxConfig | None:
+    def box(self, node: Marked, where: str, lab_subject: dict[str, str]) -> BoxConfig | None:
         before = len(self.problems)
         f = self.mapping(node, where, BOX_KEYS, required=("name", "animal"))
         if f is None:
@@ -176,10 +180,11 @@ class _LabReader(Reader):
                 node.mark, f"{where}: give exactly one of 'port' (a serial port) or 'emulate' (a virtual animal)"
             )
         seed = self.number(f["seed"], f"{where}.seed", low=0, integer=True) if "seed" in f else None
+        subject = merged_subject(lab_subject, read_subject(self, f.get("subject"), f"{where}.subject"))
         if len(self.problems) > before or name is None or animal is None or protocol is None:
             return None
         return BoxConfig(
-            name, animal, protocol, port, emulate, int(seed) if seed is not None else None, stages, settings
+            name, animal, protocol, port, emulate, int(seed) if seed is not None else None, stages, settings, subject
         )
 
     def stages(self, node: Marked, where: str) -> tuple[Stage, ...]:

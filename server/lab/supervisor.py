@@ -219,6 +219,7 @@ class Lab:
             "port": box.port,
             "stage": self.stages.running.get(box.name),
             "protocol_settings": box.protocol.settings,
+            "subject": box.subject,  # species, sex, age ... as the lab config gave them
             # Line kinds let a reader of the store tell a feeder pulse from a sync pulse.
             "wiring": {
                 "inputs": {n: line.kind for n, line in box.protocol.wiring.inputs.items()},

@@ -6,20 +6,15 @@ in WAL mode they see every committed transaction without blocking it.
 
 from __future__ import annotations
 
-import csv
 import sqlite3
-from collections.abc import Iterable, Sequence
 from pathlib import Path
-from typing import Any, TextIO
+from typing import Any
 from urllib.request import pathname2url
 
 from server.engine.records import TrialRecord
 from server.store import rows
 from server.store.errors import StoreError, sqlite_reason
-from server.store.history import trial_history
 from server.store.schema import latest_version, schema_version
-
-CHOICE_COLUMNS = ("animal", "session", "trial", "choice", "reward")
 
 
 def open_readonly(path: str | Path, *, check_same_thread: bool = True) -> sqlite3.Connection:
@@ -160,48 +155,6 @@ def session_estimates(conn: sqlite3.Connection, session_id: int, *, after_trial:
 
 def session_annotations(conn: sqlite3.Connection, session_id: int) -> list[dict[str, Any]]:
     return _dicts(conn, "SELECT * FROM annotations WHERE session_id = ? ORDER BY id", (session_id,))
-
-
-# ---------------------------------------------------------------- exports
-
-
-def _write_csv(cursor: Iterable[Sequence[Any]], header: tuple[str, ...], fileobj: TextIO) -> int:
-    # None becomes an empty field; JSON columns stay as their JSON text.
-    writer = csv.writer(fileobj, lineterminator="\n")
-    writer.writerow(header)
-    count = 0
-    for row in cursor:
-        writer.writerow(["" if value is None else value for value in row])
-        count += 1
-    return count
-
-
-def export_trials_csv(conn: sqlite3.Connection, session_id: int, fileobj: TextIO) -> int:
-    """Write the session's trials as CSV (one column per trials column); return the row count."""
-    cursor = conn.execute(
-        f"SELECT {', '.join(rows.TRIAL_COLUMNS)} FROM trials WHERE session_id = ? ORDER BY trial",
-        (session_id,),
-    )
-    return _write_csv(cursor, rows.TRIAL_COLUMNS, fileobj)
-
-
-def export_events_csv(conn: sqlite3.Connection, session_id: int, fileobj: TextIO) -> int:
-    """Write the session's events as CSV in stored order; return the row count."""
-    cursor = conn.execute(
-        f"SELECT {', '.join(rows.EVENT_COLUMNS)} FROM events WHERE session_id = ? ORDER BY id",
-        (session_id,),
-    )
-    return _write_csv(cursor, rows.EVENT_COLUMNS, fileobj)
-
-
-def export_choices_csv(conn: sqlite3.Connection, fileobj: TextIO, *, animal: str | None = None) -> int:
-    """Write trials in the fitting format `animal,session,trial,choice,reward` (DESIGN.md).
-
-    An omission has an empty choice; reward is the pellets delivered in the trial.
-    """
-    past = trial_history(conn, animals=None if animal is None else [animal])
-    past.sort(key=lambda p: p.animal)  # stable: each animal's trials stay in session order
-    return _write_csv(((p.animal, p.session_id, p.trial, p.choice, p.reward) for p in past), CHOICE_COLUMNS, fileobj)
 
 
 # ---------------------------------------------------------------- status page

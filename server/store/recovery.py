@@ -7,14 +7,8 @@ from collections.abc import Collection
 from datetime import timedelta
 
 from server.store import rows
+from server.store.export_reads import last_stored_t
 from server.store.wall_clock import iso
-
-# Latest stored time of a session, whichever table holds it.
-_LAST_T = (
-    "SELECT max(t) FROM (SELECT max(t) AS t FROM events WHERE session_id = ?1"
-    " UNION ALL SELECT max(t_end) FROM trials WHERE session_id = ?1"
-    " UNION ALL SELECT max(t_start) FROM blocks WHERE session_id = ?1)"
-)
 
 
 def close_unended(conn: sqlite3.Connection, closed_at: str, running: Collection[int] = ()) -> list[int]:
@@ -29,7 +23,7 @@ def close_unended(conn: sqlite3.Connection, closed_at: str, running: Collection[
     for session_id, started_at in found:
         if session_id in running:
             continue
-        last_t = conn.execute(_LAST_T, (session_id,)).fetchone()[0] or 0.0
+        last_t = last_stored_t(conn, session_id)
         trials, rewards = conn.execute(
             "SELECT count(*), coalesce(sum(rewarded), 0) FROM trials WHERE session_id = ?",
             (session_id,),

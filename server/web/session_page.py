@@ -186,6 +186,8 @@ def session_body(conn: sqlite3.Connection, session: dict[str, Any], *, controlla
             "p",
             el("a", "trials (CSV)", href=f"/api/sessions/{sid}/trials.csv"),
             " · ",
+            el("a", "choices for vigil fit (CSV)", href=f"/api/sessions/{sid}/choices.csv"),
+            " · ",
             el("a", "events (CSV)", href=f"/api/sessions/{sid}/events.csv"),
             " · ",
             el("a", "JSON", href=f"/api/sessions/{sid}"),
@@ -278,6 +280,11 @@ def animal_body(animal: str, history: list[dict[str, Any]]) -> Safe:
     return el(
         "div",
         el("h1", "Animal ", el("span", animal)),
+        el(
+            "p",
+            el("a", "every choice, for vigil fit (CSV)", href=f"/api{animal_href(animal)}/choices.csv"),
+            class_="downloads",
+        ),
         el("div", plots.animal_panels(history), class_="panels"),
         _table(
             [
