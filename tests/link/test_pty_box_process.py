@@ -55,7 +55,7 @@ def test_the_box_exits_when_its_parent_is_killed(tmp_path):
 def test_a_bad_start_is_reported_in_one_line(tmp_path):
     link = tmp_path / "box.tty"
     child = EmulatorProcess("rack-3", link, emulator_command(
-        link, str(PROTOCOL), "q_learner", 1, options={"alpah": 0.3}))  # fmt: skip
+        link, str(PROTOCOL), "q_learner", 1, traits={"alpah": 0.3}))  # fmt: skip
     try:
         child.process.wait(20)
         why = child.failure()
