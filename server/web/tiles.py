@@ -12,7 +12,7 @@ from dataclasses import asdict, dataclass
 from datetime import datetime
 from typing import Any
 
-from server.lab.status import BoxFacts, alarm_message, rule_text
+from server.lab.status import BoxFacts, alarm_message, reverses, rule_text
 
 # End reasons of a session that ran its course; anything else ended it early.
 _NORMAL_ENDS = ("session time limit", "protocol complete", "trial limit reached", "time limit")
@@ -89,6 +89,8 @@ def tile_from_facts(facts: BoxFacts, now: float, quiet_after_s: float) -> dict[s
         trial=facts["trial"],
         trials_done=facts["trials_done"],
         rewards=facts["rewards"],
+        max_rewards=facts.get("max_rewards"),
+        reversals=facts.get("reversals"),
         accuracy=(facts["correct"] / scored) if scored else None,
         elapsed_s=now,
         remaining_s=None if finished else max(0.0, facts["limit_s"] - now),
@@ -118,8 +120,10 @@ def tile_from_store(
     last_rule: dict[str, Any] | None,
     now: datetime,
     quiet_after_s: float,
+    reversals: int | None = None,
 ) -> dict[str, Any]:
-    """A tile from a stored session row and `queries.session_status`, at wall time `now`.
+    """A tile from a stored session row and `queries.session_status`, at wall time `now`;
+    `reversals` counts the session's rule firings that reversed the options.
 
     The store cannot tell a session still running in another process from one whose
     process died; both show as running until the next run closes it as interrupted.
@@ -133,11 +137,15 @@ def tile_from_store(
         elapsed = max(0.0, (datetime.fromisoformat(session["ended_at"]) - started).total_seconds())
     else:
         elapsed = status["last_t"] or 0.0
-    caps = (session.get("settings") or {}).get("caps") or {}
-    max_minutes = caps.get("max_minutes")
+    settings = session.get("settings") or {}
+    # what binds the session: its limits within the lab's caps (older stores: the caps)
+    limits = settings.get("limits") or settings.get("caps") or {}
+    # the session ends at its limit or at the run's --minutes, whichever comes first
+    bounds = [m for m in (limits.get("max_minutes"), settings.get("run_minutes")) if isinstance(m, (int, float))]
+    max_rewards = limits.get("max_rewards")
     remaining = None
-    if running and isinstance(max_minutes, (int, float)):
-        remaining = max(0.0, max_minutes * 60.0 - elapsed)
+    if running and bounds:
+        remaining = max(0.0, min(bounds) * 60.0 - elapsed)
     last_input = status["last_input_t"]
     since_input = max(0.0, elapsed - last_input) if (running and last_input is not None) else None
     paused = bool(status.get("paused")) and running
@@ -157,6 +165,8 @@ def tile_from_store(
         trial=session["trials"],
         trials_done=session["trials"],
         rewards=session["rewards"],
+        max_rewards=max_rewards if isinstance(max_rewards, int) else None,
+        reversals=reversals,
         accuracy=status["accuracy"],
         elapsed_s=elapsed,
         remaining_s=remaining,
@@ -200,6 +210,11 @@ def ago_text(seconds: float | None) -> str:
     return f"{seconds / 3600:.1f} h ago"
 
 
+def rewards_text(rewards: int, cap: int | None) -> str:
+    """Rewards delivered against the session's cap, "16/200" (the count alone without one)."""
+    return f"{rewards}/{cap}" if cap is not None else str(rewards)
+
+
 def shown(tile: dict[str, Any]) -> dict[str, str]:
     """The tile's fields as the page prints them (keys match `data-f` in the markup)."""
     accuracy = tile["accuracy"]
@@ -214,7 +229,8 @@ def shown(tile: dict[str, Any]) -> dict[str, str]:
         "protocol": tile["protocol"],
         "block": tile["block"] or "–",
         "trial": str(tile["trial"]),
-        "rewards": str(tile["rewards"]),
+        "rewards": rewards_text(tile["rewards"], tile.get("max_rewards")),
+        "reversals": "–" if tile.get("reversals") is None else str(tile["reversals"]),
         "accuracy": "–" if accuracy is None else f"{100 * accuracy:.0f}\u202f%",
         "elapsed": clock_text(tile["elapsed_s"]),
         "remaining": "–" if tile["remaining_s"] is None else clock_text(tile["remaining_s"]),
