@@ -16,8 +16,8 @@ from fastapi import APIRouter, HTTPException, Query, Response
 from fastapi.sse import EventSourceResponse, ServerSentEvent
 
 from server.store import queries
+from server.web.animal_page import animal_rows
 from server.web.schemas import AnimalOut, BoxTile, SessionOut
-from server.web.session_page import animal_rows
 
 LIVE_EVERY_S = 1.0
 
@@ -134,8 +134,6 @@ def api_router(state: Any) -> APIRouter:
         history = animal_rows(state.store.conn(), animal)
         if not history:
             raise HTTPException(404, f"no sessions of animal '{animal}'")
-        for row in history:
-            row.pop("fitted_text", None)
         return {"animal": animal, "sessions": history}
 
     return router

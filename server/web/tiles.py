@@ -12,7 +12,7 @@ from dataclasses import asdict, dataclass
 from datetime import datetime
 from typing import Any
 
-from server.lab.status import BoxFacts, alarm_message, reverses, rule_text
+from server.lab.status import BoxFacts, alarm_message, rule_text
 
 # End reasons of a session that ran its course; anything else ended it early.
 _NORMAL_ENDS = ("session time limit", "protocol complete", "trial limit reached", "time limit")
