@@ -77,8 +77,9 @@ def pages_router(state: Any) -> APIRouter:
         controllable = (
             state.controls_on and found["end_reason"] is None and session_id in state.live.latest.running_sessions()
         )
+        paused = controllable and session_id in state.live.latest.paused_sessions()
         body = session_page.session_body(
-            state.store.conn(), found, controllable=controllable, notice=NOTICES.get(done or "")
+            state.store.conn(), found, controllable=controllable, notice=NOTICES.get(done or ""), paused=paused
         )
         return html(f"Session {session_id}", body, "pg-session")
 

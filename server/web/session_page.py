@@ -138,11 +138,19 @@ def control_form(session: dict[str, Any], *, paused: bool) -> Safe:
     )
 
 
-def session_body(conn: sqlite3.Connection, session: dict[str, Any], *, controllable: bool, notice: str | None) -> Safe:
+def session_body(
+    conn: sqlite3.Connection,
+    session: dict[str, Any],
+    *,
+    controllable: bool,
+    notice: str | None,
+    paused: bool | None = None,
+) -> Safe:
+    """The session page; `paused` is the running lab's word on it (else the store's)."""
     sid = session["id"]
     status = queries.session_status(conn, sid)
     running = session["end_reason"] is None
-    paused = running and bool(status["paused"])
+    paused = running and (bool(status["paused"]) if paused is None else paused)
     firings = queries.session_rule_firings(conn, sid)
     limits = (session.get("settings") or {}).get("limits") or (session.get("settings") or {}).get("caps") or {}
     state = ("paused" if paused else "running") if running else f"ended – {session['end_reason']}"
