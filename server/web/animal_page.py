@@ -19,7 +19,7 @@ from server.web.markup import Safe, el
 from server.web.pca import classify, pca_parts
 from server.web.session_protocol import protocol_of
 from server.web.tables import cohort_href, percent, table, when
-from server.web.tiles import rewards_text
+from server.web.tiles import rewards_text, session_limits
 from server.web.words import quantity
 
 
@@ -45,7 +45,7 @@ def session_row(conn: sqlite3.Connection, row: dict[str, Any]) -> dict[str, Any]
     settings = row.get("settings") or {}
     row["last_block"] = queries.session_status(conn, sid)["block"]
     row["stage"] = settings.get("stage")  # the training stage it ran at (None without stages)
-    limits = settings.get("limits") or settings.get("caps") or {}
+    limits = session_limits(settings)
     row["max_rewards"] = limits.get("max_rewards")
     row.update(reversal_figures(queries.session_rule_firings(conn, sid)))
     protocol = protocol_of(row)
@@ -155,7 +155,7 @@ def animal_body(animal: str, history: list[dict[str, Any]], stages: list[dict[st
         ),
         el("div", day_plots.animal_panels(history), class_="panels"),
         el("h2", "Sessions"),
-        table(header, rows, cls="tbl sessions-of-animal"),
+        el("div", table(header, rows, cls="tbl sessions-of-animal"), class_="wide-table"),
         _model_key(history),
         el("h2", "Training stages"),
         _stages(stages),

@@ -74,13 +74,15 @@ def cohort_body(protocol: str, by_animal: dict[str, list[dict[str, Any]]]) -> Sa
         ]
         for animal, sessions in by_animal.items()
     ]
+    header = ["animal", "sessions", "last", "last accuracy", "last PCA", "reversals", "rewards"]
+    if all(row[4] == "–" for row in rows):  # not a Pavlovian protocol: no PCA column
+        header.pop(4)
+        rows = [row[:4] + row[5:] for row in rows]
     return el(
         "div",
         el("h1", "Cohort: ", el("span", protocol)),
         el("p", f"{len(by_animal)} animal(s) that ran this protocol; session 1 is each animal's first.", class_="note"),
         el("div", panels, class_="panels"),
-        table(
-            ["animal", "sessions", "last", "last accuracy", "last PCA", "reversals", "rewards"], rows, cls="tbl cohort"
-        ),
+        table(header, rows, cls="tbl cohort"),
         class_="cohort-page",
     )

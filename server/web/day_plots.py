@@ -79,9 +79,9 @@ def animal_panels(history: Sequence[dict[str, Any]]) -> list[Safe]:
         plot = _axis(history, "Reversals and trials to criterion", (0.0, top * 1.1), whole_y=True,
                      subtitle="bars: reversals in the session; dots: trials until the first reversal")  # fmt: skip
         _bars(plot, xs, rev)
-        plot.marks(tx, tc, "mean", shape="dot", size=5)
+        plot.marks(tx, tc, "crit", shape="dot", size=5)
         plot.legend("bar", "reversals")
-        plot.legend("mean", "trials to criterion")
+        plot.legend("crit", "trials to criterion")
         panels.append(plot.render(axis="session"))
     panels.extend(_estimate_panels(history))
     xs, rewards = _points(history, "rewards")
@@ -146,14 +146,16 @@ def cohort_panel(by_animal: dict[str, list[float | None]], *, title: str, subtit
     """Each animal's thin line by session number, with the cohort's median (thick) and the
     25–75 % band."""
     longest = max((len(v) for v in by_animal.values()), default=1)
-    ticks = {float(i): str(i) for i in range(1, longest + 1)} if longest <= 20 else None
+    rows = spread(list(by_animal.values()))
+    # each session number with how many animals have a value there
+    ticks = {float(r[0]): f"{r[0]} (n={r[4]})" for r in rows} if longest <= 12 else None
     plot = Plot((0.5, longest + 0.5), y_range, title=title, subtitle=subtitle, x_label="session number",
                 x_tick_text=ticks, whole_x=True, y_ticks=y_ticks, height=280)  # fmt: skip
-    rows = spread(list(by_animal.values()))
     plot.band([r[0] for r in rows], [r[2] for r in rows], [r[3] for r in rows], "ci")
     for values in by_animal.values():
         xs = [float(i + 1) for i, v in enumerate(values) if v is not None]
         plot.line(xs, [v for v in values if v is not None], "one")
+        plot.marks(xs, [v for v in values if v is not None], "one", shape="dot", size=2)
     plot.line([r[0] for r in rows], [r[1] for r in rows], "median")
     plot.marks([r[0] for r in rows], [r[1] for r in rows], "median", shape="dot")
     plot.legend("one", "each animal")

@@ -86,7 +86,7 @@ def controls(state: str) -> Safe:
 def _tile_template(slot) -> Safe:
     figs = [
         el("div", el("dt", label), el("dd", slot(key), data_f=key), class_=" ".join(
-            c for c in ("fig", size, "" if dense else "extra") if c))
+            c for c in ("fig", size, "" if dense else "extra", key) if c))
         for key, label, size, dense in FIELDS
     ]  # fmt: skip
     return el(

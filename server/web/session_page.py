@@ -17,7 +17,7 @@ from server.web.overview import animal_href
 from server.web.pca import pca_panel
 from server.web.session_protocol import protocol_of, rules_of
 from server.web.tables import percent, table, when
-from server.web.tiles import clock_text, rewards_text
+from server.web.tiles import clock_text, rewards_text, session_limits
 from server.web.words import firing_words
 
 EVENT_TAIL = 60
@@ -152,7 +152,7 @@ def session_body(
     running = session["end_reason"] is None
     paused = running and (bool(status["paused"]) if paused is None else paused)
     firings = queries.session_rule_firings(conn, sid)
-    limits = (session.get("settings") or {}).get("limits") or (session.get("settings") or {}).get("caps") or {}
+    limits = session_limits(session.get("settings"))
     state = ("paused" if paused else "running") if running else f"ended – {session['end_reason']}"
     facts = [
         ("box", session["box"], ""),

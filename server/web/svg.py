@@ -237,12 +237,18 @@ class Plot:
         return join(*parts)
 
     def _legend_svg(self) -> Safe:
+        """The keys at the top right; along the bottom left instead when they would run into
+        the title (~9.5 px per 16 px bold glyph, ~7.5 px per 12 px key glyph)."""
+        widths = [14 + 7.5 * len(text) + 18 for _, text in self._legend]
+        title_end = self.left + 9.5 * len(self.title) + 16
+        at_top = self.width - self.right - sum(widths) >= title_end
         parts = []
-        x: float = self.width - self.right
-        for cls, text in reversed(self._legend):
-            x -= 14 + 8.2 * len(text) + 18
-            parts.append(el("rect", x=f"{x:.0f}", y=12, width=14, height=10, class_=f"key {cls}"))
-            parts.append(el("text", text, x=f"{x + 19:.0f}", y=22, class_="kt"))
+        x: float = self.width - self.right - sum(widths) if at_top else self.left
+        y = 12 if at_top else self.height - 18
+        for (cls, text), width in zip(self._legend, widths):
+            parts.append(el("rect", x=f"{x:.0f}", y=y, width=14, height=10, class_=f"key {cls}"))
+            parts.append(el("text", text, x=f"{x + 19:.0f}", y=y + 10, class_="kt"))
+            x += width
         return join(*parts)
 
     def render(self, *, css_class: str = "plot", axis: str | None = None) -> Safe:

@@ -114,6 +114,13 @@ def tile_from_facts(facts: BoxFacts, now: float, quiet_after_s: float) -> dict[s
 # ---------------------------------------------------------------- from the store
 
 
+def session_limits(settings: dict[str, Any] | None) -> dict[str, Any]:
+    """What bound a stored session: its limits within the lab's caps (older stores kept
+    only the caps)."""
+    settings = settings or {}
+    return {**(settings.get("caps") or {}), **(settings.get("limits") or {})}
+
+
 def tile_from_store(
     session: dict[str, Any],
     status: dict[str, Any],
@@ -139,7 +146,7 @@ def tile_from_store(
         elapsed = status["last_t"] or 0.0
     settings = session.get("settings") or {}
     # what binds the session: its limits within the lab's caps (older stores: the caps)
-    limits = settings.get("limits") or settings.get("caps") or {}
+    limits = session_limits(settings)
     # the session ends at its limit or at the run's --minutes, whichever comes first
     bounds = [m for m in (limits.get("max_minutes"), settings.get("run_minutes")) if isinstance(m, (int, float))]
     max_rewards = limits.get("max_rewards")

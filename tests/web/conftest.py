@@ -44,10 +44,10 @@ def lab_db(tmp_path_factory):
             )
             if day == 0:
                 store.write_stage("RN-0501", 1, "two-lever reversal", "2031-05-10T08:59:00.000+02:00", "start")
-                store.write_stage(
-                    "RN-0501", 2, "two-lever reversal", "2031-05-10T09:20:00.000+02:00", "advanced", days[0],
-                    {"criterion": {"min_accuracy": 0.6}, "sessions": [{"session": days[0], "trials": 80, "accuracy": 0.7}]},
-                )  # fmt: skip
+                evidence = {"criterion": {"min_accuracy": 0.6}, "sessions": [{"session": days[0], "trials": 80,
+                                                                                 "accuracy": 0.7}]}  # fmt: skip
+                at = "2031-05-10T09:20:00.000+02:00"
+                store.write_stage("RN-0501", 2, "two-lever reversal", at, "advanced", days[0], evidence)
         pav = record_session(
             store,
             box="rack-2",
