@@ -12,6 +12,8 @@ from typing import Any, TypedDict
 
 from server.engine.records import EventLogged, Record, RuleFired, SessionEnded, TrialRecord
 from server.engine.session import Session
+from server.lab.rule_words import firing_words
+from server.protocol.model import Rule
 
 
 class RuleShown(TypedDict):
@@ -93,18 +95,10 @@ def reverses(actions: Any) -> bool:
     return any(isinstance(a, dict) and "reverse" in a for a in actions or ())
 
 
-def rule_text(rule: Any, actions: Any) -> str:
-    """A rule firing in a few words: its name and what it did ("flip: reverse west/east")."""
-    done = []
-    for action in actions or ():
-        if isinstance(action, dict):
-            for what, value in action.items():
-                if isinstance(value, (list, tuple)):
-                    value = "/".join(str(v) for v in value)
-                elif isinstance(value, dict):
-                    value = ", ".join(f"{k} {v}" for k, v in value.items())
-                done.append(f"{what} {value}")
-    return f"{rule}: {'; '.join(done)}" if done else str(rule)
+def rule_text(rule: Any, actions: Any, reads: dict[str, Any] | None = None, spec: Rule | None = None) -> str:
+    """A rule firing in words (server/lab/rule_words.py), with why when the values it read
+    and the rule as written are at hand."""
+    return firing_words(str(rule), actions, reads, spec)
 
 
 def alarm_message(detail: Any) -> str | None:
@@ -112,6 +106,11 @@ def alarm_message(detail: Any) -> str | None:
     if isinstance(detail, dict) and detail.get("message"):
         return str(detail["message"])
     return None
+
+
+def _fired_text(fired: RuleFired, session: Session) -> str:
+    spec = next((r for r in session.protocol.rules if r.name == fired.rule), None)
+    return rule_text(fired.rule, fired.actions, fired.values, spec)
 
 
 def box_facts(
@@ -151,7 +150,7 @@ def box_facts(
         "limit_s": min(session.limits.max_minutes * 60.0, run_limit_s if run_limit_s is not None else math.inf),
         "last_input_t": status.last_input_t,
         "link_lost": bool(status.link_lost or not connected),
-        "last_rule": None if rule is None else {"t": rule.t, "text": rule_text(rule.rule, rule.actions)},
+        "last_rule": None if rule is None else {"t": rule.t, "text": _fired_text(rule, session)},
         "end_reason": session.end_reason,
         "cap_reached": status.cap_reached,
         "rule_alarm": None if alarm is None else alarm_message(alarm.detail),

@@ -21,6 +21,7 @@ from typing import Any
 from server.lab.status import reverses
 from server.store import queries
 from server.store.wall_clock import local_now
+from server.web.session_protocol import protocol_of, rules_of
 from server.web.tiles import shown, tile_from_store
 
 
@@ -114,7 +115,10 @@ class Board:
             firings = queries.session_rule_firings(conn, session["id"])
             reversals = sum(reverses(f["actions"]) for f in firings)
             last = firings[-1] if firings else None
-            tiles.append(tile_from_store(session, status, last, wall, self.quiet_after_s, reversals=reversals))
+            spec = None if last is None else rules_of(protocol_of(session)).get(last["rule"])
+            tiles.append(
+                tile_from_store(session, status, last, wall, self.quiet_after_s, reversals=reversals, rule_spec=spec)
+            )
         return tiles
 
     def _make(self, now: float) -> Snapshot:

@@ -13,6 +13,7 @@ from datetime import datetime
 from typing import Any
 
 from server.lab.status import BoxFacts, alarm_message, rule_text
+from server.protocol.model import Rule
 
 # End reasons of a session that ran its course; anything else ended it early.
 _NORMAL_ENDS = ("session time limit", "protocol complete", "trial limit reached", "time limit")
@@ -128,9 +129,11 @@ def tile_from_store(
     now: datetime,
     quiet_after_s: float,
     reversals: int | None = None,
+    rule_spec: Rule | None = None,
 ) -> dict[str, Any]:
     """A tile from a stored session row and `queries.session_status`, at wall time `now`;
-    `reversals` counts the session's rule firings that reversed the options.
+    `reversals` counts the session's rule firings that reversed the options; `rule_spec` is
+    the last firing's rule as the protocol wrote it, when the protocol is at hand.
 
     The store cannot tell a session still running in another process from one whose
     process died; both show as running until the next run closes it as interrupted.
@@ -158,7 +161,8 @@ def tile_from_store(
     paused = bool(status.get("paused")) and running
     rule = None
     if last_rule is not None:
-        rule = {"t": last_rule["t"], "text": rule_text(last_rule["rule"], last_rule["actions"])}
+        said = rule_text(last_rule["rule"], last_rule["actions"], last_rule.get("reads"), rule_spec)
+        rule = {"t": last_rule["t"], "text": said}
     alarm = status.get("alarm")
     return _tile(
         box=session["box"],

@@ -37,7 +37,9 @@ def test_boxes_lists_the_latest_session_of_every_box(read_only, lab_db):
         "SELECT t, rule FROM rule_firings WHERE session_id = ? ORDER BY t DESC LIMIT 1", (lab_db["second"],)
     ).fetchone()
     assert by_box["rack-1"]["last_rule"]["t"] == t
-    assert by_box["rack-1"]["last_rule"]["text"].startswith(f"{rule}: ")
+    text = by_box["rack-1"]["last_rule"]["text"]  # in words, with the condition from the protocol that ran
+    assert text.startswith("reversed west/east because ") and text.endswith(f"(rule {rule})")
+    assert ("≥ 0.95 for 5 trials" in text) if rule == "learned" else ("streak 8 ≥ 8" in text)
     assert by_box["rack-2"]["last_rule"] is None
 
 
