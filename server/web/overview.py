@@ -15,23 +15,25 @@ from server.web.layout import icon, icon_templates
 from server.web.markup import Safe, Template, el, join
 from server.web.tiles import shown
 
-# (field key, label, size, dense) in the order a tile shows them: big figures, one-column
-# facts, and wide rows for texts that run long; `dense` False: left out of a tile when the
-# overview packs many boxes on one screen (the session page has them all)
+# (field key, label, size) in the order a tile shows them: big figures, one-column facts,
+# and wide rows for texts that run long
 FIELDS = (
-    ("trial", "trial", "big", True),
-    ("rewards", "rewards", "big", True),
-    ("accuracy", "accuracy", "big", True),
-    ("protocol", "protocol", "wide", False),
-    ("block", "block", "", True),
-    ("reversals", "reversals", "", True),
-    ("remaining", "time left", "", True),
-    ("elapsed", "elapsed", "", False),
-    ("since_input", "last input", "", True),
-    ("link", "box link", "", False),
-    ("step", "step", "", False),
-    ("last_rule", "last rule", "wide", False),
+    ("trial", "trial", "big"),
+    ("rewards", "rewards", "big"),
+    ("accuracy", "accuracy", "big"),
+    ("protocol", "protocol", "wide"),
+    ("block", "block", ""),
+    ("reversals", "reversals", ""),
+    ("remaining", "time left", ""),
+    ("elapsed", "elapsed", ""),
+    ("since_input", "last input", ""),
+    ("link", "box link", ""),
+    ("step", "step", ""),
+    ("last_rule", "last rule", "wide"),
 )
+# left out of a tile when the overview packs many boxes on one screen (the session page
+# has them all)
+EXTRA = frozenset(("protocol", "elapsed", "link", "step", "last_rule"))
 # (most boxes, size name): the tiles shrink as the lab grows, so 32 fit on one laptop screen
 SIZES = ((8, "roomy"), (16, "compact"))
 DENSE = "dense"
@@ -86,8 +88,8 @@ def controls(state: str) -> Safe:
 def _tile_template(slot) -> Safe:
     figs = [
         el("div", el("dt", label), el("dd", slot(key), data_f=key), class_=" ".join(
-            c for c in ("fig", size, "" if dense else "extra", key) if c))
-        for key, label, size, dense in FIELDS
+            c for c in ("fig", size, "extra" if key in EXTRA else "", key) if c))
+        for key, label, size in FIELDS
     ]  # fmt: skip
     return el(
         "article",
