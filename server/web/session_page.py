@@ -14,7 +14,7 @@ from server.store import queries
 from server.web import plots
 from server.web.markup import Safe, el
 from server.web.overview import animal_href
-from server.web.pca import pca_panel
+from server.web.pca import classify, pca_panel, pca_parts
 from server.web.session_protocol import protocol_of, rules_of
 from server.web.tables import percent, table, when
 from server.web.tiles import clock_text, rewards_text, session_limits
@@ -113,6 +113,21 @@ def _firings_list(session: dict[str, Any], firings: list[dict[str, Any]]) -> Saf
     return table(["at", "after trial", "what the rule did and why"], rows, cls="tbl firings")
 
 
+def _measures(
+    conn: sqlite3.Connection, session: dict[str, Any], status: dict[str, Any], firings: list[dict[str, Any]]
+) -> list[tuple[str, Any, str]]:
+    """The session's main measures: accuracy and reversals, or for a Pavlovian session its
+    PCA index and what it classifies the animal as."""
+    pav = pavlovian_of(session)
+    parts = None if pav is None else pca_parts(queries.session_trials(conn, session["id"]), pav)
+    if parts is not None:
+        return [("PCA index", f"{parts.index:+.2f} ({classify(parts.index)})", "")]
+    return [
+        ("accuracy", percent(status["accuracy"]), ""),
+        ("reversals", sum(reverses(f["actions"]) for f in firings), ""),
+    ]
+
+
 def control_form(session: dict[str, Any], *, paused: bool) -> Safe:
     """The session page's controls: pause while running, resume while paused (never both)."""
     sid = session["id"]
@@ -162,8 +177,7 @@ def session_body(
         ("state", state, ""),
         ("trials", session["trials"], ""),
         ("rewards", rewards_text(session["rewards"], limits.get("max_rewards")), ""),
-        ("accuracy", percent(status["accuracy"]), ""),
-        ("reversals", sum(reverses(f["actions"]) for f in firings), ""),
+        *_measures(conn, session, status, firings),
         ("block", status["block"] or "–", ""),
         ("seed", session["seed"], "seed"),
     ]
