@@ -128,7 +128,8 @@ def api_router(state: Any) -> APIRouter:
     @router.get(
         "/animals/{animal:path}",
         response_model=AnimalOut,
-        summary="An animal's sessions, oldest first, with stage, accuracy and parameters",
+        summary="An animal's sessions, oldest first, with training stage, last block, accuracy (or PCA index), "
+        "reversals, trials to criterion, rewards against the cap and the last estimate's parameters",
     )
     def animal(animal: str) -> dict[str, Any]:
         history = animal_rows(state.store.conn(), animal)

@@ -61,7 +61,12 @@ def cohort_body(protocol: str, by_animal: dict[str, list[dict[str, Any]]]) -> Sa
             continue
         if y_range is None:
             y_range = (0.0, max(values + [1]) * 1.08)
-        panels.append(day_plots.cohort_panel(series, title=title, subtitle=subtitle, y_range=y_range, y_ticks=y_ticks))
+        counts = key in ("reversals", "rewards")
+        panels.append(
+            day_plots.cohort_panel(
+                series, title=title, subtitle=subtitle, y_range=y_range, y_ticks=y_ticks, counts=counts
+            )
+        )
     rows = [
         [
             el("a", animal, href=animal_href(animal)),

@@ -142,15 +142,17 @@ def spread(series: Sequence[Sequence[float | None]]) -> list[tuple[int, float, f
     return out
 
 
-def cohort_panel(by_animal: dict[str, list[float | None]], *, title: str, subtitle: str, y_range, y_ticks=None) -> Safe:
+def cohort_panel(
+    by_animal: dict[str, list[float | None]], *, title: str, subtitle: str, y_range, y_ticks=None, counts=False
+) -> Safe:
     """Each animal's thin line by session number, with the cohort's median (thick) and the
-    25–75 % band."""
+    25–75 % band; `counts` for a measure that counts (whole ticks)."""
     longest = max((len(v) for v in by_animal.values()), default=1)
     rows = spread(list(by_animal.values()))
     # each session number with how many animals have a value there
     ticks = {float(r[0]): f"{r[0]} (n={r[4]})" for r in rows} if longest <= 12 else None
     plot = Plot((0.5, longest + 0.5), y_range, title=title, subtitle=subtitle, x_label="session number",
-                x_tick_text=ticks, whole_x=True, y_ticks=y_ticks, height=280)  # fmt: skip
+                x_tick_text=ticks, whole_x=True, y_ticks=y_ticks, whole_y=counts, height=280)  # fmt: skip
     plot.band([r[0] for r in rows], [r[2] for r in rows], [r[3] for r in rows], "ci")
     for values in by_animal.values():
         xs = [float(i + 1) for i, v in enumerate(values) if v is not None]
