@@ -410,7 +410,7 @@ class Session:
                 if trial.response is None:
                     trial.response = input_name
                     trial.latency_s = t - trial.step_t0
-                self._goto(trial, schedule.schedule.then, t)
+                self._goto(trial, schedule.schedule.on_met, t)
 
     def _choose(self, trial: TrialState, step: Step, label: str, input_name: str, t: float) -> None:
         block = self.blocks.current

@@ -122,6 +122,7 @@ class _Compiler(Reader):
             trial_types=trial_types, blocks=tuple(blocks), iti=iti, limits=limits,
             at_start=at_start, description=about or "", estimator=estimator, rules=rules,
             iti_bounds=iti_bounds, pavlovian=pavlovian, settings=settings, two_stage=two_stage,
+            warnings=tuple(self.warnings),
         )  # fmt: skip
 
     def duration(self, node: Marked | None, where: str) -> Duration | None:
@@ -247,7 +248,11 @@ class _Compiler(Reader):
 
     def schedule(self, node: Marked | None, where: str, names: list[str], wiring: Wiring) -> Schedule | None:
         f = self.mapping(
-            node, where, ("input", "kind", "value", "intervals", "then"), required=("input", "kind", "value")
+            node,
+            where,
+            ("input", "kind", "value", "intervals", "on_met"),
+            required=("input", "kind", "value"),
+            renamed={"then": "on_met"},
         )
         if f is None:
             return None
@@ -267,10 +272,10 @@ class _Compiler(Reader):
             if kind != "VI":
                 self.error(f["intervals"].mark, f"{where}.intervals: only meaningful for VI")
             intervals = self.number(f["intervals"], f"{where}.intervals", low=2, high=1000, integer=True) or 12
-        then = self.target(f["then"], f"{where}.then", names) if "then" in f else END_TRIAL
-        if input_name is None or kind is None or value is None or then is None:
+        on_met = self.target(f["on_met"], f"{where}.on_met", names) if "on_met" in f else END_TRIAL
+        if input_name is None or kind is None or value is None or on_met is None:
             return None
-        return Schedule(input_name, kind, float(value), int(intervals), then)
+        return Schedule(input_name, kind, float(value), int(intervals), on_met)
 
     # ------------------------------------------------------------ blocks
 

@@ -9,6 +9,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 from server.protocol.expressions import Node, Quantity
+from server.protocol.problems import Problem
 from server.protocol.wiring import Wiring
 
 END_TRIAL = "end"  # step target that ends the trial
@@ -53,7 +54,7 @@ class Schedule:
     kind: str  # FR | VR | RR | FI | VI
     value: float  # ratio n, probability p (RR) or interval seconds
     intervals: int = 12  # VI: length of the Fleshler–Hoffman list
-    then: str = END_TRIAL
+    on_met: str = END_TRIAL  # the step once the requirement is met
 
 
 @dataclass(frozen=True, slots=True)
@@ -251,6 +252,7 @@ class Protocol:
     pavlovian: Pavlovian | None = None
     settings: dict[str, float] = field(default_factory=dict)  # named numbers rules may read
     two_stage: TwoStage | None = None
+    warnings: tuple[Problem, ...] = ()  # old spellings read, each naming its new one
 
     def block(self, name: str) -> Block:
         for b in self.blocks:

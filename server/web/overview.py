@@ -150,7 +150,7 @@ def operator_key() -> Safe:
                 type="password",
                 id="optoken",
                 autocomplete="off",
-                placeholder="needed to pause, stop or annotate",
+                placeholder="needed to pause, stop or add a note",
             ),
         ),
         el("output", id="opsay", aria_live="polite"),

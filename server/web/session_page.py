@@ -4,7 +4,9 @@ sessions, rendered from the read-only store."""
 from __future__ import annotations
 
 import json
+import math
 import sqlite3
+from datetime import datetime, timedelta
 from typing import Any
 
 from server.engine.stay import stay_counts
@@ -193,8 +195,7 @@ def session_body(
         ]
         for ev in reversed(events)
     ]
-    notes = queries.session_annotations(conn, sid)
-    note_rows = [[when(n["wall_time"]), clock_text(n["t"]), n["origin"], n["text"]] for n in notes]
+    note_rows = [row for _, row in sorted(_notes(conn, session), key=lambda item: item[0])]
     return el(
         "div",
         el("h1", f"Session {sid}: ", el("span", session["box"]), " · ", el("span", session["animal"])),
@@ -228,6 +229,27 @@ def session_body(
         ),
         class_="session",
     )
+
+
+def _notes(conn: sqlite3.Connection, session: dict[str, Any]) -> list[tuple[float, list[Any]]]:
+    """Every note on the session in session-time order: operators' notes, and the notes its
+    rules wrote (a rule's `note` action), which carry their session time only."""
+    sid = session["id"]
+    out: list[tuple[float, list[Any]]] = []
+    for n in queries.session_annotations(conn, sid):
+        t = n["t"] if n["t"] is not None else math.inf
+        out.append((t, [when(n["wall_time"]), clock_text(n["t"]), n["origin"], n["text"]]))
+    try:
+        started = datetime.fromisoformat(session["started_at"])
+    except (TypeError, ValueError):
+        started = None
+    for ev in queries.session_events(conn, sid, kind="note"):
+        text = (ev["detail"] or {}).get("text") if isinstance(ev["detail"], dict) else None
+        if text is None:  # the link's and the session's own notes go in the event log only
+            continue
+        written = when((started + timedelta(seconds=ev["t"])).isoformat()) if started else "–"
+        out.append((ev["t"], [written, clock_text(ev["t"]), f"rule {ev['name']}", text]))
+    return out
 
 
 def sessions_body(sessions: list[dict[str, Any]]) -> Safe:

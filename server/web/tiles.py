@@ -16,7 +16,8 @@ from server.lab.status import BoxFacts, alarm_message, rule_text
 from server.protocol.model import Rule
 
 # End reasons of a session that ran its course; anything else ended it early.
-_NORMAL_ENDS = ("session time limit", "protocol complete", "trial limit reached", "time limit")
+# "time limit" is how databases before the run time limit had its own words spelled it.
+_NORMAL_ENDS = ("session time limit", "protocol complete", "trial limit reached", "run time limit", "time limit")
 CAP_REASON = "reward cap reached"
 
 

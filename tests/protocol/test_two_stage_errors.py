@@ -132,9 +132,9 @@ CASES = [
         r"trial_types\.two_stage_trial\.first: a first choice needs 'to_state'",
     ),
     (
-        "    then: {reverse: [north_port, south_port]}",
-        "    then: {reverse: [west, east]}",
-        "    then: {reverse: [west",
+        "    do: {reverse: [north_port, south_port]}",
+        "    do: {reverse: [west, east]}",
+        "    do: {reverse: [west",
         r"'west' is a first-stage option; its outcome comes from the state it leads to, so reverse second-stage",
     ),
     (
