@@ -7,10 +7,13 @@ Facts hold no clock reading of their own: times are session seconds, and the fee
 
 from __future__ import annotations
 
+import math
 from typing import Any, TypedDict
 
 from server.engine.records import EventLogged, Record, RuleFired, SessionEnded, TrialRecord
 from server.engine.session import Session
+from server.lab.rule_words import firing_words
+from server.protocol.model import Rule
 
 
 class RuleShown(TypedDict):
@@ -33,6 +36,8 @@ class BoxFacts(TypedDict):
     trial: int
     trials_done: int
     rewards: int
+    max_rewards: int  # the session's reward cap (protocol limit within the lab's hard cap)
+    reversals: int  # rule firings so far that reversed the options
     scored: int
     correct: int
     limit_s: float
@@ -57,6 +62,7 @@ class BoxStatus:
         self.cap_reached = False
         self.scored = 0  # trials where correctness applies
         self.correct = 0
+        self.reversals = 0  # rule firings that reversed the options
         self.records_seen = 0  # lets a status view skip a box whose session said nothing new
 
     def observe(self, record: Record) -> None:
@@ -81,20 +87,18 @@ class BoxStatus:
             self.ended = record
         elif isinstance(record, RuleFired):
             self.last_rule = record
+            self.reversals += reverses(record.actions)
 
 
-def rule_text(rule: Any, actions: Any) -> str:
-    """A rule firing in a few words: its name and what it did ("flip: reverse west/east")."""
-    done = []
-    for action in actions or ():
-        if isinstance(action, dict):
-            for what, value in action.items():
-                if isinstance(value, (list, tuple)):
-                    value = "/".join(str(v) for v in value)
-                elif isinstance(value, dict):
-                    value = ", ".join(f"{k} {v}" for k, v in value.items())
-                done.append(f"{what} {value}")
-    return f"{rule}: {'; '.join(done)}" if done else str(rule)
+def reverses(actions: Any) -> bool:
+    """Whether a rule firing (its actions as recorded or stored) reversed the options."""
+    return any(isinstance(a, dict) and "reverse" in a for a in actions or ())
+
+
+def rule_text(rule: Any, actions: Any, reads: dict[str, Any] | None = None, spec: Rule | None = None) -> str:
+    """A rule firing in words (server/lab/rule_words.py), with why when the values it read
+    and the rule as written are at hand."""
+    return firing_words(str(rule), actions, reads, spec)
 
 
 def alarm_message(detail: Any) -> str | None:
@@ -104,8 +108,24 @@ def alarm_message(detail: Any) -> str | None:
     return None
 
 
-def box_facts(box: str, animal: str, session_id: int, session: Session, status: BoxStatus, connected: bool) -> BoxFacts:
-    """The facts of one running box (read on the lab's loop, sent to the page's process)."""
+def _fired_text(fired: RuleFired, session: Session) -> str:
+    spec = next((r for r in session.protocol.rules if r.name == fired.rule), None)
+    return rule_text(fired.rule, fired.actions, fired.values, spec)
+
+
+def box_facts(
+    box: str,
+    animal: str,
+    session_id: int,
+    session: Session,
+    status: BoxStatus,
+    connected: bool,
+    run_limit_s: float | None = None,
+) -> BoxFacts:
+    """The facts of one running box (read on the lab's loop, sent to the page's process).
+
+    `run_limit_s` is the run's own bound (`--minutes`), in session seconds: the session
+    ends at whichever comes first, its cap or the run's limit, and "time left" says so."""
     finished = session.finished
     rule = status.last_rule
     alarm = status.last_alarm
@@ -123,12 +143,14 @@ def box_facts(box: str, animal: str, session_id: int, session: Session, status: 
         "trial": session.trial_index,
         "trials_done": session.trials_done,
         "rewards": session.rewards,
+        "max_rewards": session.limits.max_rewards,
+        "reversals": status.reversals,
         "scored": status.scored,
         "correct": status.correct,
-        "limit_s": session.limits.max_minutes * 60.0,
+        "limit_s": min(session.limits.max_minutes * 60.0, run_limit_s if run_limit_s is not None else math.inf),
         "last_input_t": status.last_input_t,
         "link_lost": bool(status.link_lost or not connected),
-        "last_rule": None if rule is None else {"t": rule.t, "text": rule_text(rule.rule, rule.actions)},
+        "last_rule": None if rule is None else {"t": rule.t, "text": _fired_text(rule, session)},
         "end_reason": session.end_reason,
         "cap_reached": status.cap_reached,
         "rule_alarm": None if alarm is None else alarm_message(alarm.detail),

@@ -48,6 +48,7 @@ class BoxRun:
     link: BoxLink
     live: LiveSession
     status: BoxStatus = field(default_factory=BoxStatus)
+    run_limit_s: float | None = None  # the run's --minutes, in session seconds
 
     @property
     def ended(self) -> SessionEnded | None:
@@ -64,8 +65,9 @@ class BoxRun:
     def facts(self) -> BoxFacts:
         """The box's tile facts for the status page (read on the lab's loop)."""
         return box_facts(
-            self.config.name, self.config.animal, self.session_id, self.session, self.status, self.link.connected
-        )
+            self.config.name, self.config.animal, self.session_id, self.session, self.status, self.link.connected,
+            self.run_limit_s,
+        )  # fmt: skip
 
 
 class Lab:
@@ -86,6 +88,7 @@ class Lab:
         self.stages = StageKeeper(store, say)
         self._stop_reason: str | None = None
         self._clock: Callable[[], float] = lambda: 0.0
+        self._run_minutes: float | None = None  # the run's own bound (--minutes)
 
     @property
     def clock(self) -> Callable[[], float]:
@@ -149,6 +152,7 @@ class Lab:
 
     async def run(self, minutes: float | None = None) -> list[BoxRun]:
         loop = asyncio.get_running_loop()
+        self._run_minutes = minutes or None
         closed = self.store.close_interrupted(wall_now())
         if closed:
             self.say(f"closed {len(closed)} interrupted session(s) from an earlier run: {closed}")
@@ -200,19 +204,24 @@ class Lab:
         session = build_session(box.protocol, seed, self.config.caps, estimator_state=state)
         session_id = self.store.begin_session(
             box.name, box.animal, box.protocol.name, box.protocol.source,
-            box.protocol.sha256, seed, wall_now(), self._settings(box),
+            box.protocol.sha256, seed, wall_now(), self._settings(box, session),
         )  # fmt: skip
         status = BoxStatus()
         live = LiveSession(session, link, clock, self._publisher(box, session_id, status))
         self.say(f"{box.name}: animal {box.animal}, protocol '{box.protocol.name}', session {session_id}")
-        return BoxRun(box, session, session_id, link, live, status)
+        limit = None if self._run_minutes is None else self._run_minutes * 60.0
+        return BoxRun(box, session, session_id, link, live, status, run_limit_s=limit)
 
-    def _settings(self, box: BoxConfig) -> dict[str, Any]:
+    def _settings(self, box: BoxConfig, session: Session) -> dict[str, Any]:
         """What the store keeps of how the session was set up."""
         caps = self.config.caps
         emulate = box.emulate
+        limits = session.limits
         return {
             "caps": {"max_rewards": caps.max_rewards, "max_minutes": caps.max_minutes},
+            # what binds this session: the protocol's limits within the lab's hard caps
+            "limits": {"max_rewards": limits.max_rewards, "max_minutes": limits.max_minutes},
+            "run_minutes": self._run_minutes,  # the run's --minutes, which may end it before the cap
             "emulate": None if emulate is None else {
                 "agent": emulate.agent, "seed": emulate.seed, "traits": emulate.traits, "faults": emulate.faults,
             },

@@ -85,22 +85,49 @@ def get_session(conn: sqlite3.Connection, session_id: int) -> dict[str, Any] | N
     return found[0] if found else None
 
 
+# sessions with their accuracy and omissions, from their trials
+_HISTORY = (
+    "SELECT s.*,"
+    " (SELECT avg(correct) FROM trials WHERE session_id = s.id AND correct IS NOT NULL) AS accuracy,"
+    " (SELECT coalesce(sum(omission), 0) FROM trials WHERE session_id = s.id) AS omissions"
+    " FROM sessions s"
+)
+
+
 def animal_history(conn: sqlite3.Connection, animal: str) -> list[dict[str, Any]]:
     """Every session of one animal, oldest first, with accuracy and omissions from its trials.
 
     accuracy is the fraction correct over trials where correctness applies (None if none).
     """
-    return _dicts(
+    return _dicts(conn, _HISTORY + " WHERE s.animal = ? ORDER BY s.started_at, s.id", (animal,))
+
+
+def list_animals(conn: sqlite3.Connection) -> list[dict[str, Any]]:
+    """Every animal with a session: how many, the first and last start, the last box and
+    protocol, and every protocol it ran (oldest first), ordered by animal."""
+    found = _dicts(
         conn,
         (
-            "SELECT s.*,"
-            " (SELECT avg(correct) FROM trials WHERE session_id = s.id AND correct IS NOT NULL)"
-            "   AS accuracy,"
-            " (SELECT coalesce(sum(omission), 0) FROM trials WHERE session_id = s.id) AS omissions"
-            " FROM sessions s WHERE s.animal = ? ORDER BY s.started_at, s.id"
+            "SELECT s.animal, count(*) AS sessions, min(s.started_at) AS first_at, max(s.started_at) AS last_at,"
+            " (SELECT box FROM sessions WHERE animal = s.animal ORDER BY started_at DESC, id DESC LIMIT 1) AS box,"
+            " (SELECT protocol FROM sessions WHERE animal = s.animal ORDER BY started_at DESC, id DESC LIMIT 1)"
+            "   AS protocol"
+            " FROM sessions s GROUP BY s.animal ORDER BY s.animal"
         ),
-        (animal,),
     )
+    ran: dict[str, list[str]] = {}
+    for animal, protocol in conn.execute("SELECT animal, protocol FROM sessions ORDER BY started_at, id"):
+        if protocol not in ran.setdefault(animal, []):
+            ran[animal].append(protocol)
+    for row in found:
+        row["protocols"] = ran.get(row["animal"], [])
+    return found
+
+
+def protocol_history(conn: sqlite3.Connection, protocol: str) -> list[dict[str, Any]]:
+    """Every session that ran protocol `protocol` (by name), each animal's oldest first, with
+    accuracy and omissions as in `animal_history`."""
+    return _dicts(conn, _HISTORY + " WHERE s.protocol = ? ORDER BY s.animal, s.started_at, s.id", (protocol,))
 
 
 # ---------------------------------------------------------------- per session

@@ -17,8 +17,8 @@ from fastapi import APIRouter, HTTPException, Query, Response
 from fastapi.sse import EventSourceResponse, ServerSentEvent
 
 from server.store import csv_exports, queries
+from server.web.animal_page import animal_rows
 from server.web.schemas import AnimalOut, BoxTile, SessionOut
-from server.web.session_page import animal_rows
 
 LIVE_EVERY_S = 1.0
 
@@ -160,14 +160,13 @@ def api_router(state: Any) -> APIRouter:
     @router.get(
         "/animals/{animal:path}",
         response_model=AnimalOut,
-        summary="An animal's sessions, oldest first, with stage, accuracy and parameters",
+        summary="An animal's sessions, oldest first, with training stage, last block, accuracy (or PCA index), "
+        "reversals, trials to criterion, rewards against the cap and the last estimate's parameters",
     )
     def animal(animal: str) -> dict[str, Any]:
         history = animal_rows(state.store.conn(), animal)
         if not history:
             raise HTTPException(404, f"no sessions of animal '{animal}'")
-        for row in history:
-            row.pop("fitted_text", None)
         return {"animal": animal, "sessions": history}
 
     return router

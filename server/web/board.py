@@ -18,8 +18,10 @@ from datetime import datetime
 from pathlib import Path
 from typing import Any
 
+from server.lab.status import reverses
 from server.store import queries
 from server.store.wall_clock import local_now
+from server.web.session_protocol import protocol_of, rules_of
 from server.web.tiles import shown, tile_from_store
 
 
@@ -111,7 +113,12 @@ class Board:
         for session in queries.latest_sessions_per_box(conn):
             status = queries.session_status(conn, session["id"])
             firings = queries.session_rule_firings(conn, session["id"])
-            tiles.append(tile_from_store(session, status, firings[-1] if firings else None, wall, self.quiet_after_s))
+            reversals = sum(reverses(f["actions"]) for f in firings)
+            last = firings[-1] if firings else None
+            spec = None if last is None else rules_of(protocol_of(session)).get(last["rule"])
+            tiles.append(
+                tile_from_store(session, status, last, wall, self.quiet_after_s, reversals=reversals, rule_spec=spec)
+            )
         return tiles
 
     def _make(self, now: float) -> Snapshot:

@@ -14,6 +14,7 @@ from typing import Any, Protocol
 
 from fastapi import APIRouter, HTTPException, Request
 from fastapi.responses import RedirectResponse
+from pydantic import ValidationError
 
 from server.engine.records import ControlAction
 from server.web.auth import Refused, form_fields, supplied_token
@@ -52,6 +53,18 @@ async def _ask(live: LabControls, op: str, session_id: int, origin: str, text: s
     return reply
 
 
+async def _note(request: Request) -> NoteIn:
+    """The JSON body of a note, validated once the operator is known (422 when invalid)."""
+    try:
+        return NoteIn.model_validate_json(await request.body())
+    except ValidationError as exc:
+        problems = [
+            f"{'.'.join(str(p) for p in e.get('loc', ())) or 'body'}: {e.get('msg', 'invalid').lower()}"
+            for e in exc.errors()
+        ]
+        raise HTTPException(422, "; ".join(problems) or "invalid note") from None
+
+
 def controls_router(state: Any) -> APIRouter:
     router = APIRouter(tags=["controls"])
     live: LabControls = state.live
@@ -83,9 +96,19 @@ def controls_router(state: Any) -> APIRouter:
         response_model=NoteOut,
         status_code=201,
         summary="Store a note on a session (operator token required)",
+        openapi_extra={
+            "requestBody": {
+                "required": True,
+                "content": {"application/json": {"schema": NoteIn.model_json_schema()}},
+            }
+        },
     )
-    async def annotate(session_id: int, note: NoteIn, request: Request) -> dict[str, Any]:
+    async def annotate(session_id: int, request: Request) -> dict[str, Any]:
+        # The token first, the body after: a request without the right token learns
+        # nothing, not even what a valid note looks like (FastAPI would validate a body
+        # parameter before any check in the route).
         origin = await operator(request)
+        note = await _note(request)
         reply = await _ask(live, "annotate", session_id, origin, note.text)
         return {"id": reply["note_id"], "session_id": session_id, "origin": origin}
 

@@ -55,6 +55,7 @@ def page(title: str, body: Any, *, lab_name: str, body_class: str, read_only: bo
         "nav",
         el("a", "Boxes", href="/"),
         el("a", "Sessions", href="/sessions"),
+        el("a", "Animals", href="/animals"),
         el("a", "API", href="/api/openapi.json"),
     )
     mode = el("span", "read-only" if read_only else "live", class_="mode")

@@ -23,13 +23,25 @@ FIELDS = (
     ("accuracy", "accuracy", "big"),
     ("protocol", "protocol", "wide"),
     ("block", "block", ""),
-    ("elapsed", "elapsed", ""),
+    ("reversals", "reversals", ""),
     ("remaining", "time left", ""),
+    ("elapsed", "elapsed", ""),
     ("since_input", "last input", ""),
     ("link", "box link", ""),
     ("step", "step", ""),
     ("last_rule", "last rule", "wide"),
 )
+# left out of a tile when the overview packs many boxes on one screen (the session page
+# has them all)
+EXTRA = frozenset(("protocol", "elapsed", "link", "step", "last_rule"))
+# (most boxes, size name): the tiles shrink as the lab grows, so 32 fit on one laptop screen
+SIZES = ((8, "roomy"), (16, "compact"))
+DENSE = "dense"
+
+
+def size_for(boxes: int) -> str:
+    """The tile size for an overview of `boxes` boxes."""
+    return next((name for most, name in SIZES if boxes <= most), DENSE)
 
 
 def animal_href(animal: str) -> str:
@@ -75,9 +87,10 @@ def controls(state: str) -> Safe:
 
 def _tile_template(slot) -> Safe:
     figs = [
-        el("div", el("dt", label), el("dd", slot(key), data_f=key), class_=f"fig {size}".strip())
+        el("div", el("dt", label), el("dd", slot(key), data_f=key), class_=" ".join(
+            c for c in ("fig", size, "extra" if key in EXTRA else "", key) if c))
         for key, label, size in FIELDS
-    ]
+    ]  # fmt: skip
     return el(
         "article",
         el(
@@ -154,14 +167,13 @@ def overview_body(snap: Snapshot, *, with_controls: bool) -> Safe:
             class_="grid",
             id="board",
             data_boxes="\n".join(t["box"] for t in snap.tiles),
+            data_size=size_for(len(snap.tiles)),
         )
     else:
         grid = el("p", "No sessions yet.", class_="empty", id="board", data_boxes="")
+    # freshness first: a reader must know at once whether what follows is current
     return el(
         "div",
-        strip(snap.tiles),
-        operator_key() if with_controls else None,
-        grid,
         el(
             "p",
             "as of ",
@@ -169,6 +181,9 @@ def overview_body(snap: Snapshot, *, with_controls: bool) -> Safe:
             el("span", " · live updates", id="feed"),
             class_="asof",
         ),
+        strip(snap.tiles),
+        operator_key() if with_controls else None,
+        grid,
         icon_templates(),
         class_="overview",
     )

@@ -48,6 +48,10 @@ class LatestFeed:
     def running_sessions(self) -> set[int]:
         return {facts["session_id"] for facts in self.boxes if not facts["finished"]}
 
+    def paused_sessions(self) -> set[int]:
+        """Sessions paused right now (the store hears of a pause up to a second later)."""
+        return {facts["session_id"] for facts in self.boxes if facts["paused"] and not facts["finished"]}
+
 
 class LabView:
     """What the page knows of the lab, kept current by `run()` until the lab's end closes."""

@@ -9,7 +9,7 @@ from fastapi import APIRouter, HTTPException, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 
 from server.store import queries
-from server.web import session_page
+from server.web import animal_page, cohort_page, session_page
 from server.web.auth import TOKEN_FIELD, VIEW_COOKIE, form_fields
 from server.web.layout import page
 from server.web.markup import el
@@ -77,8 +77,9 @@ def pages_router(state: Any) -> APIRouter:
         controllable = (
             state.controls_on and found["end_reason"] is None and session_id in state.live.latest.running_sessions()
         )
+        paused = controllable and session_id in state.live.latest.paused_sessions()
         body = session_page.session_body(
-            state.store.conn(), found, controllable=controllable, notice=NOTICES.get(done or "")
+            state.store.conn(), found, controllable=controllable, notice=NOTICES.get(done or ""), paused=paused
         )
         return html(f"Session {session_id}", body, "pg-session")
 
@@ -87,12 +88,25 @@ def pages_router(state: Any) -> APIRouter:
         found = _session(session_id)
         return HTMLResponse(str(session_page.panels(state.store.conn(), found)))
 
+    @router.get("/animals")
+    def animals() -> HTMLResponse:
+        return html("Animals", cohort_page.animals_body(queries.list_animals(state.store.conn())), "pg-animals")
+
     @router.get("/animals/{animal:path}")
     def animal(animal: str) -> HTMLResponse:
-        history = session_page.animal_rows(state.store.conn(), animal)
+        conn = state.store.conn()
+        history = animal_page.animal_rows(conn, animal)
         if not history:
             raise HTTPException(404, f"no sessions of animal '{animal}'")
-        return html(f"Animal {animal}", session_page.animal_body(animal, history), "pg-animal")
+        body = animal_page.animal_body(animal, history, animal_page.stage_rows(conn, animal))
+        return html(f"Animal {animal}", body, "pg-animal")
+
+    @router.get("/cohorts/{protocol:path}")
+    def cohort(protocol: str) -> HTMLResponse:
+        by_animal = cohort_page.cohort_rows(state.store.conn(), protocol)
+        if not by_animal:
+            raise HTTPException(404, f"no sessions of protocol '{protocol}'")
+        return html(f"Cohort {protocol}", cohort_page.cohort_body(protocol, by_animal), "pg-cohort")
 
     @router.get("/login")
     def login_form() -> Response:

@@ -13,13 +13,18 @@ from typing import Any
 from server.engine.stay import CONDITION_NAMES, CONDITIONS, StayCount
 from server.web.markup import Safe, el
 from server.web.svg import Plot
+from server.web.words import quantity
 
 OPERANT_KINDS = ("lever_press", "nose_poke")  # inputs an animal works on (wiring kinds)
+RAIL_HI, RAIL_LO = 1.2, -0.2  # where the choice panel draws each option's row
 MAX_STEPS = 3000  # points kept per cumulative line; beyond this the line is thinned
-PARAM_TITLES = {
-    "alpha": "learning rate α",
-    "beta": "inverse temperature β (lower = more exploration)",
-}
+
+
+def trial_axis(trials: Sequence[dict[str, Any]]) -> tuple[float, float]:
+    """The x range every trial-indexed panel of a session shares, so trial n sits at the
+    same place on each of them."""
+    last = max((t["trial"] for t in trials), default=1)
+    return (0.5, last + 0.5)
 
 
 def _minutes(seconds: float) -> float:
@@ -88,10 +93,13 @@ def cumulative_record(
     firings: Sequence[dict[str, Any]],
     pauses: Sequence[tuple[float, float]],
     end_t: float,
+    also: Sequence[str] = (),
 ) -> Safe:
-    """Responses over time, one staircase per response input; reinforcers marked as squares
-    on the line of the response that earned them (on the floor when none did)."""
+    """Responses over time, one staircase per response input (and per input in `also`,
+    e.g. magazine entries of a Pavlovian session); reinforcers marked as squares on the line
+    of the response that earned them (on the floor when none did)."""
     names = response_inputs(session.get("settings"), inputs, trials)
+    names += [n for n in also if n not in names]
     times: dict[str, list[float]] = {n: [] for n in names}
     for ev in inputs:
         if ev["name"] in times and ev["value"]:
@@ -105,6 +113,7 @@ def cumulative_record(
         title="Cumulative record",
         x_label="minutes",
         y_label="responses",
+        whole_y=True,
     )
     if pauses:
         plot.spans([(_minutes(a), _minutes(b)) for a, b in pauses], 0, top * 1.05, "paused")
@@ -115,7 +124,7 @@ def cumulative_record(
         ys = [0.0] + [float(k + 1) for k in range(len(ts))] + [float(len(ts))]
         xs, ys = _thin(xs, ys)
         plot.steps(xs, ys, f"c{i % 4 + 1}")
-        plot.legend(f"c{i % 4 + 1}", name)
+        plot.legend(f"c{i % 4 + 1}", f"{name} (entries)" if name in also else name)
     starts = [t["t_start"] for t in trials]
     px, py = [], []
     for t in pellets:
@@ -155,13 +164,17 @@ def choice_panel(trials: Sequence[dict[str, Any]], estimates: Sequence[dict[str,
     for est in estimates:
         options = sorted(set(options) | set((est["data"] or {}).get("p_choice") or {}))
     first = options[0]
-    last_trial = max(t["trial"] for t in trials)
+    other = options[1] if len(options) == 2 else "other"
+    # each choice row labelled with its option, beside the probability axis
+    rows = {RAIL_HI: first, 1.0: "1", 0.5: "0.5", 0.0: "0", RAIL_LO: other}
     plot = Plot(
-        (0.5, last_trial + 0.5),
-        (-0.12, 1.12),
+        trial_axis(trials),
+        (RAIL_LO - 0.1, RAIL_HI + 0.1),
         title=f"Choices and P({first})",
+        subtitle=f"top row: chose {first}; bottom row: chose {other}; line: probability of {first}",
         x_label="trial",
-        y_ticks=[0.0, 0.25, 0.5, 0.75, 1.0],
+        y_ticks=sorted(rows),
+        y_tick_text=rows,
         whole_x=True,
     )
     if estimates:
@@ -180,14 +193,14 @@ def choice_panel(trials: Sequence[dict[str, Any]], estimates: Sequence[dict[str,
         plot.legend("obs", f"observed P({first}), last 10")
     for rewarded, shape, label in ((True, "dot", "rewarded"), (False, "ring", "not rewarded")):
         picked = [t for t in choice_trials if bool(t["rewarded"]) == rewarded]
-        rail = [1.06 if t["choice"] == first else -0.06 for t in picked]
+        rail = [RAIL_HI if t["choice"] == first else RAIL_LO for t in picked]
         plot.marks([t["trial"] for t in picked], rail, f"ch {shape}", shape=shape, size=3.5)
         plot.legend(f"ch {shape}", label)
     omitted = [t["trial"] for t in trials if t.get("omission")]
     plot.marks(omitted, [0.5] * len(omitted), "omit", shape="tick", size=5)
     if omitted:
         plot.legend("omit", "omission")
-    return plot.render()
+    return plot.render(axis="trial")
 
 
 def two_stage_panels(trials: Sequence[dict[str, Any]]) -> list[Safe]:
@@ -197,8 +210,7 @@ def two_stage_panels(trials: Sequence[dict[str, Any]]) -> list[Safe]:
     played = [t for t in trials if t.get("state") is not None]
     if not played:
         return []
-    last_trial = max(t["trial"] for t in trials)
-    x_range = (0.5, last_trial + 0.5)
+    x_range = trial_axis(trials)
     odds = Plot(x_range, (0.0, 1.0), title="Second-stage reward probabilities", x_label="trial",
                 y_label="P(reward)", y_ticks=[0.0, 0.25, 0.5, 0.75, 1.0], whole_x=True, height=220)  # fmt: skip
     series: dict[str, tuple[list[float], list[float]]] = {}
@@ -237,7 +249,7 @@ def two_stage_panels(trials: Sequence[dict[str, Any]]) -> list[Safe]:
         "the rail); red ticks: no response.",
         class_="note",
     )
-    return [odds.render(), choices.render(), key]
+    return [odds.render(axis="trial"), choices.render(axis="trial"), key]
 
 
 def stay_panel(counts: dict[tuple[bool, bool], StayCount]) -> Safe | None:
@@ -264,8 +276,9 @@ def stay_panel(counts: dict[tuple[bool, bool], StayCount]) -> Safe | None:
     return plot.render()
 
 
-def parameter_panels(estimates: Sequence[dict[str, Any]]) -> list[Safe]:
-    """One panel per model parameter: posterior mean with its 95 % band (2.5–97.5 %)."""
+def parameter_panels(estimates: Sequence[dict[str, Any]], x_range: tuple[float, float]) -> list[Safe]:
+    """One panel per model parameter: posterior mean with its 95 % band (2.5–97.5 %), on
+    the session's trial axis; each titled with what it means for the animal."""
     if not estimates:
         return []
     names: list[str] = []
@@ -283,32 +296,28 @@ def parameter_panels(estimates: Sequence[dict[str, Any]]) -> list[Safe]:
         high = [r["high"] for r in rows if r]
         if not xs:
             continue
+        title, subtitle = quantity(name)
         plot = Plot(
-            (0.0, max(xs) + 0.5),
+            x_range,
             (min(low + [0.0]), max(high) * 1.05),
-            title=PARAM_TITLES.get(name, name),
+            title=title,
+            subtitle=subtitle,
             x_label="trial",
-            height=220,
+            height=240,
             whole_x=True,
         )
         plot.band(xs, low, high, "ci")
         plot.line(xs, mean, "mean")
         plot.legend("ci", "95 % band")
         plot.legend("mean", "posterior mean")
-        panels.append(plot.render())
+        panels.append(plot.render(axis="trial"))
     reported = [(e["trial"], (e["data"] or {}).get("exploration")) for e in estimates]
     explore: list[tuple[Any, float]] = [(t, v) for t, v in reported if isinstance(v, (int, float))]
     if explore:
-        plot = Plot(
-            (0.0, explore[-1][0] + 0.5),
-            (0.0, 1.0),
-            height=200,
-            title="exploration: P(not choosing the best option next)",
-            x_label="trial",
-            whole_x=True,
-        )
+        title, subtitle = quantity("exploration")
+        plot = Plot(x_range, (0.0, 1.0), height=220, title=title, subtitle=subtitle, x_label="trial", whole_x=True)
         plot.line([t for t, _ in explore], [v for _, v in explore], "mean")
-        panels.append(plot.render())
+        panels.append(plot.render(axis="trial"))
     return panels
 
 
@@ -340,39 +349,3 @@ def iti_timeline(
     plot.rules([_minutes(b["t_start"]) for b in blocks[1:]], [b["block"] for b in blocks[1:]], "blk")
     _rule_marks(plot, firings)
     return plot.render()
-
-
-def animal_panels(history: Sequence[dict[str, Any]]) -> list[Safe]:
-    """Accuracy and trials per session across an animal's sessions, oldest first."""
-    if not history:
-        return []
-    n = len(history)
-    xs = list(range(1, n + 1))
-    panels = []
-    acc = [(x, s["accuracy"]) for x, s in zip(xs, history) if s.get("accuracy") is not None]
-    if acc:
-        plot = Plot(
-            (0.5, n + 0.5),
-            (0.0, 1.0),
-            title="Accuracy per session",
-            x_label="session",
-            height=220,
-            y_ticks=[0.0, 0.25, 0.5, 0.75, 1.0],
-            whole_x=True,
-        )
-        plot.line([x for x, _ in acc], [a for _, a in acc], "mean")
-        plot.marks([x for x, _ in acc], [a for _, a in acc], "mean", shape="dot")
-        panels.append(plot.render())
-    counts = [float(s["trials"]) for s in history]
-    plot = Plot(
-        (0.5, n + 0.5),
-        (0.0, max(counts + [1.0]) * 1.05),
-        title="Trials per session",
-        x_label="session",
-        height=200,
-        whole_x=True,
-    )
-    for x, c in zip(xs, counts):
-        plot.spans([(x - 0.3, x + 0.3)], 0.0, c, "bar")
-    panels.append(plot.render())
-    return panels

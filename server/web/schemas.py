@@ -33,9 +33,11 @@ class BoxTile(BaseModel):
     trial: int = Field(description="trial in progress (or the last one done)")
     trials_done: int
     rewards: int
+    max_rewards: int | None = Field(None, description="the session's reward cap (None when not known)")
+    reversals: int | None = Field(None, description="rule firings so far that reversed the options")
     accuracy: float | None = Field(description="fraction correct over scored trials")
     elapsed_s: float
-    remaining_s: float | None = Field(description="until the session time limit")
+    remaining_s: float | None = Field(description="until the session time limit or the run's --minutes")
     since_input_s: float | None = Field(description="seconds since the last input onset")
     link: str = Field(description="up, lost, or unknown (read from the store)")
     last_rule: RuleOut | None

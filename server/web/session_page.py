@@ -1,5 +1,5 @@
-"""The session page (plots, rule firings, notes, event log, controls), the animal page and
-the list of sessions, rendered from the read-only store."""
+"""The session page (plots, rule firings, notes, event log, controls) and the list of
+sessions, rendered from the read-only store."""
 
 from __future__ import annotations
 
@@ -10,12 +10,17 @@ from datetime import datetime, timedelta
 from typing import Any
 
 from server.engine.stay import stay_counts
-from server.lab.status import rule_text
+from server.lab.status import reverses
+from server.protocol.model import Pavlovian
 from server.store import queries
 from server.web import plots
 from server.web.markup import Safe, el
 from server.web.overview import animal_href
-from server.web.tiles import clock_text
+from server.web.pca import classify, pca_panel, pca_parts
+from server.web.session_protocol import protocol_of, rules_of
+from server.web.tables import percent, table, when
+from server.web.tiles import clock_text, rewards_text, session_limits
+from server.web.words import firing_words
 
 EVENT_TAIL = 60
 
@@ -28,26 +33,6 @@ def _fmt(value: Any, digits: int = 3) -> str:
     if isinstance(value, float):
         return f"{value:.{digits}g}"
     return str(value)
-
-
-def _when(iso: str | None) -> str:
-    """An ISO 8601 time as people read it: date, time to the second, UTC offset."""
-    if not iso:
-        return "–"
-    try:
-        moment = datetime.fromisoformat(iso)
-    except ValueError:
-        return iso
-    return moment.isoformat(sep=" ", timespec="seconds")
-
-
-def _table(header: list[str], rows: list[list[Any]], *, cls: str = "tbl") -> Safe:
-    return el(
-        "table",
-        el("thead", el("tr", [el("th", h, scope="col") for h in header])),
-        el("tbody", [el("tr", [el("td", c) for c in row]) for row in rows]),
-        class_=cls,
-    )
 
 
 def session_end_t(session: dict[str, Any], status: dict[str, Any], trials: list[dict[str, Any]]) -> float:
@@ -69,6 +54,8 @@ def panels(conn: sqlite3.Connection, session: dict[str, Any]) -> Safe:
     pause_events.sort(key=lambda ev: ev["id"])
     end_t = session_end_t(session, status, trials)
     pauses = plots.pause_spans(pause_events, end_t)
+    pav = pavlovian_of(session)
+    x_range = plots.trial_axis(trials)
     parts: list[Any] = [
         plots.cumulative_record(
             session=session,
@@ -79,6 +66,7 @@ def panels(conn: sqlite3.Connection, session: dict[str, Any]) -> Safe:
             firings=firings,
             pauses=pauses,
             end_t=end_t,
+            also=() if pav is None else (pav.magazine,),
         )
     ]
     two_stage = plots.two_stage_panels(trials)
@@ -87,10 +75,12 @@ def panels(conn: sqlite3.Connection, session: dict[str, Any]) -> Safe:
         stay = plots.stay_panel(stay_counts(queries.trial_records(conn, sid)))
         if stay is not None:
             parts.append(stay)
+    elif pav is not None:
+        parts.extend(pca_panel(trials, pav, x_range) or [el("p", "No CS trials yet.", class_="note")])
     else:
         choice = plots.choice_panel(trials, estimates)
         parts.append(choice if choice is not None else el("p", "No choice trials in this session.", class_="note"))
-    estimated = plots.parameter_panels(estimates)
+    estimated = plots.parameter_panels(estimates, x_range)
     parts.extend(estimated or [el("p", "No learning-model estimates stored for this session.", class_="note")])
     timeline = plots.iti_timeline(trials, blocks, pauses, firings, end_t)
     if timeline is not None:
@@ -108,28 +98,45 @@ def panels(conn: sqlite3.Connection, session: dict[str, Any]) -> Safe:
     return el("div", parts, class_="panels")
 
 
-def _firings_list(firings: list[dict[str, Any]]) -> Safe:
+def pavlovian_of(session: dict[str, Any]) -> Pavlovian | None:
+    """The session's Pavlovian CS (for the PCA panel), from the protocol that ran."""
+    protocol = protocol_of(session)
+    return None if protocol is None else protocol.pavlovian
+
+
+def _firings_list(session: dict[str, Any], firings: list[dict[str, Any]]) -> Safe:
     if not firings:
         return el("p", "No rule firings recorded.", class_="note")
+    rules = rules_of(protocol_of(session))
     rows = [
-        [
-            clock_text(row["t"]),
-            row["trial"],
-            rule_text(row["rule"], row["actions"]),
-            ", ".join(f"{k} = {_fmt(v)}" for k, v in (row.get("reads") or {}).items()),
-        ]
-        for row in firings
+        [clock_text(r["t"]), r["trial"], firing_words(r["rule"], r["actions"], r.get("reads"), rules.get(r["rule"]))]
+        for r in firings
     ]
-    return _table(["at", "after trial", "rule and action", "values read"], rows)
+    return table(["at", "after trial", "what the rule did and why"], rows, cls="tbl firings")
 
 
-def _control_form(session: dict[str, Any]) -> Safe:
+def _measures(
+    conn: sqlite3.Connection, session: dict[str, Any], status: dict[str, Any], firings: list[dict[str, Any]]
+) -> list[tuple[str, Any, str]]:
+    """The session's main measures: accuracy and reversals, or for a Pavlovian session its
+    PCA index and what it classifies the animal as."""
+    pav = pavlovian_of(session)
+    parts = None if pav is None else pca_parts(queries.session_trials(conn, session["id"]), pav)
+    if parts is not None:
+        return [("PCA index", f"{parts.index:+.2f} ({classify(parts.index)})", "")]
+    return [
+        ("accuracy", percent(status["accuracy"]), ""),
+        ("reversals", sum(reverses(f["actions"]) for f in firings), ""),
+    ]
+
+
+def control_form(session: dict[str, Any], *, paused: bool) -> Safe:
+    """The session page's controls: pause while running, resume while paused (never both)."""
     sid = session["id"]
     buttons = [
         el("button", label, type="submit", name="action", value=action, class_="danger" if action == "stop" else None)
         for action, label in (
-            ("pause", "pause"),
-            ("resume", "resume"),
+            ("resume", "resume") if paused else ("pause", "pause"),
             ("stop", "stop session"),
             ("annotate", "add note"),
         )
@@ -148,21 +155,33 @@ def _control_form(session: dict[str, Any]) -> Safe:
     )
 
 
-def session_body(conn: sqlite3.Connection, session: dict[str, Any], *, controllable: bool, notice: str | None) -> Safe:
+def session_body(
+    conn: sqlite3.Connection,
+    session: dict[str, Any],
+    *,
+    controllable: bool,
+    notice: str | None,
+    paused: bool | None = None,
+) -> Safe:
+    """The session page; `paused` is the running lab's word on it (else the store's)."""
     sid = session["id"]
     status = queries.session_status(conn, sid)
     running = session["end_reason"] is None
+    paused = running and (bool(status["paused"]) if paused is None else paused)
+    firings = queries.session_rule_firings(conn, sid)
+    limits = session_limits(session.get("settings"))
+    state = ("paused" if paused else "running") if running else f"ended – {session['end_reason']}"
     facts = [
-        ("box", session["box"]),
-        ("animal", el("a", session["animal"], href=animal_href(session["animal"]))),
-        ("protocol", session["protocol"]),
-        ("started", _when(session["started_at"])),
-        ("state", "running" if running else f"ended – {session['end_reason']}"),
-        ("trials", session["trials"]),
-        ("rewards", session["rewards"]),
-        ("accuracy", "–" if status["accuracy"] is None else f"{100 * status['accuracy']:.0f}\u202f%"),
-        ("block", status["block"] or "–"),
-        ("seed", session["seed"]),
+        ("box", session["box"], ""),
+        ("animal", el("a", session["animal"], href=animal_href(session["animal"])), ""),
+        ("protocol", session["protocol"], ""),
+        ("started", when(session["started_at"]), ""),
+        ("state", state, ""),
+        ("trials", session["trials"], ""),
+        ("rewards", rewards_text(session["rewards"], limits.get("max_rewards")), ""),
+        *_measures(conn, session, status, firings),
+        ("block", status["block"] or "–", ""),
+        ("seed", session["seed"], "seed"),
     ]
     events = queries.session_events(conn, sid, tail=EVENT_TAIL)
     event_rows = [
@@ -181,7 +200,9 @@ def session_body(conn: sqlite3.Connection, session: dict[str, Any], *, controlla
         "div",
         el("h1", f"Session {sid}: ", el("span", session["box"]), " · ", el("span", session["animal"])),
         el("p", notice, class_="notice", role="status") if notice else None,
-        el("dl", [el("div", el("dt", k), el("dd", v), class_="fig") for k, v in facts], class_="facts"),
+        el(
+            "dl", [el("div", el("dt", k), el("dd", v), class_=f"fact {c}".strip()) for k, v, c in facts], class_="facts"
+        ),  # fmt: skip
         el(
             "p",
             el("a", "trials (CSV)", href=f"/api/sessions/{sid}/trials.csv"),
@@ -193,20 +214,20 @@ def session_body(conn: sqlite3.Connection, session: dict[str, Any], *, controlla
             el("a", "JSON", href=f"/api/sessions/{sid}"),
             class_="downloads",
         ),
-        _control_form(session) if controllable else None,
+        control_form(session, paused=paused) if controllable else None,
         el("section", panels(conn, session), id="panels", data_refresh=f"/sessions/{sid}/panels" if running else None),
-        el("section", el("h2", "Rule firings"), _firings_list(queries.session_rule_firings(conn, sid))),
+        el("section", el("h2", "Rule firings"), _firings_list(session, firings)),
         el(
             "section",
             el("h2", "Notes"),
-            _table(["written", "session time", "by", "note"], note_rows)
+            table(["written", "session time", "by", "note"], note_rows)
             if note_rows
             else el("p", "No notes.", class_="note"),
         ),
         el(
             "section",
             el("h2", f"Event log (last {EVENT_TAIL}, newest first)"),
-            _table(["time", "t (s)", "kind", "name", "value", "detail"], event_rows, cls="tbl log"),
+            table(["time", "t (s)", "kind", "name", "value", "detail"], event_rows, cls="tbl log"),
         ),
         class_="session",
     )
@@ -219,7 +240,7 @@ def _notes(conn: sqlite3.Connection, session: dict[str, Any]) -> list[tuple[floa
     out: list[tuple[float, list[Any]]] = []
     for n in queries.session_annotations(conn, sid):
         t = n["t"] if n["t"] is not None else math.inf
-        out.append((t, [_when(n["wall_time"]), clock_text(n["t"]), n["origin"], n["text"]]))
+        out.append((t, [when(n["wall_time"]), clock_text(n["t"]), n["origin"], n["text"]]))
     try:
         started = datetime.fromisoformat(session["started_at"])
     except (TypeError, ValueError):
@@ -228,89 +249,16 @@ def _notes(conn: sqlite3.Connection, session: dict[str, Any]) -> list[tuple[floa
         text = (ev["detail"] or {}).get("text") if isinstance(ev["detail"], dict) else None
         if text is None:  # the link's and the session's own notes go in the event log only
             continue
-        written = _when((started + timedelta(seconds=ev["t"])).isoformat()) if started else "–"
+        written = when((started + timedelta(seconds=ev["t"])).isoformat()) if started else "–"
         out.append((ev["t"], [written, clock_text(ev["t"]), f"rule {ev['name']}", text]))
     return out
-
-
-def _params_text(estimate: dict[str, Any] | None) -> str:
-    if not estimate:
-        return "–"
-    params = (estimate["data"] or {}).get("params") or {}
-    return "; ".join(f"{name} {p['mean']:.3g} [{p['low']:.3g}–{p['high']:.3g}]" for name, p in params.items()) or "–"
-
-
-def animal_rows(conn: sqlite3.Connection, animal: str) -> list[dict[str, Any]]:
-    """An animal's sessions (oldest first) with the last block reached and the parameters of
-    the last estimate of each session."""
-    history = queries.animal_history(conn, animal)
-    for row in history:
-        row["stage"] = queries.session_status(conn, row["id"])["block"]
-        estimate = queries.last_estimate(conn, row["id"])
-        row["fitted"] = (
-            None
-            if estimate is None
-            else {
-                "model": estimate["model"],
-                "trial": estimate["trial"],
-                "params": (estimate["data"] or {}).get("params") or {},
-            }
-        )
-        row["fitted_text"] = _params_text(estimate)
-    return history
-
-
-def animal_body(animal: str, history: list[dict[str, Any]]) -> Safe:
-    rows = [
-        [
-            el("a", str(s["id"]), href=f"/sessions/{s['id']}"),
-            _when(s["started_at"]),
-            s["box"],
-            s["protocol"],
-            s["stage"] or "–",
-            s["trials"],
-            s["rewards"],
-            "–" if s["accuracy"] is None else f"{100 * s['accuracy']:.0f}\u202f%",
-            s["omissions"],
-            s["end_reason"] or "running",
-            s["fitted_text"],
-        ]
-        for s in history
-    ]
-    return el(
-        "div",
-        el("h1", "Animal ", el("span", animal)),
-        el(
-            "p",
-            el("a", "every choice, for vigil fit (CSV)", href=f"/api{animal_href(animal)}/choices.csv"),
-            class_="downloads",
-        ),
-        el("div", plots.animal_panels(history), class_="panels"),
-        _table(
-            [
-                "session",
-                "started",
-                "box",
-                "protocol",
-                "stage",
-                "trials",
-                "rewards",
-                "accuracy",
-                "omissions",
-                "end",
-                "parameters (mean [95 %])",
-            ],
-            rows,
-        ),
-        class_="animal",
-    )
 
 
 def sessions_body(sessions: list[dict[str, Any]]) -> Safe:
     rows = [
         [
             el("a", str(s["id"]), href=f"/sessions/{s['id']}"),
-            _when(s["started_at"]),
+            when(s["started_at"]),
             s["box"],
             el("a", s["animal"], href=animal_href(s["animal"])),
             s["protocol"],
@@ -323,7 +271,7 @@ def sessions_body(sessions: list[dict[str, Any]]) -> Safe:
     return el(
         "div",
         el("h1", "Sessions"),
-        _table(["session", "started", "box", "animal", "protocol", "trials", "rewards", "end"], rows)
+        table(["session", "started", "box", "animal", "protocol", "trials", "rewards", "end"], rows)
         if rows
         else el("p", "No sessions yet.", class_="note"),
         class_="sessions",

@@ -86,6 +86,8 @@ class Plot:
         y_tick_text: dict[float, str] | None = None,
         x_tick_text: dict[float, str] | None = None,
         whole_x: bool = False,
+        whole_y: bool = False,
+        subtitle: str = "",
     ):
         self.x0, self.x1 = padded(*x_range)
         self.y0, self.y1 = padded(*y_range)
@@ -94,11 +96,13 @@ class Plot:
         self.y_label = y_label
         self.width = width
         self.height = height
-        self.left, self.right, self.top, self.bottom = 78, 18, 34, 52
+        self.subtitle = subtitle  # a plain-language line under the title
+        self.left, self.right, self.top, self.bottom = 78, 18, 52 if subtitle else 34, 52
         self._y_ticks = list(y_ticks) if y_ticks is not None else None
         self._y_tick_text = y_tick_text or {}
         self._x_tick_text = x_tick_text or {}  # categories on x: only these ticks, with these texts
         self.whole_x = whole_x  # x counts trials or sessions: integer ticks only
+        self.whole_y = whole_y  # y counts responses, rewards or trials: integer ticks only
         self._layers: list[Safe] = []
         self._legend: list[tuple[str, str]] = []
 
@@ -148,7 +152,8 @@ class Plot:
     def marks(
         self, xs: Sequence[float], ys: Sequence[float], cls: str, *, shape: str = "dot", size: float = 4.0
     ) -> None:
-        """Point marks; `shape` is dot, ring, square or tick (a short vertical bar)."""
+        """Point marks; `shape` is dot, ring, square, tick (a short vertical bar) or hbar (a
+        short horizontal one)."""
         parts = []
         for x, y in zip(xs, ys):
             if not (math.isfinite(x) and math.isfinite(y)):
@@ -160,6 +165,8 @@ class Plot:
                 parts.append(
                     f'<rect x="{cx - size:.1f}" y="{cy - size:.1f}" width="{2 * size:g}" height="{2 * size:g}"/>'
                 )
+            elif shape == "hbar":
+                parts.append(f'<line x1="{cx - size:.1f}" y1="{cy:.1f}" x2="{cx + size:.1f}" y2="{cy:.1f}"/>')
             else:
                 parts.append(f'<line x1="{cx:.1f}" y1="{cy - size:.1f}" x2="{cx:.1f}" y2="{cy + size:.1f}"/>')
         if parts:
@@ -209,15 +216,17 @@ class Plot:
         for v, text in zip(xt, tick_texts(xt)):
             text = self._x_tick_text.get(v, text)
             x = f"{self.px(v):.1f}"
-            parts.append(el("line", x1=x, x2=x, y1=bottom, y2=bottom + 6, class_="tk"))
+            parts.append(el("line", x1=x, x2=x, y1=bottom, y2=bottom + 6, class_="tk", data_v=f"{v:g}"))
             parts.append(el("text", text, x=x, y=bottom + 22, class_="tl x"))
-        yt = self._y_ticks if self._y_ticks is not None else nice_ticks(self.y0, self.y1, 4)
+        yt = self._y_ticks if self._y_ticks is not None else nice_ticks(self.y0, self.y1, 4, whole=self.whole_y)
         for v, text in zip(yt, tick_texts(yt)):
             y = f"{self.py(v):.1f}"
             parts.append(el("line", x1=left - 6, x2=right, y1=y, y2=y, class_="grid"))
             text = self._y_tick_text.get(v, text)
             parts.append(el("text", text, x=left - 10, y=y, class_="tl y"))
         parts.append(el("text", self.title, x=left, y=22, class_="pt"))
+        if self.subtitle:
+            parts.append(el("text", self.subtitle, x=left, y=40, class_="ps"))
         if self.x_label:
             parts.append(el("text", self.x_label, x=right, y=self.height - 8, class_="al x"))
         if self.y_label:  # along the left edge, turned to read upwards
@@ -228,15 +237,23 @@ class Plot:
         return join(*parts)
 
     def _legend_svg(self) -> Safe:
+        """The keys at the top right; along the bottom left instead when they would run into
+        the title (~9.5 px per 16 px bold glyph, ~7.5 px per 12 px key glyph)."""
+        widths = [14 + 7.5 * len(text) + 18 for _, text in self._legend]
+        title_end = self.left + 9.5 * len(self.title) + 16
+        at_top = self.width - self.right - sum(widths) >= title_end
         parts = []
-        x: float = self.width - self.right
-        for cls, text in reversed(self._legend):
-            x -= 14 + 8.2 * len(text) + 18
-            parts.append(el("rect", x=f"{x:.0f}", y=12, width=14, height=10, class_=f"key {cls}"))
-            parts.append(el("text", text, x=f"{x + 19:.0f}", y=22, class_="kt"))
+        x: float = self.width - self.right - sum(widths) if at_top else self.left
+        y = 12 if at_top else self.height - 18
+        for (cls, text), width in zip(self._legend, widths):
+            parts.append(el("rect", x=f"{x:.0f}", y=y, width=14, height=10, class_=f"key {cls}"))
+            parts.append(el("text", text, x=f"{x + 19:.0f}", y=y + 10, class_="kt"))
+            x += width
         return join(*parts)
 
-    def render(self, *, css_class: str = "plot") -> Safe:
+    def render(self, *, css_class: str = "plot", axis: str | None = None) -> Safe:
+        """The panel's SVG; `axis` names what x counts ("trial") so panels sharing it can be
+        found (and lined up) on the page."""
         clip = f"clip{next(_clip_ids)}"
         inner = el(
             "rect",
@@ -257,4 +274,7 @@ class Plot:
             role="img",
             class_=css_class,
             aria_label=self.title,
+            data_axis=axis,
+            data_x0=f"{self.x0:g}" if axis else None,
+            data_x1=f"{self.x1:g}" if axis else None,
         )

@@ -13,6 +13,7 @@ from datetime import datetime
 from typing import Any
 
 from server.lab.status import BoxFacts, alarm_message, rule_text
+from server.protocol.model import Rule
 
 # End reasons of a session that ran its course; anything else ended it early.
 # "time limit" is how databases before the run time limit had its own words spelled it.
@@ -90,6 +91,8 @@ def tile_from_facts(facts: BoxFacts, now: float, quiet_after_s: float) -> dict[s
         trial=facts["trial"],
         trials_done=facts["trials_done"],
         rewards=facts["rewards"],
+        max_rewards=facts.get("max_rewards"),
+        reversals=facts.get("reversals"),
         accuracy=(facts["correct"] / scored) if scored else None,
         elapsed_s=now,
         remaining_s=None if finished else max(0.0, facts["limit_s"] - now),
@@ -113,14 +116,25 @@ def tile_from_facts(facts: BoxFacts, now: float, quiet_after_s: float) -> dict[s
 # ---------------------------------------------------------------- from the store
 
 
+def session_limits(settings: dict[str, Any] | None) -> dict[str, Any]:
+    """What bound a stored session: its limits within the lab's caps (older stores kept
+    only the caps)."""
+    settings = settings or {}
+    return {**(settings.get("caps") or {}), **(settings.get("limits") or {})}
+
+
 def tile_from_store(
     session: dict[str, Any],
     status: dict[str, Any],
     last_rule: dict[str, Any] | None,
     now: datetime,
     quiet_after_s: float,
+    reversals: int | None = None,
+    rule_spec: Rule | None = None,
 ) -> dict[str, Any]:
-    """A tile from a stored session row and `queries.session_status`, at wall time `now`.
+    """A tile from a stored session row and `queries.session_status`, at wall time `now`;
+    `reversals` counts the session's rule firings that reversed the options; `rule_spec` is
+    the last firing's rule as the protocol wrote it, when the protocol is at hand.
 
     The store cannot tell a session still running in another process from one whose
     process died; both show as running until the next run closes it as interrupted.
@@ -134,17 +148,22 @@ def tile_from_store(
         elapsed = max(0.0, (datetime.fromisoformat(session["ended_at"]) - started).total_seconds())
     else:
         elapsed = status["last_t"] or 0.0
-    caps = (session.get("settings") or {}).get("caps") or {}
-    max_minutes = caps.get("max_minutes")
+    settings = session.get("settings") or {}
+    # what binds the session: its limits within the lab's caps (older stores: the caps)
+    limits = session_limits(settings)
+    # the session ends at its limit or at the run's --minutes, whichever comes first
+    bounds = [m for m in (limits.get("max_minutes"), settings.get("run_minutes")) if isinstance(m, (int, float))]
+    max_rewards = limits.get("max_rewards")
     remaining = None
-    if running and isinstance(max_minutes, (int, float)):
-        remaining = max(0.0, max_minutes * 60.0 - elapsed)
+    if running and bounds:
+        remaining = max(0.0, min(bounds) * 60.0 - elapsed)
     last_input = status["last_input_t"]
     since_input = max(0.0, elapsed - last_input) if (running and last_input is not None) else None
     paused = bool(status.get("paused")) and running
     rule = None
     if last_rule is not None:
-        rule = {"t": last_rule["t"], "text": rule_text(last_rule["rule"], last_rule["actions"])}
+        said = rule_text(last_rule["rule"], last_rule["actions"], last_rule.get("reads"), rule_spec)
+        rule = {"t": last_rule["t"], "text": said}
     alarm = status.get("alarm")
     return _tile(
         box=session["box"],
@@ -158,6 +177,8 @@ def tile_from_store(
         trial=session["trials"],
         trials_done=session["trials"],
         rewards=session["rewards"],
+        max_rewards=max_rewards if isinstance(max_rewards, int) else None,
+        reversals=reversals,
         accuracy=status["accuracy"],
         elapsed_s=elapsed,
         remaining_s=remaining,
@@ -201,6 +222,11 @@ def ago_text(seconds: float | None) -> str:
     return f"{seconds / 3600:.1f} h ago"
 
 
+def rewards_text(rewards: int, cap: int | None) -> str:
+    """Rewards delivered against the session's cap, "16/200" (the count alone without one)."""
+    return f"{rewards}/{cap}" if cap is not None else str(rewards)
+
+
 def shown(tile: dict[str, Any]) -> dict[str, str]:
     """The tile's fields as the page prints them (keys match `data-f` in the markup)."""
     accuracy = tile["accuracy"]
@@ -215,7 +241,8 @@ def shown(tile: dict[str, Any]) -> dict[str, str]:
         "protocol": tile["protocol"],
         "block": tile["block"] or "–",
         "trial": str(tile["trial"]),
-        "rewards": str(tile["rewards"]),
+        "rewards": rewards_text(tile["rewards"], tile.get("max_rewards")),
+        "reversals": "–" if tile.get("reversals") is None else str(tile["reversals"]),
         "accuracy": "–" if accuracy is None else f"{100 * accuracy:.0f}\u202f%",
         "elapsed": clock_text(tile["elapsed_s"]),
         "remaining": "–" if tile["remaining_s"] is None else clock_text(tile["remaining_s"]),

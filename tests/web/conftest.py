@@ -19,33 +19,35 @@ from server.web import create_app
 
 @pytest.fixture(scope="module")
 def lab_db(tmp_path_factory):
-    """Three boxes: a reversal with estimates (two sessions of one animal on rack-1, the
-    second newer), an autoshaping session, and a box and animal named with markup."""
+    """Boxes of our own: three reversal sessions of one animal on rack-1 on three days, the
+    first at training stage 1 and the later two at stage 2 (with the stage log), with
+    estimates; two autoshaping animals (a sign- and a goal-tracker); and a box and animal
+    named with markup."""
     path = tmp_path_factory.mktemp("web") / "lab.sqlite"
     with Store.open(path) as store:
-        first = record_session(
-            store,
-            box="rack-1",
-            animal="RN-0501",
-            protocol_path=REVERSAL,
-            agent="q_learner",
-            seed=11,
-            estimates=True,
-            alpha=0.3,
-            beta=5.0,
-            started_at="2031-05-11T09:00:00.000+02:00",
-        )
-        second = record_session(
-            store,
-            box="rack-1",
-            animal="RN-0501",
-            protocol_path=REVERSAL,
-            agent="q_learner",
-            seed=12,
-            estimates=True,
-            alpha=0.3,
-            beta=5.0,
-        )
+        days = []
+        for day, (seed, stage) in enumerate(((11, 1), (12, 2), (15, 2))):
+            days.append(
+                record_session(
+                    store,
+                    box="rack-1",
+                    animal="RN-0501",
+                    protocol_path=REVERSAL,
+                    agent="q_learner",
+                    seed=seed,
+                    estimates=True,
+                    alpha=0.3,
+                    beta=5.0,
+                    started_at=f"2031-05-{10 + day:02d}T09:00:00.000+02:00",
+                    settings={"stage": stage},
+                )
+            )
+            if day == 0:
+                store.write_stage("RN-0501", 1, "two-lever reversal", "2031-05-10T08:59:00.000+02:00", "start")
+                evidence = {"criterion": {"min_accuracy": 0.6}, "sessions": [{"session": days[0], "trials": 80,
+                                                                                 "accuracy": 0.7}]}  # fmt: skip
+                at = "2031-05-10T09:20:00.000+02:00"
+                store.write_stage("RN-0501", 2, "two-lever reversal", at, "advanced", days[0], evidence)
         pav = record_session(
             store,
             box="rack-2",
@@ -55,10 +57,15 @@ def lab_db(tmp_path_factory):
             seed=13,
             tracking="sign",
         )
+        goal = record_session(  # the day before, in the same box
+            store, box="rack-2", animal="RN-0504", protocol_path=AUTOSHAPING, agent="pavlovian", seed=16,
+            tracking="goal", started_at="2031-05-11T14:00:00.000+02:00",
+        )  # fmt: skip
         evil = record_session(
             store, box=EVIL_BOX, animal=EVIL_ANIMAL, protocol_path=REVERSAL, agent="random", seed=14, minutes=3
         )
-    return {"path": path, "first": first, "second": second, "pav": pav, "evil": evil}
+    first, middle, second = days  # "second": rack-1's newest session, as the tests have long called it
+    return {"path": path, "first": first, "middle": middle, "second": second, "pav": pav, "goal": goal, "evil": evil}
 
 
 @pytest.fixture

@@ -37,7 +37,9 @@ def test_boxes_lists_the_latest_session_of_every_box(read_only, lab_db):
         "SELECT t, rule FROM rule_firings WHERE session_id = ? ORDER BY t DESC LIMIT 1", (lab_db["second"],)
     ).fetchone()
     assert by_box["rack-1"]["last_rule"]["t"] == t
-    assert by_box["rack-1"]["last_rule"]["text"].startswith(f"{rule}: ")
+    text = by_box["rack-1"]["last_rule"]["text"]  # in words, with the condition from the protocol that ran
+    assert text.startswith("reversed west/east because ") and text.endswith(f"(rule {rule})")
+    assert ("≥ 0.95 for 5 trials" in text) if rule == "learned" else ("streak 8 ≥ 8" in text)
     assert by_box["rack-2"]["last_rule"] is None
 
 
@@ -84,18 +86,27 @@ def test_csv_downloads_hold_every_row(read_only, lab_db):
 
 def test_animal_history_across_sessions(read_only, lab_db):
     body = read_only.get("/api/animals/RN-0501").json()
-    assert [s["id"] for s in body["sessions"]] == [lab_db["first"], lab_db["second"]]
+    assert [s["id"] for s in body["sessions"]] == [lab_db["first"], lab_db["middle"], lab_db["second"]]
     conn = _db(lab_db)
     for session in body["sessions"]:
         last_block = conn.execute(
             "SELECT block FROM blocks WHERE session_id = ? ORDER BY block_index DESC LIMIT 1", (session["id"],)
         ).fetchone()[0]
-        assert session["stage"] == last_block
+        assert session["last_block"] == last_block
         assert set(session["fitted"]["params"]) == {"alpha", "beta"}
         low, mean, high = (session["fitted"]["params"]["alpha"][k] for k in ("low", "mean", "high"))
         assert 0 <= low <= mean <= high <= 1
+        reversals = conn.execute(
+            "SELECT trial FROM rule_firings WHERE session_id = ? AND actions LIKE '%reverse%' ORDER BY t",
+            (session["id"],),
+        ).fetchall()
+        assert session["reversals"] == len(reversals) > 0
+        assert session["to_criterion"] == reversals[0][0]
+    # the training stage each session ran at, not the block it ended in
+    assert [s["stage"] for s in body["sessions"]] == [1, 2, 2]
     page = read_only.get("/animals/RN-0501")
-    assert page.status_code == 200 and page.text.count('class="plot"') == 2
+    # learning curve, reversals, alpha and beta trajectories, rewards
+    assert page.status_code == 200 and page.text.count('class="plot"') == 5
 
 
 def test_missing_things_are_404_with_short_messages(read_only):
@@ -137,11 +148,13 @@ def test_pages_render_with_plots(read_only, lab_db):
     # rule firings: on the time axis of the cumulative record and the timeline, and listed
     firings = read_only.get(f"/api/sessions/{lab_db['second']}").json()["rule_firings"]
     assert session.text.count('class="vr rulefire"') == 2
-    assert session.text.count(f"{firings[0]['rule']}: reverse") >= 1
+    # in words, never the stored action (a list of objects)
+    assert session.text.count("reversed west/east because") == len(firings)
+    assert "[{" not in session.text and "&#x27;reverse&#x27;" not in session.text
     assert 'action="/sessions/' not in session.text  # read-only: no control form
     pav = read_only.get(f"/sessions/{lab_db['pav']}").text
-    assert "No learning-model estimates stored" in pav and "No choice trials" in pav
-    assert read_only.get("/sessions").text.count("<tr>") == 5  # header + 4 sessions
+    assert "No learning-model estimates stored" in pav and "Pavlovian conditioned approach" in pav
+    assert read_only.get("/sessions").text.count("<tr>") == 7  # header + 6 sessions
 
 
 def test_live_updates_stream_the_board(read_only):

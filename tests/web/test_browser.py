@@ -60,6 +60,9 @@ def test_overview_updates_live_and_session_page_has_plots(tmp_path, shots):
         browser.wait_for(f"{paused_tile}.dataset.state === 'paused'", timeout=15)
         assert browser.evaluate("document.getElementById('opsay').textContent") == (f"{box}: pause requested")
         assert browser.evaluate(f"{paused_tile}.querySelector('button[data-act=\"resume\"]').hidden") is False
+        # time left counts down from the run's --minutes 3, not from the lab's caps
+        left = browser.evaluate("[...document.querySelectorAll('[data-f=remaining]')].map(e => e.textContent)")
+        assert left and all(int(t.split(":")[0]) * 60 + int(t.split(":")[1]) <= 180 for t in left), left
         overview_png = browser.screenshot(shots / "overview.png")
 
         busiest = browser.evaluate(

@@ -82,6 +82,9 @@ def test_live_tiles_and_operator_controls(tmp_path):
             assert tile["live"] and tile["state"] == "running" and tile["link"] == "up"
             assert 2 <= tile["trials_done"] <= run.session.trials_done
             assert tile["since_input_s"] is not None and tile["remaining_s"] > 0
+            # the run's --minutes (3) ends it long before the lab's 30-minute cap: time left says so
+            assert tile["remaining_s"] <= 180.0
+            assert tile["max_rewards"] == run.session.limits.max_rewards and tile["reversals"] == 0
             assert tile["protocol"] == "lever training and devaluation probe"
             overview = (await web.get("/")).text
             assert EVIL_BOX not in overview and "&lt;script&gt;" in overview
@@ -100,6 +103,7 @@ def test_live_tiles_and_operator_controls(tmp_path):
             await until_tile(web, sid, lambda t: t["state"] == "paused")
             page = (await web.get(f"/sessions/{sid}")).text
             assert f'action="/sessions/{sid}/control"' in page  # the form, for a running session
+            assert 'value="resume"' in page and 'value="pause"' not in page  # paused: resume only
 
             # the session page's form: token and action as form fields, then back to the page
             resumed = await web.post(f"/sessions/{sid}/control", data={"token": OPERATOR, "action": "resume"})
@@ -109,6 +113,11 @@ def test_live_tiles_and_operator_controls(tmp_path):
             wrong_form = await web.post(f"/sessions/{sid}/control", data={"token": "guess", "action": "stop"})
             assert wrong_form.status_code == 403 and not run.session.finished
 
+            # no token: refused before the body is even read (an empty or invalid note included)
+            notes_url = f"/api/sessions/{sid}/annotations"
+            for body in ({"content": b""}, {"json": {"text": ""}}, {"content": b"{not json"}):
+                assert (await web.post(notes_url, **body)).status_code == 401
+                assert (await web.post(notes_url, headers={"X-Vigil-Token": "nope"}, **body)).status_code == 403
             note = await web.post(
                 f"/api/sessions/{sid}/annotations",
                 json={"text": "rat groomed at the lever for a minute"},

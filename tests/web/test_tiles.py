@@ -75,9 +75,13 @@ def test_normal_ends_are_not_early():
 def test_texts():
     assert clock_text(59.9) == "0:59" and clock_text(3725) == "1:02:05" and clock_text(None) == "–"
     assert ago_text(None) == "none yet" and ago_text(12) == "12 s ago" and ago_text(600) == "10 min ago"
-    assert rule_text("flip", [{"reverse": ["west", "east"]}]) == "flip: reverse west/east"
-    assert rule_text("pace", [{"scale_iti": 1.5, "scale_now": 2.25}]) == ("pace: scale_iti 1.5; scale_now 2.25")
-    assert rule_text("quiet", []) == "quiet"
+    # in words, never the stored action data
+    assert rule_text("flip", [{"reverse": ["west", "east"]}]) == "reversed west/east (rule flip)"
+    assert rule_text("flip", [{"reverse": ["west", "east"]}], {"streak": 8.0}) == (
+        "reversed west/east because streak 8 (rule flip)"
+    )
+    assert rule_text("pace", [{"scale_iti": 1.5, "scale_now": 2.25}]) == "scaled the ITI by 1.50 (rule pace)"
+    assert rule_text("quiet", []) == "fired (rule quiet)"
 
 
 def test_a_running_session_in_the_store_raises_its_alarms(tmp_path):

@@ -61,19 +61,24 @@ def record_session(
     started_at: str = STARTED,
     end: bool = True,
     subject: dict | None = None,
+    settings: dict | None = None,
     **agent_options,
 ) -> int:
     """Run one session in virtual time, closed loop as the lab runs it (estimator and rules
     when asked for estimates), and store every record; returns the session id. With
     `end=False` the session's end is not stored, as if it were still running; `subject` is
-    stored with the session's settings as the lab stores a box's `subject` keys."""
+    stored with the session's settings as the lab stores a box's `subject` keys, and
+    `settings` are added to what the store keeps of the session's set-up (a training stage, say)."""
     protocol = load_protocol(protocol_path)
     session = build_session(protocol, seed, HardCaps(max_rewards=250, max_minutes=minutes), estimate=estimates)
     box_ = EmulatedBox(protocol.wiring, make_agent(agent, **agent_options), np.random.default_rng(seed))
-    settings = wiring_settings(protocol) | ({"subject": subject} if subject is not None else {})
-    sid = store.begin_session(
-        box, animal, protocol.name, str(protocol_path), protocol.sha256, seed, started_at, settings
-    )
+    stored = {
+        **wiring_settings(protocol),
+        "limits": {"max_rewards": session.limits.max_rewards},
+        **({"subject": subject} if subject is not None else {}),
+        **(settings or {}),
+    }
+    sid = store.begin_session(box, animal, protocol.name, str(protocol_path), protocol.sha256, seed, started_at, stored)
 
     def on_records(records):
         for record in records:
