@@ -1,0 +1,431 @@
+"""Online estimate beyond a product grid: sequential Monte Carlo with resample-move.
+
+Why this method. The exact grid filter (`estimator.py`) is exact for static parameters but
+its cost grows as the product of its axes: fine for two or three parameters, out of reach for
+the five or six of a hybrid model-based/model-free learner. An adaptive sparse grid keeps a
+deterministic answer but needs the posterior to be smooth and near-Gaussian in the sparse
+directions, which a learning-rate posterior bunched against 0 or 1 is not. Sequential Monte
+Carlo (a particle filter over static parameters) has neither limit: its error shrinks with
+the number of particles whatever the dimension, and it stays *honest* because every summary
+is a weighted average over draws from the posterior itself. Its known weakness with static
+parameters is degeneracy (after enough trials a few particles carry all the weight); the
+resample-move scheme (Gilks & Berzuini 2001; Chopin 2002) cures it: whenever the effective
+sample size falls below a fraction of the particles, they are resampled and each is moved by
+a few Metropolis-Hastings steps whose target is the exact posterior given every trial so far
+(the move replays the animal's whole history for the proposed parameter sets). The moves use
+a Gaussian random walk on the logit of each parameter's unit coordinate, scaled to the
+particles' own covariance (2.38² / d; Roberts, Gelman & Gilks 1997), so they adapt to the
+posterior's shape without tuning.
+
+So the estimator the lab builds (`make_online_estimator`) is the exact grid where a grid is
+exact and affordable (models of up to three parameters, and any model with a drifting beta,
+which the grid's walk handles exactly), and this filter for the rest or when asked for by
+`method="particles"`. It works for every model through the small kernel interface of
+`kernels.py`.
+
+Seeded and deterministic: every draw comes from the estimator's own `numpy.random.Generator`
+(seed in the config, bit-generator state in `state_dict`), so replaying the stored trials
+rebuilds the live estimate bit for bit. The state is plain JSON with a format number; it
+holds the trials seen (the moves need them) with each session's tempering exponent.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable, Mapping, Sequence
+from typing import Any, Literal, overload
+
+import numpy as np
+
+from server.engine.records import SecondStage
+
+from .estimator import Estimate, ParamEstimate
+from .kernels import ChoiceKernel, KernelTrial, TrialKernel, Values, get_kernel
+from .params import Param, Prior
+
+STATE_FORMAT = 1
+METHOD = "particles"
+# Particle count chosen by accuracy (tests/models/test_particles.py, bench/estimator.py):
+# posterior means and 95 % bounds within 2 % of each parameter's range of a run with four
+# times as many particles.
+DEFAULT_PARTICLES = 1024
+_TIE = 1e-12
+_TAILS = (0.025, 0.975)
+
+
+def _truncated_prior_draws(p: Param, n: int, rng: np.random.Generator) -> np.ndarray:
+    """n draws from p's prior restricted to its declared range (rejection, then clipping)."""
+    out = np.empty(0)
+    for _ in range(64):
+        x = _prior_draws(p.prior, 4 * n + 16, rng)
+        x = x[(x > p.low) & (x < p.high)]
+        out = np.concatenate([out, x])
+        if len(out) >= n:
+            return out[:n]
+    raise ValueError(f"{p.name}: its prior puts almost no mass in [{p.low:g}, {p.high:g}]")
+
+
+def _prior_draws(prior: Prior, n: int, rng: np.random.Generator) -> np.ndarray:
+    if prior.kind == "beta":
+        return rng.beta(prior.a, prior.b, n)
+    if prior.kind == "gamma":
+        return rng.gamma(prior.a, prior.b, n)
+    if prior.kind == "normal":
+        return rng.normal(prior.a, prior.b, n)
+    return rng.random(n)  # uniform: scaled into the range by the caller's unit map
+
+
+class ParticleEstimator:
+    """Weighted particles over one model's parameters, each with its own learned values.
+
+    model: a kernel name (`kernels.get_kernel`). particles: how many. moves: Metropolis-
+    Hastings sweeps per rejuvenation. ess: rejuvenate when the effective sample size falls
+    below this fraction. seed: of the estimator's own generator. temper, carry_values, q0,
+    reward_rate_step: as for the grid estimator.
+    """
+
+    def __init__(
+        self,
+        model: str = "q_learning",
+        options: Sequence[str] = (),
+        *,
+        particles: int = DEFAULT_PARTICLES,
+        moves: int = 2,
+        ess: float = 0.5,
+        seed: int = 0,
+        temper: float = 0.5,
+        carry_values: bool = False,
+        q0: float = 0.0,
+        reward_rate_step: float = 0.1,
+        drift: float = 0.0,
+    ):
+        if drift:
+            raise ValueError("drift is tracked by the grid estimator only (method: grid)")
+        if not (isinstance(particles, int) and particles >= 16):
+            raise ValueError(f"particles must be a whole number >= 16, got {particles!r}")
+        if not (isinstance(moves, int) and moves >= 1):
+            raise ValueError(f"moves must be a whole number >= 1, got {moves!r}")
+        if not (0 < ess < 1):
+            raise ValueError(f"ess must be in (0, 1), got {ess!r}")
+        if not (0 < temper <= 1):
+            raise ValueError(f"temper must be in (0, 1], got {temper!r}")
+        if not (0 < reward_rate_step <= 1):
+            raise ValueError(f"reward_rate_step must be in (0, 1], got {reward_rate_step!r}")
+        if len(set(options)) != len(options) or not all(isinstance(o, str) and o for o in options):
+            raise ValueError("option labels must be distinct non-empty strings")
+        self.kernel: TrialKernel = get_kernel(model, q0)
+        self.config: dict[str, Any] = {
+            "particles": particles,
+            "moves": moves,
+            "ess": float(ess),
+            "seed": int(seed),
+            "temper": float(temper),
+            "carry_values": bool(carry_values),
+            "q0": float(q0),
+            "reward_rate_step": float(reward_rate_step),
+        }
+        self.params = self.kernel.params
+        self.options: list[str] = list(options)
+        self._index = {lab: i for i, lab in enumerate(self.options)}
+        self._states: dict[str, int] = {}
+        self._seconds: dict[str, int] = {}
+        self._rng = np.random.default_rng(seed)
+        n = particles
+        draws = np.stack([_truncated_prior_draws(p, n, self._rng) for p in self.params], axis=1)
+        self._z = self._to_z(draws)
+        self._theta_cache: dict[str, np.ndarray] | None = None
+        self._logw = np.zeros(n)
+        self._ll = np.zeros(n)  # tempered log-likelihood of each particle over the whole history
+        self._values = self.kernel.start(n, len(self.options))
+        self._trials: list[list[KernelTrial]] = [[]]  # per session
+        self._exponents: list[float] = [1.0]  # per session: weight of its evidence
+        self._session_trial = 0
+        self._rate = [0.0, 0.0]
+        self._last_pe: float | None = None
+        self._last_surprise: float | None = None
+        self.rejuvenations = 0
+
+    # ------------------------------------------------------------------ coordinates
+
+    def _to_z(self, x: np.ndarray) -> np.ndarray:
+        u = np.stack([p.to_unit(x[:, i]) for i, p in enumerate(self.params)], axis=1)
+        u = np.clip(u, 1e-12, 1 - 1e-12)
+        return np.log(u) - np.log1p(-u)
+
+    def _theta_of(self, z: np.ndarray) -> dict[str, np.ndarray]:
+        u = 1.0 / (1.0 + np.exp(-z))
+        return {p.name: p.from_unit(u[:, i]) for i, p in enumerate(self.params)}
+
+    @property
+    def theta(self) -> dict[str, np.ndarray]:
+        if self._theta_cache is None:
+            self._theta_cache = self._theta_of(self._z)
+        return self._theta_cache
+
+    def _log_prior_z(self, z: np.ndarray) -> np.ndarray:
+        """log prior density of the parameters, as a density over z (with the Jacobian)."""
+        u = 1.0 / (1.0 + np.exp(-z))
+        out = np.zeros(len(z))
+        for i, p in enumerate(self.params):
+            x = p.from_unit(u[:, i])
+            lo, hi = p.low, p.high
+            dxdu = x * (math.log(hi) - math.log(lo)) if p.scale == "log" else np.full(len(z), hi - lo)
+            out += p.prior.logpdf(x) + np.log(dxdu) + np.log(u[:, i]) + np.log1p(-u[:, i])
+        return out
+
+    # ------------------------------------------------------------------ trial by trial
+
+    @property
+    def model_name(self) -> str:
+        return self.kernel.name
+
+    @overload
+    def update(
+        self, choice: str | None, reward: float, *, second: SecondStage | None = None, summarise: Literal[True] = True
+    ) -> Estimate: ...
+
+    @overload
+    def update(
+        self, choice: str | None, reward: float, *, second: SecondStage | None = None, summarise: bool = True
+    ) -> Estimate | None: ...
+
+    def update(
+        self, choice: str | None, reward: float, *, second: SecondStage | None = None, summarise: bool = True
+    ) -> Estimate | None:
+        """Take one finished trial; see `estimator.OnlineEstimator.update`."""
+        reward = float(reward)
+        if not math.isfinite(reward):
+            raise ValueError(f"reward must be a finite number, got {reward!r}")
+        if second is not None and isinstance(self.kernel, ChoiceKernel):
+            raise ValueError(f"model {self.model_name!r} learns single-stage choices, not two-stage trials")
+        trial = self._encode(choice, reward, second)
+        self._last_pe = self._last_surprise = None
+        if trial.choice >= 0:
+            w = self._weights()
+            before = self.kernel.option_values(self._values, len(self.options))
+            self._last_pe = reward - float(before[trial.choice] @ w)
+            logp, self._values = self.kernel.step(self.theta, self._values, trial)
+            top = float(self._logw.max())
+            joint = self._logw - top + logp
+            self._last_surprise = -(_logsumexp(joint) - _logsumexp(self._logw - top))
+            self._logw = joint
+            self._ll += logp
+        self._trials[-1].append(trial)
+        step = self.config["reward_rate_step"]
+        self._rate = [(1 - step) * self._rate[0] + step * reward, (1 - step) * self._rate[1] + step]
+        self._session_trial += 1
+        if self.ess() < self.config["ess"] * len(self._logw):
+            self._rejuvenate()
+        return self.estimate() if summarise else None
+
+    def _encode(self, choice: str | None, reward: float, second: SecondStage | None) -> KernelTrial:
+        idx = -1
+        if choice is not None and choice != "":
+            if not isinstance(choice, str):
+                raise ValueError(f"choice must be an option label or None, got {choice!r}")
+            idx = self._index.get(choice, -1)
+            if idx < 0:
+                idx = self._index[choice] = len(self.options)
+                self.options.append(choice)
+                self._values = self.kernel.grow(self._values, len(self.options))
+        if second is None:
+            return KernelTrial(idx, reward, len(self.options))
+        state = self._states.setdefault(second.state, len(self._states))
+        c2 = -1 if second.choice is None else self._seconds.setdefault(second.choice, len(self._seconds))
+        return KernelTrial(idx, reward, len(self.options), state, int(second.common), c2)
+
+    def _weights(self) -> np.ndarray:
+        w = np.exp(self._logw - self._logw.max())
+        return w / w.sum()
+
+    def ess(self) -> float:
+        """Effective sample size of the weights (Kong, Liu & Wong 1994): 1 / sum w²."""
+        w = self._weights()
+        return float(1.0 / (w @ w))
+
+    def _rejuvenate(self) -> None:
+        """Resample (systematic), then move every particle by Metropolis-Hastings steps whose
+        target is the posterior given the whole (tempered) history."""
+        n = len(self._logw)
+        rng = self._rng
+        w = self._weights()
+        cdf = np.cumsum(w)
+        cdf[-1] = 1.0
+        idx = np.searchsorted(cdf, (rng.random() + np.arange(n)) / n)
+        self._z, self._ll = self._z[idx], self._ll[idx]
+        self._values = tuple(v[..., idx] for v in self._values)
+        self._logw = np.zeros(n)
+        d = self._z.shape[1]
+        lp = self._log_prior_z(self._z)
+        for _ in range(self.config["moves"]):
+            cov = np.atleast_2d(np.cov(self._z, rowvar=False)) + 1e-10 * np.eye(d)
+            chol = np.linalg.cholesky(cov * (2.38**2 / d))
+            prop = self._z + rng.standard_normal((n, d)) @ chol.T
+            ll_prop, values_prop = self._history(self._theta_of(prop))
+            lp_prop = self._log_prior_z(prop)
+            accept = np.log(rng.random(n)) < (ll_prop + lp_prop) - (self._ll + lp)
+            self._z = np.where(accept[:, None], prop, self._z)
+            self._ll = np.where(accept, ll_prop, self._ll)
+            lp = np.where(accept, lp_prop, lp)
+            self._values = tuple(np.where(accept, vp, v) for vp, v in zip(values_prop, self._values))
+        self._theta_cache = None
+        self.rejuvenations += 1
+
+    def _history(self, theta: Mapping[str, np.ndarray]) -> tuple[np.ndarray, Values]:
+        """Tempered log-likelihood of every trial so far and the values now, per parameter set."""
+        n = len(next(iter(theta.values())))
+        k = len(self.options)
+        ll = np.zeros(n)
+        values = self.kernel.start(n, k)
+        for exponent, trials in zip(self._exponents, self._trials):
+            if not self.config["carry_values"]:
+                values = self.kernel.start(n, k)
+            for trial in trials:
+                if trial.choice < 0:
+                    continue
+                logp, values = self.kernel.step(theta, values, trial)
+                ll += exponent * logp
+        return ll, values
+
+    # ------------------------------------------------------------------ summaries
+
+    def estimate(self) -> Estimate:
+        w = self._weights()
+        theta = self.theta
+        params = {p.name: _weighted_summary(theta[p.name], w) for p in self.params}
+        k = len(self.options)
+        values, p_choice, p_prefers = {}, {}, {}
+        best = exploration = p_best = None
+        if k:
+            q = self.kernel.option_values(self._values, k)
+            q_mean = q @ w
+            probs = self.kernel.probabilities(theta, self._values, k) @ w
+            top = q >= q.max(0) - _TIE
+            share = (top / top.sum(0)) @ w
+            values = dict(zip(self.options, q_mean.tolist()))
+            p_choice = dict(zip(self.options, np.clip(probs, 0.0, 1.0).tolist()))
+            p_prefers = dict(zip(self.options, np.clip(share, 0.0, 1.0).tolist()))
+            order = np.argsort(-q_mean, kind="stable")
+            if k == 1 or q_mean[order[0]] - q_mean[order[1]] > _TIE:
+                best = self.options[int(order[0])]
+                exploration = 1.0 - p_choice[best]
+                p_best = p_prefers[best]
+        rate = self._rate[0] / self._rate[1] if self._rate[1] else None
+        return Estimate(
+            self.model_name,
+            self._session_trial,
+            params,
+            values,
+            p_choice,
+            self._last_pe,
+            self._last_surprise,
+            best,
+            exploration,
+            p_best,
+            p_prefers,
+            rate,
+        )
+
+    def p_choice_at_least(self, label: str, level: float) -> float | None:
+        idx = self._index.get(label)
+        if idx is None:
+            return None
+        probs = self.kernel.probabilities(self.theta, self._values, len(self.options))[idx]
+        return min(max(float((probs >= level) @ self._weights()), 0.0), 1.0)
+
+    # ------------------------------------------------------------------ sessions and state
+
+    def new_session(self) -> None:
+        """Start the next session: earlier evidence counts `temper` times less (the weights
+        move to the tempered target at once, and the particles follow when they are moved)."""
+        temper = self.config["temper"]
+        if self._trials[-1]:
+            self._logw = self._logw + (temper - 1.0) * self._ll
+            self._ll = temper * self._ll
+            self._exponents = [e * temper for e in self._exponents] + [1.0]
+            self._trials.append([])
+        if not self.config["carry_values"]:
+            self._values = self.kernel.start(len(self._logw), len(self.options))
+        self._session_trial = 0
+        self._rate = [0.0, 0.0]
+        self._last_pe = self._last_surprise = None
+        if self.ess() < self.config["ess"] * len(self._logw):
+            self._rejuvenate()
+
+    def state_dict(self) -> dict[str, Any]:
+        return {
+            "format": STATE_FORMAT,
+            "method": METHOD,
+            "model": self.model_name,
+            "options": list(self.options),
+            "states": list(self._states),
+            "seconds": list(self._seconds),
+            "config": dict(self.config),
+            "z": self._z.tolist(),
+            "log_weights": self._logw.tolist(),
+            "loglik": self._ll.tolist(),
+            "values": [v.tolist() for v in self._values],
+            "trials": [[list(t) for t in session] for session in self._trials],
+            "exponents": list(self._exponents),
+            "session_trial": self._session_trial,
+            "reward_rate": list(self._rate),
+            "last": [self._last_pe, self._last_surprise],
+            "rejuvenations": self.rejuvenations,
+            "rng": self._rng.bit_generator.state,
+        }
+
+    @classmethod
+    def from_state(cls, state: Mapping[str, Any]) -> ParticleEstimator:
+        if state.get("method") != METHOD:
+            raise ValueError("not a particle estimator state")
+        if state.get("format") != STATE_FORMAT:
+            raise ValueError(f"particle estimator state format {state.get('format')!r} is not {STATE_FORMAT}")
+        est = cls(state["model"], state["options"], **state["config"])
+        n = est.config["particles"]
+        z = np.array(state["z"], dtype=float)
+        if z.shape != est._z.shape or len(state["log_weights"]) != n:
+            raise ValueError("particle estimator state does not match its particle count")
+        est._z = z
+        est._logw = np.array(state["log_weights"], dtype=float)
+        est._ll = np.array(state["loglik"], dtype=float)
+        est._values = tuple(np.array(v, dtype=float) for v in state["values"])
+        est._states = {s: i for i, s in enumerate(state["states"])}
+        est._seconds = {s: i for i, s in enumerate(state["seconds"])}
+        est._trials = [[KernelTrial(int(t[0]), float(t[1]), *map(int, t[2:])) for t in s] for s in state["trials"]]
+        est._exponents = [float(e) for e in state["exponents"]]
+        est._session_trial = int(state["session_trial"])
+        est._rate = [float(x) for x in state["reward_rate"]]
+        est._last_pe, est._last_surprise = state["last"]
+        est.rejuvenations = int(state["rejuvenations"])
+        est._rng.bit_generator.state = state["rng"]
+        return est
+
+    @classmethod
+    def replay(
+        cls, trials: Iterable[tuple[Any, str | None, float]], state: Mapping[str, Any] | None = None, **config: Any
+    ) -> tuple[ParticleEstimator, list[Estimate]]:
+        """Rebuild from stored (session, choice, reward) trials, as `OnlineEstimator.replay`."""
+        est = cls.from_state(state) if state is not None else cls(**config)
+        current: list[Any] = [] if state is None else [object()]
+        out = []
+        for session, choice, reward in trials:
+            if current and current[0] != session:
+                est.new_session()
+            current[:] = [session]
+            out.append(est.update(choice, reward))
+        return est, out
+
+
+def _weighted_summary(x: np.ndarray, w: np.ndarray) -> ParamEstimate:
+    """Weighted mean and equal-tailed 95 % interval (quantiles of the weighted empirical
+    distribution, each draw's mass centred on it)."""
+    order = np.argsort(x, kind="stable")
+    xs, ws = x[order], w[order]
+    mid = np.cumsum(ws) - 0.5 * ws
+    lo, hi = np.interp(_TAILS, mid, xs)
+    return ParamEstimate(float(x @ w), float(lo), float(hi))
+
+
+def _logsumexp(a: np.ndarray) -> float:
+    top = float(a.max())
+    return top + math.log(float(np.exp(a - top).sum()))
