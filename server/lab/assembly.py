@@ -14,7 +14,7 @@ from typing import Any
 
 from server.engine.caps import HardCaps
 from server.engine.session import Session
-from server.models.estimator import OnlineEstimator
+from server.models.online import AnyEstimator, estimator_from_state, make_online_estimator, replay_estimator
 from server.protocol.model import Protocol
 from server.rules.book import RuleBook
 from server.store.history import trial_history
@@ -42,19 +42,19 @@ def animal_estimator_state(conn: sqlite3.Connection, animal: str, protocol: Prot
     trials = [(p.session_id, p.choice, p.reward or 0.0) for p in past]
     if not trials:
         return None
-    estimator, _ = OnlineEstimator.replay(trials, **estimator_config(protocol))
+    estimator, _ = replay_estimator(trials, **estimator_config(protocol))
     return estimator.state_dict()
 
 
-def make_estimator(protocol: Protocol, state: Mapping[str, Any] | None = None) -> OnlineEstimator | None:
+def make_estimator(protocol: Protocol, state: Mapping[str, Any] | None = None) -> AnyEstimator | None:
     """The protocol's estimator, continuing from an animal's stored state when given."""
     if protocol.estimator is None:
         return None
     if state is not None:
-        estimator = OnlineEstimator.from_state(state)
+        estimator = estimator_from_state(state)
         estimator.new_session()
         return estimator
-    return OnlineEstimator(**estimator_config(protocol))
+    return make_online_estimator(**estimator_config(protocol))
 
 
 def build_session(

@@ -32,7 +32,7 @@ holds the trials seen (the moves need them) with each session's tempering expone
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from typing import Any, Literal, overload
 
 import numpy as np
@@ -399,21 +399,6 @@ class ParticleEstimator:
         est.rejuvenations = int(state["rejuvenations"])
         est._rng.bit_generator.state = state["rng"]
         return est
-
-    @classmethod
-    def replay(
-        cls, trials: Iterable[tuple[Any, str | None, float]], state: Mapping[str, Any] | None = None, **config: Any
-    ) -> tuple[ParticleEstimator, list[Estimate]]:
-        """Rebuild from stored (session, choice, reward) trials, as `OnlineEstimator.replay`."""
-        est = cls.from_state(state) if state is not None else cls(**config)
-        current: list[Any] = [] if state is None else [object()]
-        out = []
-        for session, choice, reward in trials:
-            if current and current[0] != session:
-                est.new_session()
-            current[:] = [session]
-            out.append(est.update(choice, reward))
-        return est, out
 
 
 def _weighted_summary(x: np.ndarray, w: np.ndarray) -> ParamEstimate:
