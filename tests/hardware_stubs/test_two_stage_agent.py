@@ -126,3 +126,17 @@ def test_learned_values_carry_to_the_next_session():
 def test_options_are_checked():
     with pytest.raises(AgentError, match=r"option 'w' of agent 'two_stage_learner' must be between 0 and 1"):
         make_agent("two_stage_learner", w=1.5)
+
+
+def test_a_population_file_draws_its_options():
+    from server.lab.population import read_population
+
+    text = (
+        "agent: two_stage_learner\noptions:\n"
+        "  w: {uniform: [0.0, 1.0]}\n  beta1: {lognormal: {median: 4, sigma: 0.3}}\n"
+    )
+    population = read_population(text, "cohort.yaml", "q_learner")
+    drawn = [population.draw(np.random.default_rng(i)) for i in range(50)]
+    assert {"w", "beta1"} == set(drawn[0])
+    assert 0.0 <= min(d["w"] for d in drawn) < 0.2 and 0.8 < max(d["w"] for d in drawn) <= 1.0
+    make_agent("two_stage_learner", **drawn[0])
