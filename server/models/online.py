@@ -12,7 +12,7 @@ from __future__ import annotations
 from collections.abc import Iterable, Mapping
 from typing import Any
 
-from .estimator import Estimate, OnlineEstimator
+from .estimator import Estimate, OnlineEstimator, replay_into
 from .kernels import get_kernel
 from .particles import METHOD, ParticleEstimator
 
@@ -50,11 +50,4 @@ def replay_estimator(trials: Iterable[tuple[Any, str | None, float]], state: Map
     earlier session) or fresh from `config`; a new session begins whenever the session key
     changes (and at once when resuming), exactly as the live session core calls `new_session`."""
     est = estimator_from_state(state) if state is not None else make_online_estimator(**config)
-    current: list[Any] = [] if state is None else [object()]
-    out = []
-    for session, choice, reward in trials:
-        if current and current[0] != session:
-            est.new_session()
-        current[:] = [session]
-        out.append(est.update(choice, reward))
-    return est, out
+    return est, replay_into(est, trials, state is not None)

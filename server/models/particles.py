@@ -39,7 +39,7 @@ import numpy as np
 
 from server.engine.records import SecondStage
 
-from .estimator import Estimate, ParamEstimate
+from .estimator import Estimate, ParamEstimate, build_estimate
 from .kernels import ChoiceKernel, KernelTrial, TrialKernel, Values, get_kernel
 from .params import Param, Prior
 
@@ -294,37 +294,16 @@ class ParticleEstimator:
         theta = self.theta
         params = {p.name: _weighted_summary(theta[p.name], w) for p in self.params}
         k = len(self.options)
-        values, p_choice, p_prefers = {}, {}, {}
-        best = exploration = p_best = None
+        q_mean = probs = share = None
         if k:
             q = self.kernel.option_values(self._values, k)
             q_mean = q @ w
             probs = self.kernel.probabilities(theta, self._values, k) @ w
             top = q >= q.max(0) - _TIE
             share = (top / top.sum(0)) @ w
-            values = dict(zip(self.options, q_mean.tolist()))
-            p_choice = dict(zip(self.options, np.clip(probs, 0.0, 1.0).tolist()))
-            p_prefers = dict(zip(self.options, np.clip(share, 0.0, 1.0).tolist()))
-            order = np.argsort(-q_mean, kind="stable")
-            if k == 1 or q_mean[order[0]] - q_mean[order[1]] > _TIE:
-                best = self.options[int(order[0])]
-                exploration = 1.0 - p_choice[best]
-                p_best = p_prefers[best]
         rate = self._rate[0] / self._rate[1] if self._rate[1] else None
-        return Estimate(
-            self.model_name,
-            self._session_trial,
-            params,
-            values,
-            p_choice,
-            self._last_pe,
-            self._last_surprise,
-            best,
-            exploration,
-            p_best,
-            p_prefers,
-            rate,
-        )
+        return build_estimate(self.model_name, self._session_trial, params, self.options, (q_mean, probs, share),
+                              (self._last_pe, self._last_surprise, rate))  # fmt: skip
 
     def p_choice_at_least(self, label: str, level: float) -> float | None:
         idx = self._index.get(label)
