@@ -52,10 +52,10 @@ class HybridStandIn:
         a1, s, a2, r = trial.choice, trial.state, trial.choice2, trial.reward
         if a1 < 0:
             return np.zeros(q1.shape[1]), values
+        # two options: log P(a) = -log(1 + exp(z_other - z_a)), the logistic form of the softmax
         z1 = self._first_logits(theta, values)
-        logp = z1[a1] - np.logaddexp(z1[0], z1[1])
-        z2 = theta["beta2"] * q2[s]
-        logp = logp + z2[a2] - np.logaddexp(z2[0], z2[1])
+        gap2 = theta["beta2"] * (q2[s, 1 - a2] - q2[s, a2])
+        logp = -(np.logaddexp(0.0, z1[1 - a1] - z1[a1]) + np.logaddexp(0.0, gap2))
         alpha = theta["alpha"]
         q1, q2 = q1.copy(), q2.copy()
         d1 = q2[s, a2] - q1[a1]

@@ -91,6 +91,7 @@ class ParticleEstimator:
         *,
         particles: int = DEFAULT_PARTICLES,
         moves: int = 2,
+        catch_up: int = 16,
         ess: float = 0.5,
         seed: int = 0,
         temper: float = 0.5,
@@ -105,6 +106,8 @@ class ParticleEstimator:
             raise ValueError(f"particles must be a whole number >= 16, got {particles!r}")
         if not (isinstance(moves, int) and moves >= 1):
             raise ValueError(f"moves must be a whole number >= 1, got {moves!r}")
+        if not (isinstance(catch_up, int) and catch_up >= 0):
+            raise ValueError(f"catch_up must be a whole number >= 0, got {catch_up!r}")
         if not (0 < ess < 1):
             raise ValueError(f"ess must be in (0, 1), got {ess!r}")
         if not (0 < temper <= 1):
@@ -117,6 +120,7 @@ class ParticleEstimator:
         self.config: dict[str, Any] = {
             "particles": particles,
             "moves": moves,
+            "catch_up": catch_up,
             "ess": float(ess),
             "seed": int(seed),
             "temper": float(temper),
@@ -134,7 +138,7 @@ class ParticleEstimator:
         draws = np.stack([_truncated_prior_draws(p, n, self._rng) for p in self.params], axis=1)
         self._z = self._to_z(draws)
         self._theta_cache: dict[str, np.ndarray] | None = None
-        self._logw = np.zeros(n)
+        self._set_log_weights(np.full(n, -math.log(n)))
         self._ll = np.zeros(n)  # tempered log-likelihood of each particle over the whole history
         self._values = self.kernel.start(n, len(self.options))
         self._trials: list[list[KernelTrial]] = [[]]  # per session
@@ -144,6 +148,9 @@ class ParticleEstimator:
         self._last_pe: float | None = None
         self._last_surprise: float | None = None
         self.rejuvenations = 0
+        self.accepted = 0  # proposals accepted, over all moves
+        self._move: _Move | None = None
+        self._sweeps_left = 0
 
     # ------------------------------------------------------------------ coordinates
 
@@ -201,20 +208,23 @@ class ParticleEstimator:
         trial = self._encode(choice, reward, second)
         self._last_pe = self._last_surprise = None
         if trial.choice >= 0:
-            w = self._weights()
             before = self.kernel.option_values(self._values, len(self.options))
-            self._last_pe = reward - float(before[trial.choice] @ w)
+            self._last_pe = reward - float(before[trial.choice] @ self._weights())
             logp, self._values = self.kernel.step(self.theta, self._values, trial)
-            top = float(self._logw.max())
-            joint = self._logw - top + logp
-            self._last_surprise = -(_logsumexp(joint) - _logsumexp(self._logw - top))
-            self._logw = joint
+            # the log weights stay normalised, so the log predictive is one log-sum-exp
+            joint = self._logw + logp
+            log_predictive = _logsumexp(joint)
+            self._last_surprise = -log_predictive
+            joint -= log_predictive
+            self._set_log_weights(joint)
             self._ll += logp
         self._trials[-1].append(trial)
         step = self.config["reward_rate_step"]
         self._rate = [(1 - step) * self._rate[0] + step * reward, (1 - step) * self._rate[1] + step]
         self._session_trial += 1
-        if self.ess() < self.config["ess"] * len(self._logw):
+        if self._move is not None:
+            self._advance_move(self.config["catch_up"])
+        elif self.ess() < self.config["ess"] * len(self._logw):
             self._rejuvenate()
         return self.estimate() if summarise else None
 
@@ -234,9 +244,17 @@ class ParticleEstimator:
         c2 = -1 if second.choice is None else self._seconds.setdefault(second.choice, len(self._seconds))
         return KernelTrial(idx, reward, len(self.options), state, int(second.common), c2)
 
+    def _set_log_weights(self, logw: np.ndarray) -> None:
+        """Log weights, normalised (log-sum-exp 0), and the weights they stand for."""
+        self._logw = logw
+        self._w: np.ndarray | None = None
+
     def _weights(self) -> np.ndarray:
-        w = np.exp(self._logw - self._logw.max())
-        return w / w.sum()
+        if self._w is None:
+            w = np.exp(self._logw)
+            w *= 1.0 / w.sum()
+            self._w = w
+        return self._w
 
     def ess(self) -> float:
         """Effective sample size of the weights (Kong, Liu & Wong 1994): 1 / sum w²."""
@@ -244,48 +262,79 @@ class ParticleEstimator:
         return float(1.0 / (w @ w))
 
     def _rejuvenate(self) -> None:
-        """Resample (systematic), then move every particle by Metropolis-Hastings steps whose
-        target is the posterior given the whole (tempered) history."""
+        """Resample (systematic), then start the moves: Metropolis-Hastings steps whose target
+        is the posterior given the whole (tempered) history (see `_advance_move`)."""
         n = len(self._logw)
-        rng = self._rng
         w = self._weights()
         cdf = np.cumsum(w)
         cdf[-1] = 1.0
-        idx = np.searchsorted(cdf, (rng.random() + np.arange(n)) / n)
+        idx = np.searchsorted(cdf, (self._rng.random() + np.arange(n)) / n)
         self._z, self._ll = self._z[idx], self._ll[idx]
         self._values = tuple(v[..., idx] for v in self._values)
-        self._logw = np.zeros(n)
-        d = self._z.shape[1]
-        lp = self._log_prior_z(self._z)
-        for _ in range(self.config["moves"]):
-            cov = np.atleast_2d(np.cov(self._z, rowvar=False)) + 1e-10 * np.eye(d)
-            chol = np.linalg.cholesky(cov * (2.38**2 / d))
-            prop = self._z + rng.standard_normal((n, d)) @ chol.T
-            ll_prop, values_prop = self._history(self._theta_of(prop))
-            lp_prop = self._log_prior_z(prop)
-            accept = np.log(rng.random(n)) < (ll_prop + lp_prop) - (self._ll + lp)
-            self._z = np.where(accept[:, None], prop, self._z)
-            self._ll = np.where(accept, ll_prop, self._ll)
-            lp = np.where(accept, lp_prop, lp)
-            self._values = tuple(np.where(accept, vp, v) for vp, v in zip(values_prop, self._values))
+        self._set_log_weights(np.full(n, -math.log(n)))
         self._theta_cache = None
+        self._sweeps_left = self.config["moves"]
         self.rejuvenations += 1
+        self._start_move()
+        if not self.config["catch_up"]:
+            self._finish_moves()
 
-    def _history(self, theta: Mapping[str, np.ndarray]) -> tuple[np.ndarray, Values]:
-        """Tempered log-likelihood of every trial so far and the values now, per parameter set."""
-        n = len(next(iter(theta.values())))
-        k = len(self.options)
-        ll = np.zeros(n)
-        values = self.kernel.start(n, k)
-        for exponent, trials in zip(self._exponents, self._trials):
-            if not self.config["carry_values"]:
-                values = self.kernel.start(n, k)
-            for trial in trials:
-                if trial.choice < 0:
-                    continue
-                logp, values = self.kernel.step(theta, values, trial)
-                ll += exponent * logp
-        return ll, values
+    def _start_move(self) -> None:
+        """Draw every particle's proposal: a Gaussian step scaled to the particles' spread."""
+        n, d = self._z.shape
+        cov = np.atleast_2d(np.cov(self._z, rowvar=False)) + 1e-10 * np.eye(d)
+        chol = np.linalg.cholesky(cov * (2.38**2 / d))
+        prop = self._z + self._rng.standard_normal((n, d)) @ chol.T
+        self._move = _Move(prop, self._theta_of(prop), np.zeros(n), self.kernel.start(n, len(self.options)), 0, 0)
+
+    def _advance_move(self, budget: float) -> None:
+        """Replay up to `budget` stored trials for the pending proposals; once they have
+        caught up with the present, accept or reject each against its particle.
+
+        A move spread over later trials is still exact: weighted particles that target the
+        posterior stay properly weighted under any kernel that leaves the posterior
+        invariant, and the proposals are judged on every trial up to the moment they
+        catch up, the same trials the particles' own likelihoods cover."""
+        move = self._move
+        assert move is not None
+        k, done = len(self.options), 0
+        while done < budget:
+            trials = self._trials[move.session]
+            if move.trial == len(trials):
+                if move.session == len(self._trials) - 1:
+                    self._judge(move)
+                    return
+                move.session, move.trial = move.session + 1, 0
+                if not self.config["carry_values"]:
+                    move.values = self.kernel.start(len(move.ll), k)
+                continue
+            trial = trials[move.trial]
+            move.trial += 1
+            if trial.choice < 0:
+                continue
+            if move.values[0].shape[0] < k:
+                move.values = self.kernel.grow(move.values, k)
+            logp, move.values = self.kernel.step(move.theta, move.values, trial)
+            move.ll += self._exponents[move.session] * logp
+            done += 1
+
+    def _judge(self, move: _Move) -> None:
+        lp, lp_prop = self._log_prior_z(self._z), self._log_prior_z(move.z)
+        accept = np.log(self._rng.random(len(lp))) < (move.ll + lp_prop) - (self._ll + lp)
+        self._z = np.where(accept[:, None], move.z, self._z)
+        self._ll = np.where(accept, move.ll, self._ll)
+        values = self.kernel.grow(move.values, len(self.options))
+        self._values = tuple(np.where(accept, vp, v) for vp, v in zip(values, self._values))
+        self._theta_cache = None
+        self.accepted += int(accept.sum())
+        self._sweeps_left -= 1
+        self._move = None
+        if self._sweeps_left:
+            self._start_move()
+
+    def _finish_moves(self) -> None:
+        while self._move is not None:
+            self._advance_move(math.inf)
 
     # ------------------------------------------------------------------ summaries
 
@@ -318,8 +367,10 @@ class ParticleEstimator:
         """Start the next session: earlier evidence counts `temper` times less (the weights
         move to the tempered target at once, and the particles follow when they are moved)."""
         temper = self.config["temper"]
+        self._finish_moves()  # the pending proposals were judged under the old exponents
         if self._trials[-1]:
-            self._logw = self._logw + (temper - 1.0) * self._ll
+            logw = self._logw + (temper - 1.0) * self._ll
+            self._set_log_weights(logw - _logsumexp(logw))
             self._ll = temper * self._ll
             self._exponents = [e * temper for e in self._exponents] + [1.0]
             self._trials.append([])
@@ -349,7 +400,8 @@ class ParticleEstimator:
             "session_trial": self._session_trial,
             "reward_rate": list(self._rate),
             "last": [self._last_pe, self._last_surprise],
-            "rejuvenations": self.rejuvenations,
+            "rejuvenations": [self.rejuvenations, self.accepted],
+            "move": None if self._move is None else self._move.to_state(self._sweeps_left),
             "rng": self._rng.bit_generator.state,
         }
 
@@ -365,7 +417,7 @@ class ParticleEstimator:
         if z.shape != est._z.shape or len(state["log_weights"]) != n:
             raise ValueError("particle estimator state does not match its particle count")
         est._z = z
-        est._logw = np.array(state["log_weights"], dtype=float)
+        est._set_log_weights(np.array(state["log_weights"], dtype=float))
         est._ll = np.array(state["loglik"], dtype=float)
         est._values = tuple(np.array(v, dtype=float) for v in state["values"])
         est._states = {s: i for i, s in enumerate(state["states"])}
@@ -375,7 +427,9 @@ class ParticleEstimator:
         est._session_trial = int(state["session_trial"])
         est._rate = [float(x) for x in state["reward_rate"]]
         est._last_pe, est._last_surprise = state["last"]
-        est.rejuvenations = int(state["rejuvenations"])
+        est.rejuvenations, est.accepted = (int(x) for x in state["rejuvenations"])
+        if state["move"] is not None:
+            est._move, est._sweeps_left = _Move.from_state(state["move"], est)
         est._rng.bit_generator.state = state["rng"]
         return est
 
@@ -393,3 +447,28 @@ def _weighted_summary(x: np.ndarray, w: np.ndarray) -> ParamEstimate:
 def _logsumexp(a: np.ndarray) -> float:
     top = float(a.max())
     return top + math.log(float(np.exp(a - top).sum()))
+
+
+class _Move:
+    """Proposals waiting to catch up with the present: where their replay has got to."""
+
+    def __init__(self, z: np.ndarray, theta: dict[str, np.ndarray], ll: np.ndarray, values: Values, session: int,
+                 trial: int):  # fmt: skip
+        self.z, self.theta, self.ll, self.values = z, theta, ll, values
+        self.session, self.trial = session, trial
+
+    def to_state(self, sweeps_left: int) -> dict[str, Any]:
+        return {
+            "z": self.z.tolist(),
+            "loglik": self.ll.tolist(),
+            "values": [v.tolist() for v in self.values],
+            "at": [self.session, self.trial],
+            "sweeps_left": sweeps_left,
+        }
+
+    @staticmethod
+    def from_state(state: Mapping[str, Any], est: ParticleEstimator) -> tuple[_Move, int]:
+        z = np.array(state["z"], dtype=float)
+        values = tuple(np.array(v, dtype=float) for v in state["values"])
+        move = _Move(z, est._theta_of(z), np.array(state["loglik"], dtype=float), values, *state["at"])
+        return move, int(state["sweeps_left"])
