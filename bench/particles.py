@@ -1,7 +1,7 @@
 """Speed and accuracy of the particle estimator (resample-move SMC, server/models/particles.py).
 
 1. Per-trial update, p50 / p99 / max over 300 trials of one animal, for every single-stage
-   model and for a six-parameter stand-in hybrid (bench/hybrid_standin.py), with the number
+   model and for a six-parameter stand-in hybrid (tests/models/hybrid_standin.py), with the number
    of rejuvenations (each replays the whole history for every particle, twice).
 2. Accuracy of the default particle count: posterior means and 95 % bounds against a run
    with four times as many particles, as a share of each parameter's range (target <= 2 %).
@@ -20,6 +20,7 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "tests" / "models"))  # the stand-in hybrid lives beside the tests that use it
 
 import numpy as np  # noqa: E402
 from hybrid_standin import HybridStandIn, simulate  # noqa: E402
@@ -84,9 +85,10 @@ def main() -> int:
     single = single_stage_trials(args.trials, 1)
     for name in list(CHOICE_MODELS) + ["hybrid_standin"]:
         trials = hybrid_trials(args.trials, 2) if name == "hybrid_standin" else single
-        est = ParticleEstimator(name, ["L", "R"], particles=args.particles, seed=1)
+        two = {"states": ["A", "B"], "second_options": ["x", "y"]} if name == "hybrid_standin" else {}
+        est = ParticleEstimator(name, ["L", "R"], particles=args.particles, seed=1, **two)
         ms = timed(est, trials)
-        ref = ParticleEstimator(name, ["L", "R"], particles=4 * args.particles, seed=2)
+        ref = ParticleEstimator(name, ["L", "R"], particles=4 * args.particles, seed=2, **two)
         timed(ref, trials)
         rows[name] = {
             "p50_ms": round(float(np.percentile(ms, 50)), 3),

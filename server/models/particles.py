@@ -79,9 +79,14 @@ class ParticleEstimator:
     """Weighted particles over one model's parameters, each with its own learned values.
 
     model: a kernel name (`kernels.get_kernel`). particles: how many. moves: Metropolis-
-    Hastings sweeps per rejuvenation. ess: rejuvenate when the effective sample size falls
-    below this fraction. seed: of the estimator's own generator. temper, carry_values, q0,
-    reward_rate_step: as for the grid estimator.
+    Hastings sweeps per rejuvenation at least, and more (up to 8 x) until the share `moved`
+    of the particles has moved (off by default: on the hybrid stand-in, 0.9 raised the
+    coverage of 95 % intervals from 0.90 to 0.92 at twice the cost). catch_up: stored trials
+    the pending moves replay per update (0: all at once). ess: rejuvenate when the effective
+    sample size falls below this fraction. seed: of the estimator's own generator. states,
+    second_options: a two-stage task's second-stage states (in the order of the first-stage
+    options whose common transition leads to each) and second-stage option labels. temper,
+    carry_values, q0, reward_rate_step: as for the grid estimator.
     """
 
     def __init__(
@@ -91,6 +96,7 @@ class ParticleEstimator:
         *,
         particles: int = DEFAULT_PARTICLES,
         moves: int = 2,
+        moved: float = 0.0,
         catch_up: int = 16,
         ess: float = 0.5,
         seed: int = 0,
@@ -99,6 +105,8 @@ class ParticleEstimator:
         q0: float = 0.0,
         reward_rate_step: float = 0.1,
         drift: float = 0.0,
+        states: Sequence[str] = (),
+        second_options: Sequence[str] = (),
     ):
         if drift:
             raise ValueError("drift is tracked by the grid estimator only (method: grid)")
@@ -106,6 +114,8 @@ class ParticleEstimator:
             raise ValueError(f"particles must be a whole number >= 16, got {particles!r}")
         if not (isinstance(moves, int) and moves >= 1):
             raise ValueError(f"moves must be a whole number >= 1, got {moves!r}")
+        if not (0 <= moved <= 1):
+            raise ValueError(f"moved must be in [0, 1], got {moved!r}")
         if not (isinstance(catch_up, int) and catch_up >= 0):
             raise ValueError(f"catch_up must be a whole number >= 0, got {catch_up!r}")
         if not (0 < ess < 1):
@@ -120,6 +130,7 @@ class ParticleEstimator:
         self.config: dict[str, Any] = {
             "particles": particles,
             "moves": moves,
+            "moved": float(moved),
             "catch_up": catch_up,
             "ess": float(ess),
             "seed": int(seed),
@@ -131,8 +142,10 @@ class ParticleEstimator:
         self.params = self.kernel.params
         self.options: list[str] = list(options)
         self._index = {lab: i for i, lab in enumerate(self.options)}
-        self._states: dict[str, int] = {}
-        self._seconds: dict[str, int] = {}
+        # two-stage trials: second-stage states and options in the order the model expects
+        # them (a state's index is the first-stage option whose common transition leads there)
+        self._states: dict[str, int] = {label: i for i, label in enumerate(states)}
+        self._seconds: dict[str, int] = {label: i for i, label in enumerate(second_options)}
         self._rng = np.random.default_rng(seed)
         n = particles
         draws = np.stack([_truncated_prior_draws(p, n, self._rng) for p in self.params], axis=1)
@@ -150,7 +163,8 @@ class ParticleEstimator:
         self.rejuvenations = 0
         self.accepted = 0  # proposals accepted, over all moves
         self._move: _Move | None = None
-        self._sweeps_left = 0
+        self._sweeps = 0  # sweeps of the moves since the last resampling
+        self._moved = np.zeros(particles, dtype=bool)  # particles moved since then
 
     # ------------------------------------------------------------------ coordinates
 
@@ -273,7 +287,8 @@ class ParticleEstimator:
         self._values = tuple(v[..., idx] for v in self._values)
         self._set_log_weights(np.full(n, -math.log(n)))
         self._theta_cache = None
-        self._sweeps_left = self.config["moves"]
+        self._sweeps = 0
+        self._moved = np.zeros(n, dtype=bool)
         self.rejuvenations += 1
         self._start_move()
         if not self.config["catch_up"]:
@@ -327,9 +342,14 @@ class ParticleEstimator:
         self._values = tuple(np.where(accept, vp, v) for vp, v in zip(values, self._values))
         self._theta_cache = None
         self.accepted += int(accept.sum())
-        self._sweeps_left -= 1
+        self._sweeps += 1
+        self._moved |= accept
         self._move = None
-        if self._sweeps_left:
+        # at least `moves` sweeps, then on until the share `moved` of the particles has left
+        # its resampled copy (a mixing check: duplicates left by resampling narrow the
+        # intervals), at most 8 x `moves`
+        moves = self.config["moves"]
+        if self._sweeps < moves or (self._moved.mean() < self.config["moved"] and self._sweeps < 8 * moves):
             self._start_move()
 
     def _finish_moves(self) -> None:
@@ -401,7 +421,7 @@ class ParticleEstimator:
             "reward_rate": list(self._rate),
             "last": [self._last_pe, self._last_surprise],
             "rejuvenations": [self.rejuvenations, self.accepted],
-            "move": None if self._move is None else self._move.to_state(self._sweeps_left),
+            "move": None if self._move is None else self._move.to_state(self._sweeps, self._moved),
             "rng": self._rng.bit_generator.state,
         }
 
@@ -411,7 +431,8 @@ class ParticleEstimator:
             raise ValueError("not a particle estimator state")
         if state.get("format") != STATE_FORMAT:
             raise ValueError(f"particle estimator state format {state.get('format')!r} is not {STATE_FORMAT}")
-        est = cls(state["model"], state["options"], **state["config"])
+        est = cls(state["model"], state["options"], **state["config"], states=state["states"],
+                  second_options=state["seconds"])  # fmt: skip
         n = est.config["particles"]
         z = np.array(state["z"], dtype=float)
         if z.shape != est._z.shape or len(state["log_weights"]) != n:
@@ -429,7 +450,7 @@ class ParticleEstimator:
         est._last_pe, est._last_surprise = state["last"]
         est.rejuvenations, est.accepted = (int(x) for x in state["rejuvenations"])
         if state["move"] is not None:
-            est._move, est._sweeps_left = _Move.from_state(state["move"], est)
+            est._move, est._sweeps, est._moved = _Move.from_state(state["move"], est)
         est._rng.bit_generator.state = state["rng"]
         return est
 
@@ -457,18 +478,19 @@ class _Move:
         self.z, self.theta, self.ll, self.values = z, theta, ll, values
         self.session, self.trial = session, trial
 
-    def to_state(self, sweeps_left: int) -> dict[str, Any]:
+    def to_state(self, sweeps: int, moved: np.ndarray) -> dict[str, Any]:
         return {
             "z": self.z.tolist(),
             "loglik": self.ll.tolist(),
             "values": [v.tolist() for v in self.values],
             "at": [self.session, self.trial],
-            "sweeps_left": sweeps_left,
+            "sweeps": sweeps,
+            "moved": moved.astype(int).tolist(),
         }
 
     @staticmethod
-    def from_state(state: Mapping[str, Any], est: ParticleEstimator) -> tuple[_Move, int]:
+    def from_state(state: Mapping[str, Any], est: ParticleEstimator) -> tuple[_Move, int, np.ndarray]:
         z = np.array(state["z"], dtype=float)
         values = tuple(np.array(v, dtype=float) for v in state["values"])
         move = _Move(z, est._theta_of(z), np.array(state["loglik"], dtype=float), values, *state["at"])
-        return move, int(state["sweeps_left"])
+        return move, int(state["sweeps"]), np.array(state["moved"], dtype=bool)

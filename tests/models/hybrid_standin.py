@@ -1,10 +1,12 @@
-"""A stand-in hybrid model-based/model-free kernel for timing the particle estimator.
+"""A stand-in hybrid model-based/model-free kernel for checking and timing the particle estimator.
 
-Written for the bench from Daw et al. (2011), Neuron 69:1204, until the project's own hybrid
-model lands: six parameters (w, alpha, beta1, beta2, lam, persev), two first-stage options,
+Written from Daw et al. (2011), Neuron 69:1204, until the project's own hybrid model lands
+(tests/models/test_particles_hybrid.py, bench/particles.py): six parameters (w, alpha, beta1,
+beta2, lam, persev), two first-stage options,
 two second-stage states with two options each, transitions 0.7 common / 0.3 rare, values and
 the previous first choice per parameter set, numpy across parameter sets. It is not used by
 the product; the adapter of the real model will take its place in server/models/kernels.py.
+The simulator below is plain Python, written apart from the numpy kernel.
 """
 
 from __future__ import annotations
