@@ -29,7 +29,7 @@ from machine import where_run  # noqa: E402
 from server.engine.records import SecondStage  # noqa: E402
 from server.models import CHOICE_MODELS, OnlineEstimator  # noqa: E402
 from server.models.kernels import KERNELS  # noqa: E402
-from server.models.particles import DEFAULT_PARTICLES, ParticleEstimator  # noqa: E402
+from server.models.particles import ParticleEstimator  # noqa: E402
 
 KERNELS["hybrid_standin"] = HybridStandIn()
 
@@ -75,22 +75,20 @@ def unit_gap(a, b, params) -> float:
     return max(gaps)
 
 
-def main() -> int:
-    parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
-    parser.add_argument("--json", action="store_true")
-    parser.add_argument("--particles", type=int, default=DEFAULT_PARTICLES)
-    parser.add_argument("--trials", type=int, default=300)
-    args = parser.parse_args()
+def figures(particles: int | None = None, trials: int = 300) -> dict[str, dict[str, float]]:
+    """Per model: update p50 / p99 / max in ms, rejuvenations, largest gap against 4x particles."""
     rows = {}
-    single = single_stage_trials(args.trials, 1)
+    single = single_stage_trials(trials, 1)
     for name in list(CHOICE_MODELS) + ["hybrid_standin"]:
-        trials = hybrid_trials(args.trials, 2) if name == "hybrid_standin" else single
+        seen = hybrid_trials(trials, 2) if name == "hybrid_standin" else single
         two = {"states": ["A", "B"], "second_options": ["x", "y"]} if name == "hybrid_standin" else {}
-        est = ParticleEstimator(name, ["L", "R"], particles=args.particles, seed=1, **two)
-        ms = timed(est, trials)
-        ref = ParticleEstimator(name, ["L", "R"], particles=4 * args.particles, seed=2, **two)
-        timed(ref, trials)
+        est = ParticleEstimator(name, ["L", "R"], particles=particles, seed=1, **two)
+        ms = timed(est, seen)
+        count = est.config["particles"]
+        ref = ParticleEstimator(name, ["L", "R"], particles=4 * count, seed=2, **two)
+        timed(ref, seen)
         rows[name] = {
+            "particles": count,
             "p50_ms": round(float(np.percentile(ms, 50)), 3),
             "p99_ms": round(float(np.percentile(ms, 99)), 3),
             "max_ms": round(float(ms.max()), 2),
@@ -104,14 +102,32 @@ def main() -> int:
         "p99_ms": round(float(np.percentile(grid_ms, 99)), 3),
         "max_ms": round(float(grid_ms.max()), 2),
     }
+    return rows
+
+
+def report(rows: dict[str, dict[str, float]], trials: int) -> None:
+    print(f"particle estimator, {trials} trials of one animal (particles by model size unless --particles)")
+    for name, r in rows.items():
+        extra = (
+            f"  particles {r['particles']}  rejuvenations {r['rejuvenations']}  gap vs 4x {r['gap_vs_4x']:.2%}"
+            if "gap_vs_4x" in r
+            else ""
+        )
+        print(f"  {name:28s} p50 {r['p50_ms']:.3f} ms  p99 {r['p99_ms']:.3f} ms  max {r['max_ms']:.1f} ms{extra}")
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    parser.add_argument("--json", action="store_true")
+    parser.add_argument("--particles", type=int, default=None, help="particles for every model (default: by size)")
+    parser.add_argument("--trials", type=int, default=300)
+    args = parser.parse_args()
+    rows = figures(args.particles, args.trials)
     if args.json:
         print(json.dumps({"particles": args.particles, "trials": args.trials, "models": rows}))
         return 0
     print(f"machine: {where_run()}")
-    print(f"particle estimator, {args.particles} particles, {args.trials} trials of one animal")
-    for name, r in rows.items():
-        extra = f"  rejuvenations {r['rejuvenations']}  gap vs 4x {r['gap_vs_4x']:.2%}" if "gap_vs_4x" in r else ""
-        print(f"  {name:28s} p50 {r['p50_ms']:.3f} ms  p99 {r['p99_ms']:.3f} ms  max {r['max_ms']:.1f} ms{extra}")
+    report(rows, args.trials)
     return 0
 
 

@@ -17,7 +17,7 @@ from model_simulation import reference_loglik, simulate, two_armed_reversal
 from server.models import OnlineEstimator
 from server.models.kernels import ChoiceKernel, KernelTrial, get_kernel
 from server.models.online import chosen_method, estimator_from_state, make_online_estimator, replay_estimator
-from server.models.particles import DEFAULT_PARTICLES, ParticleEstimator
+from server.models.particles import DEFAULT_PARTICLES, ParticleEstimator, default_particles
 
 TOLERANCE = 0.02  # of each parameter's range, on its declared spacing (the accuracy bar)
 
@@ -123,6 +123,11 @@ def test_new_session_tempers_earlier_evidence():
     for name in ("alpha", "beta"):
         assert after.params[name].high - after.params[name].low > before.params[name].high - before.params[name].low
     assert after.values == {"L": 0.0, "R": 0.0} and after.session_trial == 0
+
+
+def test_the_particle_count_follows_the_model_size():
+    assert ParticleEstimator("q_learning").config["particles"] == default_particles(2) == DEFAULT_PARTICLES
+    assert default_particles(6) > DEFAULT_PARTICLES
 
 
 def test_the_method_follows_the_model():
