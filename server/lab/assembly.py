@@ -22,7 +22,17 @@ from server.store.history import trial_history
 
 def estimator_config(protocol: Protocol) -> dict[str, Any]:
     assert protocol.estimator is not None
-    return {"model": protocol.estimator.model, "options": list(protocol.options), "drift": protocol.estimator.drift}
+    config: dict[str, Any] = {
+        "model": protocol.estimator.model, "options": list(protocol.options), "drift": protocol.estimator.drift,
+    }  # fmt: skip
+    task = protocol.two_stage
+    if task is not None:
+        # the first-stage options, and the states in the order of the options leading to them
+        config["options"] = list(task.first)
+        states = [task.common_state(first) for first in task.first]
+        config["states"] = states + [s for s in task.states if s not in states]
+        config["second_options"] = list(dict.fromkeys(o for s in task.states.values() for o in s.options))
+    return config
 
 
 def choice_trial_types(protocol: Protocol) -> set[str]:

@@ -466,18 +466,19 @@ def build_estimate(
 
 class _Replayable(Protocol):
     def new_session(self) -> None: ...
-    def update(self, choice: str | None, reward: float) -> Estimate: ...
+    def update(self, choice: str | None, reward: float, *, second: SecondStage | None = None) -> Estimate: ...
 
 
-def replay_into(est: _Replayable, trials: Iterable[tuple[Any, str | None, float]], resumed: bool) -> list[Estimate]:
-    """Feed stored (session, choice, reward) trials in order; a new session begins whenever
-    the session key changes (and at once when resuming from a state), exactly as the live
-    session core would have called `new_session`."""
+def replay_into(est: _Replayable, trials: Iterable[tuple[Any, ...]], resumed: bool) -> list[Estimate]:
+    """Feed stored (session, choice, reward) trials in order, with a two-stage trial's
+    `SecondStage` as a fourth item; a new session begins whenever the session key changes
+    (and at once when resuming from a state), exactly as the live session core would have
+    called `new_session`."""
     current: list[Any] = [object()] if resumed else []
     out = []
-    for session, choice, reward in trials:
+    for session, choice, reward, *second in trials:
         if current and current[0] != session:
             est.new_session()
         current[:] = [session]
-        out.append(est.update(choice, reward))
+        out.append(est.update(choice, reward, second=second[0] if second else None))
     return out

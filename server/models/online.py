@@ -31,10 +31,14 @@ def chosen_method(model: str, method: str = "auto", drift: float = 0.0) -> str:
 
 def make_online_estimator(model: str = "q_learning", options: Iterable[str] = (), *, method: str = "auto",
                           **config: Any) -> AnyEstimator:  # fmt: skip
-    """A fresh estimator for `model`; `config` goes to the chosen class."""
+    """A fresh estimator for `model`; `config` goes to the chosen class. A two-stage task's
+    `states` (in the order of the first-stage options whose common transition leads to each)
+    and `second_options` go to the particle estimator; the grid's single-stage models refuse
+    two-stage trials when they come."""
+    states, seconds = config.pop("states", ()), config.pop("second_options", ())
     if chosen_method(model, method, float(config.get("drift", 0.0))) == "grid":
         return OnlineEstimator(model, list(options), **config)
-    return ParticleEstimator(model, list(options), **config)
+    return ParticleEstimator(model, list(options), states=states, second_options=seconds, **config)
 
 
 def estimator_from_state(state: Mapping[str, Any]) -> AnyEstimator:
@@ -44,9 +48,9 @@ def estimator_from_state(state: Mapping[str, Any]) -> AnyEstimator:
     return OnlineEstimator.from_state(state)
 
 
-def replay_estimator(trials: Iterable[tuple[Any, str | None, float]], state: Mapping[str, Any] | None = None,
+def replay_estimator(trials: Iterable[tuple[Any, ...]], state: Mapping[str, Any] | None = None,
                      **config: Any) -> tuple[AnyEstimator, list[Estimate]]:  # fmt: skip
-    """Rebuild from stored (session, choice, reward) trials: from `state` (the end of an
+    """Rebuild from stored (session, choice, reward[, second stage]) trials: from `state` (the end of an
     earlier session) or fresh from `config`; a new session begins whenever the session key
     changes (and at once when resuming), exactly as the live session core calls `new_session`."""
     est = estimator_from_state(state) if state is not None else make_online_estimator(**config)

@@ -17,6 +17,7 @@ from scipy import optimize
 
 from server.engine.records import SecondStage
 from server.models.kernels import KERNELS
+from server.models.online import chosen_method, make_online_estimator, replay_estimator
 from server.models.particles import ParticleEstimator, _truncated_prior_draws
 
 KERNELS.setdefault("hybrid_standin", HybridStandIn())
@@ -103,3 +104,21 @@ def test_intervals_cover_the_truth_at_their_nominal_rate(cohort):
     rate = sum(hits.values()) / (len(names) * len(cohort))
     print(f"hybrid coverage {rate:.3f} {hits}")
     assert 0.93 <= rate <= 0.97
+
+
+def test_two_stage_trials_replay_bit_for_bit_across_sessions():
+    truth = {"w": 0.5, "alpha": 0.4, "beta1": 4.0, "beta2": 3.0, "lam": 0.5, "persev": 0.2}
+    rows = [
+        (f"day{t // 60}", "LR"[a1], r, SecondStage("AB"[s], bool(common), "xy"[a2]))
+        for t, (a1, s, common, a2, r) in enumerate(simulate(truth, 120, seed=5))
+    ]
+    config = {"model": "hybrid_standin", "options": ["L", "R"], "particles": 128, "seed": 3, **TWO_STAGE}
+    assert chosen_method("hybrid_standin") == "particles"
+    live, seen = make_online_estimator(**config), []
+    for i, (session, c, r, second) in enumerate(rows):
+        if i and session != rows[i - 1][0]:
+            live.new_session()
+        seen.append(live.update(c, r, second=second).to_dict())
+    replayed, estimates = replay_estimator(rows, **config)
+    assert [e.to_dict() for e in estimates] == seen
+    assert replayed.state_dict() == live.state_dict() and live.rejuvenations > 0
