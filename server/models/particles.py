@@ -59,6 +59,7 @@ def default_particles(parameters: int) -> int:
 
 
 _TIE = 1e-12
+_ESS_FLOOR = 0.05  # below this share, pending moves are finished at once (no resampling waits on them)
 _TAILS = (0.025, 0.975)
 
 
@@ -250,6 +251,8 @@ class ParticleEstimator:
         self._session_trial += 1
         if self._move is not None:
             self._advance_move(self.config["catch_up"])
+            if self._move is not None and self.ess() < _ESS_FLOOR * len(self._logw):
+                self._finish_moves()  # the weights degenerate faster than the moves catch up
         elif self.ess() < self.config["ess"] * len(self._logw):
             self._rejuvenate()
         return self.estimate() if summarise else None
