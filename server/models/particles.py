@@ -164,7 +164,8 @@ class ParticleEstimator:
         draws = np.stack([_truncated_prior_draws(p, n, self._rng) for p in self.params], axis=1)
         self._z = self._to_z(draws)
         self._theta_cache: dict[str, np.ndarray] | None = None
-        self._set_log_weights(np.full(n, -math.log(n)))
+        self._logw: np.ndarray = np.full(n, -math.log(n))  # normalised log weights
+        self._w: np.ndarray | None = None  # the weights, once asked for
         self._ll = np.zeros(n)  # tempered log-likelihood of each particle over the whole history
         self._values = self.kernel.start(n, len(self.options))
         self._trials: list[list[KernelTrial]] = [[]]  # per session
@@ -238,12 +239,18 @@ class ParticleEstimator:
             before = self.kernel.option_values(self._values, len(self.options))
             self._last_pe = reward - float(before[trial.choice] @ self._weights())
             logp, self._values = self.kernel.step(self.theta, self._values, trial)
-            # the log weights stay normalised, so the log predictive is one log-sum-exp
+            # the log weights stay normalised, so the log predictive is one log-sum-exp, and
+            # the same exponentials are the new weights
             joint = self._logw + logp
-            log_predictive = _logsumexp(joint)
+            top = float(joint.max())
+            e = np.exp(joint - top)
+            total = float(e.sum())
+            log_predictive = top + math.log(total)
             self._last_surprise = -log_predictive
             joint -= log_predictive
-            self._set_log_weights(joint)
+            self._logw = joint
+            e *= 1.0 / total
+            self._w = e
             self._ll += logp
         self._trials[-1].append(trial)
         step = self.config["reward_rate_step"]
@@ -276,7 +283,7 @@ class ParticleEstimator:
     def _set_log_weights(self, logw: np.ndarray) -> None:
         """Log weights, normalised (log-sum-exp 0), and the weights they stand for."""
         self._logw = logw
-        self._w: np.ndarray | None = None
+        self._w = None
 
     def _weights(self) -> np.ndarray:
         if self._w is None:
