@@ -27,11 +27,15 @@ def estimator_config(protocol: Protocol) -> dict[str, Any]:
     }  # fmt: skip
     task = protocol.two_stage
     if task is not None:
-        # the first-stage options, and the states in the order of the options leading to them
+        # labels in the protocol's order, and the structure as plain data for the kernel
         config["options"] = list(task.first)
-        states = [task.common_state(first) for first in task.first]
-        config["states"] = states + [s for s in task.states if s not in states]
+        config["states"] = list(task.states)
         config["second_options"] = list(dict.fromkeys(o for s in task.states.values() for o in s.options))
+        config["task"] = {
+            "first": list(task.first),
+            "states": {name: list(state.options) for name, state in task.states.items()},
+            "transitions": {a: dict(row) for a, row in task.transitions.items()},
+        }
     return config
 
 

@@ -22,9 +22,9 @@ that calls its update and returns (log p, values); register it in `KERNELS`.
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
-from typing import NamedTuple, Protocol
+from typing import Any, NamedTuple, Protocol
 
 import numpy as np
 
@@ -111,14 +111,20 @@ class ChoiceKernel:
         return values[0][:options]
 
 
-# The models the particle estimator offers, by name. A two-stage model's adapter goes here.
+# The models the particle estimator offers, by name. A two-stage model whose kernel depends
+# on the task's structure registers a factory instead: it gets the estimator's `task` (plain
+# JSON, kept in the estimator's state: first-stage options, states with their options,
+# transition probabilities), so a stored state rebuilds the same kernel.
 KERNELS: dict[str, TrialKernel] = {name: ChoiceKernel(model) for name, model in CHOICE_MODELS.items()}
+KERNEL_FACTORIES: dict[str, Callable[[Mapping[str, Any] | None, float], TrialKernel]] = {}
 
 
-def get_kernel(name: str, q0: float = 0.0) -> TrialKernel:
+def get_kernel(name: str, q0: float = 0.0, task: Mapping[str, Any] | None = None) -> TrialKernel:
     """The kernel of a model by name (a did-you-mean on a typo, as for choice models)."""
     if name in CHOICE_MODELS:
         return ChoiceKernel(CHOICE_MODELS[name], q0)
+    if name in KERNEL_FACTORIES:
+        return KERNEL_FACTORIES[name](task, q0)
     if name in KERNELS:
         return KERNELS[name]
     get_choice_model(name)  # raises the usual unknown-model message

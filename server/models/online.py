@@ -32,13 +32,12 @@ def chosen_method(model: str, method: str = "auto", drift: float = 0.0) -> str:
 def make_online_estimator(model: str = "q_learning", options: Iterable[str] = (), *, method: str = "auto",
                           **config: Any) -> AnyEstimator:  # fmt: skip
     """A fresh estimator for `model`; `config` goes to the chosen class. A two-stage task's
-    `states` (in the order of the first-stage options whose common transition leads to each)
-    and `second_options` go to the particle estimator; the grid's single-stage models refuse
-    two-stage trials when they come."""
-    states, seconds = config.pop("states", ()), config.pop("second_options", ())
+    `states`, `second_options` and `task` go to the particle estimator only; the grid's
+    single-stage models refuse two-stage trials when they come."""
+    two_stage = {k: config.pop(k) for k in ("states", "second_options", "task") if k in config}
     if chosen_method(model, method, float(config.get("drift", 0.0))) == "grid":
         return OnlineEstimator(model, list(options), **config)
-    return ParticleEstimator(model, list(options), states=states, second_options=seconds, **config)
+    return ParticleEstimator(model, list(options), **two_stage, **config)
 
 
 def estimator_from_state(state: Mapping[str, Any]) -> AnyEstimator:

@@ -95,9 +95,10 @@ class ParticleEstimator:
     coverage of 95 % intervals from 0.90 to 0.92 at twice the cost). catch_up: stored trials
     the pending moves replay per update (0: all at once). ess: rejuvenate when the effective
     sample size falls below this fraction. seed: of the estimator's own generator. states,
-    second_options: a two-stage task's second-stage states (in the order of the first-stage
-    options whose common transition leads to each) and second-stage option labels. temper,
-    carry_values, q0, reward_rate_step: as for the grid estimator.
+    second_options: a two-stage task's second-stage states and second-stage option labels, in
+    the order its kernel expects. task: the task's structure as plain data, for kernels built
+    from it (`kernels.KERNEL_FACTORIES`). temper, carry_values, q0, reward_rate_step: as for
+    the grid estimator.
     """
 
     def __init__(
@@ -118,10 +119,11 @@ class ParticleEstimator:
         drift: float = 0.0,
         states: Sequence[str] = (),
         second_options: Sequence[str] = (),
+        task: Mapping[str, Any] | None = None,
     ):
         if drift:
             raise ValueError("drift is tracked by the grid estimator only (method: grid)")
-        self.kernel: TrialKernel = get_kernel(model, q0)
+        self.kernel: TrialKernel = get_kernel(model, q0, task)
         if particles is None:
             particles = default_particles(len(self.kernel.params))
         if not (isinstance(particles, int) and particles >= 16):
@@ -151,6 +153,7 @@ class ParticleEstimator:
             "carry_values": bool(carry_values),
             "q0": float(q0),
             "reward_rate_step": float(reward_rate_step),
+            "task": None if task is None else dict(task),
         }
         self.params = self.kernel.params
         self.options: list[str] = list(options)
