@@ -10,9 +10,10 @@ import argparse
 import asyncio
 import json
 import sys
+from collections.abc import Sequence
 from pathlib import Path
 
-from server.protocol.problems import InvalidFile
+from server.protocol.problems import InvalidFile, Problem
 
 REPO_ROOT = Path(__file__).resolve().parents[2]
 DEMO_CONFIG = REPO_ROOT / "config.example.yaml"
@@ -24,6 +25,13 @@ def _err(message: str) -> None:
 
 
 # ---------------------------------------------------------------- check
+
+
+def _warn(warnings: Sequence[Problem]) -> None:
+    """Old spellings that were read, each naming the new one (they load until the next format version)."""
+    for warning in warnings:
+        mark = warning.mark
+        sys.stderr.write(f"{mark.file}:{mark.line}:{mark.col}: warning: {warning.message}\n")
 
 
 def cmd_check(args: argparse.Namespace) -> int:
@@ -38,6 +46,7 @@ def cmd_check(args: argparse.Namespace) -> int:
             for problem in exc.problems:
                 sys.stderr.write(f"{problem}\n")
             continue
+        _warn(protocol.warnings)
         if not args.quiet:
             print(
                 f"{file}: ok ('{protocol.name}': {len(protocol.trial_types)} trial types, "
@@ -84,6 +93,7 @@ def cmd_run(args: argparse.Namespace) -> int:
         for problem in exc.problems:
             sys.stderr.write(f"{problem}\n")
         return 1
+    _warn(config.warnings)
     return _run_lab(config, args.db or str(config.database), args.minutes, args.port)
 
 
@@ -164,6 +174,7 @@ def cmd_rehearse(args: argparse.Namespace) -> int:
         for problem in exc.problems:
             sys.stderr.write(f"{problem}\n")
         return 1
+    _warn(protocol.warnings + population.warnings)
     result = rehearse(
         protocol, args.animals, args.seed, caps=HardCaps(), progress=progress_bar(),
         workers=args.workers, sessions=args.sessions, population=population,
@@ -297,12 +308,12 @@ def build_parser() -> argparse.ArgumentParser:
         metavar="K",
         help="sessions (days) per animal; learning carries over",
     )
-    p.add_argument("--population", metavar="FILE", help="YAML: agent and how its options vary")
+    p.add_argument("--population", metavar="FILE", help="YAML: agent and how its traits vary")
     p.add_argument(
         "--vary",
         action="append",
         metavar="NAME=SPEC",
-        help="vary an agent option: NAME=LOW:HIGH, NAME=lognormal:MEDIAN:SIGMA, NAME=VALUE",
+        help="vary a virtual animal's trait: NAME=LOW:HIGH, NAME=lognormal:MEDIAN:SIGMA, NAME=VALUE",
     )
     p.add_argument("--figure", metavar="FILE.svg", help="write a histogram of trials to criterion")
     p.add_argument("--firings", action="store_true", help="list every rule firing with the values its condition read")

@@ -62,6 +62,7 @@ class LabConfig:
     caps: HardCaps
     boxes: tuple[BoxConfig, ...]
     web: WebSettings = WebSettings()
+    warnings: tuple[Problem, ...] = ()  # old spellings read, here and in its protocols
 
 
 def load_lab(path: str | Path) -> LabConfig:
@@ -121,7 +122,9 @@ class _LabReader(Reader):
                 animals[box.animal] = box.name
                 boxes.append(box)
         web = read_web(self, top.get("web"))
-        return LabConfig(file, name or "lab", database, caps, tuple(boxes), web)
+        protocols = [p for p in self._protocols.values() if p is not None]
+        warnings = tuple(self.warnings) + tuple(w for p in protocols for w in p.warnings)
+        return LabConfig(file, name or "lab", database, caps, tuple(boxes), web, warnings)
 
     def caps(self, node: Marked | None) -> HardCaps:
         f = self.mapping(node, "caps", ("max_rewards", "max_minutes"))

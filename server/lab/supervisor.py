@@ -31,6 +31,10 @@ from server.store.background import BackgroundWriter
 from server.store.wall_clock import wall_now
 from server.store.writer import Store
 
+# Why a session ended when `vigil run --minutes` ran out (the session's own limit, from its
+# protocol and the lab's caps, ends it as "session time limit" in the session core).
+RUN_TIME_LIMIT = "run time limit (--minutes)"
+
 __all__ = ["BoxRun", "Lab", "LabError"]
 
 
@@ -210,7 +214,7 @@ class Lab:
         return {
             "caps": {"max_rewards": caps.max_rewards, "max_minutes": caps.max_minutes},
             "emulate": None if emulate is None else {
-                "agent": emulate.agent, "seed": emulate.seed, "options": emulate.options, "faults": emulate.faults,
+                "agent": emulate.agent, "seed": emulate.seed, "traits": emulate.traits, "faults": emulate.faults,
             },
             "port": box.port,
             "stage": self.stages.running.get(box.name),
@@ -241,5 +245,5 @@ class Lab:
 
     async def _time_limit(self, minutes: float) -> None:
         await asyncio.sleep(minutes * 60.0)
-        self.say(f"time limit of {minutes:g} min reached; ending sessions")
-        self.stop_all("time limit")
+        self.say(f"run time limit of {minutes:g} min (--minutes) reached; ending sessions")
+        self.stop_all(RUN_TIME_LIMIT)

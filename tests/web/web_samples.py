@@ -100,7 +100,7 @@ boxes:
   - name: rig-5b
     animal: RV-0032
     protocol: {REPO / "protocols" / "reversal.yaml"}
-    emulate: {{agent: q_learner, seed: 78, options: {{alpha: 0.3, beta: 5.0}}}}
+    emulate: {{agent: q_learner, seed: 78, traits: {{alpha: 0.3, beta: 5.0}}}}
 """,
         encoding="utf-8",
     )
