@@ -13,7 +13,7 @@ from collections.abc import Iterable, Mapping
 from typing import Any
 
 from .estimator import Estimate, OnlineEstimator, replay_into
-from .kernels import get_kernel
+from .kernels import KERNEL_FACTORIES, get_kernel
 from .particles import METHOD, ParticleEstimator
 
 GRID_MAX_PARAMS = 3
@@ -26,6 +26,8 @@ def chosen_method(model: str, method: str = "auto", drift: float = 0.0) -> str:
         raise ValueError(f"estimator method must be one of {', '.join(METHODS)}, got {method!r}")
     if method != "auto":
         return method
+    if model in KERNEL_FACTORIES:  # built from a two-stage task: the hybrid and its variants
+        return "particles"
     return "grid" if drift > 0 or len(get_kernel(model).params) <= GRID_MAX_PARAMS else "particles"
 
 

@@ -438,6 +438,7 @@ class ParticleEstimator:
             "config": dict(self.config),
             "z": self._z.tolist(),
             "log_weights": self._logw.tolist(),
+            "weights": self._weights().tolist(),  # as derived live, to the last bit
             "loglik": self._ll.tolist(),
             "values": [v.tolist() for v in self._values],
             "trials": [[list(t) for t in session] for session in self._trials],
@@ -464,6 +465,7 @@ class ParticleEstimator:
             raise ValueError("particle estimator state does not match its particle count")
         est._z = z
         est._set_log_weights(np.array(state["log_weights"], dtype=float))
+        est._w = np.array(state["weights"], dtype=float)
         est._ll = np.array(state["loglik"], dtype=float)
         est._values = tuple(np.array(v, dtype=float) for v in state["values"])
         est._states = {s: i for i, s in enumerate(state["states"])}
