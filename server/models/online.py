@@ -12,6 +12,7 @@ from __future__ import annotations
 from collections.abc import Iterable, Mapping
 from typing import Any
 
+from . import kernels_two_stage  # noqa: F401  (registers the two-stage models' kernels)
 from .estimator import Estimate, OnlineEstimator, replay_into
 from .kernels import KERNEL_FACTORIES, get_kernel
 from .particles import METHOD, ParticleEstimator
