@@ -185,3 +185,18 @@ def test_intervals_cover_the_truth_at_their_nominal_rate_after_300_trials(model)
     assert 0.93 <= rate <= 0.97, hits
     for name, count in hits.items():
         assert 0.90 <= count / n <= 0.99, (name, count)
+
+
+def test_resuming_mid_session_continues_to_the_last_bit():
+    _, (ch, rw) = _animals(1, 120, seed=26)
+    whole = ParticleEstimator("q_sticky", ["L", "R"], particles=128, seed=2)
+    half = ParticleEstimator("q_sticky", ["L", "R"], particles=128, seed=2)
+    rows = [("LR"[c] if c >= 0 else None, float(r)) for c, r in zip(ch[0], rw[0])]
+    for c, r in rows[:60]:
+        whole.update(c, r)
+        half.update(c, r)
+    resumed = estimator_from_state(json.loads(json.dumps(half.state_dict())))
+    assert resumed.estimate().to_dict() == whole.estimate().to_dict()
+    for c, r in rows[60:]:
+        assert resumed.update(c, r).to_dict() == whole.update(c, r).to_dict()
+    assert whole.rejuvenations > 1
