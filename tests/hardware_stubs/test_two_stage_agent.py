@@ -124,7 +124,7 @@ def test_learned_values_carry_to_the_next_session():
 
 
 def test_options_are_checked():
-    with pytest.raises(AgentError, match=r"option 'w' of agent 'two_stage_learner' must be between 0 and 1"):
+    with pytest.raises(AgentError, match=r"trait 'w' of agent 'two_stage_learner' must be between 0 and 1"):
         make_agent("two_stage_learner", w=1.5)
 
 
@@ -132,7 +132,7 @@ def test_a_population_file_draws_its_options():
     from server.lab.population import read_population
 
     text = (
-        "agent: two_stage_learner\noptions:\n"
+        "agent: two_stage_learner\ntraits:\n"
         "  w: {uniform: [0.0, 1.0]}\n  beta1: {lognormal: {median: 4, sigma: 0.3}}\n"
     )
     population = read_population(text, "cohort.yaml", "q_learner")
