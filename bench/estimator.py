@@ -9,7 +9,10 @@
    from 10 random starts) on a plain per-trial numpy likelihood, as commonly written.
    loglik_gap = best scipy log-likelihood - ours (<= 0: ours is at least as good).
 
-    python bench/estimator.py [--json] [--trials 2000] [--repeats 3]
+3. The particle estimator (bench/particles.py): per model, the update's p50 / p99 and its
+   accuracy against four times the particles, with a stand-in hybrid model.
+
+    python bench/estimator.py [--json] [--trials 2000] [--repeats 3] [--no-particles]
 """
 
 from __future__ import annotations
@@ -109,6 +112,8 @@ def main() -> int:
     parser.add_argument("--json", action="store_true", help="one line of JSON")
     parser.add_argument("--trials", type=int, default=2000, help="online updates to time")
     parser.add_argument("--repeats", type=int, default=3, help="repeats of each fit")
+    parser.add_argument("--no-particles", dest="particles", action="store_false",
+                        help="skip the particle estimator's figures (bench/particles.py)")  # fmt: skip
     args = parser.parse_args()
 
     times, est = time_updates(args.trials, drift=0.0)
@@ -166,6 +171,10 @@ def main() -> int:
     print(
         "  our fit of every choice model on the same trials: " + ", ".join(f"{k} {v:.3f} s" for k, v in others.items())
     )
+    if args.particles:
+        import particles  # bench/particles.py, beside this file
+
+        particles.report(particles.figures(), 300)
     return 0
 
 

@@ -14,10 +14,11 @@ from hardware_stubs.agents.draws import Draws
 from hardware_stubs.agents.options import AgentError, AgentOption, resolve_options
 from hardware_stubs.agents.pavlovian import PavlovianApproacher
 from hardware_stubs.agents.responders import QLearner, RandomResponder
+from hardware_stubs.agents.two_stage import TwoStageLearner
 from server.protocol.reader import did_you_mean
 
 AGENTS: Mapping[str, type[VirtualAnimal]] = MappingProxyType(
-    {cls.name: cls for cls in (RandomResponder, QLearner, PavlovianApproacher)}
+    {cls.name: cls for cls in (RandomResponder, QLearner, PavlovianApproacher, TwoStageLearner)}
 )
 
 
@@ -47,6 +48,7 @@ __all__ = [
     "PavlovianApproacher",
     "QLearner",
     "RandomResponder",
+    "TwoStageLearner",
     "VirtualAnimal",
     "make_agent",
     "validate_agent",

@@ -14,7 +14,7 @@ from typing import Any
 
 from server.engine.caps import HardCaps
 from server.engine.session import Session
-from server.models.estimator import OnlineEstimator
+from server.models.online import AnyEstimator, estimator_from_state, make_online_estimator, replay_estimator
 from server.protocol.model import Protocol
 from server.rules.book import RuleBook
 from server.store.history import trial_history
@@ -22,7 +22,21 @@ from server.store.history import trial_history
 
 def estimator_config(protocol: Protocol) -> dict[str, Any]:
     assert protocol.estimator is not None
-    return {"model": protocol.estimator.model, "options": list(protocol.options), "drift": protocol.estimator.drift}
+    config: dict[str, Any] = {
+        "model": protocol.estimator.model, "options": list(protocol.options), "drift": protocol.estimator.drift,
+    }  # fmt: skip
+    task = protocol.two_stage
+    if task is not None:
+        # labels in the protocol's order, and the structure as plain data for the kernel
+        config["options"] = list(task.first)
+        config["states"] = list(task.states)
+        config["second_options"] = list(dict.fromkeys(o for s in task.states.values() for o in s.options))
+        config["task"] = {
+            "first": list(task.first),
+            "states": {name: list(state.options) for name, state in task.states.items()},
+            "transitions": {a: dict(row) for a, row in task.transitions.items()},
+        }
+    return config
 
 
 def choice_trial_types(protocol: Protocol) -> set[str]:
@@ -42,19 +56,19 @@ def animal_estimator_state(conn: sqlite3.Connection, animal: str, protocol: Prot
     trials = [(p.session_id, p.choice, p.reward or 0.0) for p in past]
     if not trials:
         return None
-    estimator, _ = OnlineEstimator.replay(trials, **estimator_config(protocol))
+    estimator, _ = replay_estimator(trials, **estimator_config(protocol))
     return estimator.state_dict()
 
 
-def make_estimator(protocol: Protocol, state: Mapping[str, Any] | None = None) -> OnlineEstimator | None:
+def make_estimator(protocol: Protocol, state: Mapping[str, Any] | None = None) -> AnyEstimator | None:
     """The protocol's estimator, continuing from an animal's stored state when given."""
     if protocol.estimator is None:
         return None
     if state is not None:
-        estimator = OnlineEstimator.from_state(state)
+        estimator = estimator_from_state(state)
         estimator.new_session()
         return estimator
-    return OnlineEstimator(**estimator_config(protocol))
+    return make_online_estimator(**estimator_config(protocol))
 
 
 def build_session(

@@ -27,7 +27,7 @@ from __future__ import annotations
 import math
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any, Literal, TypedDict, overload
+from typing import Any, Literal, Protocol, TypedDict, overload
 
 import numpy as np
 
@@ -336,37 +336,21 @@ class OnlineEstimator:
         w = self._w
         params = {p.name: ParamEstimate(*row) for p, row in zip(self.model.params, self.grid.marginal_summaries(w))}
         k = len(self.options)
-        values, p_choice, p_prefers = {}, {}, {}
-        best = exploration = p_best = None
+        q_mean = probs = share = None
         if k:
             w_learn = w.sum(axis=self._choice_axes, keepdims=True).ravel()
             q_mean = self._q.reshape(k, -1) @ w_learn
             probs = self._probs().reshape(k, -1) @ w.ravel()
             top = self._q >= self._q.max(0) - _TIE
             share = (top / top.sum(0)).reshape(k, -1) @ w_learn
-            values = dict(zip(self.options, q_mean.tolist()))
-            # sums of weights can overshoot 1 by a rounding step; keep them probabilities
-            p_choice = dict(zip(self.options, np.clip(probs, 0.0, 1.0).tolist()))
-            p_prefers = dict(zip(self.options, np.clip(share, 0.0, 1.0).tolist()))
-            order = np.argsort(-q_mean, kind="stable")
-            if k == 1 or q_mean[order[0]] - q_mean[order[1]] > _TIE:
-                best = self.options[int(order[0])]
-                exploration = 1.0 - p_choice[best]
-                p_best = p_prefers[best]
         rate = self._rate_sum / self._rate_norm if self._rate_norm else None
-        return Estimate(
+        return build_estimate(
             self.model.name,
             self._session_trial,
             params,
-            values,
-            p_choice,
-            self._prediction_error(),
-            self._last_surprise,
-            best,
-            exploration,
-            p_best,
-            p_prefers,
-            rate,
+            self.options,
+            (q_mean, probs, share),
+            (self._prediction_error(), self._last_surprise, rate),
         )
 
     def p_choice_at_least(self, label: str, level: float) -> float | None:
@@ -447,11 +431,54 @@ class OnlineEstimator:
         state), exactly as the live session core would have called `new_session`.
         """
         est = cls.from_state(state) if state is not None else cls(**config)
-        current: list[Any] = [] if state is None else [object()]
-        out = []
-        for session, choice, reward in trials:
-            if current and current[0] != session:
-                est.new_session()
-            current[:] = [session]
-            out.append(est.update(choice, reward))
-        return est, out
+        return est, replay_into(est, trials, state is not None)
+
+
+def build_estimate(
+    model: str,
+    session_trial: int,
+    params: dict[str, ParamEstimate],
+    options: Sequence[str],
+    per_option: tuple[np.ndarray | None, np.ndarray | None, np.ndarray | None],
+    last: tuple[float | None, float | None, float | None],
+) -> Estimate:
+    """An Estimate from posterior means per option: (values, choice probabilities, share of
+    the posterior preferring each option) and (prediction error, surprise, reward rate)."""
+    q_mean, probs, share = per_option
+    values: dict[str, float] = {}
+    p_choice: dict[str, float] = {}
+    p_prefers: dict[str, float] = {}
+    best = exploration = p_best = None
+    if q_mean is not None and probs is not None and share is not None:
+        values = dict(zip(options, q_mean.tolist()))
+        # sums of weights can overshoot 1 by a rounding step; keep them probabilities
+        p_choice = dict(zip(options, np.clip(probs, 0.0, 1.0).tolist()))
+        p_prefers = dict(zip(options, np.clip(share, 0.0, 1.0).tolist()))
+        order = np.argsort(-q_mean, kind="stable")
+        if len(options) == 1 or q_mean[order[0]] - q_mean[order[1]] > _TIE:
+            best = options[int(order[0])]
+            exploration = 1.0 - p_choice[best]
+            p_best = p_prefers[best]
+    pe, surprise, rate = last
+    return Estimate(model, session_trial, params, values, p_choice, pe, surprise, best, exploration, p_best,
+                    p_prefers, rate)  # fmt: skip
+
+
+class _Replayable(Protocol):
+    def new_session(self) -> None: ...
+    def update(self, choice: str | None, reward: float, *, second: SecondStage | None = None) -> Estimate: ...
+
+
+def replay_into(est: _Replayable, trials: Iterable[tuple[Any, ...]], resumed: bool) -> list[Estimate]:
+    """Feed stored (session, choice, reward) trials in order, with a two-stage trial's
+    `SecondStage` as a fourth item; a new session begins whenever the session key changes
+    (and at once when resuming from a state), exactly as the live session core would have
+    called `new_session`."""
+    current: list[Any] = [object()] if resumed else []
+    out = []
+    for session, choice, reward, *second in trials:
+        if current and current[0] != session:
+            est.new_session()
+        current[:] = [session]
+        out.append(est.update(choice, reward, second=second[0] if second else None))
+    return out
