@@ -85,6 +85,12 @@ def human_report(result: dict) -> str:
         lines.append(f"never reached          {s['fraction_never_reaching_criterion']:.0%} of animals")
     if s["rule_firings"]:
         lines.append("rule firings           " + ", ".join(f"{n}: {c}" for n, c in s["rule_firings"].items()))
+    for name, fit in (s.get("recovery") or {}).items():
+        r = "-" if fit["pearson_r"] is None else f"{fit['pearson_r']:.2f}"
+        lines.append(
+            f"estimate of {name:<10} tracks the trait with r = {r}; its 95 % interval holds it for "
+            f"{fit['coverage_95']:.0%} of {fit['animals']} animals"
+        )
     return "\n".join(lines)
 
 

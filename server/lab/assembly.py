@@ -49,11 +49,15 @@ def animal_estimator_state(conn: sqlite3.Connection, animal: str, protocol: Prot
     rebuilt by replaying their stored choice trials (exactly the live updates, in order)."""
     if protocol.estimator is None:
         return None
+    two_stage = protocol.two_stage is not None
     past = trial_history(
         conn, animals=[animal], protocol=protocol.name, trial_types=choice_trial_types(protocol),
-        ended_sessions_only=True, whole_trials_only=True,
+        ended_sessions_only=True, whole_trials_only=True, two_stage=two_stage,
     )  # fmt: skip
-    trials = [(p.session_id, p.choice, p.reward or 0.0) for p in past]
+    trials: list[tuple[Any, ...]] = [
+        (p.session_id, p.choice, p.reward or 0.0, p.second) if two_stage else (p.session_id, p.choice, p.reward or 0.0)
+        for p in past
+    ]
     if not trials:
         return None
     estimator, _ = replay_estimator(trials, **estimator_config(protocol))

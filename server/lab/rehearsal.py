@@ -141,6 +141,12 @@ def rehearse_one(
         "reversals": sum(d["reversals"] for d in days),
         "rule_firings": firings,
     }
+    if session.estimator is not None:  # what the model thinks of the animal at the end
+        est = session.estimator.estimate()
+        result["estimate"] = {
+            name: {"mean": round(p.mean, 6), "low": round(p.low, 6), "high": round(p.high, 6)}
+            for name, p in est.params.items()
+        }
     if sessions > 1:
         result["sessions"] = [{k: v for k, v in d.items() if k != "blocks"} for d in days]
     if with_log:
@@ -230,4 +236,23 @@ def summarise(results: list[dict], criterion: bool, sessions: int = 1) -> dict:
         "fraction_never_reaching_criterion": (
             round(1 - len(reached) / len(results), 4) if criterion and results else None
         ),
+        "recovery": recovery(results),
     }
+
+
+def recovery(results: list[dict]) -> dict[str, dict[str, float | int | None]]:
+    """For each trait the virtual animals drew that the estimator estimates under the same
+    name: how the estimates track it (Pearson r of the posterior means against the drawn
+    values) and how often the 95 % interval holds the drawn value."""
+    out: dict[str, dict[str, float | int | None]] = {}
+    names = sorted({n for r in results for n in r.get("estimate", {}) if n in r["params"]})
+    for name in names:
+        pairs = [(float(r["params"][name]), r["estimate"][name]) for r in results if name in r.get("estimate", {})]
+        truth = np.array([t for t, _ in pairs])
+        means = np.array([e["mean"] for _, e in pairs])
+        covered = sum(e["low"] <= t <= e["high"] for t, e in pairs)
+        r_value = None
+        if len(pairs) >= 3 and truth.std() > 0 and means.std() > 0:
+            r_value = round(float(np.corrcoef(truth, means)[0, 1]), 4)
+        out[name] = {"animals": len(pairs), "pearson_r": r_value, "coverage_95": round(covered / len(pairs), 4)}
+    return out

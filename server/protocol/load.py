@@ -102,15 +102,10 @@ class _Compiler(Reader):
         iti = self.duration(top.get("iti"), "iti") if "iti" in top else Duration.fixed(0.0)
         limits = self.limits(top.get("limits"))
         at_start = read_actions(self, top.get("at_start"), "at_start", wiring, allowed=ACTION_KEYS)
-        estimator = read_estimator(self, top.get("estimator"))
-        if estimator is None and "estimator" not in top and options and "two_stage" not in top:
-            estimator = EstimatorSpec()  # choice protocols get the default estimator
-        if estimator is not None and "two_stage" in top:
-            self.error(
-                top["estimator"].mark,
-                f"estimator.model: '{estimator.model}' learns single-stage choices; a two_stage task "
-                "needs a two-stage model",
-            )
+        estimator = read_estimator(self, top.get("estimator"), two_stage="two_stage" in top)
+        if estimator is None and "estimator" not in top and options:
+            # choice protocols get the default estimator: Q-learning, or the hybrid for two stages
+            estimator = EstimatorSpec("hybrid") if "two_stage" in top else EstimatorSpec()
         iti_bounds = read_iti_bounds(self, top.get("iti_bounds"))
         settings = read_settings(self, top.get("settings"))
         rules = read_rules(self, top.get("rules"), blocks, options, iti_bounds, settings)

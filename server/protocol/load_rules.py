@@ -11,6 +11,7 @@ from server.protocol.model import (
     END_SESSION,
     ESTIMATE_PARAMETERS,
     ESTIMATOR_MODELS,
+    TWO_STAGE_ESTIMATOR_MODELS,
     Block,
     EstimatorSpec,
     Option,
@@ -27,11 +28,20 @@ if TYPE_CHECKING:
 RULE_KEYS = ("rule", "when", "do", "hold_for", "cooldown", "max_firings")
 
 
-def read_estimator(r: Reader, node: Marked | None) -> EstimatorSpec | None:
+def read_estimator(r: Reader, node: Marked | None, two_stage: bool = False) -> EstimatorSpec | None:
+    """The learning model the session estimates: one of the single-stage models, or for a
+    two-stage task one of the two-stage models (the hybrid by default)."""
     f = r.mapping(node, "estimator", ("model", "drift"))
     if f is None:
         return None
-    model = r.choice(f["model"], "estimator.model", ESTIMATOR_MODELS) if "model" in f else "q_learning"
+    models, other = (
+        (TWO_STAGE_ESTIMATOR_MODELS, ESTIMATOR_MODELS) if two_stage else (ESTIMATOR_MODELS, TWO_STAGE_ESTIMATOR_MODELS)
+    )
+    if "model" in f and f["model"].value in other:
+        kind = "single-stage choices; a two_stage task needs" if two_stage else "two-stage tasks; this protocol needs"
+        r.error(f["model"].mark, f"estimator.model: '{f['model'].value}' learns {kind} one of {', '.join(models)}")
+        return None
+    model = r.choice(f["model"], "estimator.model", models) if "model" in f else models[0]
     drift = r.number(f["drift"], "estimator.drift", low=0, high=2) if "drift" in f else 0.0
     if model is None or drift is None:
         return None

@@ -130,7 +130,12 @@ class Block:
 # Learning models the estimator offers, and the parameters a rule can read (name.mean ...).
 # server.models declares the same names; a conformance test keeps the two in step.
 ESTIMATOR_MODELS = ("q_learning", "q_dual_rate", "q_sticky", "q_forgetting")
-ESTIMATE_PARAMETERS = ("alpha", "beta", "alpha_pos", "alpha_neg", "kappa", "decay")
+# Models of two-stage tasks: the hybrid model-based/model-free learner and its pure variants.
+TWO_STAGE_ESTIMATOR_MODELS = ("hybrid", "model_free", "model_based")
+ESTIMATE_PARAMETERS = (
+    "alpha", "beta", "alpha_pos", "alpha_neg", "kappa", "decay",
+    "alpha1", "alpha2", "lambda", "beta1", "beta2", "w", "persev",
+)  # fmt: skip
 ACTION_KINDS = ("switch_block", "reverse", "probe", "set_iti", "scale_iti", "end_session", "alarm", "note")
 # Actions that change the schedule: at most one rule doing these fires after a trial.
 SCHEDULE_ACTIONS = ("switch_block", "reverse", "probe", "end_session")

@@ -129,3 +129,15 @@ def test_omission_skips_update_and_likelihood(model):
 def test_unknown_model_name_suggests_the_closest():
     with pytest.raises(ValueError, match=r"unknown model 'q_stiky' \(did you mean 'q_sticky'\?\)"):
         get_choice_model("q_stiky")
+
+
+def test_the_protocol_language_names_every_model_and_parameter():
+    # The protocol reader (lower layer) keeps its own lists; they must match the models.
+    from server.models import TWO_STAGE_MODELS
+    from server.models.two_stage import HYBRID_PARAMS
+    from server.protocol.model import ESTIMATE_PARAMETERS, ESTIMATOR_MODELS, TWO_STAGE_ESTIMATOR_MODELS
+
+    assert set(ESTIMATOR_MODELS) == set(CHOICE_MODELS)
+    assert set(TWO_STAGE_ESTIMATOR_MODELS) == set(TWO_STAGE_MODELS)
+    declared = {p.name for m in CHOICE_MODELS.values() for p in m.params} | {p.name for p in HYBRID_PARAMS}
+    assert set(ESTIMATE_PARAMETERS) == declared

@@ -36,7 +36,7 @@ def test_the_example_compiles_with_its_structure():
     assert ts.common_state("west") == "north" and ts.common_state("east") == "south"
     assert ts.walk is not None and (ts.walk.sd, ts.walk.low, ts.walk.high) == (0.025, 0.25, 0.75)
     assert protocol.options["west"].reward_probability is None
-    assert protocol.estimator is None  # no single-stage default for a two-stage task
+    assert protocol.estimator is not None and protocol.estimator.model == "hybrid"
 
 
 CASES = [
@@ -138,10 +138,10 @@ CASES = [
         r"'west' is a first-stage option; its outcome comes from the state it leads to, so reverse second-stage",
     ),
     (
-        "limits: {max_minutes: 60, max_rewards: 150}",
-        "estimator: {model: q_learning}\nlimits: {max_minutes: 60, max_rewards: 150}",
-        "estimator:",
-        r"estimator\.model: 'q_learning' learns single-stage choices; a two_stage task needs a two-stage model",
+        "estimator: {model: hybrid}",
+        "estimator: {model: q_learning}",
+        "estimator: {model: q_l",
+        r"estimator\.model: 'q_learning' learns single-stage choices; a two_stage task needs one of hybrid, ",
     ),
 ]
 
@@ -159,3 +159,10 @@ def test_to_state_without_a_two_stage_section_is_refused():
     text = TEXT.replace(TEXT[TEXT.index("two_stage:\n") : TEXT.index("at_start:")], "")
     found = problems(text)
     assert any("to_state: only meaningful with a two_stage section" in p for p in found), found
+
+
+def test_a_two_stage_model_on_a_single_stage_protocol_is_refused():
+    text = (Path(__file__).resolve().parents[2] / "protocols" / "reversal.yaml").read_text()
+    text = text.replace("estimator: {model: q_learning, drift: 0.02}", "estimator: {model: hybrid}")
+    (found,) = problems(text)
+    assert "estimator.model: 'hybrid' learns two-stage tasks; this protocol needs one of q_learning" in found
