@@ -295,7 +295,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_run)
 
     p = verbs.add_parser("demo", help="run emulated boxes with virtual animals")
-    p.add_argument("--boxes", type=_positive_int, default=4, metavar="N")
+    p.add_argument("--boxes", type=_positive_int, default=5, metavar="N")
     p.add_argument("--db", default=DEMO_DB, metavar="PATH")
     p.add_argument("--minutes", type=_minutes, metavar="M")
     p.add_argument("--port", type=_port, default=8642, metavar="P", help="status page port")

@@ -245,7 +245,10 @@ def wald_intervals(free: Sequence[Param], u: np.ndarray, grad: np.ndarray, hess:
         if len(keep):
             sub = hi[np.ix_(keep, keep)]
             e = np.linalg.eigvalsh(sub) if np.isfinite(sub).all() else np.array([-1.0])
-            if np.all(e > 0):
+            # A curvature this flat in some direction (a parameter the data cannot inform,
+            # such as a learning rate no choice depends on) gives no interval rather than an
+            # overflow or a singular inverse.
+            if np.all(e > 0) and e.min() > 1e-12 * e.max():
                 se = np.sqrt(np.diag(np.linalg.inv(sub)))
                 for j, i in enumerate(keep):
                     p = free[int(i)]

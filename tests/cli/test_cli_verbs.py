@@ -95,12 +95,12 @@ def _sessions(db: Path) -> list[tuple]:
         conn.close()
 
 
-def test_demo_runs_four_boxes_and_ends_every_session(tmp_path):
+def test_demo_runs_five_boxes_and_ends_every_session(tmp_path):
     db = tmp_path / "demo.sqlite"
     result = vigil("demo", "--db", str(db), "--minutes", "0.25", "--port", "18642", timeout=180)
     assert result.returncode == 0, result.stdout + result.stderr
     sessions = _sessions(db)
-    assert len(sessions) == 4
+    assert len(sessions) == 5
     assert all(reason == RUN_TIME_LIMIT and ended for _, _, reason, ended in sessions)
     conn = sqlite3.connect(db)
     trials = conn.execute("SELECT COUNT(*) FROM trials").fetchone()[0]

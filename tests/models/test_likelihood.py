@@ -156,3 +156,16 @@ def test_values_reset_each_session_unless_carried():
     assert np.all(fresh.values[second] == 0.0)
     assert np.any(carried.values[second] != 0.0)
     assert np.all(fresh.values[:second] == carried.values[:second])
+
+
+def test_a_flat_direction_gives_no_interval_instead_of_failing():
+    # An eigenvalue of ~1e-300 next to 1: positive, but the inverse overflows (numpy raises
+    # "Singular matrix"); the fit reports no interval for that animal instead.
+    from server.models.choice import get_choice_model
+    from server.models.fitting import wald_intervals
+
+    free = list(get_choice_model("q_learning").params)
+    u = np.array([[0.4, 0.5]])
+    grad = np.zeros((1, 2))
+    hess = np.array([[[1.0, 0.0], [0.0, 1e-300]]])
+    assert wald_intervals(free, u, grad, hess) == [{p.name: None for p in free}]
