@@ -168,7 +168,7 @@ def test_a_hung_receiver_and_a_dead_relay_do_not_hold_the_sessions(tmp_path, mon
         lab = Lab(config, store, say=said.append, in_process_boxes=True)
 
         async def scenario() -> None:
-            task = asyncio.create_task(lab.run(minutes=0.1))  # 6 s
+            task = asyncio.create_task(lab.run(minutes=0.05))  # 3 s
             await until(lambda: hook.tries >= 1)  # the disk alarm went out and hangs there
             await asyncio.wait_for(task, 30)
 
