@@ -95,6 +95,7 @@ class Lab:
         self._alarm_senders = alarm_senders
         self.alarms: AlarmDesk | None = None
         self.disk_free_mb: float | None = None
+        self.disk_every_s = DISK_EVERY_S
 
     def _last_store_failure(self) -> str | None:
         failure = self.store.failure
@@ -224,7 +225,7 @@ class Lab:
         next_disk = 0.0
         while True:
             if loop.time() >= next_disk:
-                next_disk = loop.time() + DISK_EVERY_S
+                next_disk = loop.time() + self.disk_every_s
                 self.disk_free_mb = await loop.run_in_executor(None, free_mb, self.store.path)
             desk.check(self._clock(), [run.facts() for run in self.runs], self.store_problem(), self.disk_free_mb)
             await asyncio.sleep(ALARM_EVERY_S)

@@ -194,7 +194,9 @@ def test_a_failed_send_is_retried_with_backoff_and_logged(fail_first):
         thread = ChannelThread(channel, webhook_sender(hook.url, None, "text"), size=10, say=said.append,
                                first_retry_s=0.05)  # fmt: skip
         thread.start()
-        thread.post(Outgoing(AlarmNote("link_lost", "rig-9", "raised", "link lost", 0.0), "Rig 9", "2026-12-03T02:00:00+00:00"))
+        thread.post(
+            Outgoing(AlarmNote("link_lost", "rig-9", "raised", "link lost", 0.0), "Rig 9", "2026-12-03T02:00:00+00:00")
+        )
         deadline = time.monotonic() + 10
         while not hook.bodies and time.monotonic() < deadline:
             time.sleep(0.02)
