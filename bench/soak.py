@@ -38,7 +38,6 @@ import sqlite3
 import sys
 import tempfile
 import time
-from collections import Counter
 from dataclasses import replace
 from pathlib import Path
 
@@ -88,7 +87,6 @@ def percentiles(ms: list[float]) -> dict:
 async def soak(boxes: int, minutes: float, slice_s: float, warmup_s: float) -> dict:
     import server.lab.supervisor as supervisor
     from server.engine.caps import HardCaps
-    from server.engine.records import EventLogged, TrialRecord
     from server.lab.config import BoxConfig, LabConfig
     from server.lab.config_link import Emulation
     from server.lab.supervisor import Lab
@@ -125,15 +123,6 @@ async def soak(boxes: int, minutes: float, slice_s: float, warmup_s: float) -> d
     config = LabConfig("soak", "soak bench", db, HardCaps(10**7, minutes + 10), configs)
     said: list[str] = []
     lab = Lab(config, store, say=said.append)
-    produced: Counter[tuple[int, str]] = Counter()
-    write = lab.writer.write
-
-    def counting(session_id, record):
-        if isinstance(record, (EventLogged, TrialRecord)):
-            produced[(session_id, type(record).__name__)] += 1
-        write(session_id, record)
-
-    lab.writer.write = counting
     running = asyncio.create_task(lab.run())
     while len(lab.runs) < boxes and not running.done():
         await asyncio.sleep(0.1)
@@ -165,7 +154,7 @@ async def soak(boxes: int, minutes: float, slice_s: float, warmup_s: float) -> d
     await running
     store.close()
     supervisor.LiveSession = plain_live
-    check = stored_against_produced(db, lab, produced)
+    check = stored_against_produced(db, lab)
     start = {k: slices[0][k] for k in ("rss_mb", "fds", "to_s")} if slices else {}
     end = {k: slices[-1][k] for k in ("rss_mb", "fds", "to_s")} if slices else {}
     return {"boxes": boxes, "minutes": minutes, "start": start, "end": end, "slices": slices,
@@ -181,9 +170,10 @@ def trend(t_s: list[float], p99: list[float]) -> float | None:
     return round(float(slope), 3)
 
 
-def stored_against_produced(db: Path, lab, produced: Counter) -> dict:
+def stored_against_produced(db: Path, lab) -> dict:
     """Per session: trials and events in the file against what the session and its box said."""
     conn = sqlite3.connect(db)
+    produced = lab.produced
     problems: list[str] = []
     trials = events = device_events = 0
     for run in lab.runs:

@@ -11,6 +11,7 @@ import asyncio
 import secrets
 import shutil
 import tempfile
+from collections import Counter
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -96,6 +97,9 @@ class Lab:
         self.alarms: AlarmDesk | None = None
         self.disk_free_mb: float | None = None
         self.disk_every_s = DISK_EVERY_S
+        # Records handed to the store, by (session id, record type): what a check of the
+        # database after a run (bench/soak.py, the disk-full test) compares the file with.
+        self.produced: Counter[tuple[int, str]] = Counter()
 
     def _last_store_failure(self) -> str | None:
         failure = self.store.failure
@@ -148,6 +152,7 @@ class Lab:
         def publish(records: list[Record]) -> None:
             for record in records:
                 status.observe(record)
+                self.produced[(session_id, type(record).__name__)] += 1
                 if isinstance(record, SessionEnded):
                     self.say(
                         f"{box.name}: session {session_id} ended ({record.reason}); "

@@ -16,82 +16,36 @@ from collections import Counter
 from pathlib import Path
 
 import pytest
-from alarm_receivers import Hook, MailRoom
+from lab_samples import Hook, MailRoom, write_lab
 
 from server.engine.records import ControlAction
 from server.lab.config import load_lab
 from server.lab.supervisor import Lab
 from server.store.writer import Store
 
-PROTOCOL = """\
-vigil_protocol: 1
-name: quick choice
-about: Two levers offered briefly; a press on either may earn a pellet.
-wiring:
-  outputs:
-    lever_a: {kind: lever, channel: 1}
-    lever_b: {kind: lever, channel: 2}
-    pellet: {kind: feeder, channel: 7, pulse_ms: 20}
-  inputs:
-    press_a: {kind: lever_press, channel: 1, presented_by: lever_a}
-    press_b: {kind: lever_press, channel: 2, presented_by: lever_b}
-options:
-  a: {input: press_a, reward_probability: 1.0}
-  b: {input: press_b, reward_probability: 1.0}
-trial_types:
-  offer:
-    steps:
-      - step: offer
-        activate: [lever_a, lever_b]
-        wait_s: 0.6
-        choose: [a, b]
-        if_rewarded: deliver
-        if_unrewarded: deliver
-        next: end
-        on_leave: {deactivate: [lever_a, lever_b]}
-      - step: deliver
-        pulse: pellet
-        wait_s: 0.1
-        next: end
-iti: {uniform: [0.1, 0.2]}
-blocks:
-  - block: work
-    trial_types: [offer]
-rules:
-  - rule: idle
-    when: "omission_rate(3) >= 0.6"
-    cooldown: 1000
-    then: {alarm: "the animal stopped pressing"}
-"""
 TOKEN = "night-desk-4417-token"
 
 
-def write_lab(tmp_path: Path, mail_port: int, hook_url: str, *, disk_mb: float = 1e12) -> Path:
-    (tmp_path / "quick.yaml").write_text(PROTOCOL)
-    path = tmp_path / "lab.yaml"
-    path.write_text(f"""\
-lab: Rig room 7
-caps: {{max_rewards: 4, max_minutes: 10}}
-boxes:
-  - name: rig-7a
-    animal: QC-0701
-    protocol: quick.yaml
-    emulate: {{agent: random, seed: 71, options: {{latency_s: 0.1, omission: 0.0}}}}
-  - name: rig-7b
-    animal: QC-0702
-    protocol: quick.yaml
-    emulate: {{agent: random, seed: 72, options: {{omission: 1.0, pause_s: 100000}}}}
+def rig7(tmp_path: Path, mail_port: int, hook_url: str) -> Path:
+    boxes = [("rig-7a", "QC-0701", 71, {"latency_s": 0.1, "omission": 0.0}),
+             ("rig-7b", "QC-0702", 72, {"omission": 1.0, "pause_s": 100000})]  # fmt: skip
+    return write_lab(
+        tmp_path,
+        "Rig room 7",
+        boxes,
+        "{max_rewards: 4, max_minutes: 10}",
+        f"""\
 alarms:
   no_response_minutes: 0.03
-  disk_free_mb: {disk_mb}
+  disk_free_mb: 1000000000000
   send:
     - email: {{relay: 127.0.0.1, port: {mail_port}, security: none, sender: vigil@rig7.example,
                to: [on-call@rig7.example]}}
       kinds: all
     - webhook: {{url: "{hook_url}", token_env: RIG7_HOOK_TOKEN}}
       kinds: all
-""")
-    return path
+""",
+    )
 
 
 async def until(check, timeout: float = 20.0) -> None:
@@ -107,7 +61,7 @@ def test_each_alarm_kind_reaches_mail_and_webhook_once_with_its_all_clear(tmp_pa
     said: list[str] = []
     store_down = threading.Event()
     with MailRoom() as mail, Hook() as hook:
-        config = load_lab(write_lab(tmp_path, mail.port, hook.url))
+        config = load_lab(rig7(tmp_path, mail.port, hook.url))
         store = Store.open(tmp_path / "rig7.sqlite")
         lab = Lab(config, store, say=said.append, in_process_boxes=True,
                   store_problem=lambda: "could not write: disk i/o error" if store_down.is_set() else None)  # fmt: skip
@@ -158,12 +112,12 @@ def test_a_hung_receiver_and_a_dead_relay_do_not_hold_the_sessions(tmp_path, mon
     port has nobody listening. The sessions still run to their end, and the lab ends, while
     the first request is still held: sends are not on the boxes' path."""
     monkeypatch.setenv("RIG7_HOOK_TOKEN", TOKEN)
-    from alarm_receivers import free_port
+    from lab_samples import free_port
 
     release = threading.Event()
     said: list[str] = []
     with Hook(hold=release) as hook:
-        config = load_lab(write_lab(tmp_path, free_port(), hook.url))
+        config = load_lab(rig7(tmp_path, free_port(), hook.url))
         store = Store.open(tmp_path / "rig7.sqlite")
         lab = Lab(config, store, say=said.append, in_process_boxes=True)
 

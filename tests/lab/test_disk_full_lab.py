@@ -15,14 +15,11 @@ import errno
 import os
 import sqlite3
 import subprocess
-from collections import Counter
 from pathlib import Path
 
 import pytest
-from alarm_receivers import Hook
-from test_alarms_lab import PROTOCOL
+from lab_samples import Hook, write_lab
 
-from server.engine.records import EventLogged, TrialRecord
 from server.lab.config import load_lab
 from server.lab.supervisor import Lab
 from server.store.writer import Store
@@ -61,40 +58,27 @@ def fill(folder: Path) -> Path:
 
 
 def test_a_full_disk_mid_session_loses_nothing_and_raises_its_alarms(tmp_path, small_disk):
-    (tmp_path / "quick.yaml").write_text(PROTOCOL)
+    boxes = [("rig-8a", "QC-0801", 81, {"latency_s": 0.1, "omission": 0.0}),
+             ("rig-8b", "QC-0802", 82, {"latency_s": 0.15, "omission": 0.0})]  # fmt: skip
     with Hook() as hook:
-        (tmp_path / "lab.yaml").write_text(f"""\
-lab: Rig room 8
-caps: {{max_rewards: 100000, max_minutes: 10}}
-boxes:
-  - name: rig-8a
-    animal: QC-0801
-    protocol: quick.yaml
-    emulate: {{agent: random, seed: 81, options: {{latency_s: 0.1, omission: 0.0}}}}
-  - name: rig-8b
-    animal: QC-0802
-    protocol: quick.yaml
-    emulate: {{agent: random, seed: 82, options: {{latency_s: 0.15, omission: 0.0}}}}
+        lab_yaml = write_lab(
+            tmp_path,
+            "Rig room 8",
+            boxes,
+            "{max_rewards: 100000, max_minutes: 10}",
+            f"""\
 alarms:
   disk_free_mb: 1
   send:
     - webhook: {{url: "{hook.url}"}}
       kinds: [disk_nearly_full, store_unreachable]
-""")
+""",
+        )
         db = small_disk / "rig8.sqlite"
         store = Store.open(db)
         said: list[str] = []
-        lab = Lab(load_lab(tmp_path / "lab.yaml"), store, say=said.append, in_process_boxes=True)
+        lab = Lab(load_lab(lab_yaml), store, say=said.append, in_process_boxes=True)
         lab.disk_every_s = 0.5
-        produced: Counter[tuple[int, str]] = Counter()
-        write = lab.writer.write
-
-        def counting(session_id, record):
-            if isinstance(record, (EventLogged, TrialRecord)):
-                produced[(session_id, type(record).__name__)] += 1
-            write(session_id, record)
-
-        lab.writer.write = counting
 
         async def scenario() -> None:
             task = asyncio.create_task(lab.run(minutes=0.25))
@@ -115,9 +99,9 @@ alarms:
         sid = run.session_id
         trials = [t for (t,) in conn.execute("SELECT trial FROM trials WHERE session_id = ? ORDER BY trial", (sid,))]
         assert trials == list(range(1, run.session.trials_done + 1)) and len(trials) > 20
-        assert len(trials) == produced[(sid, "TrialRecord")]
+        assert len(trials) == lab.produced[(sid, "TrialRecord")]
         events = conn.execute("SELECT count(*) FROM events WHERE session_id = ?", (sid,)).fetchone()[0]
-        assert events == produced[(sid, "EventLogged")] + 1  # + the session-start note
+        assert events == lab.produced[(sid, "EventLogged")] + 1  # + the session-start note
         assert conn.execute("SELECT end_reason FROM sessions WHERE id = ?", (sid,)).fetchone()[0] == "time limit"
     kinds = [(b["kind"], b["state"]) for b in hook.bodies]
     assert sorted(kinds) == sorted([("disk_nearly_full", "raised"), ("disk_nearly_full", "cleared"),

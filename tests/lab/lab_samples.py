@@ -1,5 +1,6 @@
-"""Real receivers on 127.0.0.1 for the alarm tests: an SMTP server (aiosmtpd) and a webhook
-endpoint (http.server), each keeping what it was sent."""
+"""For the lab tests: a quick protocol and a lab of emulated boxes around it, and real
+receivers on 127.0.0.1 for alarms: an SMTP server (aiosmtpd) and a webhook endpoint
+(http.server), each keeping what it was sent."""
 
 from __future__ import annotations
 
@@ -8,8 +9,41 @@ import socket
 import threading
 from email import message_from_bytes
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from pathlib import Path
 
+import yaml
 from aiosmtpd.controller import Controller
+
+REPO = Path(__file__).resolve().parents[2]
+
+
+def quick_protocol() -> str:
+    """The example reversal protocol made quick: 0.6 s to press, every press paid, a short
+    ITI, and one rule that raises an alarm once 2 of the last 3 trials went without a press."""
+    doc = yaml.safe_load((REPO / "protocols" / "reversal.yaml").read_text(encoding="utf-8"))
+    doc["name"] = "quick choice"
+    for option in doc["options"].values():
+        option["reward_probability"] = 1.0
+    for step in doc["trial_types"]["two_choice"]["steps"]:
+        step["wait_s"] = 0.6 if step["step"] == "offer" else 0.1
+    doc["iti"] = {"uniform": [0.1, 0.2]}
+    doc["rules"] = [{"rule": "idle", "when": "omission_rate(3) >= 0.6", "cooldown": 1000,
+                     "then": {"alarm": "the animal stopped pressing"}}]  # fmt: skip
+    doc.pop("limits", None)
+    return yaml.safe_dump(doc, sort_keys=False)
+
+
+def write_lab(folder: Path, name: str, boxes: list[tuple[str, str, int, dict]], caps: str, alarms: str) -> Path:
+    """A lab config of emulated boxes (name, animal, seed, agent options) on the quick protocol."""
+    (folder / "quick.yaml").write_text(quick_protocol(), encoding="utf-8")
+    listed = "".join(
+        f"  - {{name: {box}, animal: {animal}, protocol: quick.yaml,\n"
+        f"     emulate: {{agent: random, seed: {seed}, options: {json.dumps(options)}}}}}\n"
+        for box, animal, seed, options in boxes
+    )
+    path = folder / "lab.yaml"
+    path.write_text(f"lab: {name}\ncaps: {caps}\nboxes:\n{listed}{alarms}", encoding="utf-8")
+    return path
 
 
 def free_port() -> int:
