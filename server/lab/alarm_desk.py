@@ -98,14 +98,18 @@ class AlarmDesk:
         boxes: Iterable[BoxFacts],
         store_problem: str | None = None,
         disk_free_mb: float | None = None,
+        rule_alarms: Mapping[str, int] | None = None,
     ) -> list[AlarmNote]:
-        """Compare what holds now with what held before; post and return the messages due."""
+        """Compare what holds now with what held before; post and return the messages due.
+
+        `rule_alarms`: box -> alarms its rules raised so far (a repeated message is a new one)."""
         holding: dict[tuple[str, str], str] = {}
         for facts in boxes:
             self._about[facts["box"]] = {"animal": facts["animal"], "session_id": facts["session_id"]}
             holding.update(box_conditions(facts, now, self.quiet_after_s))
         holding.update(lab_conditions(store_problem, disk_free_mb, self.settings.disk_free_mb))
-        notes = self.watch.update(now, holding)
+        counts = {(box, "rule_alarm"): n for box, n in (rule_alarms or {}).items()}
+        notes = self.watch.update(now, holding, counts)
         if notes:
             at = wall_now()
             for note in notes:

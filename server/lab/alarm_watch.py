@@ -70,22 +70,31 @@ class AlarmWatch:
         self._active: dict[tuple[str, str], _Held] = {}
         self._last_sent: dict[tuple[str, str], float] = {}
         self._held_back: dict[tuple[str, str], int] = {}
-        self._seen_once: set[tuple[str, str, str]] = set()  # one-shot (box, kind, text) already raised
+        self._seen_once: set[tuple[str, str, str, int]] = set()  # one-shots (box, kind, text, occurrence) raised
 
     def active(self) -> dict[tuple[str, str], str]:
         """(box, kind) -> text of every condition holding now."""
         return {key: held.text for key, held in self._active.items()}
 
-    def update(self, now: float, holding: Mapping[tuple[str, str], str]) -> list[AlarmNote]:
-        """The messages due at `now`, given every (box, kind) -> text that holds now."""
+    def update(
+        self,
+        now: float,
+        holding: Mapping[tuple[str, str], str],
+        occurrences: Mapping[tuple[str, str], int] | None = None,
+    ) -> list[AlarmNote]:
+        """The messages due at `now`, given every (box, kind) -> text that holds now.
+
+        `occurrences` tells one event of a one-shot kind from the next with the same text
+        (a rule that raises the same alarm again later in the session)."""
         notes: list[AlarmNote] = []
         for key, text in holding.items():
             box, kind = key
             assert kind in ALARM_KINDS, kind
             held = self._active.get(key)
             if kind in ONE_SHOT_KINDS:
-                if (box, kind, text) not in self._seen_once:
-                    self._seen_once.add((box, kind, text))
+                seen = (box, kind, text, (occurrences or {}).get(key, 0))
+                if seen not in self._seen_once:
+                    self._seen_once.add(seen)
                     self._active[key] = _Held(text, now, False)
                     self._raise(key, now, notes, "raised")
                 continue

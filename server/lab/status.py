@@ -54,6 +54,7 @@ class BoxStatus:
         self.last_input_t: float | None = None  # session time of the last input onset
         self.last_rule: RuleFired | None = None
         self.last_alarm: EventLogged | None = None  # the last alarm a rule raised
+        self.alarms = 0  # alarms rules raised this session (the same message may come again)
         self.link_lost = False
         self.cap_reached = False
         self.scored = 0  # trials where correctness applies
@@ -74,6 +75,7 @@ class BoxStatus:
                     self.last_input_t = record.t
             elif kind == "alarm":
                 self.last_alarm = record
+                self.alarms += 1
             elif kind in ("link_lost", "link_restored"):
                 self.link_lost = kind == "link_lost"
             elif kind == "cap":

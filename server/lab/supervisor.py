@@ -232,14 +232,20 @@ class Lab:
             if loop.time() >= next_disk:
                 next_disk = loop.time() + self.disk_every_s
                 self.disk_free_mb = await loop.run_in_executor(None, free_mb, self.store.path)
-            desk.check(self._clock(), [run.facts() for run in self.runs], self.store_problem(), self.disk_free_mb)
+            self._check_alarms(desk)
             await asyncio.sleep(ALARM_EVERY_S)
+
+    def _check_alarms(self, desk: AlarmDesk) -> None:
+        desk.check(
+            self._clock(), [run.facts() for run in self.runs], self.store_problem(), self.disk_free_mb,
+            {run.name: run.status.alarms for run in self.runs},
+        )  # fmt: skip
 
     async def _last_alarms(self, desk: AlarmDesk) -> None:
         """The last word on every box (ended sessions clear their conditions), then the
         channels' grace period to send it, off the loop."""
         loop = asyncio.get_running_loop()
-        desk.check(self._clock(), [run.facts() for run in self.runs], self.store_problem(), self.disk_free_mb)
+        self._check_alarms(desk)
         await loop.run_in_executor(None, desk.close)
 
     def _begin(self, box: BoxConfig, link: BoxLink, clock: Callable[[], float]) -> BoxRun:

@@ -68,6 +68,9 @@ def test_one_shot_kinds_are_raised_per_distinct_text_and_never_cleared():
     second = {("rig-4", "rule_alarm"): "rule alarm: too many omissions"}
     assert [n.text for n in watch.update(6.0, second)] == ["rule alarm: too many omissions"]
     assert watch.update(7.0, {}) == []  # no all clear for an event
+    # the first message again, raised by the rule a second time later in the session
+    again = watch.update(8.0, first, {("rig-4", "rule_alarm"): 3})
+    assert [n.text for n in again] == ["rule alarm: stopped pressing"]
 
 
 def note(box="rig-5", state="raised"):
