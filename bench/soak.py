@@ -27,7 +27,7 @@ each of 8 boxes one after another, every record written to a SQLite store; resid
 after the first box's night and after the last (the same <= 5 % check).
 
     python bench/soak.py [--boxes 32] [--minutes 120] [--slice-minutes 10] [--night-hours 12]
-                         [--no-night] [--json]
+                         [--no-night] [--json] [--keep]
 
 The figures go to stdout; `--json` prints one line with everything. Exit 1 when a check fails.
 """
@@ -38,6 +38,7 @@ import argparse
 import asyncio
 import json
 import os
+import shutil
 import sqlite3
 import sys
 import tempfile
@@ -339,6 +340,7 @@ def main() -> int:
     p.add_argument("--no-night", action="store_true", help="skip part 2")
     p.add_argument("--no-live", action="store_true", help="skip part 1")
     p.add_argument("--json", action="store_true")
+    p.add_argument("--keep", action="store_true", help="keep the databases (their folders are printed)")
     args = p.parse_args()
     warmup = args.warmup_s if args.warmup_s is not None else min(120.0, max(20.0, args.minutes * 6))
     result: dict = {"load": os.getloadavg()[0]}
@@ -347,7 +349,13 @@ def main() -> int:
     if not args.no_night:
         result["night"] = night(args.night_boxes, args.night_hours)
     result["checks"] = verdicts(result)
+    if not args.keep:
+        for part in ("live", "night"):
+            if part in result:
+                shutil.rmtree(result[part].pop("folder"), ignore_errors=True)
     print(json.dumps(result) if args.json else report(result))
+    if args.keep:
+        print("kept:", ", ".join(result[p]["folder"] for p in ("live", "night") if p in result))
     return 0 if all(result["checks"].values()) else 1
 
 
