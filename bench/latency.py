@@ -9,10 +9,15 @@ answers each press line with a pulse line at once (pty + event loop, no Vigil), 
 is what our stack adds.
 
     python bench/latency.py [--json] [--boxes 32] [--samples 2000] [--rate 200] [--firmware]
+                            [--dead-alarm-receiver]
 
 `--rate` is the press rate over all boxes together (presses per second); `--json` prints one
 line {"n", "p50_ms", "p99_ms", "max_ms"} for the full stack. The first 3 presses of each box
 are left out (the lab is still starting the other sessions then).
+
+`--dead-alarm-receiver` runs the lab a second time with two alarm channels whose receivers
+are dead (a webhook that accepts and never answers, an SMTP relay that refuses) and an alarm
+every second on each, to show that a failing channel does not reach the boxes' loop.
 
 `--firmware` adds the same loop through the reference firmware on a simulated board
 (bench/firmware_latency.py: lever pin edge -> feeder pin edge, in simulated cycles), printed
@@ -179,9 +184,37 @@ async def echo_host(paths: list[str], until: asyncio.Future) -> None:
         port.close()
 
 
-async def lab_host(paths: list[str], until: asyncio.Future, folder: Path, protocol: str) -> None:
+def dead_alarms(folder: Path):
+    """Alarm settings whose receivers are dead, and the socket that keeps one of them hung.
+
+    The webhook's port accepts connections (the kernel's backlog) and never answers, so every
+    send waits out its whole timeout; nothing listens on the SMTP relay's port. The disk
+    threshold is above any disk and repeats are not held back, so the lab says "still disk
+    nearly full" every second on both channels for the whole run."""
+    import socket
+
+    from server.lab.config_alarms import ALARM_KINDS, AlarmChannel, AlarmSettings, EmailTo, WebhookTo
+
+    hung = socket.socket()
+    hung.bind(("127.0.0.1", 0))
+    hung.listen(1024)
+    closed = socket.socket()
+    closed.bind(("127.0.0.1", 0))
+    refused_port = closed.getsockname()[1]
+    closed.close()
+    kinds = frozenset(ALARM_KINDS)
+    channels = (
+        AlarmChannel(WebhookTo(f"http://127.0.0.1:{hung.getsockname()[1]}/hook"), kinds),
+        AlarmChannel(EmailTo("127.0.0.1", refused_port, "none", "bench@lab.example", ("on-call@lab.example",)), kinds),
+    )
+    return AlarmSettings(channels, repeat_minutes=0.0, disk_free_mb=1e12, queue=50), hung
+
+
+async def lab_host(paths: list[str], until: asyncio.Future, folder: Path, protocol: str, alarms=None) -> None:
     from server.engine.caps import HardCaps
     from server.lab.config import BoxConfig, LabConfig
+    from server.lab.config_alarms import AlarmSettings
+    from server.lab.config_web import WebSettings
     from server.lab.supervisor import Lab
     from server.protocol.load import load_protocol
     from server.store.writer import Store
@@ -189,8 +222,9 @@ async def lab_host(paths: list[str], until: asyncio.Future, folder: Path, protoc
     fr1 = load_protocol(protocol)
     boxes = tuple(BoxConfig(f"bench-{i + 1}", f"LT-{i + 1:03d}", fr1, port=p) for i, p in enumerate(paths))
     store = Store.open(folder / "bench.sqlite")
-    lab = Lab(LabConfig("bench", "latency bench", folder / "bench.sqlite", HardCaps(10**7, 600), boxes),
-              store, say=lambda s: None)  # fmt: skip
+    config = LabConfig("bench", "latency bench", folder / "bench.sqlite", HardCaps(10**7, 600), boxes,
+                       WebSettings(), alarms or AlarmSettings())  # fmt: skip
+    lab = Lab(config, store, say=lambda s: None)
     until.add_done_callback(lambda _: lab.stop_all("bench done"))
     try:
         await lab.run()
@@ -218,6 +252,12 @@ async def phase(kind: str, boxes: int, samples: int, rate: float, folder: Path) 
     collector = asyncio.create_task(collect())
     if kind == "echo":
         await echo_host(paths, until)
+    elif kind == "dead-alarms":
+        alarms, hung = dead_alarms(folder)
+        try:
+            await lab_host(paths, until, folder, str(protocol), alarms)
+        finally:
+            hung.close()
     else:
         await lab_host(paths, until, folder, str(protocol))
     result = await collector
@@ -250,6 +290,11 @@ def main() -> int:
     p.add_argument(
         "--firmware-samples", type=int, default=1000, metavar="N", help="presses on the simulated board (default 1000)"
     )
+    p.add_argument(
+        "--dead-alarm-receiver",
+        action="store_true",
+        help="also run the lab with alarms going every second to a hung webhook and a refused SMTP relay",
+    )
     p.add_argument("--device", action="store_true", help=argparse.SUPPRESS)
     p.add_argument("--per-box", type=int, default=0, help=argparse.SUPPRESS)
     p.add_argument("--pause", type=float, default=0.005, help=argparse.SUPPRESS)
@@ -263,6 +308,9 @@ def main() -> int:
         folder = Path(tmp)
         base = summary(asyncio.run(phase("echo", args.boxes, args.samples, args.rate, folder)))
         stack = summary(asyncio.run(phase("lab", args.boxes, args.samples, args.rate, folder)))
+        dead = None
+        if args.dead_alarm_receiver:
+            dead = summary(asyncio.run(phase("dead-alarms", args.boxes, args.samples, args.rate, folder)))
         board = None
         if args.firmware:
             board = firmware_phase(args.firmware_samples, folder)
@@ -275,8 +323,14 @@ def main() -> int:
     print(f"machine: {where_run()}, pyserial {serial.__version__}; load average before the run {load:.2f}")
     print(f"{args.boxes} box(es), {args.rate:g} presses/s in all; press line written -> pulse line read")
     print(f"{'':28}{'n':>6}{'p50 ms':>9}{'p99 ms':>9}{'max ms':>9}")
-    for name, s in (("baseline (pty + echo)", base), ("vigil (link+session+store)", stack)):
+    rows = [("baseline (pty + echo)", base), ("vigil (link+session+store)", stack)]
+    if dead is not None:
+        rows.append(("vigil, alarm receivers dead", dead))
+    for name, s in rows:
         print(f"{name:28}{s['n']:>6}{s['p50_ms']:>9.3f}{s['p99_ms']:>9.3f}{s['max_ms']:>9.3f}")
+    if dead is not None:
+        print(f"ratio dead receivers / no alarms: p50 x{dead['p50_ms'] / stack['p50_ms']:.2f}, "
+              f"p99 x{dead['p99_ms'] / stack['p99_ms']:.2f}")  # fmt: skip
     print(
         f"ratio vigil / baseline: p50 x{stack['p50_ms'] / base['p50_ms']:.1f}, "
         f"p99 x{stack['p99_ms'] / base['p99_ms']:.1f}"

@@ -35,12 +35,18 @@ def _warn(warnings: Sequence[Problem]) -> None:
 
 
 def cmd_check(args: argparse.Namespace) -> int:
+    from server.lab.config import is_lab_config, load_lab
     from server.protocol.load import load_protocol
 
     bad = 0
     for file in args.files:
         try:
-            protocol = load_protocol(file)
+            if is_lab_config(file):
+                lab = load_lab(file)
+                said = f"lab '{lab.lab}': {len(lab.boxes)} boxes, {len(lab.alarms.channels)} alarm channels"
+            else:
+                protocol = load_protocol(file)
+                said = f"'{protocol.name}': {len(protocol.trial_types)} trial types, {len(protocol.blocks)} blocks"
         except InvalidFile as exc:
             bad += 1
             for problem in exc.problems:
@@ -48,10 +54,7 @@ def cmd_check(args: argparse.Namespace) -> int:
             continue
         _warn(protocol.warnings)
         if not args.quiet:
-            print(
-                f"{file}: ok ('{protocol.name}': {len(protocol.trial_types)} trial types, "
-                f"{len(protocol.blocks)} blocks)"
-            )
+            print(f"{file}: ok ({said})")
     return 1 if bad else 0
 
 
@@ -282,7 +285,7 @@ def build_parser() -> argparse.ArgumentParser:
     verbs = parser.add_subparsers(dest="verb", metavar="VERB")
     verbs.required = True
 
-    p = verbs.add_parser("check", help="validate protocol files")
+    p = verbs.add_parser("check", help="validate protocol files and lab configs")
     p.add_argument("files", nargs="+", metavar="FILE")
     p.add_argument("-q", "--quiet", action="store_true", help="print only problems")
     p.set_defaults(func=cmd_check)

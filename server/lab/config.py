@@ -10,6 +10,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from server.engine.caps import HardCaps
+from server.lab.config_alarms import AlarmSettings, read_alarms
 from server.lab.config_link import Emulation, read_emulation, read_port
 from server.lab.config_subject import merged_subject, read_subject
 from server.lab.config_web import WebSettings, read_web
@@ -19,7 +20,7 @@ from server.protocol.model import Protocol
 from server.protocol.problems import InvalidFile, Problem
 from server.protocol.reader import Reader, did_you_mean
 
-TOP_KEYS = ("lab", "database", "caps", "subject", "boxes", "web")
+TOP_KEYS = ("lab", "database", "caps", "subject", "boxes", "web", "alarms")
 BOX_KEYS = ("name", "animal", "subject", "protocol", "stages", "settings", "port", "emulate", "seed")
 STAGE_KEYS = ("protocol", "advance")
 ADVANCE_KEYS = ("sessions", "min_accuracy", "min_trials", "min_rewards", "max_omission_rate")
@@ -66,6 +67,16 @@ class LabConfig:
     boxes: tuple[BoxConfig, ...]
     web: WebSettings = WebSettings()
     warnings: tuple[Problem, ...] = ()  # old spellings read, here and in its protocols
+    alarms: AlarmSettings = AlarmSettings()
+
+
+def is_lab_config(path: str | Path) -> bool:
+    """True for a file that reads as a lab config (a top-level `boxes` list), not a protocol."""
+    try:
+        root, _ = load_marked(Path(path).read_text(encoding="utf-8"), str(path))
+    except (OSError, UnicodeDecodeError):
+        return False
+    return root is not None and root.is_mapping and "boxes" in root.value and "vigil_protocol" not in root.value
 
 
 def load_lab(path: str | Path) -> LabConfig:
@@ -128,7 +139,8 @@ class _LabReader(Reader):
         web = read_web(self, top.get("web"))
         protocols = [p for p in self._protocols.values() if p is not None]
         warnings = tuple(self.warnings) + tuple(w for p in protocols for w in p.warnings)
-        return LabConfig(file, name or "lab", database, caps, tuple(boxes), web, warnings)
+        alarms = read_alarms(self, top.get("alarms"))
+        return LabConfig(file, name or "lab", database, caps, tuple(boxes), web, warnings=warnings, alarms=alarms)
 
     def caps(self, node: Marked | None) -> HardCaps:
         f = self.mapping(node, "caps", ("max_rewards", "max_minutes"))

@@ -11,7 +11,8 @@ import asyncio
 import secrets
 import shutil
 import tempfile
-from collections.abc import Callable, Sequence
+from collections import Counter
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
@@ -20,6 +21,8 @@ from server.engine.live import LiveSession
 from server.engine.records import ControlAction, Record, SessionEnded
 from server.engine.seams import BoxLink
 from server.engine.session import Session
+from server.lab.alarm_desk import AlarmDesk, AlarmSetupError
+from server.lab.alarm_send import Outgoing
 from server.lab.assembly import animal_estimator_state, build_session
 from server.lab.box_links import LabError, close_links, make_box
 from server.lab.config import BoxConfig, LabConfig
@@ -36,6 +39,9 @@ from server.store.writer import Store
 RUN_TIME_LIMIT = "run time limit (--minutes)"
 
 __all__ = ["BoxRun", "Lab", "LabError"]
+
+ALARM_EVERY_S = 1.0  # how often the lab looks for alarm conditions
+DISK_EVERY_S = 15.0  # how often it reads the free space on the database's disk
 
 
 @dataclass
@@ -78,7 +84,11 @@ class Lab:
         *,
         say: Callable[[str], None] = print,
         in_process_boxes: bool = False,
+        alarm_senders: Mapping[int, Callable[[Outgoing], None]] | None = None,
+        store_problem: Callable[[], str | None] | None = None,
     ):
+        """`store_problem` says why the store cannot take records now (None when it can); by
+        default the last failed commit. `alarm_senders` replaces channels' send functions."""
         self.config = config
         self.store = store
         self.writer = BackgroundWriter(store, say)  # commits off the event loop
@@ -89,6 +99,18 @@ class Lab:
         self._stop_reason: str | None = None
         self._clock: Callable[[], float] = lambda: 0.0
         self._run_minutes: float | None = None  # the run's own bound (--minutes)
+        self.store_problem = store_problem or self._last_store_failure
+        self._alarm_senders = alarm_senders
+        self.alarms: AlarmDesk | None = None
+        self.disk_free_mb: float | None = None
+        self.disk_every_s = DISK_EVERY_S
+        # Records handed to the store, by (session id, record type): what a check of the
+        # database after a run (bench/soak.py, the disk-full test) compares the file with.
+        self.produced: Counter[tuple[int, str]] = Counter()
+
+    def _last_store_failure(self) -> str | None:
+        failure = self.store.failure
+        return None if failure is None else str(failure)
 
     @property
     def clock(self) -> Callable[[], float]:
@@ -137,6 +159,7 @@ class Lab:
         def publish(records: list[Record]) -> None:
             for record in records:
                 status.observe(record)
+                self.produced[(session_id, type(record).__name__)] += 1
                 if isinstance(record, SessionEnded):
                     self.say(
                         f"{box.name}: session {session_id} ended ({record.reason}); "
@@ -153,6 +176,13 @@ class Lab:
     async def run(self, minutes: float | None = None) -> list[BoxRun]:
         loop = asyncio.get_running_loop()
         self._run_minutes = minutes or None
+        try:
+            self.alarms = AlarmDesk(
+                self.config.alarms, self.config.lab, self.config.web.no_response_minutes,
+                say=self.say, senders=self._alarm_senders,
+            )  # fmt: skip
+        except AlarmSetupError as exc:
+            raise LabError(str(exc)) from None
         closed = self.store.close_interrupted(wall_now())
         if closed:
             self.say(f"closed {len(closed)} interrupted session(s) from an earlier run: {closed}")
@@ -178,8 +208,10 @@ class Lab:
 
         with on_stop_signals(loop, lambda sig: self.stop_all(f"stopped by signal ({sig.name})")):
             self.writer.start()
+            self.alarms.start()
             limit = asyncio.create_task(self._time_limit(minutes)) if minutes else None
             link_tasks = [asyncio.create_task(run.link.run()) for run in self.runs]
+            link_tasks.append(asyncio.create_task(self._watch_alarms(self.alarms)))
             try:
                 results = await asyncio.gather(*(run.live.run() for run in self.runs), return_exceptions=True)
                 for run, result in zip(self.runs, results):
@@ -194,8 +226,35 @@ class Lab:
                 for task in others:
                     task.cancel()
                 await asyncio.gather(*others, return_exceptions=True)
-                self.writer.close()  # everything queued is committed before the lab returns
+                try:
+                    self.writer.close()  # everything queued is committed before the lab returns
+                finally:
+                    await self._last_alarms(self.alarms)
         return self.runs
+
+    async def _watch_alarms(self, desk: AlarmDesk) -> None:
+        """Look for alarm conditions about once a second, for as long as the sessions run."""
+        loop = asyncio.get_running_loop()
+        next_disk = 0.0
+        while True:
+            if loop.time() >= next_disk:
+                next_disk = loop.time() + self.disk_every_s
+                self.disk_free_mb = await loop.run_in_executor(None, free_mb, self.store.path)
+            self._check_alarms(desk)
+            await asyncio.sleep(ALARM_EVERY_S)
+
+    def _check_alarms(self, desk: AlarmDesk) -> None:
+        desk.check(
+            self._clock(), [run.facts() for run in self.runs], self.store_problem(), self.disk_free_mb,
+            {run.name: run.status.alarms for run in self.runs},
+        )  # fmt: skip
+
+    async def _last_alarms(self, desk: AlarmDesk) -> None:
+        """The last word on every box (ended sessions clear their conditions), then the
+        channels' grace period to send it, off the loop."""
+        loop = asyncio.get_running_loop()
+        self._check_alarms(desk)
+        await loop.run_in_executor(None, desk.close)
 
     def _begin(self, box: BoxConfig, link: BoxLink, clock: Callable[[], float]) -> BoxRun:
         """Store a new session for the box and set it up against its link."""
@@ -257,3 +316,11 @@ class Lab:
         await asyncio.sleep(minutes * 60.0)
         self.say(f"run time limit of {minutes:g} min (--minutes) reached; ending sessions")
         self.stop_all(RUN_TIME_LIMIT)
+
+
+def free_mb(database: Path) -> float | None:
+    """Free space for an unprivileged writer on the database's filesystem, in MB (None if unknown)."""
+    try:
+        return shutil.disk_usage(Path(database).resolve().parent).free / 1e6
+    except OSError:
+        return None

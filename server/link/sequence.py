@@ -55,6 +55,11 @@ class SequenceTracker:
         self._newest_seen = max(self._newest_seen, last_seq)
 
     @property
+    def newest_seen(self) -> int:
+        """The highest sequence number the device has shown: on an event or as its last written."""
+        return self._newest_seen
+
+    @property
     def missing(self) -> bool:
         """True while the device has shown events we have not accepted."""
         return self._newest_seen >= self.expected

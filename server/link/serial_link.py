@@ -227,8 +227,11 @@ class SerialLink:
             else:
                 self.side.pulse(command.channel, command.ms, now)
         self._flush()
-        if now + self.side.pending.resend_after_s < self._sleep_until:
-            self._wake.set()  # the serve loop sleeps past this command's resend time
+        if min(now + self.side.pending.resend_after_s, self.side.next_deadline()) < self._sleep_until:
+            # The serve loop sleeps past this command's resend time, or past the end of the
+            # pulse a held-back pulse waits for (which would otherwise go out only at the next
+            # ping, about 250 ms late).
+            self._wake.set()
 
     def _drive_held(self, expected: set[str]) -> None:
         now = self._host()

@@ -8,57 +8,14 @@ page prints, the same texts for the first render and for every live update.
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass
+from dataclasses import asdict
 from datetime import datetime
 from typing import Any
 
-from server.lab.status import BoxFacts, alarm_message, rule_text
+from server.lab.status import CAP_REASON, Alarm, BoxFacts, alarm_message, alarms_for, ended_early, rule_text
 from server.protocol.model import Rule
 
-# End reasons of a session that ran its course; anything else ended it early.
-# "time limit" is how databases before the run time limit had its own words spelled it.
-_NORMAL_ENDS = ("session time limit", "protocol complete", "trial limit reached", "run time limit", "time limit")
-CAP_REASON = "reward cap reached"
-
-
-@dataclass(frozen=True, slots=True)
-class Alarm:
-    kind: str  # link_lost, no_response, cap_reached, ended_early, rule_alarm
-    text: str
-
-
-def ended_early(reason: str | None) -> bool:
-    if reason is None or reason == CAP_REASON:
-        return False
-    return not any(reason == normal or reason.startswith(normal + " ") for normal in _NORMAL_ENDS)
-
-
-def alarms_for(
-    *,
-    running: bool,
-    paused: bool,
-    link_lost: bool,
-    silent_s: float | None,
-    cap_reached: bool,
-    end_reason: str | None,
-    quiet_after_s: float,
-    rule_alarm: str | None = None,
-) -> list[Alarm]:
-    """The alarms of one box. `silent_s` is the time since the last input onset (or since
-    the start when there was none); a paused or ended session raises no silence alarm.
-    `rule_alarm` is the message of the last alarm a protocol rule raised (while running)."""
-    found = []
-    if link_lost and running:
-        found.append(Alarm("link_lost", "link lost"))
-    if running and not paused and silent_s is not None and silent_s >= quiet_after_s:
-        found.append(Alarm("no_response", f"no response for {silent_s / 60:.0f} min"))
-    if cap_reached or end_reason == CAP_REASON:
-        found.append(Alarm("cap_reached", "reward cap reached"))
-    if ended_early(end_reason):
-        found.append(Alarm("ended_early", f"ended early: {end_reason}"))
-    if rule_alarm and running:
-        found.append(Alarm("rule_alarm", f"rule alarm: {rule_alarm}"))
-    return found
+__all__ = ["CAP_REASON", "Alarm", "alarms_for", "ended_early", "tile_from_facts", "tile_from_store"]
 
 
 def _tile(**fields: Any) -> dict[str, Any]:
