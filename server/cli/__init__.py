@@ -44,15 +44,17 @@ def cmd_check(args: argparse.Namespace) -> int:
             if is_lab_config(file):
                 lab = load_lab(file)
                 said = f"lab '{lab.lab}': {len(lab.boxes)} boxes, {len(lab.alarms.channels)} alarm channels"
+                warnings = lab.warnings
             else:
                 protocol = load_protocol(file)
                 said = f"'{protocol.name}': {len(protocol.trial_types)} trial types, {len(protocol.blocks)} blocks"
+                warnings = protocol.warnings
         except InvalidFile as exc:
             bad += 1
             for problem in exc.problems:
                 sys.stderr.write(f"{problem}\n")
             continue
-        _warn(protocol.warnings)
+        _warn(warnings)
         if not args.quiet:
             print(f"{file}: ok ({said})")
     return 1 if bad else 0
