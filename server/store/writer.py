@@ -162,12 +162,17 @@ class Store:
         Raises `StoreError` for a record that cannot be stored, or when the commit fails
         (the record is kept and retried).
         """
-        running = self._running(session_id)
         if isinstance(record, EventLogged):
+            # Events may still come after the session's end: the box confirming the safe
+            # state it was put in, or a device event whose line was replayed late. They are
+            # what happened, so they are kept; only the session's own records stop.
+            self._begun(session_id)
             self._pending.append(statements.event(session_id, record))
             if len(self._pending) >= self.max_buffered and self.failure is None:
                 self._commit()
-        elif isinstance(record, TrialRecord):
+            return
+        running = self._running(session_id)
+        if isinstance(record, TrialRecord):
             if record.trial <= running.last_trial:
                 raise StoreError(
                     f"trial {record.trial} of session {session_id} is not after trial {running.last_trial}"
@@ -309,10 +314,14 @@ class Store:
 
     # ------------------------------------------------------------------ internals
 
-    def _running(self, session_id: int) -> _Running:
+    def _begun(self, session_id: int) -> _Running:
         running = self._sessions.get(session_id)
         if running is None:
             raise StoreError(f"session {session_id} was not begun by this store")
+        return running
+
+    def _running(self, session_id: int) -> _Running:
+        running = self._begun(session_id)
         if running.ended:
             raise StoreError(f"session {session_id} has already ended")
         return running

@@ -284,7 +284,12 @@ def test_writes_need_a_running_session_of_this_store(store, begin):
     session_id = begin()
     store.write(session_id, SessionEnded(t=1.0, reason="done", trials=0, rewards=0))
     with pytest.raises(StoreError, match=f"^session {session_id} has already ended$"):
-        store.write(session_id, EventLogged(t=2.0, kind="input", name="lick"))
+        store.write(session_id, make_trial(1))
+    # An event after the end (the box confirming its safe state, a late replayed line) is kept.
+    store.write(session_id, EventLogged(t=2.0, kind="input", name="lick"))
+    store.flush()
+    stored = store.conn.execute("SELECT count(*) FROM events WHERE session_id = ? AND name = 'lick'", (session_id,))
+    assert stored.fetchone() == (1,)
 
 
 @pytest.mark.parametrize(
