@@ -1,7 +1,8 @@
 """Read-only views of a Vigil database for the status page, the CLI and exports.
 
 Readers open the file read-only, so a web page or a report can never disturb the writer;
-in WAL mode they see every committed transaction without blocking it.
+in WAL mode they see every committed transaction without blocking it. A PostgreSQL URL
+opens a read-only session on the server instead; the queries are the same.
 """
 
 from __future__ import annotations
@@ -14,7 +15,8 @@ from typing import Any, TextIO
 from urllib.request import pathname2url
 
 from server.engine.records import TrialRecord
-from server.store import rows
+from server.store import dialect, rows
+from server.store.dialect import Connection, is_server_url
 from server.store.errors import StoreError, sqlite_reason
 from server.store.history import trial_history
 from server.store.schema import latest_version, schema_version
@@ -22,8 +24,11 @@ from server.store.schema import latest_version, schema_version
 CHOICE_COLUMNS = ("animal", "session", "trial", "choice", "reward")
 
 
-def open_readonly(path: str | Path, *, check_same_thread: bool = True) -> sqlite3.Connection:
-    """Open an existing database for reading; rows come back as `sqlite3.Row`."""
+def open_readonly(path: str | Path, *, check_same_thread: bool = True) -> Connection:
+    """Open an existing database (a file or a PostgreSQL URL) for reading; rows read by
+    position and by column name (`sqlite3.Row`, or `postgres.PgRow`)."""
+    if is_server_url(path):
+        return _open_server_readonly(str(path))
     path = Path(path).absolute()
     if not path.is_file():
         raise StoreError(f"cannot read database {path}: no such file")
@@ -48,7 +53,23 @@ def open_readonly(path: str | Path, *, check_same_thread: bool = True) -> sqlite
     return conn
 
 
-def _dicts(conn: sqlite3.Connection, sql: str, params: tuple = ()) -> list[dict[str, Any]]:
+def _open_server_readonly(url: str) -> Connection:
+    from server.store.postgres import connect
+
+    conn = connect(url, readonly=True, application="vigil-reader")
+    try:
+        version = dialect.schema_version(conn)
+    except dialect.database_errors(conn) as err:
+        conn.close()
+        raise StoreError(f"cannot read database {conn.location}: {dialect.reason(err)}") from None
+    if version == 0 or version > latest_version():
+        conn.close()
+        what = "not a vigil database" if version == 0 else f"schema version {version} is newer than this vigil knows"
+        raise StoreError(f"cannot read database {conn.location}: {what}")
+    return conn
+
+
+def _dicts(conn: Connection, sql: str, params: tuple = ()) -> list[dict[str, Any]]:
     conn.row_factory = sqlite3.Row
     return [rows.row_dict(row) for row in conn.execute(sql, params)]
 
@@ -57,7 +78,7 @@ def _dicts(conn: sqlite3.Connection, sql: str, params: tuple = ()) -> list[dict[
 
 
 def list_sessions(
-    conn: sqlite3.Connection,
+    conn: Connection,
     *,
     animal: str | None = None,
     box: str | None = None,
@@ -85,12 +106,12 @@ def list_sessions(
     return _dicts(conn, sql, tuple(params))
 
 
-def get_session(conn: sqlite3.Connection, session_id: int) -> dict[str, Any] | None:
+def get_session(conn: Connection, session_id: int) -> dict[str, Any] | None:
     found = _dicts(conn, "SELECT * FROM sessions WHERE id = ?", (session_id,))
     return found[0] if found else None
 
 
-def animal_history(conn: sqlite3.Connection, animal: str) -> list[dict[str, Any]]:
+def animal_history(conn: Connection, animal: str) -> list[dict[str, Any]]:
     """Every session of one animal, oldest first, with accuracy and omissions from its trials.
 
     accuracy is the fraction correct over trials where correctness applies (None if none).
@@ -99,9 +120,9 @@ def animal_history(conn: sqlite3.Connection, animal: str) -> list[dict[str, Any]
         conn,
         (
             "SELECT s.*,"
-            " (SELECT avg(correct) FROM trials WHERE session_id = s.id AND correct IS NOT NULL)"
+            " (SELECT avg(CAST(correct AS DOUBLE PRECISION)) FROM trials WHERE session_id = s.id AND correct IS NOT NULL)"
             "   AS accuracy,"
-            " (SELECT coalesce(sum(omission), 0) FROM trials WHERE session_id = s.id) AS omissions"
+            " (SELECT CAST(coalesce(sum(omission), 0) AS INTEGER) FROM trials WHERE session_id = s.id) AS omissions"
             " FROM sessions s WHERE s.animal = ? ORDER BY s.started_at, s.id"
         ),
         (animal,),
@@ -111,7 +132,7 @@ def animal_history(conn: sqlite3.Connection, animal: str) -> list[dict[str, Any]
 # ---------------------------------------------------------------- per session
 
 
-def session_trials(conn: sqlite3.Connection, session_id: int, *, after_trial: int = 0) -> list[dict[str, Any]]:
+def session_trials(conn: Connection, session_id: int, *, after_trial: int = 0) -> list[dict[str, Any]]:
     return _dicts(
         conn,
         "SELECT * FROM trials WHERE session_id = ? AND trial > ? ORDER BY trial",
@@ -119,7 +140,7 @@ def session_trials(conn: sqlite3.Connection, session_id: int, *, after_trial: in
     )
 
 
-def trial_records(conn: sqlite3.Connection, session_id: int) -> list[TrialRecord]:
+def trial_records(conn: Connection, session_id: int) -> list[TrialRecord]:
     """The session's trials as the engine emitted them, for replay through a model."""
     conn.row_factory = sqlite3.Row
     found = conn.execute("SELECT * FROM trials WHERE session_id = ? ORDER BY trial", (session_id,))
@@ -127,7 +148,7 @@ def trial_records(conn: sqlite3.Connection, session_id: int) -> list[TrialRecord
 
 
 def session_events(
-    conn: sqlite3.Connection,
+    conn: Connection,
     session_id: int,
     *,
     since_id: int = 0,
@@ -143,14 +164,14 @@ def session_events(
     if tail is None:
         return _dicts(conn, sql + " ORDER BY id", tuple(params))
     params.append(int(tail))
-    return _dicts(conn, f"SELECT * FROM ({sql} ORDER BY id DESC LIMIT ?) ORDER BY id", tuple(params))
+    return _dicts(conn, f"SELECT * FROM ({sql} ORDER BY id DESC LIMIT ?) AS tail ORDER BY id", tuple(params))
 
 
-def session_blocks(conn: sqlite3.Connection, session_id: int) -> list[dict[str, Any]]:
+def session_blocks(conn: Connection, session_id: int) -> list[dict[str, Any]]:
     return _dicts(conn, "SELECT * FROM blocks WHERE session_id = ? ORDER BY block_index", (session_id,))
 
 
-def session_estimates(conn: sqlite3.Connection, session_id: int, *, after_trial: int = 0) -> list[dict[str, Any]]:
+def session_estimates(conn: Connection, session_id: int, *, after_trial: int = 0) -> list[dict[str, Any]]:
     return _dicts(
         conn,
         "SELECT * FROM estimates WHERE session_id = ? AND trial > ? ORDER BY trial",
@@ -158,7 +179,7 @@ def session_estimates(conn: sqlite3.Connection, session_id: int, *, after_trial:
     )
 
 
-def session_annotations(conn: sqlite3.Connection, session_id: int) -> list[dict[str, Any]]:
+def session_annotations(conn: Connection, session_id: int) -> list[dict[str, Any]]:
     return _dicts(conn, "SELECT * FROM annotations WHERE session_id = ? ORDER BY id", (session_id,))
 
 
@@ -176,7 +197,7 @@ def _write_csv(cursor: Iterable[Sequence[Any]], header: tuple[str, ...], fileobj
     return count
 
 
-def export_trials_csv(conn: sqlite3.Connection, session_id: int, fileobj: TextIO) -> int:
+def export_trials_csv(conn: Connection, session_id: int, fileobj: TextIO) -> int:
     """Write the session's trials as CSV (one column per trials column); return the row count."""
     cursor = conn.execute(
         f"SELECT {', '.join(rows.TRIAL_COLUMNS)} FROM trials WHERE session_id = ? ORDER BY trial",
@@ -185,7 +206,7 @@ def export_trials_csv(conn: sqlite3.Connection, session_id: int, fileobj: TextIO
     return _write_csv(cursor, rows.TRIAL_COLUMNS, fileobj)
 
 
-def export_events_csv(conn: sqlite3.Connection, session_id: int, fileobj: TextIO) -> int:
+def export_events_csv(conn: Connection, session_id: int, fileobj: TextIO) -> int:
     """Write the session's events as CSV in stored order; return the row count."""
     cursor = conn.execute(
         f"SELECT {', '.join(rows.EVENT_COLUMNS)} FROM events WHERE session_id = ? ORDER BY id",
@@ -194,7 +215,7 @@ def export_events_csv(conn: sqlite3.Connection, session_id: int, fileobj: TextIO
     return _write_csv(cursor, rows.EVENT_COLUMNS, fileobj)
 
 
-def export_choices_csv(conn: sqlite3.Connection, fileobj: TextIO, *, animal: str | None = None) -> int:
+def export_choices_csv(conn: Connection, fileobj: TextIO, *, animal: str | None = None) -> int:
     """Write trials in the fitting format `animal,session,trial,choice,reward` (DESIGN.md).
 
     An omission has an empty choice; reward is the pellets delivered in the trial.
@@ -207,13 +228,12 @@ def export_choices_csv(conn: sqlite3.Connection, fileobj: TextIO, *, animal: str
 # ---------------------------------------------------------------- status page
 
 
-def table_exists(conn: sqlite3.Connection, name: str) -> bool:
+def table_exists(conn: Connection, name: str) -> bool:
     """True when the database holds table `name` (tables added by later migrations)."""
-    found = conn.execute("SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = ?", (name,)).fetchone()
-    return found is not None
+    return dialect.table_exists(conn, name)
 
 
-def latest_sessions_per_box(conn: sqlite3.Connection) -> list[dict[str, Any]]:
+def latest_sessions_per_box(conn: Connection) -> list[dict[str, Any]]:
     """The newest session of every box, ordered by box name."""
     return _dicts(
         conn,
@@ -225,7 +245,7 @@ def latest_sessions_per_box(conn: sqlite3.Connection) -> list[dict[str, Any]]:
     )
 
 
-def session_status(conn: sqlite3.Connection, session_id: int) -> dict[str, Any]:
+def session_status(conn: Connection, session_id: int) -> dict[str, Any]:
     """What a status tile needs from the store about one session.
 
     accuracy (None without scored trials), last_input_t and last_t (session seconds of the
@@ -236,7 +256,7 @@ def session_status(conn: sqlite3.Connection, session_id: int) -> dict[str, Any]:
     """
     one = conn.execute
     accuracy = one(
-        "SELECT avg(correct) FROM trials WHERE session_id = ? AND correct IS NOT NULL",
+        "SELECT avg(CAST(correct AS DOUBLE PRECISION)) FROM trials WHERE session_id = ? AND correct IS NOT NULL",
         (session_id,),
     ).fetchone()[0]
     last_input = one(
@@ -275,7 +295,7 @@ def session_status(conn: sqlite3.Connection, session_id: int) -> dict[str, Any]:
     }
 
 
-def last_estimate(conn: sqlite3.Connection, session_id: int) -> dict[str, Any] | None:
+def last_estimate(conn: Connection, session_id: int) -> dict[str, Any] | None:
     """The estimate after the session's last estimated trial, or None."""
     found = _dicts(
         conn,
@@ -285,7 +305,7 @@ def last_estimate(conn: sqlite3.Connection, session_id: int) -> dict[str, Any] |
     return found[0] if found else None
 
 
-def session_rule_firings(conn: sqlite3.Connection, session_id: int) -> list[dict[str, Any]]:
+def session_rule_firings(conn: Connection, session_id: int) -> list[dict[str, Any]]:
     """Rule firings of a session in time order (t, trial, rule, actions, reads; JSON decoded);
     empty when the database predates the rule_firings table."""
     if not table_exists(conn, "rule_firings"):  # a database from before rules existed

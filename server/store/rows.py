@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import json
 import math
-import sqlite3
 from collections.abc import Mapping
 from datetime import datetime
 from typing import Any
@@ -82,8 +81,8 @@ SQLITE_INT_MAX = 2**63 - 1
 # Shared by the writer and crash recovery. OR IGNORE + the partial unique index on
 # (session_id, device_seq) drops a replayed device event.
 INSERT_EVENT = (
-    "INSERT OR IGNORE INTO events (session_id, kind, name, value, t, device_t_us, device_seq,"
-    " detail) VALUES (?, ?, ?, ?, ?, ?, ?, ?)"
+    "INSERT INTO events (session_id, kind, name, value, t, device_t_us, device_seq,"
+    " detail) VALUES (?, ?, ?, ?, ?, ?, ?, ?) ON CONFLICT DO NOTHING"
 )
 END_SESSION = "UPDATE sessions SET ended_at = ?, end_reason = ?, trials = ?, rewards = ? WHERE id = ?"
 
@@ -201,7 +200,7 @@ def block_params(session_id: int, rec: BlockStarted) -> tuple:
     )
 
 
-def row_dict(row: sqlite3.Row) -> dict[str, Any]:
+def row_dict(row: Any) -> dict[str, Any]:
     """A row as plain data for JSON and templates: JSON columns decoded, flags as bools."""
     out: dict[str, Any] = {}
     for key in row.keys():

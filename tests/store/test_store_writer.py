@@ -2,9 +2,8 @@
 
 from __future__ import annotations
 
-import sqlite3
-
 import pytest
+from conftest import BOTH_BACKENDS
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from store_samples import STARTED_AT, make_trial
@@ -17,6 +16,8 @@ from server.engine.records import (
     TrialRecord,
 )
 from server.store import Store, StoreError, queries
+
+pytestmark = BOTH_BACKENDS
 
 
 @pytest.fixture
@@ -50,6 +51,7 @@ def test_session_row_round_trip(store, begin, reader):
         "trials": 0,
         "rewards": 0,
         "settings": {"caps": {"max_rewards": 120, "max_minutes": 60}, "agent": None},
+        "rig": None,
     }
 
 
@@ -382,6 +384,6 @@ def test_close_commits_what_is_buffered(db_path, store, begin):
     session_id = begin()
     store.write(session_id, EventLogged(t=1.0, kind="note", name="operator", detail={"text": "ok"}))
     store.close()
-    conn = sqlite3.connect(db_path)
-    assert conn.execute("SELECT count(*) FROM events").fetchone() == (1,)
+    conn = queries.open_readonly(db_path)
+    assert conn.execute("SELECT count(*) FROM events").fetchone()[0] == 1
     conn.close()
