@@ -28,6 +28,7 @@ from server.lab.stages import StageKeeper
 from server.lab.status import BoxFacts, BoxStatus, box_facts
 from server.link.handshake import LinkError
 from server.store.background import BackgroundWriter
+from server.store.forwarder import Forwarder
 from server.store.wall_clock import wall_now
 from server.store.writer import Store
 
@@ -72,9 +73,11 @@ class Lab:
         *,
         say: Callable[[str], None] = print,
         in_process_boxes: bool = False,
+        forwarder: Forwarder | None = None,
     ):
         self.config = config
-        self.store = store
+        self.store = store  # with a lab-wide store: the rig's spool
+        self.forwarder = forwarder  # carries the spool to the lab-wide store; polls its controls
         self.writer = BackgroundWriter(store, say)  # commits off the event loop
         self.say = say
         self.in_process_boxes = in_process_boxes  # emulated boxes without serial (tests)
@@ -126,6 +129,23 @@ class Lab:
         with self.writer.direct() as store:
             return store.write_annotation(run.session_id, text, origin, t=t, wall_time=wall_now())
 
+    def store_line(self) -> str | None:
+        """The page's store line ("store: forwarding 12"), None with a local store only."""
+        return None if self.forwarder is None else self.forwarder.status().text()
+
+    def _remote_control(self, control: dict[str, Any]) -> None:
+        """A control asked through the lab-wide store (`vigil serve`'s page): applied here on
+        the lab's loop like the page's own, answered back through the forwarder."""
+        from server.lab.page_feed import answer
+
+        ask = {**control, "origin": f"{control['origin']} via the lab-wide store"}
+        try:
+            reply = answer(self, ask)
+        except Exception as exc:  # a failing control must not end the lab
+            reply = {"status": 500, "detail": f"{type(exc).__name__}: {exc}"}
+        assert self.forwarder is not None
+        self.forwarder.answered(int(control["id"]), reply)
+
     def _publisher(self, box: BoxConfig, session_id: int, status: BoxStatus) -> Callable[[list[Record]], None]:
         def publish(records: list[Record]) -> None:
             for record in records:
@@ -170,6 +190,13 @@ class Lab:
 
         with on_stop_signals(loop, lambda sig: self.stop_all(f"stopped by signal ({sig.name})")):
             self.writer.start()
+            if self.forwarder is not None:
+
+                def hand_over(control: dict[str, Any]) -> None:
+                    loop.call_soon_threadsafe(self._remote_control, control)
+
+                self.forwarder.on_control = hand_over
+                self.forwarder.start()
             limit = asyncio.create_task(self._time_limit(minutes)) if minutes else None
             link_tasks = [asyncio.create_task(run.link.run()) for run in self.runs]
             try:
@@ -187,6 +214,10 @@ class Lab:
                     task.cancel()
                 await asyncio.gather(*others, return_exceptions=True)
                 self.writer.close()  # everything queued is committed before the lab returns
+                if self.forwarder is not None:
+                    left = self.forwarder.stop()
+                    if left.waiting:
+                        self.say(f"{left.text()}: kept in the spool, forwarded at the next start")
         return self.runs
 
     def _begin(self, box: BoxConfig, link: BoxLink, clock: Callable[[], float]) -> BoxRun:

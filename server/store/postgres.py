@@ -86,9 +86,7 @@ def connect(url: str, *, readonly: bool = False, application: str = "vigil") -> 
     try:
         import psycopg
     except ImportError:
-        raise StoreError(
-            "a PostgreSQL store needs the psycopg package: pip install -e '.[lab]'"
-        ) from None
+        raise StoreError("a PostgreSQL store needs the psycopg package: pip install -e '.[lab]'") from None
     try:
         raw = psycopg.connect(
             url,
@@ -121,5 +119,5 @@ def pg_reason(exc: BaseException) -> str:
         return _CONSTRAINTS[state]
     text = str(exc).strip().splitlines()
     line = text[0] if text else type(exc).__name__
-    line = re.sub(r'^connection to server (at|on) .*? failed: ', "", line)
+    line = re.sub(r"^connection to server (at|on) .*? failed: ", "", line)
     return line.strip().lower() or type(exc).__name__.lower()

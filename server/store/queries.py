@@ -120,7 +120,8 @@ def animal_history(conn: Connection, animal: str) -> list[dict[str, Any]]:
         conn,
         (
             "SELECT s.*,"
-            " (SELECT avg(CAST(correct AS DOUBLE PRECISION)) FROM trials WHERE session_id = s.id AND correct IS NOT NULL)"
+            " (SELECT avg(CAST(correct AS DOUBLE PRECISION)) FROM trials"
+            "   WHERE session_id = s.id AND correct IS NOT NULL)"
             "   AS accuracy,"
             " (SELECT CAST(coalesce(sum(omission), 0) AS INTEGER) FROM trials WHERE session_id = s.id) AS omissions"
             " FROM sessions s WHERE s.animal = ? ORDER BY s.started_at, s.id"
@@ -234,7 +235,18 @@ def table_exists(conn: Connection, name: str) -> bool:
 
 
 def latest_sessions_per_box(conn: Connection) -> list[dict[str, Any]]:
-    """The newest session of every box, ordered by box name."""
+    """The newest session of every box, ordered by box name (by rig, then box, in a store
+    that several rigs write: two rigs may each have a box of the same name)."""
+    if dialect.schema_version(conn) >= 4:
+        return _dicts(
+            conn,
+            (
+                "SELECT s.* FROM sessions s WHERE s.id = (SELECT s2.id FROM sessions s2"
+                " WHERE s2.box = s.box AND coalesce(s2.rig, '') = coalesce(s.rig, '')"
+                " ORDER BY s2.started_at DESC, s2.id DESC LIMIT 1)"
+                " ORDER BY coalesce(s.rig, ''), s.box"
+            ),
+        )
     return _dicts(
         conn,
         (
@@ -243,6 +255,14 @@ def latest_sessions_per_box(conn: Connection) -> list[dict[str, Any]]:
             " ORDER BY s.box"
         ),
     )
+
+
+def rig_states(conn: Connection) -> list[dict[str, Any]]:
+    """The rigs that write to a lab-wide store, by name, with when each was last heard from
+    (empty for a one-computer store)."""
+    if not table_exists(conn, "rigs"):
+        return []
+    return _dicts(conn, "SELECT name, registered_at, seen_at, store_state FROM rigs ORDER BY name")
 
 
 def session_status(conn: Connection, session_id: int) -> dict[str, Any]:

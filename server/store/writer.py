@@ -39,7 +39,7 @@ from server.engine.records import (
 )
 from server.store import dialect, rows, statements
 from server.store.dialect import Connection, is_server_url
-from server.store.errors import StoreError, diagnose_path, sqlite_reason
+from server.store.errors import StoreError, diagnose_path
 from server.store.recovery import close_unended
 from server.store.schema import migrate
 from server.store.wall_clock import iso, local_now
@@ -113,6 +113,7 @@ class Store:
         self.rig = rig  # the lab config's `lab:` name, stored with each session
         self.journal = journal  # a rig's spool: keep every write in the outbox
         self.id_base = id_base  # session ids from id_base + 1 on (a rig's range in a lab-wide store)
+        self.id_floor = 0  # ... and above any id of that range the server already holds
         self._postgres = dialect.is_postgres(conn)
         self.batch_s = batch_s
         self.max_buffered = max_buffered
@@ -232,7 +233,7 @@ class Store:
             # A rig's own range: the id it gets here is the id it keeps in the lab-wide store.
             base = self.id_base
             last = dialect.first(conn, "SELECT max(id) FROM sessions WHERE id > ? AND id <= ?", (base, base + ID_RANGE))
-            session_id = (last or base) + 1
+            session_id = max(last or base, self.id_floor) + 1
             if session_id > base + ID_RANGE:
                 raise StoreError(f"rig {self.rig} has used all {ID_RANGE} session ids of its range")
             conn.execute(statements.INSERT_SESSION_WITH_ID, (session_id, *params))

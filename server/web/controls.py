@@ -54,7 +54,7 @@ async def _ask(live: LabControls, op: str, session_id: int, origin: str, text: s
 
 def controls_router(state: Any) -> APIRouter:
     router = APIRouter(tags=["controls"])
-    live: LabControls = state.live
+    live: LabControls = state.controls
 
     async def operator(request: Request) -> str:
         state.guard.check_operator(await supplied_token(request))

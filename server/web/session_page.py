@@ -4,12 +4,12 @@ the list of sessions, rendered from the read-only store."""
 from __future__ import annotations
 
 import json
-import sqlite3
 from datetime import datetime
 from typing import Any
 
 from server.lab.status import rule_text
 from server.store import queries
+from server.store.dialect import Connection
 from server.web import plots
 from server.web.markup import Safe, el
 from server.web.overview import animal_href
@@ -53,7 +53,7 @@ def session_end_t(session: dict[str, Any], status: dict[str, Any], trials: list[
     return max(candidates)
 
 
-def panels(conn: sqlite3.Connection, session: dict[str, Any]) -> Safe:
+def panels(conn: Connection, session: dict[str, Any]) -> Safe:
     """Every plot of a session (the part the page refreshes while the session runs)."""
     sid = session["id"]
     status = queries.session_status(conn, sid)
@@ -139,7 +139,7 @@ def _control_form(session: dict[str, Any]) -> Safe:
     )
 
 
-def session_body(conn: sqlite3.Connection, session: dict[str, Any], *, controllable: bool, notice: str | None) -> Safe:
+def session_body(conn: Connection, session: dict[str, Any], *, controllable: bool, notice: str | None) -> Safe:
     sid = session["id"]
     status = queries.session_status(conn, sid)
     running = session["end_reason"] is None
@@ -209,7 +209,7 @@ def _params_text(estimate: dict[str, Any] | None) -> str:
     return "; ".join(f"{name} {p['mean']:.3g} [{p['low']:.3g}–{p['high']:.3g}]" for name, p in params.items()) or "–"
 
 
-def animal_rows(conn: sqlite3.Connection, animal: str) -> list[dict[str, Any]]:
+def animal_rows(conn: Connection, animal: str) -> list[dict[str, Any]]:
     """An animal's sessions (oldest first) with the last block reached and the parameters of
     the last estimate of each session."""
     history = queries.animal_history(conn, animal)

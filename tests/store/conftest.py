@@ -33,9 +33,6 @@ def wall_clock() -> FakeWallClock:
     return FakeWallClock(datetime(2031, 4, 7, 21, 30, tzinfo=timezone(timedelta(hours=2))))
 
 
-BOTH_BACKENDS = pytest.mark.parametrize("backend", ["sqlite", "postgresql"], indirect=True)
-
-
 @pytest.fixture
 def backend(request) -> str:
     return getattr(request, "param", "sqlite")

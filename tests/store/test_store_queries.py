@@ -7,8 +7,7 @@ import io
 import json
 
 import pytest
-from conftest import BOTH_BACKENDS
-from store_samples import make_trial
+from store_samples import BOTH_BACKENDS, make_trial
 
 from server.engine.records import EventLogged, SessionEnded
 from server.store import queries

@@ -3,10 +3,9 @@
 from __future__ import annotations
 
 import pytest
-from conftest import BOTH_BACKENDS
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from store_samples import STARTED_AT, make_trial
+from store_samples import BOTH_BACKENDS, STARTED_AT, make_trial
 
 from server.engine.records import (
     BlockStarted,
