@@ -58,6 +58,14 @@ def server_rows(url: str, sql: str, params: tuple = ()) -> list[tuple]:
         return [tuple(row) for row in conn.execute(sql, params).fetchall()]
 
 
+def server_count(url: str, table: str) -> int:
+    """Rows in a table of the server, 0 before the first rig has made the tables."""
+    try:
+        return server_rows(url, f"SELECT count(*) FROM {table}")[0][0]
+    except psycopg.errors.UndefinedTable:
+        return 0
+
+
 def spool_rows(path: Path, sql: str, params: tuple = ()) -> list[tuple]:
     conn = sqlite3.connect(path)
     try:
@@ -78,7 +86,10 @@ def assert_server_holds_the_spool(url: str, spool: Path) -> None:
         ids,
     )
     assert on_server == sessions
-    for table, columns, order in (("events", EVENT_COLUMNS, "session_id, id"), ("trials", TRIAL_COLUMNS, "session_id, trial")):
+    for table, columns, order in (
+        ("events", EVENT_COLUMNS, "session_id, id"),
+        ("trials", TRIAL_COLUMNS, "session_id, trial"),
+    ):
         local = spool_rows(spool, f"SELECT {columns} FROM {table} ORDER BY {order}")
         remote = server_rows(url, f"SELECT {columns} FROM {table} WHERE session_id IN ({marks}) ORDER BY {order}", ids)
         assert len(remote) == len(local), f"{table}: {len(local)} in the spool, {len(remote)} on the server"

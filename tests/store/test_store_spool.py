@@ -1,0 +1,109 @@
+"""A rig's spool and its forwarder against a real PostgreSQL server (tests/pg_server.py):
+exactly once by rig and outbox sequence, session ids that never collide, offline starts."""
+
+from __future__ import annotations
+
+import psycopg
+import pytest
+from store_samples import STARTED_AT, make_trial
+
+from server.engine.records import EventLogged, SessionEnded
+from server.store import StoreError
+from server.store.forwarder import StoreLink
+from server.store.lab_store import open_lab_store
+from server.store.writer import ID_RANGE
+
+
+def count(url: str, sql: str) -> int:
+    with psycopg.connect(url, autocommit=True) as conn:
+        return conn.execute(sql).fetchone()[0]
+
+
+def begin(store) -> int:
+    return store.begin_session("rack-3", "MS-1120", "flip-flop", None, None, 7, STARTED_AT)
+
+
+def test_each_entry_reaches_the_server_once_even_after_a_lost_acknowledgement(pg_cluster, tmp_path):
+    url = pg_cluster.fresh_schema("once")
+    store, forwarder = open_lab_store(url, rig="bench-a", spool=tmp_path / "spool.sqlite")
+    try:
+        sid = begin(store)
+        for k in range(5):
+            store.write(sid, EventLogged(t=0.5 * k, kind="input", name="lever_left", value=1.0, device_seq=k + 1))
+        store.write(sid, make_trial(1))
+        assert forwarder.pass_once() > 0
+        assert forwarder.status().text() == "store: up to date"
+        assert count(url, "SELECT count(*) FROM events") == 5
+        assert count(url, "SELECT count(*) FROM trials") == 1
+        # The commit reached the server but its answer did not: the rig sends again from
+        # its old mark, and the server's own mark turns the repeat away.
+        forwarder._mark = 0
+        forwarder.pass_once()
+        assert count(url, "SELECT count(*) FROM events") == 5
+        assert count(url, "SELECT count(*) FROM trials") == 1
+        store.write(sid, make_trial(2))
+        store.write(sid, SessionEnded(t=45.0, reason="protocol complete", trials=2, rewards=1))
+        forwarder.pass_once()
+        assert count(url, "SELECT count(*) FROM trials") == 2
+        assert count(url, f"SELECT trials FROM sessions WHERE id = {sid}") == 2
+        assert count(url, "SELECT seq FROM forwarded WHERE rig = 'bench-a'") == forwarder._last_seq
+    finally:
+        forwarder.stop(drain_s=0)
+        store.close()
+
+
+def test_the_store_line_says_what_the_rig_holds_back():
+    assert StoreLink(True, 12, None, None).text() == "store: forwarding 12"
+    assert StoreLink(True, 0, None, None).text() == "store: up to date"
+    down = StoreLink(False, 3, "2031-04-07T21:30:05.250+02:00", "connection refused")
+    assert down.text() == "store: unreachable since 21:30:05, 3 waiting"
+
+
+def test_two_rigs_take_ids_from_their_own_ranges_and_a_lost_spool_does_not_reuse_one(pg_cluster, tmp_path):
+    url = pg_cluster.fresh_schema("ids")
+    a, forward_a = open_lab_store(url, rig="rig-a", spool=tmp_path / "a.sqlite")
+    b, forward_b = open_lab_store(url, rig="rig-b", spool=tmp_path / "b.sqlite")
+    first_a, first_b = begin(a), begin(b)
+    assert first_a // ID_RANGE != first_b // ID_RANGE
+    assert first_a % ID_RANGE == first_b % ID_RANGE == 1
+    assert begin(a) == first_a + 1
+    assert first_a < 2**53 and first_b < 2**53  # exact in the page's JavaScript
+    for store, forwarder in ((a, forward_a), (b, forward_b)):
+        forwarder.pass_once()
+        forwarder.stop(drain_s=0)
+        store.close()
+    assert count(url, "SELECT count(*) FROM sessions") == 3
+    (tmp_path / "a.sqlite").unlink()  # the rig's disk was replaced
+    again, forward_again = open_lab_store(url, rig="rig-a", spool=tmp_path / "a.sqlite")
+    try:
+        assert begin(again) == first_a + 2  # above what the server already holds
+    finally:
+        forward_again.stop(drain_s=0)
+        again.close()
+
+
+def test_a_rig_needs_the_server_once_then_starts_and_spools_without_it(pg_cluster, tmp_path):
+    url = pg_cluster.fresh_schema("offline")
+    nowhere = f"postgresql://vigil@/postgres?host={tmp_path / 'no-server'}"
+    with pytest.raises(StoreError, match=r"^rig 'rig-c' must reach the lab-wide store once to get its number: "):
+        open_lab_store(nowhere, rig="rig-c", spool=tmp_path / "c.sqlite")
+    store, forwarder = open_lab_store(url, rig="rig-c", spool=tmp_path / "c.sqlite")
+    forwarder.stop(drain_s=0)
+    store.close()
+    # From now on the spool knows the rig's number: the server may be away.
+    store, forwarder = open_lab_store(nowhere, rig="rig-c", spool=tmp_path / "c.sqlite")
+    try:
+        sid = begin(store)
+        store.write(sid, make_trial(1))
+        try:
+            forwarder.pass_once()
+        except StoreError as exc:
+            forwarder._lost(exc)
+        state = forwarder.status()
+        assert not state.reachable and state.waiting >= 2
+        assert state.text().startswith("store: unreachable since ") and state.text().endswith(" waiting")
+    finally:
+        forwarder.stop(drain_s=0)
+        store.close()
+    with pytest.raises(StoreError, match=r"belongs to rig 'rig-c', not 'rig-d'"):
+        open_lab_store(url, rig="rig-d", spool=tmp_path / "c.sqlite")
