@@ -13,7 +13,11 @@ from collections.abc import Sequence
 from pathlib import Path
 
 from server.models.trials import AnimalTrials, encode_animal
-from server.store.history import trial_history
+from server.store.dialect import database_errors, is_server_url, reason
+from server.store.errors import StoreError
+from server.store.history import PastTrial, trial_history
+from server.store.postgres import redact
+from server.store.queries import open_readonly
 
 HEADER = ["animal", "session", "trial", "choice", "reward"]
 
@@ -87,8 +91,7 @@ def _parse_csv(path: str, fh) -> list[AnimalTrials]:
     return [encode_animal(a, r) for a, r in rows.items()]
 
 
-def read_trials_db(path: str, animals: Sequence[str] | None) -> list[AnimalTrials]:
-    """Trials of the given animals (all when None), sessions in the order they started."""
+def _file_history(path: str, animals: Sequence[str] | None) -> list[PastTrial]:
     if not Path(path).is_file():
         raise FitInputError(f"{path}: no such database file")
     uri = Path(path).resolve().as_uri() + "?mode=ro"
@@ -97,12 +100,33 @@ def read_trials_db(path: str, animals: Sequence[str] | None) -> list[AnimalTrial
     except sqlite3.Error as exc:
         raise FitInputError(f"{path}: cannot open database: {exc}") from None
     try:
-        try:
-            found = trial_history(con, animals=animals)
-        except sqlite3.Error as exc:
-            raise FitInputError(f"{path}: cannot read trials: {exc}") from None
+        return trial_history(con, animals=animals)
+    except sqlite3.Error as exc:
+        raise FitInputError(f"{path}: cannot read trials: {exc}") from None
     finally:
         con.close()
+
+
+def _server_history(url: str, animals: Sequence[str] | None) -> list[PastTrial]:
+    try:
+        con = open_readonly(url)
+    except StoreError as exc:
+        raise FitInputError(str(exc)) from None
+    try:
+        return trial_history(con, animals=animals)
+    except database_errors(con) as exc:
+        raise FitInputError(f"{redact(url)}: cannot read trials: {reason(exc)}") from None
+    finally:
+        con.close()
+
+
+def read_trials_db(path: str, animals: Sequence[str] | None) -> list[AnimalTrials]:
+    """Trials of the given animals (all when None), sessions in the order they started;
+    `path` a SQLite file or a lab-wide store's PostgreSQL URL."""
+    if is_server_url(path):
+        found = _server_history(path, animals)
+    else:
+        found = _file_history(path, animals)
     rows: dict[str, list[tuple[str, int, str | None, float]]] = {}
     for past in found:
         label = None if (past.omission or not past.choice) else str(past.choice)

@@ -260,9 +260,11 @@ class Forwarder:
     def _controls(self) -> None:
         server = self._server
         with self._lock:
-            answers, self._answers = self._answers, []
+            answers = list(self._answers)
         for control_id, reply in answers:
             controls.answer(server, control_id, reply, wall_now())
+            with self._lock:
+                self._answers.remove((control_id, reply))  # only once it is on the server
             self._handed.discard(control_id)
         if self.on_control is None:
             return

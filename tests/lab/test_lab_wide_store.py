@@ -13,7 +13,9 @@ import pytest
 from rig_samples import assert_server_holds_the_spool, server_count, server_rows, start_rig, write_rig
 
 from server.lab.config import load_lab
+from server.lab.page_feed import FeedBuilder
 from server.lab.supervisor import Lab
+from server.protocol.problems import InvalidFile
 from server.store.lab_store import open_lab_store
 from server.store.writer import ID_RANGE
 from server.web import table_controls
@@ -145,9 +147,28 @@ def test_controls_from_the_page_reach_the_rig_that_runs_the_box(pg_cluster, tmp_
         loop.close()
         store.close()
     assert server_rows(url, "SELECT origin FROM annotations") == [("10.0.0.7 via the lab-wide store",)]
+    # The rig's own page reads the forwarder's state as its store line.
+    assert lab.store_line() == "store: up to date"
+    assert b'"store":"store: up to date"' in FeedBuilder(lab).line()
     # The rig is gone now: a control waits WAIT_S, is withdrawn, and says so.
     monkeypatch.setattr(table_controls, "WAIT_S", 0.3)
     with pytest.raises(LabGone, match="did not answer"):
         asyncio.run(controls.ask("resume", session_id, "10.0.0.7"))
     assert server_rows(url, "SELECT status FROM controls ORDER BY id DESC LIMIT 1") == [(504,)]
     controls.close()
+
+
+def test_the_lab_config_takes_a_server_url_and_a_spool(tmp_path):
+    url = "postgresql://vigil@labdb.local/vigil"
+    config = load_lab(write_rig(tmp_path, "west", url, seed=1))
+    assert config.database == url and config.spool == tmp_path / "spool-west.sqlite"
+    plain = tmp_path / "plain.yaml"
+    plain.write_text(write_rig(tmp_path, "east", url, seed=2).read_text().replace("spool: spool-east.sqlite\n", ""))
+    assert load_lab(plain).spool == tmp_path / "vigil-spool-east.sqlite"  # beside the config
+    wrong = tmp_path / "wrong.yaml"
+    wrong.write_text(plain.read_text().replace(url, "mysql://vigil@labdb.local/vigil"))
+    with pytest.raises(InvalidFile) as failed:
+        load_lab(wrong)
+    assert [p.message for p in failed.value.problems] == [
+        "database: 'mysql://' is not a store vigil knows; use a file path or postgresql://"
+    ]
