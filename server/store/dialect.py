@@ -150,7 +150,8 @@ def refusals(conn: Connection) -> tuple[type[BaseException], ...]:
     if is_postgres(conn):
         import psycopg
 
-        return (psycopg.IntegrityError,)
+        # DataError too: a value the server can never take must not hold every later record back.
+        return (psycopg.IntegrityError, psycopg.DataError)
     return (sqlite3.IntegrityError,)
 
 

@@ -10,6 +10,7 @@ import threading
 import time
 
 import pytest
+from fastapi.testclient import TestClient
 from rig_samples import assert_server_holds_the_spool, server_count, server_rows, start_rig, write_rig
 
 from server.lab.config import load_lab
@@ -19,6 +20,7 @@ from server.protocol.problems import InvalidFile
 from server.store.lab_store import open_lab_store
 from server.store.writer import ID_RANGE
 from server.web import table_controls
+from server.web.app import close_app, create_app
 from server.web.board import Board, ReadOnlyStore
 from server.web.page_end import LabGone
 from server.web.table_controls import TableControls
@@ -61,6 +63,21 @@ def test_two_rigs_write_one_store_at_once_and_one_page_shows_both(pg_cluster, tm
         store.close()
     assert sorted(t["box"] for t in tiles) == ["east: box-1", "east: box-2", "west: box-1", "west: box-2"]
     assert {t["rig"] for t in tiles} == {"west", "east"}
+    # Every page and download of `vigil serve` reads the lab-wide store as it reads a file.
+    app = create_app(url)
+    try:
+        with TestClient(app) as client:
+            sid = sessions[0][0]
+            overview = client.get("/")
+            assert (
+                overview.status_code == 200 and "east: box-2" in overview.text and "rigs: east heard" in overview.text
+            )
+            for path in (f"/sessions/{sid}", f"/sessions/{sid}/panels", "/sessions", f"/animals/{sessions[0][1]}-R1",
+                         "/api/boxes", "/api/board", f"/api/sessions/{sid}", f"/api/sessions/{sid}/trials",
+                         f"/api/sessions/{sid}/trials.csv", f"/api/sessions/{sid}/events.csv"):  # fmt: skip
+                assert client.get(path).status_code == 200, path
+    finally:
+        close_app(app)
 
 
 def test_server_down_for_30_s_mid_session_loses_and_doubles_nothing(pg_cluster, tmp_path):
