@@ -223,16 +223,13 @@ class Forwarder:
                 server.execute("ROLLBACK")
                 self._mark = int(mark)
                 return BATCH  # read again from the right place
-            for seq, statement, params in found:
-                server.execute("SAVEPOINT entry")
-                try:
-                    server.execute(statement, tuple(json.loads(params)))
-                except refusals as exc:
-                    # The spool accepted it under the same schema; say so and go on rather
-                    # than hold every later entry back.
-                    server.execute("ROLLBACK TO SAVEPOINT entry")
-                    self.say(f"warning: store refused spooled entry {seq}: {dialect.reason(exc)}")
-                server.execute("RELEASE SAVEPOINT entry")
+            try:
+                server.execute("SAVEPOINT batch")
+                self._apply_runs(found)
+                server.execute("RELEASE SAVEPOINT batch")
+            except refusals:
+                server.execute("ROLLBACK TO SAVEPOINT batch")
+                self._apply_one_by_one(found)
             last = int(found[-1][0])
             server.execute(
                 "INSERT INTO forwarded (rig, seq) VALUES (?, ?) ON CONFLICT (rig) DO UPDATE SET seq = excluded.seq",
@@ -250,6 +247,37 @@ class Forwarder:
             (self.rig, last),
         )
         return len(found)
+
+    def _apply_runs(self, found: list[tuple[int, str, str]]) -> None:
+        """The usual path: each run of entries with the same statement (a stretch of events)
+        goes as one pipelined executemany, in order."""
+        start = 0
+        while start < len(found):
+            statement = found[start][1]
+            end = start
+            while end < len(found) and found[end][1] == statement:
+                end += 1
+            params = [json.loads(entry[2]) for entry in found[start:end]]
+            if len(params) == 1:
+                self._server.execute(statement, tuple(params[0]))
+            else:
+                self._server.executemany(statement, params)
+            start = end
+
+    def _apply_one_by_one(self, found: list[tuple[int, str, str]]) -> None:
+        """After a refusal: entry by entry, each in a savepoint, so only the refused one drops.
+        The spool accepted it under the same schema, so say so, rather than hold every later
+        entry back."""
+        server = self._server
+        refusals = dialect.refusals(server)
+        for seq, statement, params in found:
+            server.execute("SAVEPOINT entry")
+            try:
+                server.execute(statement, tuple(json.loads(params)))
+            except refusals as exc:
+                server.execute("ROLLBACK TO SAVEPOINT entry")
+                self.say(f"warning: store refused spooled entry {seq}: {dialect.reason(exc)}")
+            server.execute("RELEASE SAVEPOINT entry")
 
     def _prune(self) -> None:
         # The newest entry stays, so the outbox's next seq never falls back below the mark.

@@ -67,6 +67,11 @@ class PgConnection:
     def execute(self, sql: str, params: Sequence[Any] = ()) -> Any:
         return self.raw.execute(pg_sql(sql), tuple(params), prepare=False)
 
+    def executemany(self, sql: str, params_seq: Sequence[Sequence[Any]]) -> None:
+        """One statement over many parameter rows, pipelined (no round trip per row)."""
+        with self.raw.cursor() as cursor:
+            cursor.executemany(pg_sql(sql), [tuple(params) for params in params_seq])
+
     @property
     def in_transaction(self) -> bool:
         import psycopg.pq

@@ -107,3 +107,30 @@ def test_a_rig_needs_the_server_once_then_starts_and_spools_without_it(pg_cluste
         store.close()
     with pytest.raises(StoreError, match=r"belongs to rig 'rig-c', not 'rig-d'"):
         open_lab_store(url, rig="rig-d", spool=tmp_path / "c.sqlite")
+
+
+def test_an_entry_the_server_refuses_drops_alone_and_the_rest_goes_on(pg_cluster, tmp_path):
+    url = pg_cluster.fresh_schema("refused")
+    said: list[str] = []
+    store, forwarder = open_lab_store(url, rig="bench-b", spool=tmp_path / "spool.sqlite", say=said.append)
+    try:
+        sid = begin(store)
+        store.write(sid, EventLogged(t=1.0, kind="input", name="nose_poke", value=1.0, device_seq=1))
+        store.flush()
+        # An entry the server must refuse (no session 999 there), between two good ones.
+        store.conn.execute(
+            "INSERT INTO outbox (statement, params) VALUES (?, ?)",
+            ("INSERT INTO annotations (session_id, t, wall_time, origin, text) VALUES (?, ?, ?, ?, ?)",
+             f'[999, 1.0, "{STARTED_AT}", "test", "orphan"]'),
+        )  # fmt: skip
+        store.write(sid, EventLogged(t=2.0, kind="input", name="nose_poke", value=1.0, device_seq=2))
+        store.write(sid, EventLogged(t=3.0, kind="input", name="nose_poke", value=1.0, device_seq=3))
+        store.flush()
+        forwarder.pass_once()
+        assert count(url, "SELECT count(*) FROM events") == 3
+        assert count(url, "SELECT count(*) FROM annotations") == 0
+        assert any("store refused spooled entry" in line and "foreign key" in line for line in said), said
+        assert forwarder.status().waiting == 0
+    finally:
+        forwarder.stop(drain_s=0)
+        store.close()
