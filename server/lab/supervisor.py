@@ -28,7 +28,7 @@ from server.lab.stages import StageKeeper
 from server.lab.status import BoxFacts, BoxStatus, box_facts
 from server.link.handshake import LinkError
 from server.store.background import BackgroundWriter
-from server.store.forwarder import Forwarder
+from server.store.forwarder import Forwarder, StoreLink
 from server.store.wall_clock import wall_now
 from server.store.writer import Store
 
@@ -129,9 +129,15 @@ class Lab:
         with self.writer.direct() as store:
             return store.write_annotation(run.session_id, text, origin, t=t, wall_time=wall_now())
 
+    def store_link(self) -> StoreLink | None:
+        """The rig's link to a lab-wide store (reachable, waiting, unreachable since), None
+        with a local store only: what a "store unreachable" alarm reads."""
+        return None if self.forwarder is None else self.forwarder.status()
+
     def store_line(self) -> str | None:
         """The page's store line ("store: forwarding 12"), None with a local store only."""
-        return None if self.forwarder is None else self.forwarder.status().text()
+        link = self.store_link()
+        return None if link is None else link.text()
 
     def _remote_control(self, control: dict[str, Any]) -> None:
         """A control asked through the lab-wide store (`vigil serve`'s page): applied here on

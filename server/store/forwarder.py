@@ -119,6 +119,10 @@ class Forwarder:
         if self._thread.is_alive():
             self._thread.join()
         if self._server is not None:
+            try:
+                self._say_state("stopped")
+            except Exception:  # the server is going or gone; the rig stops all the same
+                pass
             self._server.close()
         if self._spool is not None:
             self._spool.close()
@@ -145,9 +149,7 @@ class Forwarder:
         now = time.monotonic()
         if now - self._last_beat >= HEARTBEAT_S:
             self._last_beat = now
-            self._server.execute(
-                "UPDATE rigs SET seen_at = ?, store_state = ? WHERE name = ?", (wall_now(), "forwarding", self.rig)
-            )
+            self._say_state(self.status().text())
         if now - self._last_prune >= PRUNE_EVERY_S:
             self._last_prune = now
             self._prune()
@@ -278,6 +280,12 @@ class Forwarder:
                 server.execute("ROLLBACK TO SAVEPOINT entry")
                 self.say(f"warning: store refused spooled entry {seq}: {dialect.reason(exc)}")
             server.execute("RELEASE SAVEPOINT entry")
+
+    def _say_state(self, state: str) -> None:
+        """Tell the lab-wide store how this rig is (the page of `vigil serve` shows it)."""
+        self._server.execute(
+            "UPDATE rigs SET seen_at = ?, store_state = ? WHERE name = ?", (wall_now(), state, self.rig)
+        )
 
     def _prune(self) -> None:
         # The newest entry stays, so the outbox's next seq never falls back below the mark.

@@ -137,7 +137,10 @@ class Board:
         for rig in rigs:
             seen = rig["seen_at"]
             ago = None if seen is None else max(0.0, (wall - datetime.fromisoformat(seen)).total_seconds())
-            parts.append(f"{rig['name']} " + ("never heard" if ago is None else f"heard {ago:.0f} s ago"))
+            heard = "never heard" if ago is None else f"heard {ago:.0f} s ago"
+            if rig["store_state"] == "stopped":
+                heard = "stopped" if ago is None else f"stopped {ago:.0f} s ago"
+            parts.append(f"{rig['name']} {heard}")
         return "rigs: " + ", ".join(parts)
 
     def _make(self, now: float) -> Snapshot:

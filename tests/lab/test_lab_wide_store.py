@@ -70,7 +70,7 @@ def test_two_rigs_write_one_store_at_once_and_one_page_shows_both(pg_cluster, tm
             sid = sessions[0][0]
             overview = client.get("/")
             assert (
-                overview.status_code == 200 and "east: box-2" in overview.text and "rigs: east heard" in overview.text
+                overview.status_code == 200 and "east: box-2" in overview.text and "rigs: east stopped" in overview.text
             )
             for path in (f"/sessions/{sid}", f"/sessions/{sid}/panels", "/sessions", f"/animals/{sessions[0][1]}-R1",
                          "/api/boxes", "/api/board", f"/api/sessions/{sid}", f"/api/sessions/{sid}/trials",
