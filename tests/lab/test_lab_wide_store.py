@@ -5,13 +5,26 @@ controls from `vigil serve`'s page reaching the rig that runs the box."""
 from __future__ import annotations
 
 import asyncio
+import json
+import os
 import signal
+import subprocess
 import threading
 import time
+import urllib.request
 
 import pytest
 from fastapi.testclient import TestClient
-from rig_samples import assert_server_holds_the_spool, server_count, server_rows, start_rig, write_rig
+from rig_samples import (
+    ROOT,
+    VIGIL,
+    assert_server_holds_the_spool,
+    free_port,
+    server_count,
+    server_rows,
+    start_rig,
+    write_rig,
+)
 
 from server.lab.config import load_lab
 from server.lab.page_feed import FeedBuilder
@@ -78,6 +91,20 @@ def test_two_rigs_write_one_store_at_once_and_one_page_shows_both(pg_cluster, tm
                 assert client.get(path).status_code == 200, path
     finally:
         close_app(app)
+    # ... and `vigil serve` itself, with controls on (the operator token in its environment).
+    port = free_port()
+    env = {**os.environ, "VIGIL_OPERATOR_TOKEN": "op-7f3a", "PYTHONUNBUFFERED": "1"}
+    serve = subprocess.Popen(VIGIL + ["serve", "--db", url, "--port", str(port)], cwd=ROOT, env=env,
+                             stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)  # fmt: skip
+    try:
+        first_line = serve.stdout.readline()
+        assert "controls through the lab-wide store" in first_line, first_line
+        with urllib.request.urlopen(f"http://127.0.0.1:{port}/api/boxes", timeout=10) as answer:
+            boxes = json.load(answer)
+        assert sorted(b["box"] for b in boxes) == ["east: box-1", "east: box-2", "west: box-1", "west: box-2"]
+    finally:
+        serve.send_signal(signal.SIGINT)
+        serve.communicate(timeout=30)
 
 
 def test_server_down_for_30_s_mid_session_loses_and_doubles_nothing(pg_cluster, tmp_path):
