@@ -22,10 +22,12 @@ from rig_samples import (
     free_port,
     server_count,
     server_rows,
+    spool_rows,
     start_rig,
     write_rig,
 )
 
+from server.cli.fit_sources import read_trials_db
 from server.lab.config import load_lab
 from server.lab.page_feed import FeedBuilder
 from server.lab.supervisor import Lab
@@ -91,6 +93,11 @@ def test_two_rigs_write_one_store_at_once_and_one_page_shows_both(pg_cluster, tm
                 assert client.get(path).status_code == 200, path
     finally:
         close_app(app)
+    # `vigil fit --db` reads the same store: the bandit box's choices, as the spool has them.
+    fitted = read_trials_db(url, ["west-R1"])
+    spooled = spool_rows(tmp_path / "spool-west.sqlite", "SELECT count(*) FROM trials t JOIN sessions s"
+                         " ON s.id = t.session_id WHERE s.animal = 'west-R1'")[0][0]  # fmt: skip
+    assert fitted[0].animal == "west-R1" and len(fitted[0].choice) == spooled > 0
     # ... and `vigil serve` itself, with controls on (the operator token in its environment).
     port = free_port()
     env = {**os.environ, "VIGIL_OPERATOR_TOKEN": "op-7f3a", "PYTHONUNBUFFERED": "1"}
