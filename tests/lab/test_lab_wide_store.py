@@ -59,7 +59,7 @@ def _wait_for(what, check, timeout=60.0):
 def test_two_rigs_write_one_store_at_once_and_one_page_shows_both(pg_cluster, tmp_path):
     url = pg_cluster.fresh_schema("rigs")
     configs = [write_rig(tmp_path, rig, url, seed=seed) for rig, seed in (("west", 11), ("east", 21))]
-    procs = [start_rig(config, "--minutes", "0.15") for config in configs]
+    procs = [start_rig(config, "--minutes", "0.2") for config in configs]
     for proc in procs:
         _finish(proc)
     rigs = dict(server_rows(url, "SELECT name, id FROM rigs"))
