@@ -5,7 +5,8 @@ On a throwaway PostgreSQL cluster (tests/pg_server.py, a private unix socket) pr
 spool, which also keeps each write in its outbox; (b) events per second through each;
 (c) forwarding: outbox entries per second into PostgreSQL, and the time to drain the backlog of
 a 30 s outage of 32 boxes at `--rate` events per box per second; (d) a trial committed on
-PostgreSQL directly, for scale.
+PostgreSQL directly, for scale; (e) how long an event takes from the lab's writer thread to
+the server while it is reachable (the promise: within a second).
 
     python bench/lab_store.py [--boxes 32] [--rate 5] [--outage 30] [--trials 300]
 """
@@ -61,12 +62,41 @@ def events_per_s(store: Store, n: int) -> float:
     return n / (time.perf_counter() - t0)
 
 
+def event_to_server_s(spool: Store, forwarder, n: int) -> list[float]:
+    """Seconds from handing an event to the lab's writer thread until the server has it."""
+    from server.store.background import BackgroundWriter
+    from server.store.postgres import connect
+
+    writer = BackgroundWriter(spool, say=lambda text: None)
+    writer.start()
+    forwarder.start()
+    check = connect(forwarder.url)
+    with writer.direct() as store:
+        sid = begin(store)
+    lags = []
+    try:
+        for k in range(n):
+            t0 = time.perf_counter()
+            writer.write(sid, EventLogged(t=float(k), kind="input", name="lever_right", value=1.0, device_seq=k + 1))
+            while not check.execute(
+                "SELECT 1 FROM events WHERE session_id = ? AND device_seq = ?", (sid, k + 1)
+            ).fetchone():
+                time.sleep(0.005)
+            lags.append(time.perf_counter() - t0)
+            time.sleep(0.1 + (k % 7) * 0.03)  # at varying points of the writer's and forwarder's cycles
+    finally:
+        check.close()
+        writer.close()
+    return lags
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--boxes", type=int, default=32)
     ap.add_argument("--rate", type=float, default=5.0, help="events per box per second")
     ap.add_argument("--outage", type=float, default=30.0, help="seconds the server was away")
     ap.add_argument("--trials", type=int, default=300)
+    ap.add_argument("--events", type=int, default=40, help="events timed from the rig to the server")
     args = ap.parse_args()
     print(where_run())
     cluster = start_cluster()
@@ -95,6 +125,9 @@ def main() -> None:
             print(f"(c) forwarding: {sent:,} entries in {drain:.2f} s = {sent / drain:,.0f} entries/s; "
                   f"a {args.outage:g} s outage of {args.boxes} boxes at {args.rate:g} events/s each "
                   f"({backlog:,} entries) drains in {drain:.2f} s")  # fmt: skip
+            lags = event_to_server_s(spool, forwarder, args.events)
+            print(f"(e) an event from the rig's writer thread to the server, while reachable: "
+                  f"median {statistics.median(lags):.3f} s, max {max(lags):.3f} s over {len(lags)} events")  # fmt: skip
             forwarder.stop(drain_s=0)
             spool.close()
             plain.close()

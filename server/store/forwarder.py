@@ -90,7 +90,8 @@ class Forwarder:
     # ------------------------------------------------------------ the rig's side
 
     def start(self) -> None:
-        self._open_spool()
+        if self._spool is None:
+            self._open_spool()
         self._thread.start()
 
     def status(self) -> StoreLink:

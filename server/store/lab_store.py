@@ -24,6 +24,7 @@ from server.store.wall_clock import iso, local_now
 from server.store.writer import ID_RANGE, Store
 
 MAX_RIGS = 2**21 - 1  # rig number x ID_RANGE stays below 2**53
+SPOOL_BATCH_S = 0.25
 
 
 def default_spool(rig: str, folder: Path) -> Path:
@@ -46,7 +47,9 @@ def open_lab_store(
         return Store.open(database, rig=rig, wall_clock=wall_clock), None
     url = str(database)
     spool_path = spool if spool is not None else default_spool(rig, Path.cwd())
-    store = Store.open(spool_path, rig=rig, journal=True, wall_clock=wall_clock)
+    # Events reach the spool within 2 x 0.25 s and the forwarder passes every 0.25 s, so while
+    # the server is reachable an event is there within a second, as on a local store.
+    store = Store.open(spool_path, rig=rig, journal=True, wall_clock=wall_clock, batch_s=SPOOL_BATCH_S)
     try:
         number, floor = _rig_number(store, url, rig, iso(wall_clock()))
     except BaseException:
