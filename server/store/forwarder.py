@@ -84,6 +84,7 @@ class Forwarder:
         self._thread = threading.Thread(target=self._run, name="vigil-forward", daemon=True)
         self._retry_s = 0.1
         self._next_try = 0.0
+        self._drain_until = 0.0
         self._last_beat = 0.0
         self._last_prune = time.monotonic()
 
@@ -107,14 +108,9 @@ class Forwarder:
 
     def stop(self, drain_s: float = 5.0) -> StoreLink:
         """Forward what is left for up to `drain_s` seconds, then stop; the rest stays spooled
-        and goes at the next start."""
-        deadline = time.monotonic() + drain_s
-        while self._thread.is_alive() and time.monotonic() < deadline:
-            state = self.status()
-            if state.waiting == 0 and state.reachable and not self._answers:
-                break
-            self._wake.set()
-            time.sleep(0.05)
+        and goes at the next start. Call it once the store has committed its last records:
+        the drain reads the outbox afresh, so those go too."""
+        self._drain_until = time.monotonic() + drain_s
         self._stop.set()
         self._wake.set()
         if self._thread.is_alive():
@@ -158,12 +154,22 @@ class Forwarder:
 
     def _run(self) -> None:
         while not self._stop.is_set():
-            try:
-                self.pass_once()
-            except Exception as exc:  # the server went away mid-pass, or refused; retry later
-                self._lost(exc)
+            self._pass_guarded()
             self._wake.wait(self.every_s)
             self._wake.clear()
+        # Stopping: the lab's last records (session ends among them) are in the spool now.
+        while time.monotonic() < self._drain_until:
+            self._pass_guarded()
+            state = self.status()
+            if state.reachable and state.waiting == 0 and not self._answers:
+                return
+            time.sleep(0.05)
+
+    def _pass_guarded(self) -> None:
+        try:
+            self.pass_once()
+        except Exception as exc:  # the server went away mid-pass, or refused; retry later
+            self._lost(exc)
 
     def _open_spool(self) -> None:
         import sqlite3

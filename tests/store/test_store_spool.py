@@ -3,6 +3,8 @@ exactly once by rig and outbox sequence, session ids that never collide, offline
 
 from __future__ import annotations
 
+import time
+
 import psycopg
 import pytest
 from store_samples import STARTED_AT, make_trial
@@ -134,3 +136,19 @@ def test_an_entry_the_server_refuses_drops_alone_and_the_rest_goes_on(pg_cluster
     finally:
         forwarder.stop(drain_s=0)
         store.close()
+
+
+def test_stopping_forwards_what_the_lab_committed_last(pg_cluster, tmp_path):
+    url = pg_cluster.fresh_schema("drain")
+    store, forwarder = open_lab_store(url, rig="bench-c", spool=tmp_path / "spool.sqlite")
+    try:
+        sid = begin(store)
+        forwarder.start()
+        time.sleep(0.6)  # a few passes: the forwarder is up to date and idle
+        store.write(sid, make_trial(1))
+        store.write(sid, SessionEnded(t=20.0, reason="protocol complete", trials=1, rewards=1))
+        left = forwarder.stop()  # at once, as the lab does right after its last commit
+    finally:
+        store.close()
+    assert left.waiting == 0
+    assert count(url, f"SELECT count(*) FROM sessions WHERE id = {sid} AND end_reason = 'protocol complete'") == 1
