@@ -4,9 +4,9 @@ On a throwaway PostgreSQL cluster (tests/pg_server.py, a private unix socket) pr
 (a) a trial committed on the rig: the plain SQLite store (the baseline, same run) against the
 spool, which also keeps each write in its outbox; (b) events per second through each;
 (c) forwarding: outbox entries per second into PostgreSQL, and the time to drain the backlog of
-a 30 s outage of 32 boxes at `--rate` events per box per second; (d) a trial committed on
-PostgreSQL directly, for scale; (e) how long an event takes from the lab's writer thread to
-the server while it is reachable (the promise: within a second).
+a 30 s outage of 32 boxes at `--rate` events per box per second; (d) how long an event takes
+from the lab's writer thread to the server while it is reachable (the promise: within a
+second); (e) a trial committed on PostgreSQL directly, for scale.
 
     python bench/lab_store.py [--boxes 32] [--rate 5] [--outage 30] [--trials 300]
 """
@@ -126,14 +126,14 @@ def main() -> None:
                   f"a {args.outage:g} s outage of {args.boxes} boxes at {args.rate:g} events/s each "
                   f"({backlog:,} entries) drains in {drain:.2f} s")  # fmt: skip
             lags = event_to_server_s(spool, forwarder, args.events)
-            print(f"(e) an event from the rig's writer thread to the server, while reachable: "
+            print(f"(d) an event from the rig's writer thread to the server, while reachable: "
                   f"median {statistics.median(lags):.3f} s, max {max(lags):.3f} s over {len(lags)} events")  # fmt: skip
             forwarder.stop(drain_s=0)
             spool.close()
             plain.close()
             direct = Store.open(cluster.fresh_schema("direct"))
             direct_ms = trial_ms(direct, args.trials)
-            print(f"(d) trial commit on PostgreSQL directly (unix socket; the throwaway cluster runs "
+            print(f"(e) trial commit on PostgreSQL directly (unix socket; the throwaway cluster runs "
                   f"fsync=off), median: {direct_ms:.3f} ms (x{direct_ms / plain_ms:.2f} of SQLite)")  # fmt: skip
             direct.close()
     finally:
