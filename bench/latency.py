@@ -62,7 +62,7 @@ trial_types:
   continuous:
     steps:
       - step: work
-        schedule: {input: press, kind: FR, value: 1, then: reward}
+        schedule: {input: press, kind: FR, value: 1, on_met: reward}
       - step: reward
         pulse: pellet
         wait_s: 0

@@ -1,7 +1,7 @@
 """An emulated operant box on a pseudo-terminal, speaking the wire protocol in real time.
 
     python -m hardware_stubs.box --link /tmp/boxes/rack-1.tty --protocol protocols/bandit.yaml \
-        --agent q_learner --seed 7 --option alpha=0.3 --unplug-every 20 --unplug-for 3
+        --agent q_learner --seed 7 --trait alpha=0.3 --unplug-every 20 --unplug-for 3
 
 The pty's slave side is linked at --link, so a host opens that path like a serial device.
 Behind it: the firmware's state machine (box_wire.DeviceWire) with a channel map taken from
@@ -121,7 +121,7 @@ class PtyBox:
         self.faults = FaultPlan(args.unplug_every, args.unplug_for, args.drop_rate,
                                 args.garbage_rate, args.delay_ms)  # fmt: skip
         self.fault_rng = np.random.default_rng([args.seed, 1])
-        agent = make_agent(args.agent, **dict(args.option))
+        agent = make_agent(args.agent, **dict(args.trait))
         self.box = EmulatedBox(self.wiring, agent, np.random.default_rng(args.seed))
         self.channel_of = {line.name: line.channel for line in self.wiring.inputs.values()}
         self.output_at = {line.channel: line for line in self.wiring.outputs.values()}
@@ -217,7 +217,7 @@ class PtyBox:
                 self._receive(data, time.monotonic())
 
 
-def _option(text: str) -> tuple[str, object]:
+def _trait(text: str) -> tuple[str, object]:
     key, eq, value = text.partition("=")
     if not eq or not key:
         raise argparse.ArgumentTypeError(f"expected NAME=VALUE, found '{text}'")
@@ -231,8 +231,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--protocol", required=True, metavar="FILE", help="protocol whose wiring to carry")
     p.add_argument("--agent", default="random", metavar="NAME", help="virtual animal")
     p.add_argument("--seed", type=int, default=0, metavar="S")
-    p.add_argument("--option", type=_option, action="append", default=[], metavar="K=V",
-                   help="agent option (repeatable)")  # fmt: skip
+    p.add_argument("--trait", "--option", dest="trait", type=_trait, action="append", default=[], metavar="K=V",
+                   help="a trait of the virtual animal (repeatable; --option is its old name)")  # fmt: skip
     p.add_argument("--unplug-every", type=float, default=0.0, metavar="S")
     p.add_argument("--unplug-for", type=float, default=0.0, metavar="S")
     p.add_argument("--drop-rate", type=float, default=0.0, metavar="R")

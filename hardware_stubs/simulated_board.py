@@ -1,4 +1,4 @@
-"""The reference box firmware on a simulated ATmega328P (simavr), reached through a pty.
+"""A box's firmware on a simulated ATmega328P (simavr), reached through a pty.
 
 `SimulatedBoard.start(link)` builds the firmware image and our simavr harness
 (hardware_stubs/simulator/) when needed, starts the harness, and returns once the board's
@@ -7,13 +7,20 @@ lab config as `port:`) exactly like a real board's port. The harness answers on 
 stdout; this wrapper turns that into method calls and lists of pin changes, each stamped in
 simulated CPU cycles (16 MHz, counted from power-on, never restarting).
 
-Inputs are the README's channel numbers (1 left lever ... 8 centre nose poke), active = 1;
-outputs likewise (1 left lever ... 10 magazine light).
+`box` names the box the firmware is built for (`BOXES`: "ref", the reference box, or "ports",
+the five-port box); the image and the harness's pin map follow it. Given a hex file instead,
+the box is the one whose firmware id the image carries.
+
+Channels are the README's numbers for that box, active = 1: on the reference box inputs
+1 left lever ... 8 centre nose poke and outputs 1 left lever ... 10 magazine light; on the
+five-port box inputs 1 centre poke ... 7 pellet sensor and outputs 1 centre port light ...
+10 tone gate.
 """
 
 from __future__ import annotations
 
 import os
+import re
 import shutil
 import subprocess
 import threading
@@ -25,6 +32,8 @@ FIRMWARE_DIR = HERE / "firmware"
 SIMULATOR_DIR = HERE / "simulator"
 FREQ_HZ = 16_000_000
 SIMAVR_HEADER = Path("/usr/include/simavr/sim_avr.h")
+# Box -> the image its build writes (hardware_stubs/firmware/Makefile, BOX=...).
+BOXES = {"ref": "vigil-box", "ports": "vigil-ports"}
 
 
 class BoardError(Exception):
@@ -52,8 +61,30 @@ def missing_parts() -> str | None:
     return None
 
 
-def build(build_root: Path | None = None) -> tuple[Path, Path, str]:
-    """Build the firmware image and the harness; returns (harness, hex, firmware size report)."""
+def firmware_ids() -> dict[str, str]:
+    """Each box's firmware id, as the firmware's boxes.h declares it (REF_FIRMWARE_ID ...)."""
+    text = (FIRMWARE_DIR / "boxes.h").read_text()
+    return {m[1].lower(): m[2] for m in re.finditer(r'#define (\w+)_FIRMWARE_ID "([^"]+)"', text)}
+
+
+def box_of_image(hex_file: Path) -> str:
+    """The box an Intel hex image was built for: the one whose firmware id it carries."""
+    try:
+        records = Path(hex_file).read_text().split()
+    except OSError as exc:
+        raise BoardError(f"cannot read {hex_file}: {exc.strerror}") from None
+    # Intel hex: ':' count(1) address(2) type(1) data checksum(1); type 00 is data.
+    data = b"".join(bytes.fromhex(r[9:-2]) for r in records if r.startswith(":") and r[7:9] == "00")
+    found = [box for box, ident in firmware_ids().items() if ident.encode() + b"\0" in data]
+    if len(found) != 1:
+        raise BoardError(f"{hex_file} carries no firmware id of a known box ({', '.join(BOXES)})")
+    return found[0]
+
+
+def build(build_root: Path | None = None, box: str = "ref") -> tuple[Path, Path, str]:
+    """Build a box's firmware image and the harness; returns (harness, hex, firmware size report)."""
+    if box not in BOXES:
+        raise BoardError(f"unknown box '{box}' (known: {', '.join(BOXES)})")
     why = missing_parts()
     if why:
         raise BoardError(why)
@@ -61,19 +92,20 @@ def build(build_root: Path | None = None) -> tuple[Path, Path, str]:
     sim_build = (build_root / "simulator") if build_root else SIMULATOR_DIR / "build"
     reports = []
     for folder, out in ((FIRMWARE_DIR, fw_build), (SIMULATOR_DIR, sim_build)):
-        done = subprocess.run(["make", "-C", str(folder), f"BUILD={out}"],
+        done = subprocess.run(["make", "-C", str(folder), f"BUILD={out}", f"BOX={box}"],
                               capture_output=True, text=True, timeout=180)  # fmt: skip
         if done.returncode != 0:
             tail = (done.stderr or done.stdout).strip().splitlines()[-1:] or ["(no output)"]
             raise BoardError(f"building {folder.name} failed: {tail[0]}")
         reports.append(done.stdout)
-    return sim_build / "board-sim", fw_build / "vigil-box.hex", reports[0]
+    return sim_build / "board-sim", fw_build / f"{BOXES[box]}.hex", reports[0]
 
 
 class SimulatedBoard:
     """One running harness; `close()` (or the context manager) ends it."""
 
-    def __init__(self, harness: Path, hex_file: Path, link: Path) -> None:
+    def __init__(self, harness: Path, hex_file: Path, link: Path, box: str | None = None) -> None:
+        self.box = box or box_of_image(hex_file)
         self.link = Path(link)
         self.outputs: list[PinChange] = []
         self.inputs: list[PinChange] = []
@@ -86,7 +118,7 @@ class SimulatedBoard:
         self._token = 0
         self._changed = threading.Condition()
         self._proc = subprocess.Popen(
-            [str(harness), "--hex", str(hex_file), "--link", str(self.link)],
+            [str(harness), "--box", self.box, "--hex", str(hex_file), "--link", str(self.link)],
             stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
             bufsize=0,
         )  # fmt: skip
@@ -99,9 +131,9 @@ class SimulatedBoard:
         self._reader.start()
 
     @classmethod
-    def start(cls, link: Path | str, build_root: Path | None = None) -> SimulatedBoard:
-        harness, hex_file, _ = build(build_root)
-        return cls(harness, hex_file, Path(link))
+    def start(cls, link: Path | str, build_root: Path | None = None, box: str = "ref") -> SimulatedBoard:
+        harness, hex_file, _ = build(build_root, box)
+        return cls(harness, hex_file, Path(link), box)
 
     def __enter__(self) -> SimulatedBoard:
         return self
@@ -130,8 +162,8 @@ class SimulatedBoard:
                     self.corrupted[parts[1]].append(int(parts[0]))
                 elif word == "synced":
                     self._replies[parts[0]] = parts[1]
-                elif word == "stats":
-                    self._replies["stats"] = rest
+                elif word in ("stats", "pins"):
+                    self._replies[word] = rest
                 elif word == "error":
                     self.errors.append(rest)
                 self._changed.notify_all()
@@ -196,6 +228,14 @@ class SimulatedBoard:
     def stats(self) -> dict[str, float]:
         rest = self._ask("stats", "stats\n", 5.0)
         return {k: float(v) for k, v in (item.split("=") for item in rest.split())}
+
+    def pins(self) -> dict[str, dict[int, str]]:
+        """The harness's pin map: {"in": {1: "PD2", ...}, "out": {1: "PB0", ...}}."""
+        _, *fields = self._ask("pins", "pins\n", 5.0).split()
+        out: dict[str, dict[int, str]] = {}
+        for label, items in zip(fields[::2], fields[1::2]):
+            out[label] = {int(ch): pin for ch, pin in (item.split(":") for item in items.split(","))}
+        return out
 
     def wait_for(self, condition, timeout: float) -> bool:
         """Wait until condition(board) holds (checked on every report)."""

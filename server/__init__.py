@@ -10,7 +10,7 @@ LAYERS: tuple[tuple[str, ...], ...] = (
     ("engine",),  # the sans-I/O session core and its drivers
     ("link", "models", "rules"),  # box links; learning models; closed-loop rules
     ("store",),  # the database: schema, writer, queries
-    ("lab",),  # composition: supervisor, assembly, stages, rehearsal, the page's lab end
+    ("lab", "export"),  # composition: supervisor, assembly ...; data out in open formats (NWB)
     ("web",),  # the status page's process
     ("cli",),  # the `vigil` verbs
 )

@@ -29,7 +29,7 @@ class AgentOption:
 
     def problem(self, agent: str, value: object) -> str | None:
         """Why `value` is not acceptable for this option, or None when it is."""
-        where = f"option {self.name!r} of agent {agent!r}"
+        where = f"trait {self.name!r} of agent {agent!r}"
         if self.choices:
             if isinstance(value, str) and value in self.choices:
                 return None
@@ -56,7 +56,7 @@ def resolve_options(
     for key, value in given.items():
         option = by_name.get(key)
         if option is None:
-            errors.append(f"unknown option {key!r} for agent {agent!r}{did_you_mean(key, by_name, aside=True)}")
+            errors.append(f"unknown trait {key!r} for agent {agent!r}{did_you_mean(key, by_name, aside=True)}")
             continue
         problem = None if value is None and option.default is None else option.problem(agent, value)
         if problem:

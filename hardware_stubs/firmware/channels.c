@@ -1,6 +1,9 @@
 /* Kinds of the reference box's channels (wire codes of PROTOCOL.md section 4). The pins
- * behind them are in main_avr.c; edit both together when a box is wired differently. */
+ * behind them are in boxes.h; edit both together when a box is wired differently. The
+ * five-port box's build (make BOX=ports) takes channels_ports.c instead. */
 #include "channels.h"
+
+#ifndef BOX_PORTS
 
 static const char input_codes[BOX_INPUTS][3] VP_FLASH = {
     "lp", /* 1 left lever switch */
@@ -27,3 +30,5 @@ static const char output_codes[BOX_OUTPUTS][3] VP_FLASH = {
 };
 
 const vp_channel_map box_channels = {BOX_INPUTS, BOX_OUTPUTS, input_codes, output_codes};
+
+#endif

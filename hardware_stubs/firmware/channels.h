@@ -1,11 +1,10 @@
-/* The reference box's channel map: which kind of hardware sits on each channel. */
+/* The box's channel map: which kind of hardware sits on each channel (channels.c for the
+ * reference box, channels_ports.c for the five-port box; counts and pins in boxes.h). */
 #ifndef CHANNELS_H
 #define CHANNELS_H
 
+#include "boxes.h"
 #include "vproto.h"
-
-#define BOX_INPUTS 8u
-#define BOX_OUTPUTS 10u
 
 extern const vp_channel_map box_channels;
 

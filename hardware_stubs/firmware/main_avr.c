@@ -1,19 +1,15 @@
 /*
  * Vigil reference firmware: ATmega328P board layer (16 MHz, e.g. an Uno-class board).
  *
- * Pin map (PROTOCOL.md channel numbers; kinds in channels.c)
- *
- *   inputs, active low (internal pull-up; a switch or open-collector sensor pulls to GND)
- *     1  PD2 (D2)   left lever switch          5  PD6 (D6)   right nose-poke beam
- *     2  PD3 (D3)   right lever switch         6  PD7 (D7)   lickometer
- *     3  PD4 (D4)   magazine head-entry beam   7  PC4 (A4)   pellet sensor
- *     4  PD5 (D5)   left nose-poke beam        8  PC5 (A5)   centre nose-poke beam
- *   outputs, active high (to driver transistors or relay boards; low at reset = safe)
- *     1  PB0 (D8)   left lever                 6  PB5 (D13)  tone gate (board LED too)
- *     2  PB1 (D9)   right lever                7  PC0 (A0)   pellet feeder
- *     3  PB2 (D10)  left cue light             8  PC1 (A1)   sync TTL
- *     4  PB3 (D11)  right cue light            9  PC2 (A2)   aversive gate
- *     5  PB4 (D12)  house light               10  PC3 (A3)   magazine light
+ * Pins: the box's lists in boxes.h (the reference box by default, the five-port box with
+ * make BOX=ports; both tables are in the README's hardware section); kinds in channels.c
+ * or channels_ports.c.
+ *   inputs, active low (internal pull-up; a switch or open-collector sensor pulls to GND):
+ *     channels 1-6 on PD2-PD7, further ones from PC4 up
+ *   outputs, active high (to driver transistors or relay boards; low at reset = safe):
+ *     any of PB0-PB5 and PC0-PC5
+ *   spare pins of those ports: inputs with their pull-ups, so none floats (ATmega328P
+ *     datasheet, I/O ports, "Unconnected Pins")
  *   serial: PD0 RX, PD1 TX (USB bridge), 8N1 at BAUD (default 115200)
  *   PB3-PB5 double as the ISP programming pins: unplug their loads while programming.
  *
@@ -41,8 +37,47 @@
 #include "channels.h"
 #include "vproto.h"
 
-/* Inputs whose sensor drives high when active (none on the reference box). */
+/* Inputs whose sensor drives high when active (none on either box). */
 #define INPUT_ACTIVE_HIGH 0x00u
+
+/* Masks of the box's pins on each port, worked out from its lists in boxes.h. */
+#define PIN_ON_B_B 1
+#define PIN_ON_B_C 0
+#define PIN_ON_B_D 0
+#define PIN_ON_C_B 0
+#define PIN_ON_C_C 1
+#define PIN_ON_C_D 0
+#define PIN_ON_D_B 0
+#define PIN_ON_D_C 0
+#define PIN_ON_D_D 1
+#define MASK_B(ch, port, bit) | (PIN_ON_B_##port << (bit))
+#define MASK_C(ch, port, bit) | (PIN_ON_C_##port << (bit))
+#define MASK_D(ch, port, bit) | (PIN_ON_D_##port << (bit))
+#define OUTPUTS_B (0u BOX_OUTPUT_PINS(MASK_B))
+#define OUTPUTS_C (0u BOX_OUTPUT_PINS(MASK_C))
+#define OUTPUTS_D (0u BOX_OUTPUT_PINS(MASK_D))
+#define INPUTS_C (0u BOX_INPUT_PINS(MASK_C))
+#define INPUTS_D (0u BOX_INPUT_PINS(MASK_D))
+/* Pins a box may use: PB6-PB7 hold the crystal, PC6 is RESET, PD0-PD1 the serial line. */
+#define USABLE_B 0x3Fu
+#define USABLE_C 0x3Fu
+#define USABLE_D 0xFCu
+#define PULLED_UP_B (USABLE_B & ~OUTPUTS_B)
+#define PULLED_UP_C (USABLE_C & ~OUTPUTS_C)
+#define PULLED_UP_D (USABLE_D & ~OUTPUTS_D)
+
+/* input_levels() and the pin-change handlers read the inputs in one pass per port: a box
+ * must keep that shape. */
+#define INPUT_SHAPE(ch, port, bit) \
+    &&(PIN_ON_D_##port ? (bit) == (ch) + 1 : PIN_ON_C_##port && (bit) == (ch)-3)
+#define ONE(ch, port, bit) +1
+_Static_assert(1 BOX_INPUT_PINS(INPUT_SHAPE), "inputs 1-6 on PD2-PD7, then PC4 up (boxes.h)");
+_Static_assert((0 BOX_INPUT_PINS(ONE)) == BOX_INPUTS, "one input pin per input channel");
+_Static_assert(__builtin_popcount(OUTPUTS_B) + __builtin_popcount(OUTPUTS_C) == BOX_OUTPUTS,
+               "one output pin per output channel, none shared");
+_Static_assert(INPUTS_D == USABLE_D && OUTPUTS_D == 0, "port D carries inputs 1-6 only");
+_Static_assert(((OUTPUTS_B & ~USABLE_B) | (OUTPUTS_C & ~USABLE_C) | (OUTPUTS_C & INPUTS_C)) == 0,
+               "outputs on usable pins, none shared with an input");
 
 static vp_device box;
 
@@ -54,8 +89,8 @@ static volatile uint8_t tx_head, tx_tail; /* main writes head, ISR reads tail */
 static uint8_t last_pind, last_pinc;
 
 /* Output channel n -> port (0 B, 1 C) in bit 4, pin in bits 0-2. */
-static const uint8_t output_pins[BOX_OUTPUTS] PROGMEM = {
-    0x00, 0x01, 0x02, 0x03, 0x04, 0x05, 0x10, 0x11, 0x12, 0x13};
+#define OUTPUT_PIN(ch, port, bit) (PIN_ON_C_##port << 4 | (bit)),
+static const uint8_t output_pins[BOX_OUTPUTS] PROGMEM = {BOX_OUTPUT_PINS(OUTPUT_PIN)};
 
 /* The watchdog survives a reset it caused: stop it before anything else runs. */
 void early_watchdog_off(void) __attribute__((naked, used, section(".init3")));
@@ -87,7 +122,7 @@ static uint32_t clock_us(void) {
 
 /* Bit i = input i + 1 active. */
 static uint8_t input_levels(void) {
-    uint8_t raw = (uint8_t)((PIND >> 2) | ((PINC & 0x30u) << 2));
+    uint8_t raw = (uint8_t)((PIND >> 2) | ((PINC & INPUTS_C) << 2));
     return (uint8_t)(~raw ^ INPUT_ACTIVE_HIGH);
 }
 
@@ -103,9 +138,9 @@ ISR(PCINT2_vect) { /* PD2..PD7 -> inputs 1..6 */
     last_pind = pins;
 }
 
-ISR(PCINT1_vect) { /* PC4..PC5 -> inputs 7..8 */
+ISR(PCINT1_vect) { /* PC4.. -> inputs 7.. */
     uint8_t pins = PINC;
-    note_changes((uint8_t)(((pins ^ last_pinc) >> 4) & 0x03u), 6);
+    note_changes((uint8_t)(((pins ^ last_pinc) >> 4) & (INPUTS_C >> 4)), 6);
     last_pinc = pins;
 }
 
@@ -155,12 +190,16 @@ static void set_output(uint8_t channel, uint8_t on) {
 }
 
 static void setup(void) {
-    DDRB |= 0x3Fu; /* PB0..PB5 outputs */
-    DDRC |= 0x0Fu; /* PC0..PC3 outputs */
-    DDRD &= (uint8_t)~0xFCu;
-    PORTD |= 0xFCu; /* pull-ups on PD2..PD7 */
-    DDRC &= (uint8_t)~0x30u;
-    PORTC |= 0x30u; /* pull-ups on PC4..PC5 */
+    DDRB |= OUTPUTS_B; /* outputs low (PORTx is 0 at reset) */
+    DDRC |= OUTPUTS_C;
+#if PULLED_UP_B
+    DDRB &= (uint8_t)~PULLED_UP_B;
+    PORTB |= PULLED_UP_B;
+#endif
+    DDRD &= (uint8_t)~PULLED_UP_D;
+    PORTD |= PULLED_UP_D; /* pull-ups on the inputs and spare pins */
+    DDRC &= (uint8_t)~PULLED_UP_C;
+    PORTC |= PULLED_UP_C;
 
     UBRR0H = UBRRH_VALUE;
     UBRR0L = UBRRL_VALUE;
@@ -178,8 +217,8 @@ static void setup(void) {
 
     last_pind = PIND;
     last_pinc = PINC;
-    PCMSK2 = 0xFCu;
-    PCMSK1 = 0x30u;
+    PCMSK2 = INPUTS_D;
+    PCMSK1 = INPUTS_C;
     PCICR = _BV(PCIE2) | _BV(PCIE1);
 
     /* A boot counter in EEPROM tells the host that a restart emptied the event ring. */

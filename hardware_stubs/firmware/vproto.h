@@ -12,10 +12,11 @@
 
 #include <stdint.h>
 
+#include "boxes.h"
 #include "vline.h"
 
 #define VP_PROTOCOL_VERSION 1
-#define VP_FIRMWARE_ID "vigil-ref-1.0"
+#define VP_FIRMWARE_ID BOX_FIRMWARE_ID /* names the box it was built for (boxes.h) */
 
 #define VP_RING 128u           /* events held for replay; a power of two */
 #define VP_RX_MAX 40u          /* receive buffer; no valid host line is longer than 33 */

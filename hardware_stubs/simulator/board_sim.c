@@ -1,22 +1,29 @@
 /*
- * The reference box board in simavr: the unmodified firmware image on a simulated
- * ATmega328P at 16 MHz, its UART on a pseudo-terminal, its input pins driven and its output
- * pins recorded with simulated-cycle timestamps.
+ * A box's board in simavr: the unmodified firmware image on a simulated ATmega328P at
+ * 16 MHz, its UART on a pseudo-terminal, its input pins driven and its output pins recorded
+ * with simulated-cycle timestamps.
  *
  *   board-sim --hex build/vigil-box.hex --link /tmp/box-1.tty
+ *   board-sim --box ports --hex build/vigil-ports.hex --link /tmp/box-2.tty
+ *
+ * --box names the box the image was built for (ref, the default, or ports: the firmware's
+ * boxes.h, whose pin lists this harness reads too); an image that does not carry that box's
+ * firmware id is refused.
  *
  * stdin (one command a line; times relative to the moment the line is read, in simulated
  * microseconds, so a batch written at once keeps its exact spacing):
- *   in CH LEVEL [AFTER_US]   input channel CH (1-8) active (1) or idle (0)
+ *   in CH LEVEL [AFTER_US]   input channel CH (1-8 on the reference box, 1-7 on the
+ *                            five-port box) active (1) or idle (0)
  *   unplug | plug            pull the cable out (the link path disappears) / put it back
  *   reset                    reset the board (as the reset button; EEPROM is kept)
  *   noise rx|tx EVERY        change one byte in 1 of EVERY lines (drawn) to / from the board
  *   sync TOKEN               answered "synced TOKEN CYCLE" once everything before it ran
  *   stats                    answered with one "stats key=value ..." line
+ *   pins                     answered "pins BOX in 1:PD2,... out 1:PB0,..." (the pin map)
  *   quit                     (end of stdin too)
  * stdout (one report a line; CYCLE counts from power-on, never restarts):
  *   ready FREQ_HZ LINK | plug CYCLE LINK | unplug CYCLE | reset CYCLE
- *   out CYCLE CH LEVEL       an output pin changed (channels of the README's pin map)
+ *   out CYCLE CH LEVEL       an output pin changed (channels of the box's pin map)
  *   in CYCLE CH LEVEL        an input pin was driven
  *   rxlf CYCLE               a line from the host finished arriving at the board's UART
  *   txlf CYCLE               a line from the board finished crossing the wire
@@ -43,21 +50,39 @@
 #include <sim_hex.h>
 #include <sim_regbit.h>
 
+#include "boxes.h"
 #include "cable.h"
 
 #define FREQ 16000000u
 #define SLICE_CYCLES 800u          /* 50 us: how often the pty and stdin are looked at */
 #define RESYNC_LAG_S 1.0           /* further behind than this (host stopped us): start over */
 #define MAX_SCHEDULED 4096u
-#define N_INPUTS 8
-#define N_OUTPUTS 10
+#define MAX_INPUTS 8
+#define MAX_OUTPUTS 10
 
-/* Pin map of main_avr.c (the README's hardware section): channel n -> port and bit. */
-static const char input_port[N_INPUTS] = {'D', 'D', 'D', 'D', 'D', 'D', 'C', 'C'};
-static const uint8_t input_bit[N_INPUTS] = {2, 3, 4, 5, 6, 7, 4, 5};
-static const char output_port[N_OUTPUTS] = {'B', 'B', 'B', 'B', 'B', 'B', 'C', 'C', 'C', 'C'};
-static const uint8_t output_bit[N_OUTPUTS] = {0, 1, 2, 3, 4, 5, 0, 1, 2, 3};
-static const int output_channel[N_OUTPUTS] = {1, 2, 3, 4, 5, 6, 7, 8, 9, 10};
+/* Each box's pin map, from the firmware's own lists (boxes.h): channel n -> port and bit. */
+typedef struct {
+    char port;
+    uint8_t bit;
+} pin;
+
+typedef struct {
+    const char *name;
+    const char *firmware_id;
+    unsigned n_inputs, n_outputs;
+    pin inputs[MAX_INPUTS], outputs[MAX_OUTPUTS];
+} box_pins;
+
+#define PIN(ch, port, bit) {PIN_PORT_##port, bit},
+static const box_pins boxes[] = {
+    {"ref", REF_FIRMWARE_ID, REF_INPUTS, REF_OUTPUTS, {REF_INPUT_PINS(PIN)}, {REF_OUTPUT_PINS(PIN)}},
+    {"ports", PORTS_FIRMWARE_ID, PORTS_INPUTS, PORTS_OUTPUTS, {PORTS_INPUT_PINS(PIN)},
+     {PORTS_OUTPUT_PINS(PIN)}},
+};
+_Static_assert(REF_INPUTS <= MAX_INPUTS && PORTS_INPUTS <= MAX_INPUTS, "room for every input");
+_Static_assert(REF_OUTPUTS <= MAX_OUTPUTS && PORTS_OUTPUTS <= MAX_OUTPUTS, "and every output");
+static const box_pins *box = &boxes[0];
+static const int output_channel[MAX_OUTPUTS] = {1, 2, 3, 4, 5, 6, 7, 8, 9, 10};
 
 typedef struct {
     uint64_t at;
@@ -70,9 +95,9 @@ static uint64_t cycle_base; /* added to avr->cycle: simavr's count restarts at a
 static uint64_t last_raw_cycle;
 static cable wire = {.master = -1, .slave = -1};
 static avr_irq_t *uart_in;
-static avr_irq_t *input_irq[N_INPUTS];
-static avr_irq_t *output_irq[N_OUTPUTS];
-static uint8_t input_level[N_INPUTS]; /* 1 = active: the switch pulls the pin low */
+static avr_irq_t *input_irq[MAX_INPUTS];
+static avr_irq_t *output_irq[MAX_OUTPUTS];
+static uint8_t input_level[MAX_INPUTS]; /* 1 = active: the switch pulls the pin low */
 static scheduled_input schedule[MAX_SCHEDULED];
 static unsigned n_scheduled;
 static double lag_max_s;
@@ -145,16 +170,17 @@ static void drive_input(unsigned ch, uint8_t active) {
     /* A real pull-up is weak and the switch wins; simavr re-raises a pulled-up input pin
      * whenever the port register is written, so the switch's level is made the pin's
      * "external" default too. */
-    avr_ioport_external_t ext = {.name = (unsigned long)input_port[ch], .mask = 0, .value = 0};
+    char port = box->inputs[ch].port;
+    avr_ioport_external_t ext = {.name = (unsigned long)port, .mask = 0, .value = 0};
     uint8_t mask = 0, value = 0;
-    for (unsigned i = 0; i < N_INPUTS; i++) {
-        if (input_port[i] != input_port[ch]) continue;
-        mask |= (uint8_t)(1u << input_bit[i]);
-        if (!input_level[i]) value |= (uint8_t)(1u << input_bit[i]);
+    for (unsigned i = 0; i < box->n_inputs; i++) {
+        if (box->inputs[i].port != port) continue;
+        mask |= (uint8_t)(1u << box->inputs[i].bit);
+        if (!input_level[i]) value |= (uint8_t)(1u << box->inputs[i].bit);
     }
     ext.mask = mask;
     ext.value = value;
-    avr_ioctl(avr, AVR_IOCTL_IOPORT_SET_EXTERNAL(input_port[ch]), &ext);
+    avr_ioctl(avr, AVR_IOCTL_IOPORT_SET_EXTERNAL(port), &ext);
     avr_raise_irq(input_irq[ch], high);
 }
 
@@ -192,12 +218,12 @@ static void restore_pins_after_reset(void) {
      * toggle each input pin's value so the register sees the switch again (PCMSK is 0 after
      * a reset, so no interrupt follows). Outputs float at reset; the driver stage's
      * pull-down holds them off (common practice for transistor and relay drivers). */
-    for (unsigned ch = 0; ch < N_INPUTS; ch++) {
+    for (unsigned ch = 0; ch < box->n_inputs; ch++) {
         uint8_t high = input_level[ch] ? 0 : 1;
         avr_raise_irq(input_irq[ch], !high);
         drive_input(ch, input_level[ch]);
     }
-    for (unsigned i = 0; i < N_OUTPUTS; i++) avr_raise_irq(output_irq[i], 0);
+    for (unsigned i = 0; i < box->n_outputs; i++) avr_raise_irq(output_irq[i], 0);
 }
 
 static void reset_board(void) {
@@ -227,12 +253,21 @@ static int load_board(const char *hex) {
     int n = read_ihex_chunks(hex, &chunks);
     if (n <= 0) {
         fprintf(stderr, "board-sim: cannot read %s as Intel hex\n", hex);
-        return -1;
+        return -2; /* said why */
     }
+    int named = 0;
     for (int i = 0; i < n; i++)
-        if (chunks[i].baseaddr < 0x800000u) /* flash; no eeprom section in our image */
+        if (chunks[i].baseaddr < 0x800000u) { /* flash; no eeprom section in our image */
             avr_loadcode(avr, chunks[i].data, chunks[i].size, chunks[i].baseaddr);
+            named |= memmem(chunks[i].data, chunks[i].size, box->firmware_id,
+                            strlen(box->firmware_id) + 1) != NULL;
+        }
     free_ihex_chunks(chunks);
+    if (!named) { /* the pins would mean something else: refuse rather than mislead */
+        fprintf(stderr, "board-sim: %s is not an image for box '%s' (no '%s' in it)\n", hex,
+                box->name, box->firmware_id);
+        return -2;
+    }
     avr->pc = 0;
 
     uart = find_uart();
@@ -242,18 +277,33 @@ static int load_board(const char *hex) {
     uart_in = avr_io_getirq(avr, AVR_IOCTL_UART_GETIRQ('0'), UART_IRQ_INPUT);
     avr_irq_register_notify(avr_io_getirq(avr, AVR_IOCTL_UART_GETIRQ('0'), UART_IRQ_OUTPUT),
                             report_uart_byte, NULL);
-    for (unsigned i = 0; i < N_OUTPUTS; i++) {
-        output_irq[i] = avr_io_getirq(avr, AVR_IOCTL_IOPORT_GETIRQ(output_port[i]), output_bit[i]);
+    for (unsigned i = 0; i < box->n_outputs; i++) {
+        const pin *p = &box->outputs[i];
+        output_irq[i] = avr_io_getirq(avr, AVR_IOCTL_IOPORT_GETIRQ(p->port), p->bit);
         avr_irq_register_notify(output_irq[i], report_output, (void *)&output_channel[i]);
     }
-    for (unsigned ch = 0; ch < N_INPUTS; ch++) {
-        input_irq[ch] = avr_io_getirq(avr, AVR_IOCTL_IOPORT_GETIRQ(input_port[ch]), input_bit[ch]);
+    for (unsigned ch = 0; ch < box->n_inputs; ch++) {
+        const pin *p = &box->inputs[ch];
+        input_irq[ch] = avr_io_getirq(avr, AVR_IOCTL_IOPORT_GETIRQ(p->port), p->bit);
         drive_input(ch, 0); /* every switch open, every beam clear */
     }
     return 0;
 }
 
 /* ------------------------------------------------------------ control */
+
+static void print_pin_list(const char *label, const pin *pins, unsigned n) {
+    printf(" %s", label);
+    for (unsigned i = 0; i < n; i++)
+        printf("%c%u:P%c%u", i ? ',' : ' ', i + 1, pins[i].port, (unsigned)pins[i].bit);
+}
+
+static void print_pins(void) {
+    printf("pins %s", box->name);
+    print_pin_list("in", box->inputs, box->n_inputs);
+    print_pin_list("out", box->outputs, box->n_outputs);
+    printf("\n");
+}
 
 static char control[8192];
 static size_t control_len;
@@ -264,7 +314,7 @@ static void command(char *line, uint64_t now_u64) {
     unsigned long long after = 0, token;
     char dir[8];
     if (sscanf(line, "in %u %u %llu", &ch, &level, &after) >= 2) {
-        if (ch < 1 || ch > N_INPUTS || level > 1) {
+        if (ch < 1 || ch > box->n_inputs || level > 1) {
             printf("error bad input command: %s\n", line);
             return;
         }
@@ -291,6 +341,8 @@ static void command(char *line, uint64_t now_u64) {
                now, lag_max_s * 1e6, resyncs, wire.to_board.lines, wire.to_host.lines,
                wire.to_board.corrupted, wire.to_host.corrupted, wire.to_host.dropped,
                wire.to_board.dropped);
+    } else if (strcmp(line, "pins") == 0) {
+        print_pins();
     } else if (strcmp(line, "quit") == 0) {
         quitting = 1;
     } else if (line[0]) {
@@ -362,23 +414,29 @@ static int run_until(uint64_t end) {
 }
 
 int main(int argc, char **argv) {
-    const char *hex = NULL;
+    const char *hex = NULL, *box_name = "ref";
     for (int i = 1; i + 1 < argc; i += 2) {
         if (strcmp(argv[i], "--hex") == 0)
             hex = argv[i + 1];
         else if (strcmp(argv[i], "--link") == 0)
             wire.link = argv[i + 1];
+        else if (strcmp(argv[i], "--box") == 0)
+            box_name = argv[i + 1];
     }
-    if (!hex || !wire.link) {
-        fprintf(stderr, "usage: board-sim --hex FILE --link PATH\n");
+    box = NULL;
+    for (unsigned i = 0; i < sizeof boxes / sizeof boxes[0]; i++)
+        if (strcmp(boxes[i].name, box_name) == 0) box = &boxes[i];
+    if (!hex || !wire.link || !box) {
+        fprintf(stderr, "usage: board-sim [--box ref|ports] --hex FILE --link PATH\n");
         return 2;
     }
     prctl(PR_SET_PDEATHSIG, SIGTERM); /* never outlive the test or tool that started us */
     prctl(PR_SET_TIMERSLACK, 1000UL); /* 1 us: sleeps end when asked, not up to 50 us late */
     signal(SIGPIPE, SIG_IGN);
     setvbuf(stdout, NULL, _IOFBF, 1 << 16);
-    if (load_board(hex) < 0) {
-        fprintf(stderr, "board-sim: cannot set up an atmega328p with %s\n", hex);
+    int loaded = load_board(hex);
+    if (loaded < 0) {
+        if (loaded == -1) fprintf(stderr, "board-sim: cannot set up an atmega328p with %s\n", hex);
         return 1;
     }
     wire.to_board.at_start = 1;

@@ -1,4 +1,4 @@
-"""`vigil` command line: check, run, demo, serve, rehearse, fit, doctor.
+"""`vigil` command line: check, run, demo, serve, rehearse, fit, export, doctor.
 
 Exit codes: 0 success, 1 invalid input or a failed run, 2 usage error. Problems with
 files are printed as `file:line:col: message`; a traceback never reaches the user.
@@ -10,9 +10,10 @@ import argparse
 import asyncio
 import json
 import sys
+from collections.abc import Sequence
 from pathlib import Path
 
-from server.protocol.problems import InvalidFile
+from server.protocol.problems import InvalidFile, Problem
 
 REPO_ROOT = Path(__file__).resolve().parents[2]
 DEMO_CONFIG = REPO_ROOT / "config.example.yaml"
@@ -24,6 +25,13 @@ def _err(message: str) -> None:
 
 
 # ---------------------------------------------------------------- check
+
+
+def _warn(warnings: Sequence[Problem]) -> None:
+    """Old spellings that were read, each naming the new one (they load until the next format version)."""
+    for warning in warnings:
+        mark = warning.mark
+        sys.stderr.write(f"{mark.file}:{mark.line}:{mark.col}: warning: {warning.message}\n")
 
 
 def cmd_check(args: argparse.Namespace) -> int:
@@ -38,6 +46,7 @@ def cmd_check(args: argparse.Namespace) -> int:
             for problem in exc.problems:
                 sys.stderr.write(f"{problem}\n")
             continue
+        _warn(protocol.warnings)
         if not args.quiet:
             print(
                 f"{file}: ok ('{protocol.name}': {len(protocol.trial_types)} trial types, "
@@ -94,6 +103,7 @@ def cmd_run(args: argparse.Namespace) -> int:
         for problem in exc.problems:
             sys.stderr.write(f"{problem}\n")
         return 1
+    _warn(config.warnings)
     return _run_lab(config, args.db or str(config.database), args.minutes, args.port)
 
 
@@ -174,6 +184,7 @@ def cmd_rehearse(args: argparse.Namespace) -> int:
         for problem in exc.problems:
             sys.stderr.write(f"{problem}\n")
         return 1
+    _warn(protocol.warnings + population.warnings)
     result = rehearse(
         protocol, args.animals, args.seed, caps=HardCaps(), progress=progress_bar(),
         workers=args.workers, sessions=args.sessions, population=population,
@@ -191,6 +202,29 @@ def cmd_rehearse(args: argparse.Namespace) -> int:
         print(human_report(result))
         if args.figure:
             print(f"figure: {args.figure}")
+    return 0
+
+
+# ---------------------------------------------------------------- export
+
+
+def cmd_export(args: argparse.Namespace) -> int:
+    """One NWB file per session; one line per file written."""
+    from server.export.nwb import export_nwb
+    from server.store.errors import StoreError
+
+    try:
+        done = export_nwb(args.db, args.nwb, session_id=args.session, animal=args.animal)
+    except StoreError as exc:
+        _err(str(exc))
+        return 1
+    except OSError as exc:
+        _err(f"cannot write to {args.nwb}: {exc.strerror or exc}")
+        return 1
+    for item in done:
+        print(f"session {item.session_id}: {item.trials} trials, {item.events} events -> {item.path}")
+    if not done:
+        print("no sessions in the database; nothing written")
     return 0
 
 
@@ -311,17 +345,25 @@ def build_parser() -> argparse.ArgumentParser:
         metavar="K",
         help="sessions (days) per animal; learning carries over",
     )
-    p.add_argument("--population", metavar="FILE", help="YAML: agent and how its options vary")
+    p.add_argument("--population", metavar="FILE", help="YAML: agent and how its traits vary")
     p.add_argument(
         "--vary",
         action="append",
         metavar="NAME=SPEC",
-        help="vary an agent option: NAME=LOW:HIGH, NAME=lognormal:MEDIAN:SIGMA, NAME=VALUE",
+        help="vary a virtual animal's trait: NAME=LOW:HIGH, NAME=lognormal:MEDIAN:SIGMA, NAME=VALUE",
     )
     p.add_argument("--figure", metavar="FILE.svg", help="write a histogram of trials to criterion")
     p.add_argument("--firings", action="store_true", help="list every rule firing with the values its condition read")
     p.add_argument("--json", action="store_true", help="print JSON instead of a table")
     p.set_defaults(func=cmd_rehearse)
+
+    p = verbs.add_parser("export", help="write sessions as NWB files (one per session)")
+    p.add_argument("--nwb", required=True, metavar="OUT_DIR", help="folder for the .nwb files (created if missing)")
+    p.add_argument("--db", required=True, metavar="PATH", help="SQLite database to read")
+    which = p.add_mutually_exclusive_group()
+    which.add_argument("--session", type=_positive_int, metavar="ID", help="only this session")
+    which.add_argument("--animal", metavar="ID", help="every session of this animal")
+    p.set_defaults(func=cmd_export)
 
     p = verbs.add_parser("doctor", help="check the serial ports and boards of a lab config")
     p.add_argument("config", nargs="?", metavar="CONFIG", help="lab config (default: every serial port found)")

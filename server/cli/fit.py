@@ -15,12 +15,23 @@ import sys
 from collections.abc import Sequence
 from typing import TextIO
 
-from server.cli.fit_sources import FitInputError, read_trials_csv, read_trials_db
+from server.cli import fit_two_stage
+from server.cli.fit_sources import FitInputError, csv_kind, read_history, read_trials_csv, read_trials_db
+from server.cli.fit_tables import (
+    clean,
+    comparison_json,
+    print_comparison,
+    print_fits,
+    select,
+    with_choices,
+    write_or_fail,
+)
 from server.models.batch import ValueSettings
 from server.models.choice import CHOICE_MODELS, get_choice_model
-from server.models.comparison import Comparison, compare_models, regressors
+from server.models.comparison import compare_models, regressors
 from server.models.fitting import FitResult, fit_animals
 from server.models.trials import AnimalTrials
+from server.models.two_stage import TWO_STAGE_MODELS
 
 PROG = "vigil fit"
 
@@ -29,7 +40,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.description = (
         "Fit a learning model to each animal's choices (maximum likelihood, or MAP with "
         "--map) from a trials CSV (header animal,session,trial,choice,reward; empty choice "
-        "= omission) or from the session database."
+        "= omission), a two-stage trials CSV (header "
+        "animal,session,trial,choice,transition,state,choice2,reward; transition common or "
+        "rare, choice2 empty where the second stage offers no choice), or from the session database."
     )
     parser.add_argument("trials", nargs="?", metavar="TRIALS.csv", help="trials CSV file")
     parser.add_argument("--db", metavar="PATH", help="read trials from a Vigil database")
@@ -37,17 +50,36 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         "--animal", action="append", metavar="ID", help="fit only this animal (repeatable; default: every animal)"
     )
     parser.add_argument(
-        "--model", default="q_learning", metavar="NAME", help=f"one of {', '.join(CHOICE_MODELS)} (default q_learning)"
+        "--model",
+        metavar="NAME",
+        help=f"one of {', '.join(CHOICE_MODELS)} (default q_learning); on two-stage trials one of "
+        f"{', '.join(TWO_STAGE_MODELS)} (default hybrid)",
     )
     parser.add_argument("--json", action="store_true", help="print results as JSON")
     parser.add_argument("--map", action="store_true", help="maximise the posterior under the models' declared priors")
-    parser.add_argument("--compare", action="store_true", help="fit every choice model and rank them by BIC")
+    parser.add_argument(
+        "--compare", action="store_true", help="fit every choice model (or every two-stage model) and rank them by BIC"
+    )
     parser.add_argument(
         "--regressors",
         metavar="OUT.csv",
         help="write per-trial values, choice probabilities and prediction errors at the fitted parameters",
     )
     parser.add_argument("--carry-values", action="store_true", help="keep learned values from one session to the next")
+    parser.add_argument(
+        "--common-probability",
+        type=float,
+        metavar="P",
+        help="two-stage trials: P(common transition) the model-based system assumes "
+        "(default: the share of common transitions in the file)",
+    )
+    parser.add_argument(
+        "--stay-lags",
+        type=int,
+        default=1,
+        metavar="N",
+        help="two-stage trials: past trials in the stay regression (default 1)",
+    )
 
 
 def run(args: argparse.Namespace, out: TextIO | None = None, err: TextIO | None = None) -> int:
@@ -60,25 +92,38 @@ def run(args: argparse.Namespace, out: TextIO | None = None, err: TextIO | None 
 
     if bool(args.trials) == bool(args.db):
         return fail("give a trials CSV or --db PATH (one of the two)", 2)
+    if args.trials and csv_kind(args.trials) == "two_stage":
+        return fit_two_stage.run(args, out, err, fail)
+    found = None
+    if args.db:
+        try:
+            found = read_history(args.db, args.animal, two_stage=True)
+        except FitInputError as exc:
+            return fail(str(exc), 1)
+        two_stage = {p.session_id for p in found if p.second is not None}
+        if two_stage:
+            others = {p.session_id for p in found} - two_stage
+            if others:
+                print(f"{PROG}: {len(others)} single-stage session(s) left out; fitting two-stage sessions", file=err)
+            return fit_two_stage.run(args, out, err, fail, [p for p in found if p.session_id in two_stage])
+    if args.model in TWO_STAGE_MODELS:
+        return fail(f"{args.model} is a two-stage model; these trials have a single stage", 2)
+    if args.common_probability is not None or args.stay_lags != 1:
+        return fail("--common-probability and --stay-lags apply to two-stage trials only", 2)
     if not args.compare:
         try:
-            model = get_choice_model(args.model)
+            model = get_choice_model(args.model or "q_learning")
         except ValueError as exc:
             return fail(str(exc), 2)
     try:
         animals = (
-            read_trials_db(args.db, args.animal)
+            read_trials_db(args.db, args.animal, found)
             if args.db
-            else _select(read_trials_csv(args.trials), args.animal, args.trials)
+            else select(read_trials_csv(args.trials), args.animal, args.trials)
         )
     except FitInputError as exc:
         return fail(str(exc), 1)
-    usable = []
-    for a in animals:
-        if a.n_choices == 0:
-            print(f"{PROG}: animal {a.animal} has no choice trials; skipped", file=err)
-        else:
-            usable.append(a)
+    usable = with_choices(animals, err)
     if not usable:
         return fail("nothing to fit", 1)
     values = ValueSettings(carry_values=args.carry_values)
@@ -86,130 +131,16 @@ def run(args: argparse.Namespace, out: TextIO | None = None, err: TextIO | None 
         comparison = compare_models(usable, use_prior=args.map, values=values)
         best = [comparison.best(i) for i in range(len(usable))]
         if args.json:
-            print(json.dumps(_comparison_json(comparison)), file=out)
+            print(json.dumps(comparison_json(comparison)), file=out)
         else:
-            _print_comparison(comparison, out)
+            print_comparison(comparison, out)
     else:
         best = fit_animals(model, usable, use_prior=args.map, values=values)
         if args.json:
-            print(json.dumps([_clean(f.to_dict()) for f in best]), file=out)
+            print(json.dumps([clean(f.to_dict()) for f in best]), file=out)
         else:
-            _print_fits(best, out)
-    if args.regressors:
-        try:
-            _write_regressors(args.regressors, usable, best, values)
-        except OSError as exc:
-            return fail(f"cannot write {args.regressors}: {exc.strerror or exc}", 1)
-    return 0
-
-
-def _select(animals: list[AnimalTrials], wanted: Sequence[str] | None, source: str) -> list[AnimalTrials]:
-    if not wanted:
-        return animals
-    by_name = {a.animal: a for a in animals}
-    for name in wanted:
-        if name not in by_name:
-            raise FitInputError(f"{source}: no trials for animal {name!r}")
-    return [by_name[name] for name in dict.fromkeys(wanted)]
-
-
-def _clean(obj):
-    """JSON has no NaN or infinity: turn them into null."""
-    if isinstance(obj, float):
-        return obj if math.isfinite(obj) else None
-    if isinstance(obj, dict):
-        return {k: _clean(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_clean(v) for v in obj]
-    return obj
-
-
-def _comparison_json(comparison: Comparison) -> list[dict]:
-    rows = []
-    for i in range(len(comparison.animals)):
-        for rank, fit in enumerate(comparison.ranking(i), 1):
-            rows.append(_clean({**fit.to_dict(), "rank": rank}))
-    for rank, (name, bic) in enumerate(comparison.totals(), 1):
-        fits = comparison.fits[name]
-        ll = sum(f.loglik for f in fits)
-        rows.append(
-            _clean(
-                {
-                    "animal": None,
-                    "model": name,
-                    "params": {},
-                    "loglik": ll,
-                    "n_trials": sum(f.n_trials for f in fits),
-                    "aic": sum(f.aic for f in fits),
-                    "bic": bic,
-                    "rank": rank,
-                }
-            )
-        )
-    return rows
-
-
-def _num(x: float | None, digits: int = 4) -> str:
-    if x is None or not math.isfinite(x):
-        return "-"
-    return f"{x:.{digits}g}"
-
-
-def _print_table(rows: list[list[str]], out: TextIO) -> None:
-    widths = [max(len(r[c]) for r in rows) for c in range(len(rows[0]))]
-    for r in rows:
-        print("  ".join(cell.ljust(w) for cell, w in zip(r, widths)).rstrip(), file=out)
-
-
-def _print_fits(fits: list[FitResult], out: TextIO) -> None:
-    first = fits[0]
-    kind = "MAP under the declared priors" if first.objective == "map" else "maximum likelihood"
-    print(f"{first.model} ({kind}); intervals are Wald 95 % from the observed information", file=out)
-    names = list(first.params)
-    rows = [["animal", "trials", "loglik", "AIC", "BIC"] + names]
-    for f in fits:
-        cells = [f.animal, str(f.n_trials), _num(f.loglik, 6), _num(f.aic, 6), _num(f.bic, 6)]
-        for name in names:
-            iv = f.intervals.get(name)
-            span = f" [{_num(iv[0], 3)}, {_num(iv[1], 3)}]" if iv else ""
-            cells.append(_num(f.params[name]) + span)
-        rows.append(cells)
-    _print_table(rows, out)
-
-
-def _print_comparison(comparison: Comparison, out: TextIO) -> None:
-    print("model comparison by BIC (lower is better)", file=out)
-    rows = [["animal", "rank", "model", "BIC", "dBIC", "loglik", "k", "trials"]]
-    for i, animal in enumerate(comparison.animals):
-        ranked = comparison.ranking(i)
-        for rank, f in enumerate(ranked, 1):
-            rows.append(
-                [
-                    animal,
-                    str(rank),
-                    f.model,
-                    _num(f.bic, 6),
-                    _num(f.bic - ranked[0].bic, 3),
-                    _num(f.loglik, 6),
-                    str(f.k),
-                    str(f.n_trials),
-                ]
-            )
-    totals = comparison.totals()
-    for rank, (name, bic) in enumerate(totals, 1):
-        rows.append(
-            [
-                "(all)",
-                str(rank),
-                name,
-                _num(bic, 6),
-                _num(bic - totals[0][1], 3),
-                _num(sum(f.loglik for f in comparison.fits[name]), 6),
-                "",
-                "",
-            ]
-        )
-    _print_table(rows, out)
+            print_fits(best, out)
+    return write_or_fail(args.regressors, lambda path: _write_regressors(path, usable, best, values), fail)
 
 
 def _write_regressors(path: str, animals: list[AnimalTrials], fits: list[FitResult], values: ValueSettings) -> None:

@@ -41,7 +41,8 @@ class BlockProgress:
     # ------------------------------------------------------------ contingencies
 
     def _contingencies(self, protocol: Protocol, extra_swaps: list[tuple[str, str]]) -> dict[str, float]:
-        p = {label: o.reward_probability for label, o in protocol.options.items()}
+        # First-stage options of a two-stage task pay off through the state they lead to.
+        p = {label: o.reward_probability for label, o in protocol.options.items() if o.reward_probability is not None}
         p.update(self.block.reward_probability)
         for a, b in list(self.block.swap) + extra_swaps:
             p[a], p[b] = p[b], p[a]

@@ -68,7 +68,8 @@ class SessionStarted:
 class EventLogged:
     """Anything worth keeping in the events table, in time order.
 
-    `kind` is one of: input, output, pulse, step, block, note, link_lost, link_restored,
+    `kind` is one of: input, output, pulse, applied (an output command as the device
+    acknowledged it, with the device's time), step, block, note, link_lost, link_restored,
     cap, alarm. `name` is the input/output/step/block it concerns.
     """
 

@@ -16,6 +16,7 @@ progress (`trial_state.py`), steps prepared once (`step_plans.py`), draws and sc
 from __future__ import annotations
 
 import math
+from typing import Any
 
 import numpy as np
 
@@ -40,7 +41,7 @@ from server.engine.session_controls import PauseState, action_done
 from server.engine.step_plans import OutputPlan, output_commands, output_plan, pulse_commands, step_plans
 from server.engine.timing import DurationDraw
 from server.engine.trial_state import TrialState
-from server.protocol.model import END_SESSION, END_TRIAL, Block, Protocol, RuleAction, Step
+from server.protocol.model import END_SESSION, END_TRIAL, Block, Protocol, RewardWalk, RuleAction, Step
 
 # A trial may pass through this many steps in one instant (draws, zero waits) before the
 # session declares the protocol stuck in a loop rather than spinning forever.
@@ -155,8 +156,15 @@ class Session:
         return self._pause is not None
 
     def best_options(self) -> frozenset[str]:
-        """Options with the highest reward probability now (empty when all are equal)."""
-        return self.blocks.best_options()
+        """Options with the highest reward probability now (empty when all are equal); in a
+        two-stage task, the first choices with the highest expected reward."""
+        two_stage = self.protocol.two_stage
+        block = self.blocks.current
+        if two_stage is None or block is None:
+            return self.blocks.best_options()
+        values = {o: two_stage.expected_reward(o, block.contingencies) for o in two_stage.first}
+        top = max(values.values())
+        return frozenset(o for o, v in values.items() if v == top) if top > min(values.values()) else frozenset()
 
     @property
     def trial_index(self) -> int:
@@ -346,7 +354,7 @@ class Session:
                     self._end_session(t, "error: protocol loops between steps without waiting")
                     return
                 if plan.awaits_response:
-                    trial.omission = True
+                    self._missed(trial)
                 target = step.next
                 continue
             return
@@ -364,8 +372,17 @@ class Session:
         plan = trial.plan
         assert plan is not None
         if plan.awaits_response:
-            trial.omission = True
+            self._missed(trial)
         self._goto(trial, plan.step.next, t)
+
+    @staticmethod
+    def _missed(trial: TrialState) -> None:
+        """A response window ran out: an omission, or in a two-stage trial whose first choice
+        was made, a missed second stage (the trial still has its choice)."""
+        if trial.state is not None:
+            trial.omitted2 = True
+        else:
+            trial.omission = True
 
     def _respond(self, trial: TrialState, input_name: str, t: float) -> None:
         plan = trial.plan
@@ -393,20 +410,67 @@ class Session:
                 if trial.response is None:
                     trial.response = input_name
                     trial.latency_s = t - trial.step_t0
-                self._goto(trial, schedule.schedule.then, t)
+                self._goto(trial, schedule.schedule.on_met, t)
 
     def _choose(self, trial: TrialState, step: Step, label: str, input_name: str, t: float) -> None:
         block = self.blocks.current
         assert block is not None
-        trial.choice = label
-        trial.response = input_name
-        trial.latency_s = t - trial.step_t0
-        trial.correct = block.correct(label, step.choose)
+        if step.to_state:
+            self._choose_first(trial, step, label, input_name, t)
+            return
+        if trial.state is not None:  # the second stage of a two-stage trial
+            trial.choice2 = label if len(step.choose) > 1 else None
+            trial.response2 = input_name
+            trial.latency2_s = t - trial.step_t0
+        else:
+            trial.choice = label
+            trial.response = input_name
+            trial.latency_s = t - trial.step_t0
+            trial.correct = block.correct(label, step.choose)
         # Draw even when outcomes are withheld, so a probe block does not shift later draws.
         win = self.rng.random() < block.contingencies[label]
         if block.block.withhold_outcomes:
             win = False
         self._goto(trial, step.if_rewarded if win else step.if_unrewarded, t)
+
+    def _choose_first(self, trial: TrialState, step: Step, label: str, input_name: str, t: float) -> None:
+        """A two-stage trial's first choice: draw the state it leads to and go there."""
+        two_stage = self.protocol.two_stage
+        assert two_stage is not None  # the protocol reader allows to_state only with it
+        trial.choice = label
+        trial.response = input_name
+        trial.latency_s = t - trial.step_t0
+        trial.correct = self._first_choice_correct(label)
+        u = self.rng.random()
+        row = two_stage.transitions[label]
+        edge, state = 0.0, next(reversed(row))
+        for name, p in row.items():
+            edge += p
+            if u < edge:
+                state = name
+                break
+        trial.state = state
+        trial.common = state == two_stage.common_state(label)
+        self._goto(trial, step.to_state[state], t)
+
+    def _first_choice_correct(self, label: str) -> bool | None:
+        """Whether `label` is a first choice with the best expected reward under the second
+        stage's current reward probabilities; None when every first choice is as good."""
+        best = self.best_options()
+        return label in best if best else None
+
+    def _walk_rewards(self, walk: RewardWalk) -> None:
+        """One step of every second-stage option's reward probability, reflected at the bounds."""
+        two_stage = self.protocol.two_stage
+        block = self.blocks.current
+        assert two_stage is not None and block is not None
+        p = block.contingencies
+        for state in two_stage.states.values():
+            for label in state.options:
+                x = p[label] + self.rng.normal(0.0, walk.sd)
+                while not walk.low <= x <= walk.high:
+                    x = 2 * walk.low - x if x < walk.low else 2 * walk.high - x
+                p[label] = x
 
     def _end_trial(self, trial: TrialState, t: float, interrupted: bool, cut: str | None = None) -> None:
         block = self.blocks.current
@@ -427,15 +491,21 @@ class Session:
             trial.omission and trial.choice is None and trial.response is None,
             interrupted or cut_outside,
         )  # fmt: skip
-        tail = (tuple(trial.steps), trial.counts, trial.first_s, {"cut_by": cut} if cut else {})
+        extra: dict[str, Any] = {"cut_by": cut} if cut else {}
+        second = trial.second_stage()
+        two_stage = self.protocol.two_stage
+        if two_stage is not None:  # the reward probabilities this trial was played under
+            played = block.contingencies
+            extra["reward_probability"] = {o: played[o] for s in two_stage.states.values() for o in s.options}
+        tail = (tuple(trial.steps), trial.counts, trial.first_s, extra)
         if interrupted:
-            self._records.append(TrialRecord(*head, 0.0, *tail))
+            self._records.append(TrialRecord(*head, 0.0, *tail, second=second))
             return
         # The record goes into the stream ahead of what the trial causes (estimate, rule
         # firings, session end), but is built once its ITI is known: after the closed loop.
         at = len(self._records)
         if self._closes_loop:
-            self._close_loop(trial, TrialOutcome(*head, *tail), cut_outside)
+            self._close_loop(trial, TrialOutcome(*head, *tail, second=second), cut_outside)
         # (next block, what was met) when the block's criterion holds and no rule switched blocks
         moving_on = self._block_criterion(block, t) if self.blocks.current is block else None
         if moving_on is not None and moving_on[0] == END_SESSION:
@@ -443,13 +513,15 @@ class Session:
         else:
             ending = ending or self._pending_end
         if ending is not None:
-            self._records.insert(at, TrialRecord(*head, 0.0, *tail))
+            self._records.insert(at, TrialRecord(*head, 0.0, *tail, second=second))
             self._end_session(t, ending)
             return
         # Drawn after the rules ran, so an ITI change applies to the interval right after
         # the trial that triggered it; the record then carries the ITI actually used.
         iti = self._next_iti(block.block.name)
-        self._records.insert(at, TrialRecord(*head, iti, *tail))
+        self._records.insert(at, TrialRecord(*head, iti, *tail, second=second))
+        if two_stage is not None and two_stage.walk is not None and self.blocks.current is not None:
+            self._walk_rewards(two_stage.walk)
         if moving_on is not None:
             self._enter_block(self.blocks.named(moving_on[0]), t, moving_on[1])
         self._iti_end = t + iti
@@ -461,10 +533,10 @@ class Session:
         estimator = self.estimator
         if estimator is not None and trial.offered_choice and not cut_outside:
             if self.summarise_estimates:
-                self._estimate = estimator.update(trial.choice, float(trial.pellets))
+                self._estimate = estimator.update(trial.choice, float(trial.pellets), second=outcome.second)
                 self._records.append(EstimateUpdated(trial.index, estimator.model_name, self._estimate))
             else:  # summarised only if a rule asks for the estimate
-                estimator.update(trial.choice, float(trial.pellets), summarise=False)
+                estimator.update(trial.choice, float(trial.pellets), second=outcome.second, summarise=False)
                 self._estimate = None
                 self._estimate_stale = True
         if self.rules is not None:

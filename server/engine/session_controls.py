@@ -26,7 +26,7 @@ def action_done(action: RuleAction, iti_scale: float) -> dict[str, Any]:
         assert action.options is not None
         return {"reverse": list(action.options)}
     if kind == "probe":
-        return {"probe": {"minutes": action.minutes, "then": action.block or "end_session"}}
+        return {"probe": {"minutes": action.minutes, "after": action.block or "end_session"}}
     if kind == "set_iti":
         return {"set_iti": action.seconds}
     if kind == "scale_iti":

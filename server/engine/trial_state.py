@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import math
 
+from server.engine.records import SecondStage
 from server.engine.step_plans import StepPlan
 from server.engine.timing import ScheduleState
 from server.protocol.model import Step, TrialType
@@ -15,7 +16,8 @@ class TrialState:
     __slots__ = (
         "index", "type", "plans", "t_start", "plan", "step_t0", "deadline", "schedule",
         "steps", "counts", "first_s", "choice", "response", "latency_s", "correct",
-        "omission", "pellets", "offered_choice", "cut_reason",
+        "omission", "pellets", "offered_choice", "cut_reason", "state", "common", "choice2",
+        "response2", "latency2_s", "omitted2",
     )  # fmt: skip
 
     def __init__(self, index: int, trial_type: TrialType, plans: dict[str, StepPlan], t: float):
@@ -38,6 +40,18 @@ class TrialState:
         self.pellets = 0
         self.offered_choice = False  # went through a step with `choose`
         self.cut_reason: str | None = None  # set when something outside cut the trial short
+        # Two-stage trials: the state the first choice led to, and what happened there.
+        self.state: str | None = None
+        self.common = False
+        self.choice2: str | None = None
+        self.response2: str | None = None
+        self.latency2_s: float | None = None
+        self.omitted2 = False
+
+    def second_stage(self) -> SecondStage | None:
+        if self.state is None:
+            return None
+        return SecondStage(self.state, self.common, self.choice2, self.response2, self.latency2_s, self.omitted2)
 
     @property
     def step(self) -> Step:

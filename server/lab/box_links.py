@@ -47,12 +47,12 @@ def make_box(
             raise LabError(f"box '{box.name}': no folder for the emulated box's pty")
         path = folder / (re.sub(r"[^A-Za-z0-9._-]", "_", box.name) + ".tty")  # names are unique
         emu = box.emulate
-        command = emulator_command(path, box.protocol.source, emu.agent, emu.seed, emu.options, emu.faults)
+        command = emulator_command(path, box.protocol.source, emu.agent, emu.seed, emu.traits, emu.faults)
         child = EmulatorProcess(box.name, path, command)
         return SerialLink(box.name, str(path), box.protocol.wiring, clock, say=say,
                           on_close=child.stop, gone=child.failure,
                           startup_s=EMULATOR_STARTUP_S)  # fmt: skip
-    agent = make_agent(box.emulate.agent, **box.emulate.options)
+    agent = make_agent(box.emulate.agent, **box.emulate.traits)
     emulated = EmulatedBox(box.protocol.wiring, agent, np.random.default_rng(box.emulate.seed))
     return InProcessLink(emulated, clock)
 

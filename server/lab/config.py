@@ -11,6 +11,7 @@ from pathlib import Path
 
 from server.engine.caps import HardCaps
 from server.lab.config_link import Emulation, read_emulation, read_port
+from server.lab.config_subject import merged_subject, read_subject
 from server.lab.config_web import WebSettings, read_web
 from server.protocol.load import load_protocol
 from server.protocol.marked import Mark, Marked, load_marked
@@ -20,8 +21,8 @@ from server.protocol.reader import Reader, did_you_mean
 from server.store.dialect import is_server_url
 from server.store.lab_store import default_spool
 
-TOP_KEYS = ("lab", "database", "spool", "caps", "boxes", "web")
-BOX_KEYS = ("name", "animal", "protocol", "stages", "settings", "port", "emulate", "seed")
+TOP_KEYS = ("lab", "database", "spool", "caps", "subject", "boxes", "web")
+BOX_KEYS = ("name", "animal", "subject", "protocol", "stages", "settings", "port", "emulate", "seed")
 STAGE_KEYS = ("protocol", "advance")
 ADVANCE_KEYS = ("sessions", "min_accuracy", "min_trials", "min_rewards", "max_omission_rate")
 
@@ -54,6 +55,8 @@ class BoxConfig:
     seed: int | None = None  # session seed; drawn fresh (and stored) when absent
     stages: tuple[Stage, ...] = ()
     settings: dict[str, float] = field(default_factory=dict)  # per-animal protocol settings
+    # species, strain, sex, age, date_of_birth, genotype, description (config_subject.py)
+    subject: dict[str, str] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -64,6 +67,7 @@ class LabConfig:
     caps: HardCaps
     boxes: tuple[BoxConfig, ...]
     web: WebSettings = WebSettings()
+    warnings: tuple[Problem, ...] = ()  # old spellings read, here and in its protocols
     spool: Path | None = None  # with a PostgreSQL URL: the rig's local spool (default beside the config)
 
 
@@ -106,6 +110,7 @@ class _LabReader(Reader):
             elif spool_text:
                 spool = self.base / spool_text
         caps = self.caps(top.get("caps"))
+        lab_subject = read_subject(self, top.get("subject"), "subject")
         boxes: list[BoxConfig] = []
         seen: dict[str, int] = {}
         animals: dict[str, str] = {}
@@ -113,7 +118,7 @@ class _LabReader(Reader):
         if "boxes" in top and top["boxes"].is_list and not nodes:
             self.error(top["boxes"].mark, "boxes: needs at least one box")
         for i, node in enumerate(nodes):
-            box = self.box(node, f"boxes[{i + 1}]")
+            box = self.box(node, f"boxes[{i + 1}]", lab_subject)
             if box is None:
                 continue
             if box.name in seen:
@@ -129,9 +134,11 @@ class _LabReader(Reader):
                 animals[box.animal] = box.name
                 boxes.append(box)
         web = read_web(self, top.get("web"))
+        protocols = [p for p in self._protocols.values() if p is not None]
+        warnings = tuple(self.warnings) + tuple(w for p in protocols for w in p.warnings)
         if spool is None and is_server_url(database):
             spool = default_spool(name or "lab", self.base)
-        return LabConfig(file, name or "lab", database, caps, tuple(boxes), web, spool)
+        return LabConfig(file, name or "lab", database, caps, tuple(boxes), web, warnings, spool)
 
     def database(self, node: Marked | None) -> Path | str:
         """A SQLite path (relative to the config) or a PostgreSQL URL, kept as written."""
@@ -166,7 +173,7 @@ class _LabReader(Reader):
             int(rewards if rewards is not None else default.max_rewards), float(minutes or default.max_minutes)
         )
 
-    def box(self, node: Marked, where: str) -> BoxConfig | None:
+    def box(self, node: Marked, where: str, lab_subject: dict[str, str]) -> BoxConfig | None:
         before = len(self.problems)
         f = self.mapping(node, where, BOX_KEYS, required=("name", "animal"))
         if f is None:
@@ -197,10 +204,11 @@ class _LabReader(Reader):
                 node.mark, f"{where}: give exactly one of 'port' (a serial port) or 'emulate' (a virtual animal)"
             )
         seed = self.number(f["seed"], f"{where}.seed", low=0, integer=True) if "seed" in f else None
+        subject = merged_subject(lab_subject, read_subject(self, f.get("subject"), f"{where}.subject"))
         if len(self.problems) > before or name is None or animal is None or protocol is None:
             return None
         return BoxConfig(
-            name, animal, protocol, port, emulate, int(seed) if seed is not None else None, stages, settings
+            name, animal, protocol, port, emulate, int(seed) if seed is not None else None, stages, settings, subject
         )
 
     def stages(self, node: Marked, where: str) -> tuple[Stage, ...]:

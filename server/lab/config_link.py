@@ -8,7 +8,7 @@ from typing import Any
 from server.protocol.marked import Marked
 from server.protocol.reader import Reader, did_you_mean
 
-EMULATE_KEYS = ("agent", "seed", "options", "faults")
+EMULATE_KEYS = ("agent", "seed", "traits", "faults")
 # Faults an emulated box can inject (hardware_stubs/box.py): key -> (low, high, low excluded).
 FAULT_RANGES = {
     "unplug_every_s": (0.0, 24 * 3600.0, True),
@@ -22,7 +22,7 @@ FAULT_RANGES = {
 class Emulation:
     agent: str
     seed: int
-    options: dict[str, Any] = field(default_factory=dict)
+    traits: dict[str, Any] = field(default_factory=dict)  # the virtual animal's own parameters
     faults: dict[str, float] = field(default_factory=dict)  # keys of FAULT_RANGES
 
 
@@ -38,24 +38,24 @@ def _url_handlers():
 def read_emulation(r: Reader, node: Marked, where: str) -> Emulation | None:
     from hardware_stubs.agents import AGENTS, AgentError, make_agent
 
-    f = r.mapping(node, where, EMULATE_KEYS, required=("agent",))
+    f = r.mapping(node, where, EMULATE_KEYS, required=("agent",), renamed={"options": "traits"})
     if f is None:
         return None
     agent = r.choice(f.get("agent"), f"{where}.agent", sorted(AGENTS))
     seed = r.number(f["seed"], f"{where}.seed", low=0, integer=True) if "seed" in f else 0
-    options: dict[str, Any] = {}
-    for key, value, _ in r.items(f.get("options"), f"{where}.options"):
-        options[key] = value.value
-    if agent is not None and "options" in f:
+    traits: dict[str, Any] = {}
+    for key, value, _ in r.items(f.get("traits"), f"{where}.traits"):
+        traits[key] = value.value
+    if agent is not None and "traits" in f:
         try:
-            make_agent(agent, **options)
+            make_agent(agent, **traits)
         except AgentError as exc:
-            r.error(f["options"].mark, f"{where}.options: {exc}")
+            r.error(f["traits"].mark, f"{where}.traits: {exc}")
             return None
     faults = read_faults(r, f.get("faults"), f"{where}.faults")
     if agent is None or seed is None or faults is None:
         return None
-    return Emulation(agent, int(seed), options, faults)
+    return Emulation(agent, int(seed), traits, faults)
 
 
 def read_faults(r: Reader, node: Marked | None, where: str) -> dict[str, float] | None:

@@ -26,7 +26,7 @@ def demo_lab(config_path: Path, boxes: int) -> LabConfig:
                 base,
                 name=f"{base.name}-{round_}",
                 animal=f"{base.animal}-{round_}",
-                emulate=Emulation(base.emulate.agent, base.emulate.seed + 1000 * round_, base.emulate.options),
+                emulate=Emulation(base.emulate.agent, base.emulate.seed + 1000 * round_, base.emulate.traits),
             )
         )
     return replace(lab, lab=f"{lab.lab} (demo)", boxes=tuple(made))

@@ -43,6 +43,7 @@ class Spread:
 class Population:
     agent: str
     spreads: dict[str, Spread] = field(default_factory=dict)
+    warnings: tuple[Problem, ...] = ()  # old spellings read
 
     def draw(self, rng: np.random.Generator) -> dict[str, float]:
         """One animal's options, clipped to the ranges its agent declares."""
@@ -108,25 +109,25 @@ def read_population(text: str, file: str, default_agent: str) -> Population:
         raise InvalidFile(problems)
     r = Reader()
     r.problems.extend(problems)
-    f = r.mapping(root, "population", ("agent", "options"))
+    f = r.mapping(root, "population", ("agent", "traits"), renamed={"options": "traits"})
     agent = default_agent
     spreads: dict[str, Spread] = {}
     if f is not None:
         if "agent" in f:
             agent = r.choice(f["agent"], "agent", sorted(AGENTS)) or default_agent
         declared = [o.name for o in AGENTS[agent].OPTIONS] if agent in AGENTS else []
-        for name, node, key_mark in r.items(f.get("options"), "options"):
+        for name, node, key_mark in r.items(f.get("traits"), "traits"):
             if name not in declared:
                 from server.protocol.reader import did_you_mean
 
-                r.error(key_mark, f"options: agent '{agent}' has no option '{name}'{did_you_mean(name, declared)}")
+                r.error(key_mark, f"traits: agent '{agent}' has no trait '{name}'{did_you_mean(name, declared)}")
                 continue
-            spread = _read_spread(r, node, f"options.{name}")
+            spread = _read_spread(r, node, f"traits.{name}")
             if spread is not None:
                 spreads[name] = spread
     if r.problems:
         raise InvalidFile(r.problems)
-    return Population(agent, spreads)
+    return Population(agent, spreads, tuple(r.warnings))
 
 
 def load_population(path: str | Path, default_agent: str) -> Population:
@@ -162,4 +163,4 @@ def parse_vary(items: list[str], agent: str) -> Population:
                     )
                 ]
             )
-    return read_population("options:\n" + "\n".join(lines) + "\n" if lines else "{}\n", "--vary", agent)
+    return read_population("traits:\n" + "\n".join(lines) + "\n" if lines else "{}\n", "--vary", agent)

@@ -32,6 +32,10 @@ from server.store.forwarder import Forwarder, StoreLink
 from server.store.wall_clock import wall_now
 from server.store.writer import Store
 
+# Why a session ended when `vigil run --minutes` ran out (the session's own limit, from its
+# protocol and the lab's caps, ends it as "session time limit" in the session core).
+RUN_TIME_LIMIT = "run time limit (--minutes)"
+
 __all__ = ["BoxRun", "Lab", "LabError"]
 
 
@@ -247,11 +251,12 @@ class Lab:
         return {
             "caps": {"max_rewards": caps.max_rewards, "max_minutes": caps.max_minutes},
             "emulate": None if emulate is None else {
-                "agent": emulate.agent, "seed": emulate.seed, "options": emulate.options, "faults": emulate.faults,
+                "agent": emulate.agent, "seed": emulate.seed, "traits": emulate.traits, "faults": emulate.faults,
             },
             "port": box.port,
             "stage": self.stages.running.get(box.name),
             "protocol_settings": box.protocol.settings,
+            "subject": box.subject,  # species, sex, age ... as the lab config gave them
             # Line kinds let a reader of the store tell a feeder pulse from a sync pulse.
             "wiring": {
                 "inputs": {n: line.kind for n, line in box.protocol.wiring.inputs.items()},
@@ -278,5 +283,5 @@ class Lab:
 
     async def _time_limit(self, minutes: float) -> None:
         await asyncio.sleep(minutes * 60.0)
-        self.say(f"time limit of {minutes:g} min reached; ending sessions")
-        self.stop_all("time limit")
+        self.say(f"run time limit of {minutes:g} min (--minutes) reached; ending sessions")
+        self.stop_all(RUN_TIME_LIMIT)

@@ -26,15 +26,15 @@ def emulator_command(
     protocol: str,
     agent: str,
     seed: int,
-    options: Mapping[str, Any] | None = None,
+    traits: Mapping[str, Any] | None = None,
     faults: Mapping[str, float] | None = None,
     extra: tuple[str, ...] = (),
 ) -> list[str]:
     """The command line that starts one emulated box linked at `link`."""
     cmd = [sys.executable, "-m", "hardware_stubs.box", "--link", str(link),
            "--protocol", protocol, "--agent", agent, "--seed", str(seed)]  # fmt: skip
-    for key, value in (options or {}).items():
-        cmd += ["--option", f"{key}={json.dumps(value)}"]  # JSON is YAML: the box reads it back
+    for key, value in (traits or {}).items():
+        cmd += ["--trait", f"{key}={json.dumps(value)}"]  # JSON is YAML: the box reads it back
     for key, value in (faults or {}).items():
         if key not in FAULT_FLAGS:
             raise ValueError(f"unknown fault '{key}'")

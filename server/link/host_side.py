@@ -17,6 +17,7 @@ from server.link.clock_sync import ClockSync
 from server.link.codec import Decoder, encode
 from server.link.messages import (
     RESULT_LOST,
+    RESULT_OK,
     TOPIC_BEAT,
     TOPIC_IDENTITY,
     Ack,
@@ -77,7 +78,19 @@ class CommandFailed:
     pending: Pending
 
 
-Happening = EdgeArrived | IdentitySeen | DeviceRestarted | EventsLost | CommandFailed
+@dataclass(frozen=True, slots=True)
+class CommandApplied:
+    """The device acknowledged an output command (drive or pulse): it writes the ack right
+    after applying it, so `device_us` (raw, as on the wire) is when the output changed on
+    the device's clock; `host_s` is that time on the link's clock. An ack to a resend
+    (`pending.attempts` > 1) may come from a repeat the device only answered, later."""
+
+    pending: Pending
+    device_us: int
+    host_s: float
+
+
+Happening = EdgeArrived | IdentitySeen | DeviceRestarted | EventsLost | CommandFailed | CommandApplied
 
 
 class HostSide:
@@ -229,6 +242,10 @@ class HostSide:
         done = self.pending.acknowledge(msg.command_id)
         if done is None:
             return  # an ack repeated for a resend we already had answered
+        if isinstance(done.command, DriveCommand | PulseCommand) and msg.result == RESULT_OK:
+            fit = self.clock.fit()
+            host_s = fit.to_host(self.unwrap.unwrap(msg.device_us)) if fit is not None else now
+            out.append(CommandApplied(done, msg.device_us, min(host_s, now)))
         if isinstance(done.command, PulseCommand):
             # The ack is written right after the output went on: it is off by now + width.
             self._pulse_until[done.command.channel] = now + done.command.ms / 1000.0

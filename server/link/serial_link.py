@@ -30,6 +30,7 @@ from server.engine.seams import LinkSubscriber
 from server.link.handshake import LinkError, check_identity, identity_problems
 from server.link.host_side import (
     SILENCE_S,
+    CommandApplied,
     CommandFailed,
     DeviceRestarted,
     EdgeArrived,
@@ -39,7 +40,7 @@ from server.link.host_side import (
     IdentitySeen,
 )
 from server.link.latency_timer import latency_warning
-from server.link.messages import Identity, PulseCommand
+from server.link.messages import DriveCommand, Identity, PulseCommand
 from server.link.serial_port import PORT_ERRORS, SerialPort, reason_of
 from server.protocol.wiring import Wiring
 
@@ -105,6 +106,7 @@ class SerialLink:
         self._inputs = {line.channel: line for line in wiring.inputs.values()}
         self._held = sorted((o for o in wiring.outputs.values() if not o.pulsed), key=lambda o: o.channel)
         self._pulsed = {o.channel: o.name for o in wiring.outputs.values() if o.pulsed}
+        self._outputs = {o.channel: o.name for o in wiring.outputs.values()}
         self._port: SerialPort | None = None
         self._failure: str | None = None
         self._wake = asyncio.Event()
@@ -174,6 +176,8 @@ class SerialLink:
                 # the session expects now, as after a reconnect.
                 if self.connected:
                     self._drive_held(set(self._session.expected_outputs()))
+            elif isinstance(h, CommandApplied):
+                self._applied(h)
             elif isinstance(h, EventsLost):
                 self._note("alarm", {"events_lost": h.count, "first_seq": h.first})
                 self.say(f"{self.box}: {h.count} device event(s) from #{h.first} were lost")
@@ -189,6 +193,21 @@ class SerialLink:
             self._record(EventLogged(t, "input", name, value, h.edge.device_us, h.seq, detail))
             return
         self._session.input(InputEvent(line.name, h.edge.rising, h.edge.device_us, h.seq), t)
+
+    def _applied(self, h: CommandApplied) -> None:
+        """An `applied` event: the output command as the device carried it out, with the
+        device's clock (what aligns a sync pulse with another recording)."""
+        command = h.pending.command
+        if not isinstance(command, DriveCommand | PulseCommand):
+            return
+        now = self.clock()
+        t = min(h.host_s - (self._host() - now), now)  # host seconds -> session seconds
+        value = float(command.ms) if isinstance(command, PulseCommand) else (1.0 if command.on else 0.0)
+        detail: dict = {"command_id": command.command_id}
+        if h.pending.attempts > 1:
+            detail["sends"] = h.pending.attempts  # the ack may be to a repeat, after the change
+        name = self._outputs.get(command.channel, f"channel {command.channel}")
+        self._record(EventLogged(t, "applied", name, value, h.device_us, None, detail))
 
     def _note(self, kind: str, detail: dict) -> None:
         self._record(EventLogged(self.clock(), kind, "link", None, detail=detail))

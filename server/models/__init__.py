@@ -13,6 +13,9 @@ from .fitting import FitResult, fit_animals
 from .params import Param, ParamError, Prior
 from .pavlovian import RESCORLA_WAGNER, response_probability, rw_session, rw_update
 from .trials import AnimalTrials, encode_animal
+from .two_stage import HYBRID_PARAMS, TWO_STAGE_MODELS, TwoStageModel, TwoStageTask, get_two_stage_model, hybrid_step
+from .two_stage_fit import fit_two_stage, two_stage_regressors
+from .two_stage_trials import TwoStageRow, TwoStageTrials, encode_two_stage
 
 __all__ = [
     "AnimalTrials",
@@ -21,20 +24,31 @@ __all__ = [
     "Comparison",
     "Estimate",
     "FitResult",
+    "HYBRID_PARAMS",
     "OnlineEstimator",
     "Param",
     "ParamError",
     "ParamEstimate",
     "Prior",
     "RESCORLA_WAGNER",
+    "TWO_STAGE_MODELS",
+    "TwoStageModel",
+    "TwoStageRow",
+    "TwoStageTask",
+    "TwoStageTrials",
     "Regressors",
     "ValueSettings",
     "compare_models",
     "encode_animal",
+    "encode_two_stage",
     "fit_animals",
+    "fit_two_stage",
+    "get_two_stage_model",
+    "hybrid_step",
     "get_choice_model",
     "regressors",
     "response_probability",
     "rw_session",
     "rw_update",
+    "two_stage_regressors",
 ]

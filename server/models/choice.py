@@ -26,7 +26,7 @@ import numpy as np
 
 from server.protocol.reader import did_you_mean
 
-from .params import Param, Prior, check_params, inverse_temperature, learning_rate
+from .params import DeclaredParams, Param, Prior, inverse_temperature, learning_rate
 
 Theta = Mapping[str, np.ndarray | float]
 
@@ -62,7 +62,7 @@ def _sticky_drive(theta: Theta, q: np.ndarray, previous: np.ndarray) -> np.ndarr
 
 
 @dataclass(frozen=True, slots=True)
-class ChoiceModel:
+class ChoiceModel(DeclaredParams):
     """A choice model: declared parameters plus its pure update and choice rule."""
 
     name: str
@@ -70,19 +70,6 @@ class ChoiceModel:
     learn: Callable[..., tuple[np.ndarray, np.ndarray]]
     drive: Callable[..., np.ndarray]
     summary: str
-
-    @property
-    def names(self) -> tuple[str, ...]:
-        return tuple(p.name for p in self.params)
-
-    def param(self, name: str) -> Param:
-        for p in self.params:
-            if p.name == name:
-                return p
-        raise KeyError(name)
-
-    def check(self, values: Mapping[str, object]) -> dict[str, float]:
-        return check_params(self.name, self.params, values)
 
 
 CHOICE_MODELS: dict[str, ChoiceModel] = {

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from typing import cast
 
 import numpy as np
 
@@ -17,6 +18,9 @@ from .batch import ValueSettings, choice_probabilities, value_history
 from .choice import CHOICE_MODELS, ChoiceModel, get_choice_model
 from .fitting import FitResult, fit_animals
 from .trials import AnimalTrials, stack_animals
+from .two_stage import TWO_STAGE_MODELS, get_two_stage_model
+from .two_stage_fit import fit_two_stage
+from .two_stage_trials import TwoStageTrials
 
 
 @dataclass(frozen=True, slots=True)
@@ -44,16 +48,28 @@ class Comparison:
 
 
 def compare_models(
-    animals: Sequence[AnimalTrials],
+    animals: Sequence[AnimalTrials] | Sequence[TwoStageTrials],
     models: Sequence[str] | None = None,
     *,
     use_prior: bool = False,
     values: ValueSettings = ValueSettings(),
 ) -> Comparison:
-    """Fit every choice model (or those named) to every animal."""
-    names = list(models) if models else list(CHOICE_MODELS)
+    """Fit every choice model (or those named) to every animal; on two-stage animals, the
+    two-stage models (model-free, model-based, hybrid)."""
+    if animals and isinstance(animals[0], TwoStageTrials):
+        two = cast(Sequence[TwoStageTrials], animals)
+        return Comparison(
+            {
+                name: fit_two_stage(get_two_stage_model(name), two, use_prior=use_prior, values=values)
+                for name in (models or TWO_STAGE_MODELS)
+            }
+        )
+    one = cast(Sequence[AnimalTrials], animals)
     return Comparison(
-        {name: fit_animals(get_choice_model(name), animals, use_prior=use_prior, values=values) for name in names}
+        {
+            name: fit_animals(get_choice_model(name), one, use_prior=use_prior, values=values)
+            for name in (models or CHOICE_MODELS)
+        }
     )
 
 

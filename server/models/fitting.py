@@ -18,6 +18,7 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
+from typing import Protocol
 
 import numpy as np
 
@@ -71,6 +72,13 @@ class FitResult:
             "intervals": {k: (list(v) if v else None) for k, v in self.intervals.items()},
             "fit": self.objective,
         }
+
+
+class Objective(Protocol):
+    """What the refinement needs of a fit: the objective (to minimise) and log-likelihood at
+    points u (M, P, d) of the unit cube of free parameters, for the animals `rows` (M,)."""
+
+    def at(self, u: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]: ...
 
 
 class _Problem:
@@ -151,7 +159,7 @@ def _stencil(d: int) -> np.ndarray:
     return np.array(rows)
 
 
-def _derivatives(problem: _Problem, u: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, ...]:
+def derivatives(problem: Objective, u: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, ...]:
     """Objective and log-likelihood at u (M, d), and gradient and Hessian by central
     differences near u."""
     m, d = u.shape
@@ -202,7 +210,7 @@ def _damped_steps(u: np.ndarray, grad: np.ndarray, hess: np.ndarray) -> np.ndarr
     return np.clip(u[..., None, :] + steps, 0.0, 1.0)
 
 
-def _refine(problem: _Problem, u: np.ndarray, fu: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def refine(problem: Objective, u: np.ndarray, fu: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Damped Newton from every start (u: (M, d)); only unconverged starts are evaluated."""
     u, fu = u.copy(), fu.copy()
     active = np.ones(len(u), dtype=bool)
@@ -210,7 +218,7 @@ def _refine(problem: _Problem, u: np.ndarray, fu: np.ndarray, rows: np.ndarray) 
         idx = np.flatnonzero(active)
         if not len(idx):
             break
-        _, _, grad, hess = _derivatives(problem, u[idx], rows[idx])
+        _, _, grad, hess = derivatives(problem, u[idx], rows[idx])
         cands = _damped_steps(u[idx], grad, hess)
         fc, _ = problem.at(cands, rows[idx])
         best = fc.argmin(1)
@@ -223,7 +231,7 @@ def _refine(problem: _Problem, u: np.ndarray, fu: np.ndarray, rows: np.ndarray) 
     return u, fu
 
 
-def _intervals(free: Sequence[Param], u: np.ndarray, grad: np.ndarray, hess: np.ndarray) -> list[dict]:
+def wald_intervals(free: Sequence[Param], u: np.ndarray, grad: np.ndarray, hess: np.ndarray) -> list[dict]:
     """Wald 95 % intervals on the unit cube, mapped back to each parameter's scale.
 
     A parameter held on a bound by its gradient gets no interval; the others use the
@@ -269,21 +277,36 @@ def _fit_stack(
     u = np.concatenate(starts).reshape(-1, d)
     fu = np.concatenate(f_starts).ravel()
     rows = np.repeat(np.arange(n), STARTS)
-    u, fu = _refine(problem, u, fu, rows)
+    u, fu = refine(problem, u, fu, rows)
     best = fu.reshape(n, STARTS).argmin(1)
     u_best = u.reshape(n, STARTS, d)[np.arange(n), best]
-    f_best, ll_best, grad, hess = _derivatives(problem, u_best, np.arange(n))
-    intervals = _intervals(free, u_best, grad, hess)
+    return fit_results(problem, model.name, model.names, animals, free, fixed, u_best, use_prior)
+
+
+def fit_results(
+    problem: Objective,
+    model: str,
+    names: Sequence[str],
+    animals: Sequence,
+    free: Sequence[Param],
+    fixed: Mapping[str, float],
+    u_best: np.ndarray,
+    use_prior: bool,
+) -> list[FitResult]:
+    """FitResults at the optimum u_best (N, d) of each animal (with `animal`, `n_choices`)."""
+    n, d = u_best.shape
+    f_best, ll_best, grad, hess = derivatives(problem, u_best, np.arange(n))
+    intervals = wald_intervals(free, u_best, grad, hess)
     results = []
     for i, a in enumerate(animals):
         params = {p.name: float(p.from_unit(u_best[i, j])) for j, p in enumerate(free)}
         params.update(fixed)
-        ordered = {name: params[name] for name in model.names}
+        ordered = {name: params[name] for name in names}
         ll = float(ll_best[i])
         results.append(
             FitResult(
                 a.animal,
-                model.name,
+                model,
                 ordered,
                 intervals[i],
                 ll,

@@ -113,6 +113,27 @@ def check_params(model: str, declared: tuple[Param, ...], values: Mapping[str, o
     return {p.name: p.check(model, values[p.name]) for p in declared}
 
 
+class DeclaredParams:
+    """What every model offers on top of its declared `params` and `name` (a mixin)."""
+
+    __slots__ = ()
+    name: str
+    params: tuple[Param, ...]
+
+    @property
+    def names(self) -> tuple[str, ...]:
+        return tuple(p.name for p in self.params)
+
+    def param(self, name: str) -> Param:
+        for p in self.params:
+            if p.name == name:
+                return p
+        raise KeyError(name)
+
+    def check(self, values: Mapping[str, object]) -> dict[str, float]:
+        return check_params(self.name, self.params, values)
+
+
 # Shared declarations. Priors after Daw (2011) for learning rate and inverse temperature
 # (Beta(1.1, 1.1), Gamma(1.2, scale 5); from memory); the stickiness prior is our choice.
 def learning_rate(name: str, doc: str, grid: int = 48) -> Param:

@@ -22,6 +22,14 @@ METRICS: dict[str, tuple[bool, str]] = {
     "omission_rate": (True, "fraction of omitted trials over the last N trials"),
     "win_stay": (True, "P(same choice | previous choice rewarded) over the last N trials"),
     "lose_shift": (True, "P(other choice | previous choice unrewarded) over the last N trials"),
+    "stay_reward_effect": (
+        True,
+        "two-stage: P(repeat first choice | rewarded) - P(repeat | unrewarded) over the last N trials",
+    ),
+    "stay_interaction": (
+        True,
+        "two-stage: reward x transition effect on repeating the first choice over the last N trials",
+    ),
     "median_latency": (True, "median response latency (s) over the last N trials"),
     "rewards": (False, "pellets delivered this session"),
     "rewarded_responses": (False, "trials ending in a pellet this session"),

@@ -8,6 +8,7 @@ from pathlib import Path
 from server.protocol.durations import read_duration
 from server.protocol.load_blocks import read_blocks
 from server.protocol.load_rules import read_estimator, read_iti_bounds, read_pavlovian, read_rules, read_settings
+from server.protocol.load_two_stage import check_two_stage_steps, first_stage_labels, read_two_stage
 from server.protocol.load_wiring import ACTION_KEYS, read_action_fields, read_actions, read_options, read_wiring
 from server.protocol.marked import Mark, Marked, load_marked
 from server.protocol.model import (
@@ -30,11 +31,11 @@ FORMAT_VERSION = 1
 TOP_KEYS = (
     "vigil_protocol", "name", "about", "wiring", "options", "trial_types",
     "blocks", "iti", "limits", "at_start", "estimator", "rules", "iti_bounds", "pavlovian",
-    "settings",
+    "settings", "two_stage",
 )  # fmt: skip
 STEP_KEYS = (
     "step", "activate", "deactivate", "pulse", "on_leave", "wait_s", "next",
-    "respond", "choose", "if_rewarded", "if_unrewarded", "schedule", "draw",
+    "respond", "choose", "if_rewarded", "if_unrewarded", "schedule", "draw", "to_state",
 )  # fmt: skip
 MAX_FILE_BYTES = 1_000_000
 
@@ -73,6 +74,7 @@ class _Compiler(Reader):
         super().__init__()
         self.file = file
         self.declared_types: list[str] = []
+        self.step_fields: dict[tuple[str, str], dict[str, Marked]] = {}
 
     # ------------------------------------------------------------ top level
 
@@ -90,15 +92,25 @@ class _Compiler(Reader):
         name = self.text(top.get("name"), "name") or ""
         about = self.text(top.get("about"), "about") if "about" in top else ""
         wiring = read_wiring(self, top.get("wiring"))
-        options = read_options(self, top.get("options"), wiring)
+        options = read_options(self, top.get("options"), wiring, first_stage_labels(top.get("two_stage")))
+        two_stage = read_two_stage(self, top["two_stage"], options) if "two_stage" in top else None
+        before_types = len(self.problems)
         trial_types = self.trial_types(top.get("trial_types"), wiring, options)
+        if len(self.problems) == before_types and ("two_stage" not in top or two_stage is not None):
+            check_two_stage_steps(self, two_stage, trial_types, self.step_fields)
         blocks = read_blocks(self, top.get("blocks"), trial_types, options, self.declared_types)
         iti = self.duration(top.get("iti"), "iti") if "iti" in top else Duration.fixed(0.0)
         limits = self.limits(top.get("limits"))
         at_start = read_actions(self, top.get("at_start"), "at_start", wiring, allowed=ACTION_KEYS)
         estimator = read_estimator(self, top.get("estimator"))
-        if estimator is None and "estimator" not in top and options:
+        if estimator is None and "estimator" not in top and options and "two_stage" not in top:
             estimator = EstimatorSpec()  # choice protocols get the default estimator
+        if estimator is not None and "two_stage" in top:
+            self.error(
+                top["estimator"].mark,
+                f"estimator.model: '{estimator.model}' learns single-stage choices; a two_stage task "
+                "needs a two-stage model",
+            )
         iti_bounds = read_iti_bounds(self, top.get("iti_bounds"))
         settings = read_settings(self, top.get("settings"))
         rules = read_rules(self, top.get("rules"), blocks, options, iti_bounds, settings)
@@ -109,7 +121,8 @@ class _Compiler(Reader):
             name=name, source=self.file, sha256=sha256, wiring=wiring, options=options,
             trial_types=trial_types, blocks=tuple(blocks), iti=iti, limits=limits,
             at_start=at_start, description=about or "", estimator=estimator, rules=rules,
-            iti_bounds=iti_bounds, pavlovian=pavlovian, settings=settings,
+            iti_bounds=iti_bounds, pavlovian=pavlovian, settings=settings, two_stage=two_stage,
+            warnings=tuple(self.warnings),
         )  # fmt: skip
 
     def duration(self, node: Marked | None, where: str) -> Duration | None:
@@ -138,6 +151,7 @@ class _Compiler(Reader):
             names = [n for n, _, _ in named]
             steps = []
             for i, (step_name, step_fields, _) in enumerate(named):
+                self.step_fields[(name, step_name)] = step_fields
                 following = names[i + 1] if i + 1 < len(names) else END_TRIAL
                 step = self.step(step_name, step_fields, f"{where}.{step_name}", names, following, wiring, options)
                 if step is not None:
@@ -195,7 +209,17 @@ class _Compiler(Reader):
             if key in f:
                 if "choose" not in f:
                     self.error(f[key].mark, f"{where}.{key}: only meaningful with 'choose'")
+                elif "to_state" in f:
+                    self.error(f[key].mark, f"{where}.{key}: a first choice's outcome comes from the state it leads to")
                 branch[key] = self.target(f[key], f"{where}.{key}", names)
+        to_state: dict[str, str] = {}
+        if "to_state" in f:
+            if "choose" not in f:
+                self.error(f["to_state"].mark, f"{where}.to_state: only meaningful with 'choose'")
+            for state, target_node, _ in self.items(f["to_state"], f"{where}.to_state"):
+                target = self.target(target_node, f"{where}.to_state.{state}", names)
+                if target is not None:
+                    to_state[state] = target
         schedule = self.schedule(f.get("schedule"), f"{where}.schedule", names, wiring) if "schedule" in f else None
         draw: list[tuple[str, float]] = []
         if "draw" in f:
@@ -219,12 +243,16 @@ class _Compiler(Reader):
             respond=respond, choose=tuple(choose),
             if_rewarded=branch.get("if_rewarded") or following,
             if_unrewarded=branch.get("if_unrewarded") or following,
-            schedule=schedule, draw=tuple(draw),
+            schedule=schedule, draw=tuple(draw), to_state=to_state,
         )  # fmt: skip
 
     def schedule(self, node: Marked | None, where: str, names: list[str], wiring: Wiring) -> Schedule | None:
         f = self.mapping(
-            node, where, ("input", "kind", "value", "intervals", "then"), required=("input", "kind", "value")
+            node,
+            where,
+            ("input", "kind", "value", "intervals", "on_met"),
+            required=("input", "kind", "value"),
+            renamed={"then": "on_met"},
         )
         if f is None:
             return None
@@ -244,10 +272,10 @@ class _Compiler(Reader):
             if kind != "VI":
                 self.error(f["intervals"].mark, f"{where}.intervals: only meaningful for VI")
             intervals = self.number(f["intervals"], f"{where}.intervals", low=2, high=1000, integer=True) or 12
-        then = self.target(f["then"], f"{where}.then", names) if "then" in f else END_TRIAL
-        if input_name is None or kind is None or value is None or then is None:
+        on_met = self.target(f["on_met"], f"{where}.on_met", names) if "on_met" in f else END_TRIAL
+        if input_name is None or kind is None or value is None or on_met is None:
             return None
-        return Schedule(input_name, kind, float(value), int(intervals), then)
+        return Schedule(input_name, kind, float(value), int(intervals), on_met)
 
     # ------------------------------------------------------------ blocks
 

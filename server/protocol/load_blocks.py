@@ -7,6 +7,7 @@ from server.protocol.marked import Marked
 from server.protocol.model import END_SESSION, ORDERS, Block, BlockEnd, Option, TrialType
 from server.protocol.reader import Reader
 
+LEADS_ON = "its outcome comes from the state it leads to, so name second-stage options here"
 BLOCK_KEYS = (
     "block", "trial_types", "order", "max_run", "until", "next",
     "reward_probability", "swap", "withhold_outcomes", "iti",
@@ -71,6 +72,9 @@ def _block(
     probs: dict[str, float] = {}
     for label, p_node, key_mark in r.items(f.get("reward_probability"), f"{where}.reward_probability"):
         if r.reference(Marked(label, key_mark), f"{where}.reward_probability", options, "option"):
+            if options[label].reward_probability is None:
+                r.error(key_mark, f"{where}.reward_probability: '{label}' is a first-stage option; {LEADS_ON}")
+                continue
             p = r.probability(p_node, f"{where}.reward_probability.{label}")
             if p is not None:
                 probs[label] = float(p)
@@ -88,6 +92,10 @@ def _block(
         a = r.reference(items[0], f"{where}.swap", options, "option")
         b = r.reference(items[1], f"{where}.swap", options, "option")
         if a and b:
+            first_stage = [x for x in (a, b) if options[x].reward_probability is None]
+            if first_stage:
+                r.error(pair.mark, f"{where}.swap: '{first_stage[0]}' is a first-stage option; {LEADS_ON}")
+                continue
             if a == b:
                 r.error(pair.mark, f"{where}.swap: cannot swap '{a}' with itself")
             swaps.append((a, b))

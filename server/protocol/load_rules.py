@@ -24,7 +24,7 @@ from server.protocol.wiring import Wiring
 if TYPE_CHECKING:
     from server.protocol.reader import Reader
 
-RULE_KEYS = ("rule", "when", "then", "hold_for", "cooldown", "max_firings")
+RULE_KEYS = ("rule", "when", "do", "hold_for", "cooldown", "max_firings")
 
 
 def read_estimator(r: Reader, node: Marked | None) -> EstimatorSpec | None:
@@ -98,7 +98,7 @@ def read_rules(
     block_names = [b.name for b in blocks]
     for i, rule_node in enumerate(r.listing(node, "rules")):
         where = f"rules[{i + 1}]"
-        f = r.mapping(rule_node, where, RULE_KEYS, required=("rule", "when", "then"))
+        f = r.mapping(rule_node, where, RULE_KEYS, required=("rule", "when", "do"), renamed={"then": "do"})
         if f is None:
             continue
         before = len(r.problems)
@@ -110,26 +110,26 @@ def read_rules(
             where = f"rules.{name}"
         condition = _condition(r, f.get("when"), f"{where}.when", tuple(settings))
         actions = []
-        then = f.get("then")
+        do = f.get("do")
         for item in (
-            r.listing(then, f"{where}.then", allow_single=True)
-            if then is not None and not then.is_mapping
-            else ([then] if then is not None else [])
+            r.listing(do, f"{where}.do", allow_single=True)
+            if do is not None and not do.is_mapping
+            else ([do] if do is not None else [])
         ):
-            action = _action(r, item, f"{where}.then", block_names, options)
+            action = _action(r, item, f"{where}.do", block_names, options)
             if action is not None:
                 actions.append(action)
                 if action.kind in ("set_iti", "scale_iti") and iti_bounds is None:
                     r.error(
                         item.mark,
-                        f"{where}.then.{action.kind}: declare iti_bounds: [shortest, longest] at the top level",
+                        f"{where}.do.{action.kind}: declare iti_bounds: [shortest, longest] at the top level",
                     )
                 if action.kind == "set_iti" and iti_bounds:
                     assert action.seconds is not None  # _action gives every set_iti its seconds
                     if not iti_bounds[0] <= action.seconds <= iti_bounds[1]:
                         r.error(
                             item.mark,
-                            f"{where}.then.set_iti: {action.seconds:g} s is outside "
+                            f"{where}.do.set_iti: {action.seconds:g} s is outside "
                             f"iti_bounds {iti_bounds[0]:g}-{iti_bounds[1]:g}",
                         )
         hold = r.number(f["hold_for"], f"{where}.hold_for", low=1, integer=True) if "hold_for" in f else 1
@@ -187,13 +187,23 @@ def _action(r: Reader, node: Marked, where: str, blocks: list[str], options: dic
         if a and b and a == b:
             r.error(value.mark, f"{here}: cannot swap '{a}' with itself")
             return None
+        first_stage = [x for x in (a, b) if x and options[x].reward_probability is None]
+        if first_stage:
+            r.error(
+                value.mark,
+                f"{here}: '{first_stage[0]}' is a first-stage option; its outcome comes from the state "
+                "it leads to, so reverse second-stage options",
+            )
+            return None
         return RuleAction(kind, options=(a, b)) if a and b else None
     if kind == "probe":
-        p = r.mapping(value, here, ("minutes", "then"), required=("minutes",))
+        p = r.mapping(value, here, ("minutes", "after"), required=("minutes",), renamed={"then": "after"})
         if p is None:
             return None
         minutes = r.number(p.get("minutes"), f"{here}.minutes", low=0, low_open=True, high=600)
-        after = r.reference(p["then"], f"{here}.then", blocks + [END_SESSION], "block") if "then" in p else END_SESSION
+        after: str | None = END_SESSION
+        if "after" in p:
+            after = r.reference(p["after"], f"{here}.after", blocks + [END_SESSION], "block")
         if minutes is None or after is None:
             return None
         return RuleAction(kind, minutes=float(minutes), block=None if after == END_SESSION else after)

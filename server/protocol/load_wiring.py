@@ -107,25 +107,41 @@ def read_action_fields(r: Reader, fields: dict[str, Marked], where: str, wiring:
     return OutputActions(**lists)
 
 
-def read_options(r: Reader, node: Marked | None, wiring: Wiring | None) -> dict[str, Option]:
+def read_options(
+    r: Reader, node: Marked | None, wiring: Wiring | None, first_stage: frozenset[str] = frozenset()
+) -> dict[str, Option]:
+    """The choice options; those in `first_stage` (a two-stage task's first choice) lead to a
+    state instead of paying off, so they take no reward probability of their own."""
     options: dict[str, Option] = {}
     used: dict[str, str] = {}
     for label, value, _ in r.items(node, "options"):
         where = f"options.{label}"
-        fields = r.mapping(value, where, ("input", "reward_probability"), required=("input", "reward_probability"))
+        leads_on = label in first_stage
+        required = ("input",) if leads_on else ("input", "reward_probability")
+        fields = r.mapping(value, where, ("input", "reward_probability"), required=required)
         if fields is None or wiring is None:
             continue
         input_name = r.reference(fields.get("input"), f"{where}.input", wiring.inputs, "input")
-        p = r.probability(fields.get("reward_probability"), f"{where}.reward_probability")
+        p: float | None = None
+        if leads_on and "reward_probability" in fields:
+            r.error(
+                fields["reward_probability"].mark,
+                f"{where}.reward_probability: '{label}' is a first-stage option; its outcome is decided "
+                "in the state it leads to, so give reward probabilities to that state's options",
+            )
+            r.broken.add(label)
+            continue
+        if not leads_on:
+            p = r.probability(fields.get("reward_probability"), f"{where}.reward_probability")
         if input_name is not None and input_name in used:
             r.error(
                 fields["input"].mark,
                 f"{where}.input: '{input_name}' already belongs to option '{used[input_name]}'",
             )
             continue
-        if input_name is not None and p is not None:
+        if input_name is not None and (leads_on or p is not None):
             used[input_name] = label
-            options[label] = Option(label, input_name, float(p))
+            options[label] = Option(label, input_name, None if p is None else float(p))
         else:
             r.broken.add(label)
     return options

@@ -9,6 +9,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 from server.protocol.expressions import Node, Quantity
+from server.protocol.problems import Problem
 from server.protocol.wiring import Wiring
 
 END_TRIAL = "end"  # step target that ends the trial
@@ -53,7 +54,7 @@ class Schedule:
     kind: str  # FR | VR | RR | FI | VI
     value: float  # ratio n, probability p (RR) or interval seconds
     intervals: int = 12  # VI: length of the Fleshler–Hoffman list
-    then: str = END_TRIAL
+    on_met: str = END_TRIAL  # the step once the requirement is met
 
 
 @dataclass(frozen=True, slots=True)
@@ -69,6 +70,7 @@ class Step:
     if_unrewarded: str = END_TRIAL
     schedule: Schedule | None = None
     draw: tuple[tuple[str, float], ...] = ()  # (target, probability), taken on entry
+    to_state: dict[str, str] = field(default_factory=dict)  # two-stage: state -> step, after a first choice
 
     @property
     def awaits_response(self) -> bool:
@@ -91,7 +93,9 @@ class TrialType:
 class Option:
     label: str
     input: str
-    reward_probability: float
+    # None for a first-stage option of a two-stage task: its outcome is decided in the state
+    # it leads to, by that state's options.
+    reward_probability: float | None
 
 
 @dataclass(frozen=True, slots=True)
@@ -190,12 +194,15 @@ class RewardWalk:
 
 @dataclass(frozen=True, slots=True)
 class SecondState:
-    """One second-stage state of a two-stage trial: its own choice, or a single response."""
+    """One second-stage state of a two-stage trial: the options it offers, whose reward
+    probabilities decide the outcome. One option is a single response (no second choice)."""
 
     name: str
-    options: tuple[str, ...] = ()  # second-stage option labels (of `Protocol.options`)
-    response: str | None = None  # the one input answered in a single-response state
-    reward_probability: float | None = None  # single-response states: P(reward) on responding
+    options: tuple[str, ...]  # second-stage option labels (of `Protocol.options`)
+
+    @property
+    def offers_choice(self) -> bool:
+        return len(self.options) > 1
 
 
 @dataclass(frozen=True, slots=True)
@@ -212,6 +219,18 @@ class TwoStage:
         """The state a first-stage option most often leads to (its common transition)."""
         row = self.transitions[first]
         return max(row, key=lambda state: (row[state], state))
+
+    def state_of(self, option: str) -> str | None:
+        """The second-stage state offering `option`, if any."""
+        for state in self.states.values():
+            if option in state.options:
+                return state.name
+        return None
+
+    def expected_reward(self, first: str, p: dict[str, float]) -> float:
+        """P(reward) after choosing `first` and then the best option of the state reached,
+        under reward probabilities `p` (what a model-based learner maximises)."""
+        return sum(q * max(p[o] for o in self.states[s].options) for s, q in self.transitions[first].items())
 
 
 @dataclass(frozen=True, slots=True)
@@ -233,6 +252,7 @@ class Protocol:
     pavlovian: Pavlovian | None = None
     settings: dict[str, float] = field(default_factory=dict)  # named numbers rules may read
     two_stage: TwoStage | None = None
+    warnings: tuple[Problem, ...] = ()  # old spellings read, each naming its new one
 
     def block(self, name: str) -> Block:
         for b in self.blocks:

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import difflib
 import math
-from collections.abc import Iterable
+from collections.abc import Iterable, Mapping
 from typing import Any, Literal, overload
 
 from server.protocol.marked import Mark, Marked
@@ -45,6 +45,8 @@ class Reader:
         self.problems: list[Problem] = []
         # Names declared but invalid: references to them are not reported again.
         self.broken: set[str] = set()
+        # Old spellings still read, each with a warning naming the new one.
+        self.warnings: list[Problem] = []
 
     def error(self, mark: Mark, message: str) -> None:
         self.problems.append(Problem(mark, message))
@@ -57,25 +59,42 @@ class Reader:
         where: str,
         allowed: Iterable[str],
         required: Iterable[str] = (),
+        renamed: Mapping[str, str] | None = None,
     ) -> dict[str, Marked] | None:
-        """Check a mapping's keys: unknown keys (with did-you-mean) and missing ones."""
+        """Check a mapping's keys: unknown keys (with did-you-mean) and missing ones.
+
+        `renamed` maps old key names to new ones: an old one is read as the new one, with a
+        warning that names the new one (an error when both are given)."""
         if node is None:
             return None
         if not node.is_mapping:
             self.error(node.mark, f"{where}: expected a mapping, found {describe(node.value)}")
             return None
         allowed = list(allowed)
+        renamed = renamed or {}
+        values = dict(node.value)
+        for old, new in renamed.items():
+            if old not in values:
+                continue
+            assert node.keys is not None
+            if new in values:
+                self.error(node.keys[old], f"{where}: '{old}' is the old name of '{new}'; give only '{new}'")
+            else:
+                why = f"{where}: '{old}' is now called '{new}'; the old name is read until the next format version"
+                self.warnings.append(Problem(node.keys[old], why))
+                values[new] = values[old]
+            del values[old]
         for key in node.value:
-            if key not in allowed:
+            if key not in allowed and key not in renamed:
                 assert node.keys is not None
                 self.error(
                     node.keys[key],
                     f"{where}: unknown key '{key}'{did_you_mean(key, allowed)}",
                 )
         for key in required:
-            if key not in node.value:
+            if key not in values:
                 self.error(node.mark, f"{where}: missing required key '{key}'")
-        return {k: v for k, v in node.value.items() if k in allowed}
+        return {k: v for k, v in values.items() if k in allowed}
 
     def items(self, node: Marked | None, where: str) -> list[tuple[str, Marked, Mark]]:
         """Entries of a name -> value mapping whose keys are free names."""

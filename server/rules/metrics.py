@@ -7,6 +7,7 @@ from itertools import islice
 from statistics import median
 
 from server.engine.records import TrialOutcome
+from server.engine.stay import stay_contrasts
 from server.protocol.model import Protocol
 from server.protocol.wiring import OPERANT_INPUT_KINDS
 
@@ -122,6 +123,14 @@ class SessionMetrics:
         return (
             None if trials is None else win_stay_lose_shift([t.choice for t in trials], [t.rewarded for t in trials])[1]
         )
+
+    def stay_reward_effect(self, n: int) -> float | None:
+        trials = self.window(n)
+        return None if trials is None else stay_contrasts(trials)[0]
+
+    def stay_interaction(self, n: int) -> float | None:
+        trials = self.window(n)
+        return None if trials is None else stay_contrasts(trials)[1]
 
     def median_latency(self, n: int) -> float | None:
         trials = self.window(n)

@@ -121,6 +121,21 @@ def table_exists(conn: Connection, name: str) -> bool:
     return conn.execute(sql, (name,)).fetchone() is not None
 
 
+_PG_TYPES = {"bigint": "INTEGER", "integer": "INTEGER", "double precision": "REAL", "text": "TEXT"}
+
+
+def table_columns(conn: Connection, table: str) -> list[tuple[str, str]]:
+    """(name, declared type in SQLite's words, upper case) of each column, in order."""
+    if is_postgres(conn):
+        found = conn.execute(
+            "SELECT column_name, data_type FROM information_schema.columns"
+            " WHERE table_schema = current_schema() AND table_name = ? ORDER BY ordinal_position",
+            (table,),
+        ).fetchall()
+        return [(str(name), _PG_TYPES.get(str(kind), str(kind).upper())) for name, kind in found]
+    return [(str(r[1]), str(r[2] or "").upper()) for r in conn.execute(f"PRAGMA table_info({table})")]
+
+
 def other_tables(conn: Connection) -> int:
     """How many tables a database at version 0 already holds (another program's)."""
     if is_postgres(conn):

@@ -7,21 +7,16 @@ opens a read-only session on the server instead; the queries are the same.
 
 from __future__ import annotations
 
-import csv
 import sqlite3
-from collections.abc import Iterable, Sequence
 from pathlib import Path
-from typing import Any, TextIO
+from typing import Any
 from urllib.request import pathname2url
 
 from server.engine.records import TrialRecord
 from server.store import dialect, rows
 from server.store.dialect import Connection, is_server_url
 from server.store.errors import StoreError, sqlite_reason
-from server.store.history import trial_history
 from server.store.schema import latest_version, schema_version
-
-CHOICE_COLUMNS = ("animal", "session", "trial", "choice", "reward")
 
 
 def open_readonly(path: str | Path, *, check_same_thread: bool = True) -> Connection:
@@ -184,48 +179,6 @@ def session_annotations(conn: Connection, session_id: int) -> list[dict[str, Any
     return _dicts(conn, "SELECT * FROM annotations WHERE session_id = ? ORDER BY id", (session_id,))
 
 
-# ---------------------------------------------------------------- exports
-
-
-def _write_csv(cursor: Iterable[Sequence[Any]], header: tuple[str, ...], fileobj: TextIO) -> int:
-    # None becomes an empty field; JSON columns stay as their JSON text.
-    writer = csv.writer(fileobj, lineterminator="\n")
-    writer.writerow(header)
-    count = 0
-    for row in cursor:
-        writer.writerow(["" if value is None else value for value in row])
-        count += 1
-    return count
-
-
-def export_trials_csv(conn: Connection, session_id: int, fileobj: TextIO) -> int:
-    """Write the session's trials as CSV (one column per trials column); return the row count."""
-    cursor = conn.execute(
-        f"SELECT {', '.join(rows.TRIAL_COLUMNS)} FROM trials WHERE session_id = ? ORDER BY trial",
-        (session_id,),
-    )
-    return _write_csv(cursor, rows.TRIAL_COLUMNS, fileobj)
-
-
-def export_events_csv(conn: Connection, session_id: int, fileobj: TextIO) -> int:
-    """Write the session's events as CSV in stored order; return the row count."""
-    cursor = conn.execute(
-        f"SELECT {', '.join(rows.EVENT_COLUMNS)} FROM events WHERE session_id = ? ORDER BY id",
-        (session_id,),
-    )
-    return _write_csv(cursor, rows.EVENT_COLUMNS, fileobj)
-
-
-def export_choices_csv(conn: Connection, fileobj: TextIO, *, animal: str | None = None) -> int:
-    """Write trials in the fitting format `animal,session,trial,choice,reward` (DESIGN.md).
-
-    An omission has an empty choice; reward is the pellets delivered in the trial.
-    """
-    past = trial_history(conn, animals=None if animal is None else [animal])
-    past.sort(key=lambda p: p.animal)  # stable: each animal's trials stay in session order
-    return _write_csv(((p.animal, p.session_id, p.trial, p.choice, p.reward) for p in past), CHOICE_COLUMNS, fileobj)
-
-
 # ---------------------------------------------------------------- status page
 
 
@@ -237,7 +190,7 @@ def table_exists(conn: Connection, name: str) -> bool:
 def latest_sessions_per_box(conn: Connection) -> list[dict[str, Any]]:
     """The newest session of every box, ordered by box name (by rig, then box, in a store
     that several rigs write: two rigs may each have a box of the same name)."""
-    if dialect.schema_version(conn) >= 4:
+    if dialect.schema_version(conn) >= 5:  # the rig column
         return _dicts(
             conn,
             (

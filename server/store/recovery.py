@@ -7,14 +7,8 @@ from datetime import timedelta
 from typing import Any
 
 from server.store import rows
+from server.store.export_reads import last_stored_t
 from server.store.wall_clock import iso
-
-# Latest stored time of a session, whichever table holds it.
-_LAST_T = (
-    "SELECT max(t) FROM (SELECT max(t) AS t FROM events WHERE session_id = ?"
-    " UNION ALL SELECT max(t_end) FROM trials WHERE session_id = ?"
-    " UNION ALL SELECT max(t_start) FROM blocks WHERE session_id = ?) AS latest"
-)
 
 
 def close_unended(conn: Any, closed_at: str, running: Collection[int] = (), *, rig: str | None = None) -> list[int]:
@@ -35,7 +29,7 @@ def close_unended(conn: Any, closed_at: str, running: Collection[int] = (), *, r
     for session_id, started_at in found:
         if session_id in running:
             continue
-        last_t = conn.execute(_LAST_T, (session_id,) * 3).fetchone()[0] or 0.0
+        last_t = last_stored_t(conn, session_id)
         trials, rewards = conn.execute(
             "SELECT count(*), CAST(coalesce(sum(rewarded), 0) AS INTEGER) FROM trials WHERE session_id = ?",
             (session_id,),

@@ -12,7 +12,7 @@ from collections.abc import Mapping
 from datetime import datetime
 from typing import Any
 
-from server.engine.records import BlockStarted, EventLogged, TrialRecord
+from server.engine.records import BlockStarted, EventLogged, SecondStage, TrialRecord
 from server.store.errors import StoreError
 
 TRIAL_COLUMNS = (
@@ -36,6 +36,13 @@ TRIAL_COLUMNS = (
     "counts",
     "first_s",
     "extra",
+    # two-stage trials (NULL otherwise): where the first choice led and what followed
+    "state",
+    "transition",
+    "choice2",
+    "response2",
+    "latency2_s",
+    "omitted2",
 )
 EVENT_COLUMNS = (
     "id",
@@ -74,7 +81,8 @@ SESSION_COLUMNS = (
 
 # Columns holding JSON text, and 0/1 columns read back as bools, per table.
 JSON_COLUMNS = frozenset(("settings", "steps", "counts", "first_s", "extra", "detail", "contingencies", "data"))
-BOOL_COLUMNS = frozenset(("rewarded", "correct", "omission", "interrupted", "outcomes_withheld"))
+BOOL_COLUMNS = frozenset(("rewarded", "correct", "omission", "interrupted", "outcomes_withheld", "omitted2"))
+TRANSITIONS = ("common", "rare")
 
 SQLITE_INT_MAX = 2**63 - 1
 
@@ -184,6 +192,20 @@ def trial_params(session_id: int, rec: TrialRecord) -> tuple:
         to_json(rec.counts, f"{what} counts"),
         to_json(rec.first_s, f"{what} first_s"),
         to_json(rec.extra, f"{what} extra"),
+        *_second_params(rec.second, what),
+    )
+
+
+def _second_params(second: SecondStage | None, what: str) -> tuple:
+    if second is None:
+        return (None,) * 6
+    return (
+        str(second.state),
+        TRANSITIONS[0] if second.common else TRANSITIONS[1],
+        None if second.choice is None else str(second.choice),
+        None if second.response is None else str(second.response),
+        opt_real(second.latency_s, f"{what} latency2_s"),
+        int(bool(second.omitted)),
     )
 
 
@@ -248,4 +270,20 @@ def trial_from_row(row: Mapping[str, Any]) -> TrialRecord:
         counts=from_json(row["counts"]),
         first_s=from_json(row["first_s"]),
         extra=from_json(row["extra"]),
+        second=second_from_row(row),
+    )
+
+
+def second_from_row(row: Mapping[str, Any]) -> SecondStage | None:
+    """A two-stage trial's second stage from its columns; None for other trials (and for rows
+    of databases from before the columns, which lack the keys)."""
+    if "state" not in row.keys() or row["state"] is None:
+        return None
+    return SecondStage(
+        state=row["state"],
+        common=row["transition"] == TRANSITIONS[0],
+        choice=row["choice2"],
+        response=row["response2"],
+        latency_s=row["latency2_s"],
+        omitted=bool(row["omitted2"]),
     )

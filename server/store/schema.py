@@ -149,6 +149,15 @@ _V3 = statements(
 )
 
 _V4 = statements(
+    "ALTER TABLE trials ADD COLUMN state TEXT",  # the second-stage state reached
+    "ALTER TABLE trials ADD COLUMN transition TEXT",  # 'common' or 'rare'
+    "ALTER TABLE trials ADD COLUMN choice2 TEXT",  # second-stage option, where the state offers a choice
+    "ALTER TABLE trials ADD COLUMN response2 TEXT",  # the input that answered in the second stage
+    "ALTER TABLE trials ADD COLUMN latency2_s REAL",
+    "ALTER TABLE trials ADD COLUMN omitted2 INTEGER",  # 1: the second-stage window ran out
+)
+
+_V5 = statements(
     # A lab-wide store: the rig (lab config `lab:` name) that ran each session.
     "ALTER TABLE sessions ADD COLUMN rig TEXT",
     "CREATE INDEX sessions_rig ON sessions(rig, id)",
@@ -192,7 +201,8 @@ MIGRATIONS: tuple[Migration, ...] = (
     Migration(1, "sessions, trials, events, blocks, estimates, annotations", _V1),
     Migration(2, "rule firings", _V2),
     Migration(3, "training stages per animal", _V3),
-    Migration(4, "lab-wide store: rigs, spool outbox, forwarding marks, controls", _V4),
+    Migration(4, "two-stage trials: state, transition and the second stage", _V4),
+    Migration(5, "lab-wide store: rigs, spool outbox, forwarding marks, controls", _V5),
 )
 
 

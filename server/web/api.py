@@ -9,13 +9,14 @@ from __future__ import annotations
 
 import asyncio
 import io
+import re
 from collections.abc import AsyncIterable
 from typing import Any
 
 from fastapi import APIRouter, HTTPException, Query, Response
 from fastapi.sse import EventSourceResponse, ServerSentEvent
 
-from server.store import queries
+from server.store import csv_exports, queries
 from server.web.schemas import AnimalOut, BoxTile, SessionOut
 from server.web.session_page import animal_rows
 
@@ -34,6 +35,19 @@ def _known(state: Any, session_id: int):
     conn = state.store.conn()
     _session_or_404(conn, session_id)
     return conn
+
+
+def _file_safe(name: str) -> str:
+    """A name as it may appear in a download's file name (letters, digits, - _ . only)."""
+    return re.sub(r"[^A-Za-z0-9._-]+", "_", name).strip("._") or "animal"
+
+
+def _attachment(text: str, filename: str) -> Response:
+    return Response(
+        text,
+        media_type="text/csv; charset=utf-8",
+        headers={"Content-Disposition": f'attachment; filename="{filename}"'},
+    )
 
 
 def api_router(state: Any) -> APIRouter:
@@ -111,19 +125,37 @@ def api_router(state: Any) -> APIRouter:
         conn = _known(state, session_id)
         out = io.StringIO()
         export(conn, session_id, out)
-        return Response(
-            out.getvalue(),
-            media_type="text/csv; charset=utf-8",
-            headers={"Content-Disposition": f'attachment; filename="session-{session_id}-{what}.csv"'},
-        )
+        return _attachment(out.getvalue(), f"session-{session_id}-{what}.csv")
 
     @router.get("/sessions/{session_id}/trials.csv", response_class=Response, summary="The session's trials as CSV")
     def trials_csv(session_id: int) -> Response:
-        return _csv(session_id, "trials", queries.export_trials_csv)
+        return _csv(session_id, "trials", csv_exports.export_trials_csv)
 
     @router.get("/sessions/{session_id}/events.csv", response_class=Response, summary="The session's events as CSV")
     def events_csv(session_id: int) -> Response:
-        return _csv(session_id, "events", queries.export_events_csv)
+        return _csv(session_id, "events", csv_exports.export_events_csv)
+
+    @router.get(
+        "/sessions/{session_id}/choices.csv",
+        response_class=Response,
+        summary="The session's choices in the format `vigil fit` reads (animal,session,trial,choice,reward)",
+    )
+    def session_choices_csv(session_id: int) -> Response:
+        return _csv(
+            session_id, "choices", lambda conn, sid, out: csv_exports.export_choices_csv(conn, out, session_id=sid)
+        )
+
+    # Before /animals/{animal:path}, which would take "RN-1/choices.csv" for an animal's name.
+    @router.get(
+        "/animals/{animal:path}/choices.csv",
+        response_class=Response,
+        summary="Every choice of an animal, sessions in order, in the format `vigil fit` reads",
+    )
+    def animal_choices_csv(animal: str) -> Response:
+        out = io.StringIO()
+        if not csv_exports.export_choices_csv(state.store.conn(), out, animal=animal):
+            raise HTTPException(404, f"no trials of animal '{animal}'")
+        return _attachment(out.getvalue(), f"animal-{_file_safe(animal)}-choices.csv")
 
     @router.get(
         "/animals/{animal:path}",

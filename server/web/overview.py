@@ -19,8 +19,8 @@ from server.web.tiles import shown
 # and wide rows for texts that run long
 FIELDS = (
     ("trial", "trial", "big"),
-    ("rewards", "pellets", "big"),
-    ("accuracy", "correct", "big"),
+    ("rewards", "rewards", "big"),
+    ("accuracy", "accuracy", "big"),
     ("protocol", "protocol", "wide"),
     ("block", "block", ""),
     ("elapsed", "elapsed", ""),
@@ -137,7 +137,7 @@ def operator_key() -> Safe:
                 type="password",
                 id="optoken",
                 autocomplete="off",
-                placeholder="needed to pause, stop or annotate",
+                placeholder="needed to pause, stop or add a note",
             ),
         ),
         el("output", id="opsay", aria_live="polite"),

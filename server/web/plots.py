@@ -10,7 +10,8 @@ import bisect
 from collections.abc import Sequence
 from typing import Any
 
-from server.web.markup import Safe
+from server.engine.stay import CONDITION_NAMES, CONDITIONS, StayCount
+from server.web.markup import Safe, el
 from server.web.svg import Plot
 
 OPERANT_KINDS = ("lever_press", "nose_poke")  # inputs an animal works on (wiring kinds)
@@ -127,7 +128,7 @@ def cumulative_record(
         py.append(y)
     plot.marks(px, py, "pellet", shape="square", size=4)
     if px:
-        plot.legend("pellet", "pellet")
+        plot.legend("pellet", "reward")
     plot.rules([_minutes(b["t_start"]) for b in blocks[1:]], [b["block"] for b in blocks[1:]], "blk")
     _rule_marks(plot, firings)
     return plot.render()
@@ -186,6 +187,80 @@ def choice_panel(trials: Sequence[dict[str, Any]], estimates: Sequence[dict[str,
     plot.marks(omitted, [0.5] * len(omitted), "omit", shape="tick", size=5)
     if omitted:
         plot.legend("omit", "omission")
+    return plot.render()
+
+
+def two_stage_panels(trials: Sequence[dict[str, Any]]) -> list[Safe]:
+    """Two trial-indexed panels on the same x axis: the second-stage options' reward
+    probabilities each trial was played under, and the first choices marked by outcome and
+    transition; empty for a session without two-stage trials."""
+    played = [t for t in trials if t.get("state") is not None]
+    if not played:
+        return []
+    last_trial = max(t["trial"] for t in trials)
+    x_range = (0.5, last_trial + 0.5)
+    odds = Plot(x_range, (0.0, 1.0), title="Second-stage reward probabilities", x_label="trial",
+                y_label="P(reward)", y_ticks=[0.0, 0.25, 0.5, 0.75, 1.0], whole_x=True, height=220)  # fmt: skip
+    series: dict[str, tuple[list[float], list[float]]] = {}
+    for t in played:
+        for option, p in ((t.get("extra") or {}).get("reward_probability") or {}).items():
+            xs, ys = series.setdefault(option, ([], []))
+            xs.append(t["trial"])
+            ys.append(p)
+    for i, (option, (xs, ys)) in enumerate(sorted(series.items())):
+        cls = ("c1", "c3", "c2", "c4")[i % 4]
+        odds.line(xs, ys, cls)
+        odds.legend(cls, option)
+    firsts = sorted({t["choice"] for t in played if t.get("choice") is not None})
+    top, bottom = (firsts + ["", ""])[:2]
+    choices = Plot(x_range, (-0.2, 1.2), title="First choices", x_label="trial", whole_x=True, height=200,
+                   y_ticks=[0.0, 1.0], y_tick_text={0.0: bottom, 1.0: top})  # fmt: skip
+    kinds = (
+        (True, "common", "dot", "ch"),
+        (False, "common", "ring", "ch"),
+        (True, "rare", "square", "ch rare"),
+        (False, "rare", "square", "ch rare open"),
+    )
+    for rewarded, transition, shape, cls in kinds:
+        picked = [t for t in played if t.get("choice") is not None and bool(t["rewarded"]) == rewarded
+                  and t.get("transition") == transition]  # fmt: skip
+        # rare transitions a little inside the rail, so the two kinds never hide each other
+        inset = 0.12 if transition == "rare" else 0.0
+        rail = [1.0 - inset if t["choice"] == top else inset for t in picked]
+        choices.marks([t["trial"] for t in picked], rail, cls, shape=shape, size=3.5)
+    missed = [t["trial"] for t in played if t.get("omitted2")] + [t["trial"] for t in trials if t.get("omission")]
+    choices.marks(missed, [0.5] * len(missed), "omit", shape="tick", size=5)
+    key = el(
+        "p",
+        "First choices: ● rewarded after a common transition, ○ unrewarded after a common one, "
+        "■ rewarded after a rare one, □ unrewarded after a rare one (rare ones drawn just inside "
+        "the rail); red ticks: no response.",
+        class_="note",
+    )
+    return [odds.render(), choices.render(), key]
+
+
+def stay_panel(counts: dict[tuple[bool, bool], StayCount]) -> Safe | None:
+    """P(repeating the first choice) after each kind of trial, with how many pairs it rests on."""
+    if not any(c.pairs for c in counts.values()):
+        return None
+    ticks = {
+        float(i + 1): f"{CONDITION_NAMES[key]} ({counts[key].stays}/{counts[key].pairs})"
+        for i, key in enumerate(CONDITIONS)
+    }
+    plot = Plot(
+        (0.5, len(CONDITIONS) + 0.5),
+        (0.0, 1.0),
+        title="Stay probability: repeating the first choice after ...",
+        y_label="P(stay)",
+        y_ticks=[0.0, 0.25, 0.5, 0.75, 1.0],
+        x_tick_text=ticks,
+        height=240,
+    )
+    for i, key in enumerate(CONDITIONS):
+        p = counts[key].p
+        if p is not None:
+            plot.spans([(i + 1 - 0.3, i + 1 + 0.3)], 0.0, p, "bar")
     return plot.render()
 
 

@@ -4,9 +4,11 @@ the list of sessions, rendered from the read-only store."""
 from __future__ import annotations
 
 import json
-from datetime import datetime
+import math
+from datetime import datetime, timedelta
 from typing import Any
 
+from server.engine.stay import stay_counts
 from server.lab.status import rule_text
 from server.store import queries
 from server.store.dialect import Connection
@@ -79,8 +81,15 @@ def panels(conn: Connection, session: dict[str, Any]) -> Safe:
             end_t=end_t,
         )
     ]
-    choice = plots.choice_panel(trials, estimates)
-    parts.append(choice if choice is not None else el("p", "No choice trials in this session.", class_="note"))
+    two_stage = plots.two_stage_panels(trials)
+    if two_stage:
+        parts.extend(two_stage)
+        stay = plots.stay_panel(stay_counts(queries.trial_records(conn, sid)))
+        if stay is not None:
+            parts.append(stay)
+    else:
+        choice = plots.choice_panel(trials, estimates)
+        parts.append(choice if choice is not None else el("p", "No choice trials in this session.", class_="note"))
     estimated = plots.parameter_panels(estimates)
     parts.extend(estimated or [el("p", "No learning-model estimates stored for this session.", class_="note")])
     timeline = plots.iti_timeline(trials, blocks, pauses, firings, end_t)
@@ -150,8 +159,8 @@ def session_body(conn: Connection, session: dict[str, Any], *, controllable: boo
         ("started", _when(session["started_at"])),
         ("state", "running" if running else f"ended – {session['end_reason']}"),
         ("trials", session["trials"]),
-        ("pellets", session["rewards"]),
-        ("correct", "–" if status["accuracy"] is None else f"{100 * status['accuracy']:.0f}\u202f%"),
+        ("rewards", session["rewards"]),
+        ("accuracy", "–" if status["accuracy"] is None else f"{100 * status['accuracy']:.0f}\u202f%"),
         ("block", status["block"] or "–"),
         ("seed", session["seed"]),
     ]
@@ -167,8 +176,7 @@ def session_body(conn: Connection, session: dict[str, Any], *, controllable: boo
         ]
         for ev in reversed(events)
     ]
-    notes = queries.session_annotations(conn, sid)
-    note_rows = [[_when(n["wall_time"]), clock_text(n["t"]), n["origin"], n["text"]] for n in notes]
+    note_rows = [row for _, row in sorted(_notes(conn, session), key=lambda item: item[0])]
     return el(
         "div",
         el("h1", f"Session {sid}: ", el("span", session["box"]), " · ", el("span", session["animal"])),
@@ -177,6 +185,8 @@ def session_body(conn: Connection, session: dict[str, Any], *, controllable: boo
         el(
             "p",
             el("a", "trials (CSV)", href=f"/api/sessions/{sid}/trials.csv"),
+            " · ",
+            el("a", "choices for vigil fit (CSV)", href=f"/api/sessions/{sid}/choices.csv"),
             " · ",
             el("a", "events (CSV)", href=f"/api/sessions/{sid}/events.csv"),
             " · ",
@@ -200,6 +210,27 @@ def session_body(conn: Connection, session: dict[str, Any], *, controllable: boo
         ),
         class_="session",
     )
+
+
+def _notes(conn: Connection, session: dict[str, Any]) -> list[tuple[float, list[Any]]]:
+    """Every note on the session in session-time order: operators' notes, and the notes its
+    rules wrote (a rule's `note` action), which carry their session time only."""
+    sid = session["id"]
+    out: list[tuple[float, list[Any]]] = []
+    for n in queries.session_annotations(conn, sid):
+        t = n["t"] if n["t"] is not None else math.inf
+        out.append((t, [_when(n["wall_time"]), clock_text(n["t"]), n["origin"], n["text"]]))
+    try:
+        started = datetime.fromisoformat(session["started_at"])
+    except (TypeError, ValueError):
+        started = None
+    for ev in queries.session_events(conn, sid, kind="note"):
+        text = (ev["detail"] or {}).get("text") if isinstance(ev["detail"], dict) else None
+        if text is None:  # the link's and the session's own notes go in the event log only
+            continue
+        written = _when((started + timedelta(seconds=ev["t"])).isoformat()) if started else "–"
+        out.append((ev["t"], [written, clock_text(ev["t"]), f"rule {ev['name']}", text]))
+    return out
 
 
 def _params_text(estimate: dict[str, Any] | None) -> str:
@@ -249,6 +280,11 @@ def animal_body(animal: str, history: list[dict[str, Any]]) -> Safe:
     return el(
         "div",
         el("h1", "Animal ", el("span", animal)),
+        el(
+            "p",
+            el("a", "every choice, for vigil fit (CSV)", href=f"/api{animal_href(animal)}/choices.csv"),
+            class_="downloads",
+        ),
         el("div", plots.animal_panels(history), class_="panels"),
         _table(
             [
@@ -258,8 +294,8 @@ def animal_body(animal: str, history: list[dict[str, Any]]) -> Safe:
                 "protocol",
                 "stage",
                 "trials",
-                "pellets",
-                "correct",
+                "rewards",
+                "accuracy",
                 "omissions",
                 "end",
                 "parameters (mean [95 %])",
@@ -287,7 +323,7 @@ def sessions_body(sessions: list[dict[str, Any]]) -> Safe:
     return el(
         "div",
         el("h1", "Sessions"),
-        _table(["session", "started", "box", "animal", "protocol", "trials", "pellets", "end"], rows)
+        _table(["session", "started", "box", "animal", "protocol", "trials", "rewards", "end"], rows)
         if rows
         else el("p", "No sessions yet.", class_="note"),
         class_="sessions",

@@ -84,6 +84,7 @@ class Plot:
         height: int = 260,
         y_ticks: Sequence[float] | None = None,
         y_tick_text: dict[float, str] | None = None,
+        x_tick_text: dict[float, str] | None = None,
         whole_x: bool = False,
     ):
         self.x0, self.x1 = padded(*x_range)
@@ -96,6 +97,7 @@ class Plot:
         self.left, self.right, self.top, self.bottom = 78, 18, 34, 52
         self._y_ticks = list(y_ticks) if y_ticks is not None else None
         self._y_tick_text = y_tick_text or {}
+        self._x_tick_text = x_tick_text or {}  # categories on x: only these ticks, with these texts
         self.whole_x = whole_x  # x counts trials or sessions: integer ticks only
         self._layers: list[Safe] = []
         self._legend: list[tuple[str, str]] = []
@@ -203,8 +205,9 @@ class Plot:
         left, bottom = self.left, self.height - self.bottom
         right, top = self.width - self.right, self.top
         parts = [el("rect", x=left, y=top, width=right - left, height=bottom - top, class_="frame")]
-        xt = nice_ticks(self.x0, self.x1, 8, whole=self.whole_x)
+        xt = sorted(self._x_tick_text) if self._x_tick_text else nice_ticks(self.x0, self.x1, 8, whole=self.whole_x)
         for v, text in zip(xt, tick_texts(xt)):
+            text = self._x_tick_text.get(v, text)
             x = f"{self.px(v):.1f}"
             parts.append(el("line", x1=x, x2=x, y1=bottom, y2=bottom + 6, class_="tk"))
             parts.append(el("text", text, x=x, y=bottom + 22, class_="tl x"))

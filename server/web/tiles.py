@@ -15,7 +15,8 @@ from typing import Any
 from server.lab.status import BoxFacts, alarm_message, rule_text
 
 # End reasons of a session that ran its course; anything else ended it early.
-_NORMAL_ENDS = ("session time limit", "protocol complete", "trial limit reached", "time limit")
+# "time limit" is how databases before the run time limit had its own words spelled it.
+_NORMAL_ENDS = ("session time limit", "protocol complete", "trial limit reached", "run time limit", "time limit")
 CAP_REASON = "reward cap reached"
 
 

@@ -14,6 +14,8 @@ from pathlib import Path
 
 import pytest
 
+from server.lab.supervisor import RUN_TIME_LIMIT
+
 ROOT = Path(__file__).resolve().parents[2]
 VIGIL = [sys.executable, "-m", "server.cli"]
 
@@ -99,7 +101,7 @@ def test_demo_runs_four_boxes_and_ends_every_session(tmp_path):
     assert result.returncode == 0, result.stdout + result.stderr
     sessions = _sessions(db)
     assert len(sessions) == 4
-    assert all(reason == "time limit" and ended for _, _, reason, ended in sessions)
+    assert all(reason == RUN_TIME_LIMIT and ended for _, _, reason, ended in sessions)
     conn = sqlite3.connect(db)
     trials = conn.execute("SELECT COUNT(*) FROM trials").fetchone()[0]
     inputs = conn.execute("SELECT COUNT(*) FROM events WHERE kind = 'input'").fetchone()[0]

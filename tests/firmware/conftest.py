@@ -1,6 +1,6 @@
-"""The reference firmware on a simulated board (simavr): built once per test run, one fresh
-board (a harness process and its pty) per test. Skipped, with one line saying why, where the
-AVR toolchain or simavr is not installed."""
+"""The firmware on simulated boards (simavr): each box's image built once per test run, one
+fresh board (a harness process and its pty) per test. Skipped, with one line saying why,
+where the AVR toolchain or simavr is not installed."""
 
 from __future__ import annotations
 
@@ -16,28 +16,50 @@ _serial = itertools.count(1)
 
 
 @pytest.fixture(scope="session")
-def board_build(tmp_path_factory):
-    """(harness, firmware hex, the firmware build's size report)."""
+def build_root(tmp_path_factory) -> Path:
+    """One build folder for every box's image and the one harness they share."""
     why = missing_parts()
     if why:
         pytest.skip(f"simulated board: {why}")
+    return tmp_path_factory.mktemp("board-build")
+
+
+def _build(root: Path, box: str) -> tuple[Path, Path, str]:
     try:
-        return build(tmp_path_factory.mktemp("board-build"))
+        return build(root, box)
     except BoardError as exc:
         pytest.skip(f"simulated board: {exc}")
 
 
-@pytest.fixture
-def start_board(board_build, tmp_path):
-    """Start boards (each at its own link path under tmp_path); all are closed afterwards."""
-    harness, hex_file, _ = board_build
+@pytest.fixture(scope="session")
+def board_build(build_root):
+    """The reference box: (harness, firmware hex, the firmware build's size report)."""
+    return _build(build_root, "ref")
+
+
+@pytest.fixture(scope="session")
+def ports_build(build_root):
+    """The five-port box (make BOX=ports): (harness, firmware hex, size report)."""
+    return _build(build_root, "ports")
+
+
+def _starter(built, tmp_path, box: str):
+    harness, hex_file, _ = built
     boards: list[SimulatedBoard] = []
 
     def start(name: str | None = None) -> SimulatedBoard:
-        board = SimulatedBoard(harness, hex_file, tmp_path / f"{name or 'board'}-{next(_serial)}.tty")
+        link = tmp_path / f"{name or 'board'}-{next(_serial)}.tty"
+        board = SimulatedBoard(harness, hex_file, link, box)
         boards.append(board)
         return board
 
+    return start, boards
+
+
+@pytest.fixture
+def start_board(board_build, tmp_path):
+    """Start reference boards (each at its own link path under tmp_path); all are closed afterwards."""
+    start, boards = _starter(board_build, tmp_path, "ref")
     yield start
     for board in boards:
         board.close()
@@ -46,3 +68,12 @@ def start_board(board_build, tmp_path):
 @pytest.fixture
 def board(start_board) -> SimulatedBoard:
     return start_board()
+
+
+@pytest.fixture
+def ports_board(ports_build, tmp_path):
+    """A simulated five-port board, closed afterwards."""
+    start, boards = _starter(ports_build, tmp_path, "ports")
+    yield start("five-port")
+    for board in boards:
+        board.close()

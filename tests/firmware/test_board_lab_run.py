@@ -16,6 +16,7 @@ import time
 import yaml
 
 from hardware_stubs.simulated_board import FREQ_HZ, HERE
+from server.lab.supervisor import RUN_TIME_LIMIT
 from server.protocol.load import load_protocol
 
 ROOT = HERE.parent
@@ -105,7 +106,7 @@ def test_vigil_run_on_simulated_boards_stores_every_pin_edge_once(start_board, t
         assert stored_edges == pin_edges, name
         # Nothing lost: the pins made at most the edges that fell after the session ended.
         ended = conn.execute("SELECT end_reason FROM sessions WHERE id = ?", (session,)).fetchone()[0]
-        assert ended == "time limit", name
+        assert ended == RUN_TIME_LIMIT, name
         assert len(edges) - len(stored) <= 2, (name, len(edges), len(stored))
         # Nothing doubled, numbers without a gap (PROTOCOL.md section 6).
         seqs = [s for *_, s, _ in stored]

@@ -36,19 +36,19 @@ def test_unknown_agent_name_suggests_the_nearest():
 
 
 def test_unknown_option_suggests_the_nearest():
-    expected = r"^unknown option 'alpah' for agent 'q_learner' \(did you mean 'alpha'\?\)$"
+    expected = r"^unknown trait 'alpah' for agent 'q_learner' \(did you mean 'alpha'\?\)$"
     with pytest.raises(AgentError, match=expected):
         make_agent("q_learner", alpah=0.2)
     # The random responder does not learn, so it has no alpha at all.
-    assert validate_agent("random", {"alpha": 0.2}) == ["unknown option 'alpha' for agent 'random'"]
+    assert validate_agent("random", {"alpha": 0.2}) == ["unknown trait 'alpha' for agent 'random'"]
 
 
 def test_bad_values_are_named_with_range_and_all_reported_at_once():
     errors = validate_agent("q_learner", {"alpha": 1.5, "beta": "hot", "omission": True})
     assert errors == [
-        "option 'alpha' of agent 'q_learner' must be between 0 and 1, got 1.5",
-        "option 'beta' of agent 'q_learner' must be a number, got 'hot'",
-        "option 'omission' of agent 'q_learner' must be a number, got True",
+        "trait 'alpha' of agent 'q_learner' must be between 0 and 1, got 1.5",
+        "trait 'beta' of agent 'q_learner' must be a number, got 'hot'",
+        "trait 'omission' of agent 'q_learner' must be a number, got True",
     ]
     with pytest.raises(AgentError) as caught:
         make_agent("q_learner", alpha=1.5, beta="hot")
@@ -58,7 +58,7 @@ def test_bad_values_are_named_with_range_and_all_reported_at_once():
 
 def test_tracking_is_a_choice_and_excludes_sign_bias():
     assert validate_agent("pavlovian", {"tracking": "signn"}) == [
-        "option 'tracking' of agent 'pavlovian' must be one of sign, goal, intermediate, "
+        "trait 'tracking' of agent 'pavlovian' must be one of sign, goal, intermediate, "
         "got 'signn' (did you mean 'sign'?)"
     ]
     assert validate_agent("pavlovian", {"tracking": "goal", "sign_bias": 0.3}) == [

@@ -35,26 +35,26 @@ FLASH_BYTES = 32 * 1024  # ATmega328P datasheet: 32 KiB flash, 2 KiB SRAM
 RAM_BYTES = 2 * 1024
 
 
-def header_define(name: str) -> str:
-    match = re.search(rf"#define {name} (\S+)", (FIRMWARE / "vproto.h").read_text())
+def header_define(name: str, header: str = "vproto.h") -> str:
+    match = re.search(rf"#define {name} (\S+)", (FIRMWARE / header).read_text())
     assert match, name
     return match.group(1).strip('"').rstrip("u")
 
 
-def channel_table(name: str) -> list[str]:
-    """Kind codes of one table in channels.c, in channel order."""
+def channel_table(name: str, source: str = "channels.c") -> list[str]:
+    """Kind codes of one table in a box's channel file, in channel order."""
     block = re.search(
         rf"{name}\[BOX_\w+\]\[3\] VP_FLASH = \{{(.*?)\}};",
-        (FIRMWARE / "channels.c").read_text(),
+        (FIRMWARE / source).read_text(),
         re.S,
     )
     assert block, name
     return re.findall(r'"([a-z]{2})"', block.group(1))
 
 
-def make(target: str, build: Path) -> subprocess.CompletedProcess[str]:
+def make(target: str, build: Path, box: str = "ref") -> subprocess.CompletedProcess[str]:
     return subprocess.run(
-        ["make", "-C", str(FIRMWARE), f"BUILD={build}", target],
+        ["make", "-C", str(FIRMWARE), f"BUILD={build}", f"BOX={box}", target],
         capture_output=True,
         text=True,
         timeout=120,
@@ -155,7 +155,8 @@ def test_boot_identity_decodes_and_matches_the_channel_table(box_program):
     assert run.decoder.rejected_total == 0
     ident, beat = run.messages
     assert isinstance(ident, Identity) and isinstance(beat, Beat)
-    assert ident.firmware == header_define("VP_FIRMWARE_ID")
+    assert header_define("VP_FIRMWARE_ID") == "BOX_FIRMWARE_ID"  # the box's own (boxes.h)
+    assert ident.firmware == header_define("REF_FIRMWARE_ID", "boxes.h")
     assert ident.version == PROTOCOL_VERSION == int(header_define("VP_PROTOCOL_VERSION"))
     kind_of_input = {c: k for k, c in INPUT_KIND_CODES.items()}
     kind_of_output = {c: k for k, c in OUTPUT_KIND_CODES.items()}
@@ -164,6 +165,63 @@ def test_boot_identity_decodes_and_matches_the_channel_table(box_program):
     assert (beat.seq, beat.device_us, beat.boot, beat.rx_rejected) == (0, 1_000_000, ident.boot, 0)
     # Every output is driven to its safe (off) state at boot.
     assert run.outputs == [(ch.number, 0, 0) for ch in ident.outputs]
+
+
+def test_the_five_port_build_names_itself_and_its_own_channels(tmp_path):
+    """make host BOX=ports: the same core with the five-port box's table (channels_ports.c)."""
+    if shutil.which("make") is None or shutil.which("cc") is None:
+        pytest.skip("make or a C compiler (cc) not installed")
+    done = make("host", tmp_path, box="ports")
+    assert done.returncode == 0, done.stdout + done.stderr
+    run = run_box(tmp_path / "host_sim-ports", [wait(10_000), b"@in 7 1\n", wait(3_000)])
+    ident, edge = run.messages
+    assert ident.firmware == header_define("PORTS_FIRMWARE_ID", "boxes.h") == "vigil-ports-1.0"
+    kind_of_input = {c: k for k, c in INPUT_KIND_CODES.items()}
+    kind_of_output = {c: k for k, c in OUTPUT_KIND_CODES.items()}
+    codes_in = channel_table("input_codes", "channels_ports.c")
+    codes_out = channel_table("output_codes", "channels_ports.c")
+    assert codes_in == ["np"] * 5 + ["he", "ps"] and len(codes_out) == 10
+    assert ident.inputs == tuple(Channel(n, kind_of_input[c]) for n, c in enumerate(codes_in, 1))
+    assert ident.outputs == tuple(Channel(n, kind_of_output[c]) for n, c in enumerate(codes_out, 1))
+    assert edge == Edge(1, 7, True, 10_000)  # the pellet sensor, its last input
+    assert run.outputs == [(ch, 0, 0) for ch in range(1, 11)]  # every output off at boot
+    refused = subprocess.run([str(tmp_path / "host_sim-ports")], input=b"@in 8 1\n", capture_output=True)
+    assert refused.returncode == 2  # it has no input 8
+
+
+@pytest.mark.skipif(
+    shutil.which("avr-gcc") is None, reason="avr-gcc not installed (Debian: gcc-avr avr-libc binutils-avr)"
+)
+@pytest.mark.parametrize(
+    ("line", "wrong", "message"),
+    [
+        (
+            "X(10, C, 3) /* tone gate */",
+            "X(10, C, 2) /* tone gate */",
+            "one output pin per output channel, none shared",
+        ),
+        ("X(7, C, 4)  /* pellet sensor */", "X(7, C, 5)  /* pellet sensor */", "inputs 1-6 on PD2-PD7, then PC4 up"),
+        ("X(3, D, 4)  /* east", "X(3, D, 5)  /* east", "inputs 1-6 on PD2-PD7, then PC4 up"),
+    ],
+)
+def test_a_box_wired_in_a_way_the_board_layer_cannot_read_does_not_build(tmp_path, line, wrong, message):
+    """boxes.h is checked at compile time: a shared output pin or an input out of its place."""
+    for source in FIRMWARE.glob("*.[ch]"):
+        shutil.copy(source, tmp_path)
+    boxes = (tmp_path / "boxes.h").read_text()
+    ports = boxes.index("PORTS_INPUT_PINS(X)")  # change the five-port box's lists only
+    assert line in boxes[ports:]
+    (tmp_path / "boxes.h").write_text(boxes[:ports] + boxes[ports:].replace(line, wrong, 1))
+    done = subprocess.run(["avr-gcc", "-mmcu=atmega328p", "-Os", "-DBOX_PORTS", "-c", "main_avr.c", "-o", "x.o"],
+                          cwd=tmp_path, capture_output=True, text=True, timeout=60)  # fmt: skip
+    assert done.returncode != 0 and f'static assertion failed: "{message}' in done.stderr, done.stderr
+
+
+@pytest.mark.skipif(shutil.which("make") is None, reason="make not installed")
+def test_an_unknown_box_is_one_line_from_make(tmp_path):
+    done = make("all", tmp_path, box="sixport")
+    assert done.returncode != 0
+    assert "BOX is ref (the reference box) or ports (the five-port box), not 'sixport'" in done.stderr
 
 
 def test_python_commands_are_carried_out_and_acknowledged(box_program):

@@ -13,6 +13,8 @@ from pathlib import Path
 
 import yaml
 
+from server.lab.supervisor import RUN_TIME_LIMIT
+
 ROOT = Path(__file__).resolve().parents[2]
 FAULTS = {"unplug_every_s": 10, "unplug_for_s": 2, "drop_rate": 0.02, "garbage_rate": 0.02}
 
@@ -37,7 +39,7 @@ def test_vigil_run_with_faults_on_every_box_loses_nothing(tmp_path):
     assert [box for _, box, _ in sessions] == [b["name"] for b in config["boxes"]]
     cut_trials = 0
     for session_id, box, reason in sessions:
-        assert reason == "time limit", box
+        assert reason == RUN_TIME_LIMIT, box
         kinds = [k for (k,) in conn.execute(
             "SELECT kind FROM events WHERE session_id = ? AND kind LIKE 'link_%' ORDER BY t",
             (session_id,))]  # fmt: skip

@@ -7,7 +7,7 @@ from __future__ import annotations
 import numpy as np
 
 from hardware_stubs.box_wire import RING, DeviceWire
-from server.link.host_side import DeviceRestarted, EdgeArrived, EventsLost, HostSide
+from server.link.host_side import CommandApplied, DeviceRestarted, EdgeArrived, EventsLost, HostSide
 from server.link.messages import Channel
 
 INPUTS = (Channel(0, "lever_press"), Channel(2, "head_entry"))
@@ -101,3 +101,33 @@ def test_a_restarted_device_keeps_stored_numbers_running_on():
     assert [(a.edge.seq, a.seq) for a in link.arrived] == [
         (1, 1), (2, 2), (3, 3), (4, 4), (5, 5), (1, 6), (2, 7), (3, 8)
     ]  # fmt: skip
+
+
+def _commands(link: BackToBack, count: int) -> list[CommandApplied]:
+    link.host.ask_identity(0.0)
+    link.run(0.5)
+    for k in range(count):
+        link.host.pulse(5, 30, link.t)
+        link.run(0.1)
+        link.host.drive(0, k % 2 == 0, link.t)
+        link.run(0.1)
+    link.run(3.0)
+    return [h for h in link.other if isinstance(h, CommandApplied)]
+
+
+def test_an_acknowledged_output_command_is_reported_with_the_device_time_of_its_ack():
+    applied = _commands(BackToBack(device(7)), 40)
+    assert [type(h.pending.command).__name__ for h in applied] == ["PulseCommand", "DriveCommand"] * 40
+    for h in applied:
+        # The device's clock is in step with virtual time here: it wrote the ack within a
+        # 10 ms exchange of the send, and the host's reading of that time is never in the future.
+        assert 0 <= h.device_us - round(h.pending.first_sent_s * 1e6) <= 20_000
+        # ... and the host's clock fit maps it back to within a 10 ms exchange of that
+        assert abs(h.host_s - h.device_us / 1e6) <= 0.01
+
+
+def test_with_lines_lost_each_acknowledged_command_is_reported_once():
+    applied = _commands(BackToBack(device(7), drop=0.2, seed=9), 40)
+    ids = [h.pending.command.command_id for h in applied]
+    assert len(ids) == len(set(ids)) > 40  # no queries, no replays, and no command twice
+    assert any(h.pending.attempts > 1 for h in applied)  # some were answered only after a resend

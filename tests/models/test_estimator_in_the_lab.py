@@ -28,7 +28,7 @@ def test_stored_estimates_replay_bit_for_bit_across_two_days(tmp_path):
           - name: bench-2
             animal: T-12
             protocol: {ROOT / "protocols" / "reversal.yaml"}
-            emulate: {{agent: q_learner, seed: 9, options: {{latency_s: 0.5}}}}
+            emulate: {{agent: q_learner, seed: 9, traits: {{latency_s: 0.5}}}}
         """)
     )
     for _ in range(2):

@@ -107,7 +107,7 @@ def test_pca_index_worked_examples():
 def test_streak_rule_fires_exactly_at_the_hand_computed_trial():
     # 8 consecutive correct (common practice reversal criterion). Hand-computed: correct x5,
     # error, correct x3, omission (skipped), correct x5 -> the 8th consecutive is trial 15.
-    protocol = protocol_with('rules:\n  - rule: eight\n    when: "streak >= 8"\n    then: {alarm: "eight in a row"}\n')
+    protocol = protocol_with('rules:\n  - rule: eight\n    when: "streak >= 8"\n    do: {alarm: "eight in a row"}\n')
     pattern = list("aaaaab") + list("aaa") + [None] + list("aaaaa") + list("aa")
     session, records = drive(protocol, pattern)
     fired = firings(records, "eight")
@@ -117,16 +117,14 @@ def test_streak_rule_fires_exactly_at_the_hand_computed_trial():
 
 
 def test_cooldown_blocks_refiring_for_n_trials():
-    protocol = protocol_with('rules:\n  - rule: r\n    when: "trials >= 3"\n    cooldown: 4\n    then: {alarm: x}\n')
+    protocol = protocol_with('rules:\n  - rule: r\n    when: "trials >= 3"\n    cooldown: 4\n    do: {alarm: x}\n')
     _, records = drive(protocol, list("a" * 14))
     assert [f.trial for f in firings(records)] == [3, 8, 13]
 
 
 def test_hysteresis_needs_k_consecutive_holds():
     # accuracy(2) >= 1 holds after trials 2,3 (aa), breaks at 4 (b), holds again 6,7,8...
-    protocol = protocol_with(
-        'rules:\n  - rule: r\n    when: "accuracy(2) >= 1"\n    hold_for: 3\n    then: {alarm: x}\n'
-    )
+    protocol = protocol_with('rules:\n  - rule: r\n    when: "accuracy(2) >= 1"\n    hold_for: 3\n    do: {alarm: x}\n')
     pattern = list("aaab") + list("aaaaaa")
     _, records = drive(protocol, pattern)
     # holds at trials 2,3 (run 2), breaks at 4 and 5 (window has the error), holds 6,7,8 -> fires at 8;
@@ -143,17 +141,17 @@ def test_condition_arithmetic_logic_and_unknown_values():
       - rule: arithmetic
         when: "accuracy(4) * 2 - 1 >= 0.5 and not omission_rate(4) > 0"
         max_firings: 1
-        then: {alarm: x}
+        do: {alarm: x}
       - rule: either
         when: "streak >= 3 or -streak <= -100"
         max_firings: 1
-        then: {alarm: y}
+        do: {alarm: y}
       - rule: unknown_window
         when: "accuracy(50) >= 0"
-        then: {alarm: z}
+        do: {alarm: z}
       - rule: by_zero
         when: "streak / (trials - trials) >= 0"
-        then: {alarm: w}
+        do: {alarm: w}
     """
     _, records = drive(protocol_with(rules), list("aabaaab"))
     fired = {(f.rule, f.trial) for f in firings(records)}
@@ -164,7 +162,7 @@ def test_condition_arithmetic_logic_and_unknown_values():
 
 
 def test_max_firings_per_session():
-    protocol = protocol_with('rules:\n  - rule: r\n    when: "trials >= 1"\n    max_firings: 2\n    then: {alarm: x}\n')
+    protocol = protocol_with('rules:\n  - rule: r\n    when: "trials >= 1"\n    max_firings: 2\n    do: {alarm: x}\n')
     _, records = drive(protocol, list("a" * 10))
     assert [f.trial for f in firings(records)] == [1, 2]
 
@@ -172,8 +170,8 @@ def test_max_firings_per_session():
 def test_two_reversal_rules_never_undo_each_other():
     protocol = protocol_with(
         "rules:\n"
-        '  - rule: first\n    when: "streak >= 3"\n    then: {reverse: [a, b]}\n'
-        '  - rule: second\n    when: "streak >= 3"\n    then: {reverse: [a, b]}\n'
+        '  - rule: first\n    when: "streak >= 3"\n    do: {reverse: [a, b]}\n'
+        '  - rule: second\n    when: "streak >= 3"\n    do: {reverse: [a, b]}\n'
     )
     session, records = drive(protocol, list("aaa") + list("bbb"))
     assert [(f.rule, f.trial) for f in firings(records)] == [("first", 3), ("first", 6)]
@@ -181,7 +179,7 @@ def test_two_reversal_rules_never_undo_each_other():
 
 
 def test_reversal_action_swaps_contingencies_and_resets_the_streak():
-    protocol = protocol_with('rules:\n  - rule: flip\n    when: "streak >= 4"\n    then: {reverse: [a, b]}\n')
+    protocol = protocol_with('rules:\n  - rule: flip\n    when: "streak >= 4"\n    do: {reverse: [a, b]}\n')
     session, records = drive(protocol, list("aaaa") + list("bbbb") + list("aa"))
     trials = [r for r in records if isinstance(r, TrialRecord) and not r.interrupted]
     assert [t.rewarded for t in trials] == [True] * 10  # a, then b, then a again pays
@@ -190,7 +188,7 @@ def test_reversal_action_swaps_contingencies_and_resets_the_streak():
 
 
 def test_windowed_metrics_need_a_full_window():
-    protocol = protocol_with('rules:\n  - rule: r\n    when: "omission_rate(4) >= 0.5"\n    then: {alarm: x}\n')
+    protocol = protocol_with('rules:\n  - rule: r\n    when: "omission_rate(4) >= 0.5"\n    do: {alarm: x}\n')
     _, records = drive(protocol, [None, None, None, "a", "a", "a"])
     # the window is full at trial 4 (3 of 4 omitted) -> fires at 4 and again at 5 (2 of 4)
     assert [f.trial for f in firings(records)] == [4, 5]
@@ -198,13 +196,13 @@ def test_windowed_metrics_need_a_full_window():
 
 def test_iti_never_leaves_its_bounds():
     protocol = protocol_with(
-        'iti_bounds: [3, 4]\nrules:\n  - rule: longer\n    when: "trials >= 1"\n    then: {scale_iti: 3}\n',
+        'iti_bounds: [3, 4]\nrules:\n  - rule: longer\n    when: "trials >= 1"\n    do: {scale_iti: 3}\n',
     )
     _, records = drive(protocol, list("ab" * 20))
     itis = [t.iti_s for t in records if isinstance(t, TrialRecord)][:-1]
     assert itis and all(3 <= x <= 4 for x in itis)
     protocol = protocol_with(
-        'iti_bounds: [1, 10]\nrules:\n  - rule: set\n    when: "trials >= 2"\n    then: {set_iti: 7.5}\n'
+        'iti_bounds: [1, 10]\nrules:\n  - rule: set\n    when: "trials >= 2"\n    do: {set_iti: 7.5}\n'
     )
     _, records = drive(protocol, list("a" * 6))
     itis = [t.iti_s for t in records if isinstance(t, TrialRecord)]
@@ -212,7 +210,7 @@ def test_iti_never_leaves_its_bounds():
 
 
 def test_devaluation_probe_delivers_no_outcome_and_ends_on_time():
-    protocol = protocol_with('rules:\n  - rule: probe\n    when: "rewards >= 3"\n    then: {probe: {minutes: 1}}\n')
+    protocol = protocol_with('rules:\n  - rule: probe\n    when: "rewards >= 3"\n    do: {probe: {minutes: 1}}\n')
     session, records = drive(protocol, list("a" * 40))
     trials = [r for r in records if isinstance(r, TrialRecord)]
     probe = [t for t in trials if t.block.endswith(":probe")]
@@ -226,7 +224,7 @@ def test_devaluation_probe_delivers_no_outcome_and_ends_on_time():
 
 def test_end_session_action():
     protocol = protocol_with(
-        'rules:\n  - rule: done\n    when: "rewarded_responses >= 2"\n    then: {end_session: "enough"}\n'
+        'rules:\n  - rule: done\n    when: "rewarded_responses >= 2"\n    do: {end_session: "enough"}\n'
     )
     session, _ = drive(protocol, list("baab"))
     assert session.end_reason == "rule done: enough" and session.trials_done == 3
@@ -234,7 +232,7 @@ def test_end_session_action():
 
 def test_settings_can_differ_per_animal():
     protocol = protocol_with(
-        'settings: {target: 5}\nrules:\n  - rule: r\n    when: "rewards >= target"\n    then: {end_session: "target"}\n'
+        'settings: {target: 5}\nrules:\n  - rule: r\n    when: "rewards >= target"\n    do: {end_session: "target"}\n'
     )
     session, _ = drive(protocol, list("a" * 10))
     assert session.rewards == 5
@@ -250,7 +248,7 @@ def test_settings_can_differ_per_animal():
 def test_malformed_rule_is_a_clear_check_error(tmp_path):
     bad = tmp_path / "bad.yaml"
     bad.write_text(
-        BASE + 'rules:\n  - rule: r\n    when: "streek >= 8 and accuracy > 0.5"\n    then: {reverse: [a, c]}\n'
+        BASE + 'rules:\n  - rule: r\n    when: "streek >= 8 and accuracy > 0.5"\n    do: {reverse: [a, c]}\n'
     )
     result = subprocess.run([sys.executable, "-m", "server.cli", "check", str(bad)],
                             capture_output=True, text=True, cwd=ROOT)  # fmt: skip
@@ -277,12 +275,12 @@ def test_malformed_rule_is_a_clear_check_error(tmp_path):
 )
 def test_expression_errors(when, message):
     with pytest.raises(InvalidFile, match=re.escape(message)):
-        protocol_with(f'rules:\n  - rule: r\n    when: "{when}"\n    then: {{alarm: x}}\n')
+        protocol_with(f'rules:\n  - rule: r\n    when: "{when}"\n    do: {{alarm: x}}\n')
 
 
 def test_iti_actions_need_declared_bounds():
     with pytest.raises(InvalidFile, match="declare iti_bounds"):
-        protocol_with('rules:\n  - rule: r\n    when: "trials > 1"\n    then: {scale_iti: 2}\n')
+        protocol_with('rules:\n  - rule: r\n    when: "trials > 1"\n    do: {scale_iti: 2}\n')
 
 
 # ------------------------------------------------------------------ rehearsal with rules on

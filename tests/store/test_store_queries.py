@@ -10,7 +10,7 @@ import pytest
 from store_samples import BOTH_BACKENDS, make_trial
 
 from server.engine.records import EventLogged, SessionEnded
-from server.store import queries
+from server.store import csv_exports, queries
 
 pytestmark = BOTH_BACKENDS
 
@@ -90,23 +90,37 @@ def test_trials_after_a_given_trial(lab):
     assert later[1]["omission"] is True and later[1]["rewarded"] is False
 
 
-def test_trials_csv_reads_back_to_the_stored_trials(lab):
+def test_trials_csv_spreads_json_columns_and_rounds_times(lab):
     out = io.StringIO()
-    assert queries.export_trials_csv(lab["conn"], lab["second"], out) == 6
+    assert csv_exports.export_trials_csv(lab["conn"], lab["second"], out) == 6
     parsed = list(csv.DictReader(io.StringIO(out.getvalue())))
     assert [int(r["trial"]) for r in parsed] == [1, 2, 3, 4, 5, 6]
+    # No JSON in a cell, but for a list inside the protocol's own `extra` values.
+    assert not any(v.startswith(("{", "[")) for r in parsed for k, v in r.items() if k != "extra.draws")
     for row, trial in zip(parsed, (make_trial(n, correct=n > 1, omission=n == 6) for n in range(1, 7))):
-        assert float(row["t_end"]) == trial.t_end
-        assert float(row["latency_s"]) == trial.latency_s
+        assert row["session_id"] == str(lab["second"])
+        assert row["t_end"] == f"{trial.t_end:.3f}"
+        assert row["latency_s"] == f"{round(trial.latency_s, 3):.3f}"  # 1 + n/7 has many digits
         assert row["choice"] == trial.choice
         assert int(row["correct"]) == trial.correct
-        assert json.loads(row["steps"]) == [list(s) for s in trial.steps]
-        assert json.loads(row["extra"]) == trial.extra
+        # per-input counts as columns; steps as their entry times; extra's keys as columns
+        assert {k: int(row[f"counts.{k}"]) for k in trial.counts} == trial.counts
+        assert (row["responses.press_left"], row["responses.head_entry"]) == ("2", "1")
+        assert row["first_s.press_left"] == f"{trial.first_s['press_left']:.3f}"
+        assert [float(row[f"steps.{name}"]) for name, _ in trial.steps] == [round(t, 3) for _, t in trial.steps]
+        assert row["extra.note"] == trial.extra["note"]
+        assert json.loads(row["extra.draws"]) == trial.extra["draws"]
+
+
+def test_trials_csv_of_a_session_without_trials_has_a_header(lab):
+    out = io.StringIO()
+    assert csv_exports.export_trials_csv(lab["conn"], lab["other_rat"], out) == 0
+    assert out.getvalue().startswith("session_id,trial,block,")
 
 
 def test_events_csv_keeps_empty_fields_empty(lab):
     out = io.StringIO()
-    assert queries.export_events_csv(lab["conn"], lab["mouse"], out) == 30
+    assert csv_exports.export_events_csv(lab["conn"], lab["mouse"], out) == 30
     lines = out.getvalue().splitlines()
     assert lines[0] == "id,session_id,kind,name,value,t,device_t_us,device_seq,detail"
     first = next(csv.DictReader(io.StringIO(out.getvalue())))
@@ -116,11 +130,16 @@ def test_events_csv_keeps_empty_fields_empty(lab):
 def test_choices_csv_uses_the_fitting_format(lab):
     # Header from DESIGN.md: animal,session,trial,choice,reward; empty choice = omission.
     out = io.StringIO()
-    assert queries.export_choices_csv(lab["conn"], out, animal="R-117") == 9
+    assert csv_exports.export_choices_csv(lab["conn"], out, animal="R-117") == 9
     rows = list(csv.reader(io.StringIO(out.getvalue())))
     assert rows[0] == ["animal", "session", "trial", "choice", "reward"]
     assert rows[1] == ["R-117", str(lab["first"]), "1", "left", "1.0"]
     assert rows[3] == ["R-117", str(lab["first"]), "3", "right", "1.0"]
+    # trial 6 of the second night is an omission: no choice, whatever the record's label
+    assert rows[-1] == ["R-117", str(lab["second"]), "6", "", "0.0"]
+    one = io.StringIO()
+    assert csv_exports.export_choices_csv(lab["conn"], one, session_id=lab["second"]) == 6
+    assert one.getvalue().splitlines()[1:] == out.getvalue().splitlines()[4:]
 
 
 def test_readers_cannot_write(lab):

@@ -7,7 +7,7 @@ import sqlite3
 
 import pytest
 
-from server.engine.records import BlockStarted, EventLogged, TrialRecord
+from server.engine.records import BlockStarted, EventLogged, SecondStage, TrialRecord
 from server.store import MIGRATIONS, Store, StoreError, migrate, schema_version
 from server.store.schema import Migration, latest_version, statements
 
@@ -24,8 +24,18 @@ def test_new_database_is_at_latest_version_with_every_table(store):
 
 def test_tables_hold_every_field_of_the_records(store):
     # The records are the contract with the engine: a field without a column would be lost.
-    trial_fields = [f.name for f in dataclasses.fields(TrialRecord)]
-    assert columns(store.conn, "trials") == ["session_id", *trial_fields]
+    trial_fields = [f.name for f in dataclasses.fields(TrialRecord) if f.name != "second"]
+    # A two-stage trial's second stage is stored flat, one column per field.
+    second_columns = {
+        "state": "state",
+        "common": "transition",
+        "choice": "choice2",
+        "response": "response2",
+        "latency_s": "latency2_s",
+        "omitted": "omitted2",
+    }
+    assert set(second_columns) == {f.name for f in dataclasses.fields(SecondStage)}
+    assert columns(store.conn, "trials") == ["session_id", *trial_fields, *second_columns.values()]
     event_fields = {f.name for f in dataclasses.fields(EventLogged)}
     assert event_fields <= set(columns(store.conn, "events"))
     block_fields = {f.name for f in dataclasses.fields(BlockStarted)} - {"t"}

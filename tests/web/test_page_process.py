@@ -23,7 +23,7 @@ from web_samples import EVIL_BOX, OPERATOR, lab_config, tile_of, until, until_ti
 
 from server.lab.config import load_lab
 from server.lab.page_process import run_lab_with_page, start_page
-from server.lab.supervisor import Lab
+from server.lab.supervisor import RUN_TIME_LIMIT, Lab
 from server.store.writer import Store
 
 HERE = Path(__file__).resolve().parent
@@ -210,6 +210,6 @@ def test_a_busy_port_is_one_warning_and_the_sessions_run_without_a_page(tmp_path
     assert [line for line in said if "status page" in line] == [
         f"warning: status page not started: cannot listen on 127.0.0.1:{port}: the port is already in use"
     ]
-    assert [run.ended.reason for run in runs] == ["time limit", "time limit"]
+    assert [run.ended.reason for run in runs] == [RUN_TIME_LIMIT, RUN_TIME_LIMIT]
     with pytest.raises(AssertionError, match="no status page process"):
         page_process_of(os.getpid())

@@ -60,16 +60,19 @@ def record_session(
     estimates: bool = False,
     started_at: str = STARTED,
     end: bool = True,
+    subject: dict | None = None,
     **agent_options,
 ) -> int:
     """Run one session in virtual time, closed loop as the lab runs it (estimator and rules
     when asked for estimates), and store every record; returns the session id. With
-    `end=False` the session's end is not stored, as if it were still running."""
+    `end=False` the session's end is not stored, as if it were still running; `subject` is
+    stored with the session's settings as the lab stores a box's `subject` keys."""
     protocol = load_protocol(protocol_path)
     session = build_session(protocol, seed, HardCaps(max_rewards=250, max_minutes=minutes), estimate=estimates)
     box_ = EmulatedBox(protocol.wiring, make_agent(agent, **agent_options), np.random.default_rng(seed))
+    settings = wiring_settings(protocol) | ({"subject": subject} if subject is not None else {})
     sid = store.begin_session(
-        box, animal, protocol.name, str(protocol_path), protocol.sha256, seed, started_at, wiring_settings(protocol)
+        box, animal, protocol.name, str(protocol_path), protocol.sha256, seed, started_at, settings
     )
 
     def on_records(records):
@@ -100,7 +103,7 @@ boxes:
   - name: rig-5b
     animal: RV-0032
     protocol: {REPO / "protocols" / "reversal.yaml"}
-    emulate: {{agent: q_learner, seed: 78, options: {{alpha: 0.3, beta: 5.0}}}}
+    emulate: {{agent: q_learner, seed: 78, traits: {{alpha: 0.3, beta: 5.0}}}}
 """,
         encoding="utf-8",
     )
