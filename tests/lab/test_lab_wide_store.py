@@ -68,7 +68,7 @@ def test_two_rigs_write_one_store_at_once_and_one_page_shows_both(pg_cluster, tm
     assert len(sessions) == 4
     for session_id, rig, _box, reason in sessions:
         assert session_id // ID_RANGE == rigs[rig]  # each rig's ids in its own range
-        assert reason == "time limit"
+        assert reason == "run time limit (--minutes)"
     for rig in ("west", "east"):
         assert_server_holds_the_spool(url, tmp_path / f"spool-{rig}.sqlite")
     store = ReadOnlyStore(url)
