@@ -67,18 +67,28 @@ def _run_lab(config, db_path: str, minutes: float | None, port: int | None = Non
     from server.cli.reports import summary_table
     from server.lab.page_process import run_lab_with_page
     from server.lab.supervisor import Lab
+    from server.store.dialect import is_server_url
     from server.store.errors import StoreError
-    from server.store.writer import Store
+    from server.store.lab_store import default_spool, open_lab_store
+    from server.store.postgres import redact
 
+    spool = None
+    if is_server_url(db_path):
+        spool = config.spool or default_spool(config.lab, Path(config.source).parent)
     try:
-        store = Store.open(db_path)
+        store, forwarder = open_lab_store(db_path, rig=config.lab, spool=spool)
     except StoreError as exc:
         _err(str(exc))
         return 1
-    print(f"database: {Path(db_path).resolve()}")
-    lab = Lab(config, store)
+    if forwarder is not None:
+        print(f"database: {redact(db_path)} (rig '{config.lab}', spool {Path(store.path).resolve()})")
+    else:
+        print(f"database: {Path(db_path).resolve()}")
+    lab = Lab(config, store, forwarder=forwarder)
     try:
-        runs = asyncio.run(run_lab_with_page(lab, db_path, config.web, minutes=minutes, port=port))
+        # The page beside a lab reads the rig's own store: the spool, reachable whatever the server does.
+        page_db = str(store.path)
+        runs = asyncio.run(run_lab_with_page(lab, page_db, config.web, minutes=minutes, port=port))
     except Exception as exc:
         _err(f"run failed: {exc}")
         return 1
@@ -294,7 +304,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = verbs.add_parser("run", help="run every box of a lab config")
     p.add_argument("config", metavar="CONFIG")
-    p.add_argument("--db", metavar="PATH", help="SQLite database (default: the config's)")
+    p.add_argument(
+        "--db", metavar="PATH|URL", help="SQLite database or postgresql:// URL (default: the config's `database`)"
+    )
     p.add_argument("--minutes", type=_minutes, metavar="M", help="end sessions after M minutes")
     p.add_argument("--port", type=_port, metavar="P", help="status page port (default: the config's)")
     p.set_defaults(func=cmd_run)
@@ -307,7 +319,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_demo)
 
     p = verbs.add_parser("serve", help="the status page over a database, read-only")
-    p.add_argument("--db", required=True, metavar="PATH", help="SQLite database to show")
+    p.add_argument(
+        "--db", required=True, metavar="PATH|URL", help="SQLite database or postgresql:// URL (every rig's boxes)"
+    )
     p.add_argument("--port", type=_port, default=8642, metavar="P")
     p.add_argument(
         "--host",

@@ -13,7 +13,11 @@ from collections.abc import Iterator, Sequence
 from pathlib import Path
 
 from server.models.trials import AnimalTrials, encode_animal
+from server.store.dialect import database_errors, is_server_url, reason
+from server.store.errors import StoreError
 from server.store.history import PastTrial, trial_history
+from server.store.postgres import redact
+from server.store.queries import open_readonly
 
 HEADER = ["animal", "session", "trial", "choice", "reward"]
 TWO_STAGE_HEADER = ["animal", "session", "trial", "choice", "transition", "state", "choice2", "reward"]
@@ -116,7 +120,10 @@ def _parse_csv(path: str, fh) -> list[AnimalTrials]:
 
 def read_history(path: str, animals: Sequence[str] | None, two_stage: bool = False) -> list[PastTrial]:
     """The stored trials of the given animals (all when None), read-only; with `two_stage`,
-    each trial's second stage too (a database from before two-stage trials has none)."""
+    each trial's second stage too (a database from before two-stage trials has none).
+    `path` is a SQLite file or a lab-wide store's PostgreSQL URL."""
+    if is_server_url(path):
+        return _server_history(path, animals, two_stage)
     if not Path(path).is_file():
         raise FitInputError(f"{path}: no such database file")
     uri = Path(path).resolve().as_uri() + "?mode=ro"
@@ -133,6 +140,19 @@ def read_history(path: str, animals: Sequence[str] | None, two_stage: bool = Fal
             raise FitInputError(f"{path}: cannot read trials: {exc}") from None
         except sqlite3.Error as exc:
             raise FitInputError(f"{path}: cannot read trials: {exc}") from None
+    finally:
+        con.close()
+
+
+def _server_history(url: str, animals: Sequence[str] | None, two_stage: bool) -> list[PastTrial]:
+    try:
+        con = open_readonly(url)
+    except StoreError as exc:
+        raise FitInputError(str(exc)) from None
+    try:
+        return trial_history(con, animals=animals, two_stage=two_stage)
+    except database_errors(con) as exc:
+        raise FitInputError(f"{redact(url)}: cannot read trials: {reason(exc)}") from None
     finally:
         con.close()
 

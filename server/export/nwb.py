@@ -22,7 +22,6 @@ import hashlib
 import json
 import os
 import re
-import sqlite3
 import uuid
 from collections.abc import Mapping
 from dataclasses import dataclass
@@ -38,6 +37,7 @@ from server.export.columns import columns_of, flatten, typed
 from server.export.nwb_events import add_events
 from server.export.nwb_tables import events_table, intervals, json_and_keys, vectors
 from server.store import queries, rows
+from server.store.dialect import Connection
 from server.store.export_reads import export_session_ids, last_stored_t, trial_table
 
 # Vigil's own namespace for file identifiers: the same session always gets the same one.
@@ -129,7 +129,7 @@ def write(nwbfile: NWBFile, path: Path) -> None:
         part.unlink(missing_ok=True)
 
 
-def session_file(conn: sqlite3.Connection, session_id: int) -> tuple[NWBFile, tuple[int, int]]:
+def session_file(conn: Connection, session_id: int) -> tuple[NWBFile, tuple[int, int]]:
     """The session as an NWBFile in memory, with its (trial, event) counts."""
     session = queries.get_session(conn, session_id)
     assert session is not None
@@ -180,7 +180,7 @@ def session_file(conn: sqlite3.Connection, session_id: int) -> tuple[NWBFile, tu
 # ---------------------------------------------------------------- metadata
 
 
-def _end_t(conn: sqlite3.Connection, session: Mapping[str, Any], start: datetime) -> float:
+def _end_t(conn: Connection, session: Mapping[str, Any], start: datetime) -> float:
     last = last_stored_t(conn, session["id"])
     if session["ended_at"]:
         ended = rows.parse_wall_time(session["ended_at"], "ended_at")
@@ -217,7 +217,7 @@ def _subject(animal: str, given: Mapping[str, Any], start: datetime) -> Subject:
 # ---------------------------------------------------------------- tables
 
 
-def _trials(conn: sqlite3.Connection, nwbfile: NWBFile, session_id: int) -> list[dict[str, Any]]:
+def _trials(conn: Connection, nwbfile: NWBFile, session_id: int) -> list[dict[str, Any]]:
     """The trials table: every stored column, JSON columns also spread into one per key."""
     columns, found = trial_table(conn, session_id)
     names = [name for name, _ in columns]
@@ -246,7 +246,7 @@ def _trials(conn: sqlite3.Connection, nwbfile: NWBFile, session_id: int) -> list
     return records
 
 
-def _blocks(conn: sqlite3.Connection, nwbfile: NWBFile, session_id: int, end_t: float) -> None:
+def _blocks(conn: Connection, nwbfile: NWBFile, session_id: int, end_t: float) -> None:
     found = queries.session_blocks(conn, session_id)
     if not found:
         return
@@ -262,7 +262,7 @@ def _blocks(conn: sqlite3.Connection, nwbfile: NWBFile, session_id: int, end_t: 
     nwbfile.add_time_intervals(table)
 
 
-def _rule_firings(conn: sqlite3.Connection, nwbfile: NWBFile, session_id: int) -> None:
+def _rule_firings(conn: Connection, nwbfile: NWBFile, session_id: int) -> None:
     found = queries.session_rule_firings(conn, session_id)
     if not found:
         return
@@ -276,7 +276,7 @@ def _rule_firings(conn: sqlite3.Connection, nwbfile: NWBFile, session_id: int) -
     nwbfile.add_events_table(table)
 
 
-def _annotations(conn: sqlite3.Connection, nwbfile: NWBFile, session_id: int, start: datetime) -> None:
+def _annotations(conn: Connection, nwbfile: NWBFile, session_id: int, start: datetime) -> None:
     found = queries.session_annotations(conn, session_id)
     if not found:
         return
@@ -292,7 +292,7 @@ def _annotations(conn: sqlite3.Connection, nwbfile: NWBFile, session_id: int, st
     )
 
 
-def _estimates(conn: sqlite3.Connection, nwbfile: NWBFile, session_id: int, trials: list[dict[str, Any]]) -> None:
+def _estimates(conn: Connection, nwbfile: NWBFile, session_id: int, trials: list[dict[str, Any]]) -> None:
     found = queries.session_estimates(conn, session_id)
     if not found:
         return

@@ -3,7 +3,6 @@ output's pulses as a series of their own (what a lab aligns a neural recording w
 
 from __future__ import annotations
 
-import sqlite3
 from collections.abc import Mapping
 from typing import Any
 
@@ -12,6 +11,7 @@ from pynwb import NWBFile, TimeSeries
 
 from server.export.columns import columns_of
 from server.export.nwb_tables import events_table, hdf5_name
+from server.store.dialect import Connection
 from server.store.export_reads import event_table
 
 NO_DEVICE_TIME = -1  # device_t_us / device_seq of an event the host originated
@@ -38,7 +38,7 @@ EVENT_NOTES = {
 _SUBJECT_OF = {"input": "input", "output": "output", "pulse": "output", "step": "step", "block": "block"}
 
 
-def add_events(conn: sqlite3.Connection, nwbfile: NWBFile, session_id: int, wiring: Mapping[str, Any]) -> int:
+def add_events(conn: Connection, nwbfile: NWBFile, session_id: int, wiring: Mapping[str, Any]) -> int:
     """One events table per stored kind, every event in it; each sync output's pulses as a series."""
     columns, found = event_table(conn, session_id)
     at = {name: i for i, (name, _) in enumerate(columns)}

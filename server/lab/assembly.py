@@ -8,7 +8,6 @@ what runs.
 
 from __future__ import annotations
 
-import sqlite3
 from collections.abc import Mapping
 from typing import Any
 
@@ -17,6 +16,7 @@ from server.engine.session import Session
 from server.models.online import AnyEstimator, estimator_from_state, make_online_estimator, replay_estimator
 from server.protocol.model import Protocol
 from server.rules.book import RuleBook
+from server.store.dialect import Connection
 from server.store.history import trial_history
 
 
@@ -44,7 +44,7 @@ def choice_trial_types(protocol: Protocol) -> set[str]:
     return {t.name for t in protocol.trial_types.values() if any(step.choose for step in t.steps)}
 
 
-def animal_estimator_state(conn: sqlite3.Connection, animal: str, protocol: Protocol) -> dict[str, Any] | None:
+def animal_estimator_state(conn: Connection, animal: str, protocol: Protocol) -> dict[str, Any] | None:
     """The animal's estimator state at the end of its earlier sessions of this protocol,
     rebuilt by replaying their stored choice trials (exactly the live updates, in order)."""
     if protocol.estimator is None:

@@ -19,8 +19,10 @@ from server.protocol.marked import Mark, Marked, load_marked
 from server.protocol.model import Protocol
 from server.protocol.problems import InvalidFile, Problem
 from server.protocol.reader import Reader, did_you_mean
+from server.store.dialect import is_server_url
+from server.store.lab_store import default_spool
 
-TOP_KEYS = ("lab", "database", "caps", "subject", "boxes", "web", "alarms")
+TOP_KEYS = ("lab", "database", "spool", "caps", "subject", "boxes", "web", "alarms")
 BOX_KEYS = ("name", "animal", "subject", "protocol", "stages", "settings", "port", "emulate", "seed")
 STAGE_KEYS = ("protocol", "advance")
 ADVANCE_KEYS = ("sessions", "min_accuracy", "min_trials", "min_rewards", "max_omission_rate")
@@ -61,13 +63,14 @@ class BoxConfig:
 @dataclass(frozen=True)
 class LabConfig:
     source: str
-    lab: str
-    database: Path
+    lab: str  # the rig's name in a lab-wide store (shown on its tiles)
+    database: Path | str  # a SQLite file, or a PostgreSQL URL (str)
     caps: HardCaps
     boxes: tuple[BoxConfig, ...]
     web: WebSettings = WebSettings()
     warnings: tuple[Problem, ...] = ()  # old spellings read, here and in its protocols
     alarms: AlarmSettings = AlarmSettings()
+    spool: Path | None = None  # with a PostgreSQL URL: the rig's local spool (default beside the config)
 
 
 def is_lab_config(path: str | Path) -> bool:
@@ -109,9 +112,14 @@ class _LabReader(Reader):
         if top is None:
             return None
         name = self.text(top["lab"], "lab") if "lab" in top else "lab"
-        database = (
-            self.base / (self.text(top["database"], "database") or "") if "database" in top else Path("vigil.sqlite")
-        )
+        database = self.database(top.get("database"))
+        spool = None
+        if "spool" in top:
+            spool_text = self.text(top["spool"], "spool")
+            if spool_text and is_server_url(spool_text):
+                self.error(top["spool"].mark, "spool: is the rig's local SQLite file, not a server URL")
+            elif spool_text:
+                spool = self.base / spool_text
         caps = self.caps(top.get("caps"))
         lab_subject = read_subject(self, top.get("subject"), "subject")
         boxes: list[BoxConfig] = []
@@ -139,8 +147,26 @@ class _LabReader(Reader):
         web = read_web(self, top.get("web"))
         protocols = [p for p in self._protocols.values() if p is not None]
         warnings = tuple(self.warnings) + tuple(w for p in protocols for w in p.warnings)
+        if spool is None and is_server_url(database):
+            spool = default_spool(name or "lab", self.base)
         alarms = read_alarms(self, top.get("alarms"))
-        return LabConfig(file, name or "lab", database, caps, tuple(boxes), web, warnings=warnings, alarms=alarms)
+        return LabConfig(
+            file, name or "lab", database, caps, tuple(boxes), web, warnings=warnings, alarms=alarms, spool=spool
+        )
+
+    def database(self, node: Marked | None) -> Path | str:
+        """A SQLite path (relative to the config) or a PostgreSQL URL, kept as written."""
+        if node is None:
+            return Path("vigil.sqlite")
+        text = self.text(node, "database") or ""
+        if is_server_url(text):
+            return text
+        if "://" in text:
+            scheme = text.split("://", 1)[0]
+            self.error(
+                node.mark, f"database: '{scheme}://' is not a store vigil knows; use a file path or postgresql://"
+            )
+        return self.base / text
 
     def caps(self, node: Marked | None) -> HardCaps:
         f = self.mapping(node, "caps", ("max_rewards", "max_minutes"))

@@ -46,6 +46,8 @@ class FedLab(Protocol):
     def control(self, box: str, action: ControlAction, origin: str) -> None: ...
     def annotate(self, box: str, text: str, origin: str) -> int: ...
 
+    def store_line(self) -> str | None: ...
+
 
 class FeedBuilder:
     """Feed lines from the lab's runs, `None` when no tile changed since the last line.
@@ -67,6 +69,7 @@ class FeedBuilder:
         self._json: list[bytes] = []
         self._next = 0  # where the rotating sweep goes on
         self._unsent = True
+        self._store: str | None = None
 
     def line(self) -> bytes | None:
         runs = self.lab.runs
@@ -87,12 +90,17 @@ class FeedBuilder:
                     self._facts[i] = facts
                     self._json[i] = JSON.encode(facts).encode("utf-8")
                     self._unsent = True
+        store = self.lab.store_line()
+        if store != self._store:
+            self._store = store
+            self._unsent = True
         if not self._unsent:
             return None
         self._unsent = False
         # Every run reads the lab's one session clock: "now" goes once, beside the facts.
         t = JSON.encode(self.lab.clock() if runs else 0.0).encode("ascii")
-        return b'{"feed":{"t":' + t + b',"boxes":[' + b",".join(self._json) + b"]}}\n"
+        extra = b"" if store is None else b',"store":' + JSON.encode(store).encode("utf-8")
+        return b'{"feed":{"t":' + t + extra + b',"boxes":[' + b",".join(self._json) + b"]}}\n"
 
     def resend(self) -> None:
         """Send the next feed even if nothing changed (the last one was dropped)."""

@@ -31,6 +31,7 @@ from server.lab.stages import StageKeeper
 from server.lab.status import BoxFacts, BoxStatus, box_facts
 from server.link.handshake import LinkError
 from server.store.background import BackgroundWriter
+from server.store.forwarder import Forwarder, StoreLink
 from server.store.wall_clock import wall_now
 from server.store.writer import Store
 
@@ -86,11 +87,13 @@ class Lab:
         in_process_boxes: bool = False,
         alarm_senders: Mapping[int, Callable[[Outgoing], None]] | None = None,
         store_problem: Callable[[], str | None] | None = None,
+        forwarder: Forwarder | None = None,
     ):
         """`store_problem` says why the store cannot take records now (None when it can); by
         default the last failed commit. `alarm_senders` replaces channels' send functions."""
         self.config = config
-        self.store = store
+        self.store = store  # with a lab-wide store: the rig's spool
+        self.forwarder = forwarder  # carries the spool to the lab-wide store; polls its controls
         self.writer = BackgroundWriter(store, say)  # commits off the event loop
         self.say = say
         self.in_process_boxes = in_process_boxes  # emulated boxes without serial (tests)
@@ -155,6 +158,29 @@ class Lab:
         with self.writer.direct() as store:
             return store.write_annotation(run.session_id, text, origin, t=t, wall_time=wall_now())
 
+    def store_link(self) -> StoreLink | None:
+        """The rig's link to a lab-wide store (reachable, waiting, unreachable since), None
+        with a local store only: what a "store unreachable" alarm reads."""
+        return None if self.forwarder is None else self.forwarder.status()
+
+    def store_line(self) -> str | None:
+        """The page's store line ("store: forwarding 12"), None with a local store only."""
+        link = self.store_link()
+        return None if link is None else link.text()
+
+    def _remote_control(self, control: dict[str, Any]) -> None:
+        """A control asked through the lab-wide store (`vigil serve`'s page): applied here on
+        the lab's loop like the page's own, answered back through the forwarder."""
+        from server.lab.page_feed import answer
+
+        ask = {**control, "origin": f"{control['origin']} via the lab-wide store"}
+        try:
+            reply = answer(self, ask)
+        except Exception as exc:  # a failing control must not end the lab
+            reply = {"status": 500, "detail": f"{type(exc).__name__}: {exc}"}
+        assert self.forwarder is not None
+        self.forwarder.answered(int(control["id"]), reply)
+
     def _publisher(self, box: BoxConfig, session_id: int, status: BoxStatus) -> Callable[[list[Record]], None]:
         def publish(records: list[Record]) -> None:
             for record in records:
@@ -209,6 +235,13 @@ class Lab:
         with on_stop_signals(loop, lambda sig: self.stop_all(f"stopped by signal ({sig.name})")):
             self.writer.start()
             self.alarms.start()
+            if self.forwarder is not None:
+
+                def hand_over(control: dict[str, Any]) -> None:
+                    loop.call_soon_threadsafe(self._remote_control, control)
+
+                self.forwarder.on_control = hand_over
+                self.forwarder.start()
             limit = asyncio.create_task(self._time_limit(minutes)) if minutes else None
             link_tasks = [asyncio.create_task(run.link.run()) for run in self.runs]
             link_tasks.append(asyncio.create_task(self._watch_alarms(self.alarms)))
@@ -230,6 +263,10 @@ class Lab:
                     self.writer.close()  # everything queued is committed before the lab returns
                 finally:
                     await self._last_alarms(self.alarms)
+                    if self.forwarder is not None:
+                        left = self.forwarder.stop()
+                        if left.waiting:
+                            self.say(f"{left.text()}: kept in the spool, forwarded at the next start")
         return self.runs
 
     async def _watch_alarms(self, desk: AlarmDesk) -> None:
@@ -318,8 +355,11 @@ class Lab:
         self.stop_all(RUN_TIME_LIMIT)
 
 
-def free_mb(database: Path) -> float | None:
-    """Free space for an unprivileged writer on the database's filesystem, in MB (None if unknown)."""
+def free_mb(database: Path | str) -> float | None:
+    """Free space for an unprivileged writer on the database's filesystem, in MB (None if
+    unknown, or for a server's URL: a rig writes to its local spool file, a Path)."""
+    if isinstance(database, str) and "://" in database:
+        return None
     try:
         return shutil.disk_usage(Path(database).resolve().parent).free / 1e6
     except OSError:

@@ -5,11 +5,11 @@ from __future__ import annotations
 
 import csv
 import json
-import sqlite3
 from collections.abc import Iterable, Sequence
 from typing import Any, TextIO
 
 from server.store import rows
+from server.store.dialect import Connection
 from server.store.export_reads import trial_table
 from server.store.history import trial_history
 
@@ -59,7 +59,7 @@ def _spread(name: str, value: Any) -> dict[str, Any]:
     return {name: None if value is None else json.dumps(value, sort_keys=True)}
 
 
-def export_trials_csv(conn: sqlite3.Connection, session_id: int, fileobj: TextIO) -> int:
+def export_trials_csv(conn: Connection, session_id: int, fileobj: TextIO) -> int:
     """Write the session's trials as CSV; return the row count.
 
     Every column of the trials table, whatever migrations added; JSON columns are spread
@@ -89,7 +89,7 @@ def export_trials_csv(conn: sqlite3.Connection, session_id: int, fileobj: TextIO
     return _write_csv(cells, fields, fileobj)
 
 
-def export_events_csv(conn: sqlite3.Connection, session_id: int, fileobj: TextIO) -> int:
+def export_events_csv(conn: Connection, session_id: int, fileobj: TextIO) -> int:
     """Write the session's events as CSV in stored order (JSON detail as its text); return the row count."""
     cursor = conn.execute(
         f"SELECT {', '.join(rows.EVENT_COLUMNS)} FROM events WHERE session_id = ? ORDER BY id",
@@ -99,7 +99,7 @@ def export_events_csv(conn: sqlite3.Connection, session_id: int, fileobj: TextIO
 
 
 def export_choices_csv(
-    conn: sqlite3.Connection, fileobj: TextIO, *, animal: str | None = None, session_id: int | None = None
+    conn: Connection, fileobj: TextIO, *, animal: str | None = None, session_id: int | None = None
 ) -> int:
     """Write trials in the fitting format `animal,session,trial,choice,reward` (DESIGN.md):
     every trial of the animal (or of one session, or of every animal), sessions in the

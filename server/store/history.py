@@ -7,12 +7,12 @@ in which order (sessions in the order they started, trials in order within each)
 
 from __future__ import annotations
 
-import sqlite3
 from collections.abc import Collection, Sequence
 from dataclasses import dataclass
 
 from server.engine.records import SecondStage
 from server.store import rows
+from server.store.dialect import Connection
 
 
 @dataclass(frozen=True, slots=True)
@@ -27,7 +27,7 @@ class PastTrial:
 
 
 def trial_history(
-    conn: sqlite3.Connection,
+    conn: Connection,
     *,
     animals: Sequence[str] | None = None,
     protocol: str | None = None,

@@ -1,7 +1,8 @@
 """Read-only views of a Vigil database for the status page, the CLI and exports.
 
 Readers open the file read-only, so a web page or a report can never disturb the writer;
-in WAL mode they see every committed transaction without blocking it.
+in WAL mode they see every committed transaction without blocking it. A PostgreSQL URL
+opens a read-only session on the server instead; the queries are the same.
 """
 
 from __future__ import annotations
@@ -12,13 +13,17 @@ from typing import Any
 from urllib.request import pathname2url
 
 from server.engine.records import TrialRecord
-from server.store import rows
+from server.store import dialect, rows
+from server.store.dialect import Connection, is_server_url
 from server.store.errors import StoreError, sqlite_reason
 from server.store.schema import latest_version, schema_version
 
 
-def open_readonly(path: str | Path, *, check_same_thread: bool = True) -> sqlite3.Connection:
-    """Open an existing database for reading; rows come back as `sqlite3.Row`."""
+def open_readonly(path: str | Path, *, check_same_thread: bool = True) -> Connection:
+    """Open an existing database (a file or a PostgreSQL URL) for reading; rows read by
+    position and by column name (`sqlite3.Row`, or `postgres.PgRow`)."""
+    if is_server_url(path):
+        return _open_server_readonly(str(path))
     path = Path(path).absolute()
     if not path.is_file():
         raise StoreError(f"cannot read database {path}: no such file")
@@ -43,7 +48,23 @@ def open_readonly(path: str | Path, *, check_same_thread: bool = True) -> sqlite
     return conn
 
 
-def _dicts(conn: sqlite3.Connection, sql: str, params: tuple = ()) -> list[dict[str, Any]]:
+def _open_server_readonly(url: str) -> Connection:
+    from server.store.postgres import connect
+
+    conn = connect(url, readonly=True, application="vigil-reader")
+    try:
+        version = dialect.schema_version(conn)
+    except dialect.database_errors(conn) as err:
+        conn.close()
+        raise StoreError(f"cannot read database {conn.location}: {dialect.reason(err)}") from None
+    if version == 0 or version > latest_version():
+        conn.close()
+        what = "not a vigil database" if version == 0 else f"schema version {version} is newer than this vigil knows"
+        raise StoreError(f"cannot read database {conn.location}: {what}")
+    return conn
+
+
+def _dicts(conn: Connection, sql: str, params: tuple = ()) -> list[dict[str, Any]]:
     conn.row_factory = sqlite3.Row
     return [rows.row_dict(row) for row in conn.execute(sql, params)]
 
@@ -52,7 +73,7 @@ def _dicts(conn: sqlite3.Connection, sql: str, params: tuple = ()) -> list[dict[
 
 
 def list_sessions(
-    conn: sqlite3.Connection,
+    conn: Connection,
     *,
     animal: str | None = None,
     box: str | None = None,
@@ -80,21 +101,23 @@ def list_sessions(
     return _dicts(conn, sql, tuple(params))
 
 
-def get_session(conn: sqlite3.Connection, session_id: int) -> dict[str, Any] | None:
+def get_session(conn: Connection, session_id: int) -> dict[str, Any] | None:
     found = _dicts(conn, "SELECT * FROM sessions WHERE id = ?", (session_id,))
     return found[0] if found else None
 
 
-# sessions with their accuracy and omissions, from their trials
+# sessions with their accuracy and omissions, from their trials (the casts keep both
+# backends' answers plain numbers: PostgreSQL's avg and sum of integers are decimals)
 _HISTORY = (
     "SELECT s.*,"
-    " (SELECT avg(correct) FROM trials WHERE session_id = s.id AND correct IS NOT NULL) AS accuracy,"
-    " (SELECT coalesce(sum(omission), 0) FROM trials WHERE session_id = s.id) AS omissions"
+    " (SELECT avg(CAST(correct AS DOUBLE PRECISION)) FROM trials"
+    "   WHERE session_id = s.id AND correct IS NOT NULL) AS accuracy,"
+    " (SELECT CAST(coalesce(sum(omission), 0) AS INTEGER) FROM trials WHERE session_id = s.id) AS omissions"
     " FROM sessions s"
 )
 
 
-def animal_history(conn: sqlite3.Connection, animal: str) -> list[dict[str, Any]]:
+def animal_history(conn: Connection, animal: str) -> list[dict[str, Any]]:
     """Every session of one animal, oldest first, with accuracy and omissions from its trials.
 
     accuracy is the fraction correct over trials where correctness applies (None if none).
@@ -102,7 +125,7 @@ def animal_history(conn: sqlite3.Connection, animal: str) -> list[dict[str, Any]
     return _dicts(conn, _HISTORY + " WHERE s.animal = ? ORDER BY s.started_at, s.id", (animal,))
 
 
-def list_animals(conn: sqlite3.Connection) -> list[dict[str, Any]]:
+def list_animals(conn: Connection) -> list[dict[str, Any]]:
     """Every animal with a session: how many, the first and last start, the last box and
     protocol, and every protocol it ran (oldest first), ordered by animal."""
     found = _dicts(
@@ -124,7 +147,7 @@ def list_animals(conn: sqlite3.Connection) -> list[dict[str, Any]]:
     return found
 
 
-def protocol_history(conn: sqlite3.Connection, protocol: str) -> list[dict[str, Any]]:
+def protocol_history(conn: Connection, protocol: str) -> list[dict[str, Any]]:
     """Every session that ran protocol `protocol` (by name), each animal's oldest first, with
     accuracy and omissions as in `animal_history`."""
     return _dicts(conn, _HISTORY + " WHERE s.protocol = ? ORDER BY s.animal, s.started_at, s.id", (protocol,))
@@ -133,7 +156,7 @@ def protocol_history(conn: sqlite3.Connection, protocol: str) -> list[dict[str, 
 # ---------------------------------------------------------------- per session
 
 
-def session_trials(conn: sqlite3.Connection, session_id: int, *, after_trial: int = 0) -> list[dict[str, Any]]:
+def session_trials(conn: Connection, session_id: int, *, after_trial: int = 0) -> list[dict[str, Any]]:
     return _dicts(
         conn,
         "SELECT * FROM trials WHERE session_id = ? AND trial > ? ORDER BY trial",
@@ -141,7 +164,7 @@ def session_trials(conn: sqlite3.Connection, session_id: int, *, after_trial: in
     )
 
 
-def trial_records(conn: sqlite3.Connection, session_id: int) -> list[TrialRecord]:
+def trial_records(conn: Connection, session_id: int) -> list[TrialRecord]:
     """The session's trials as the engine emitted them, for replay through a model."""
     conn.row_factory = sqlite3.Row
     found = conn.execute("SELECT * FROM trials WHERE session_id = ? ORDER BY trial", (session_id,))
@@ -149,7 +172,7 @@ def trial_records(conn: sqlite3.Connection, session_id: int) -> list[TrialRecord
 
 
 def session_events(
-    conn: sqlite3.Connection,
+    conn: Connection,
     session_id: int,
     *,
     since_id: int = 0,
@@ -165,14 +188,14 @@ def session_events(
     if tail is None:
         return _dicts(conn, sql + " ORDER BY id", tuple(params))
     params.append(int(tail))
-    return _dicts(conn, f"SELECT * FROM ({sql} ORDER BY id DESC LIMIT ?) ORDER BY id", tuple(params))
+    return _dicts(conn, f"SELECT * FROM ({sql} ORDER BY id DESC LIMIT ?) AS tail ORDER BY id", tuple(params))
 
 
-def session_blocks(conn: sqlite3.Connection, session_id: int) -> list[dict[str, Any]]:
+def session_blocks(conn: Connection, session_id: int) -> list[dict[str, Any]]:
     return _dicts(conn, "SELECT * FROM blocks WHERE session_id = ? ORDER BY block_index", (session_id,))
 
 
-def session_estimates(conn: sqlite3.Connection, session_id: int, *, after_trial: int = 0) -> list[dict[str, Any]]:
+def session_estimates(conn: Connection, session_id: int, *, after_trial: int = 0) -> list[dict[str, Any]]:
     return _dicts(
         conn,
         "SELECT * FROM estimates WHERE session_id = ? AND trial > ? ORDER BY trial",
@@ -180,21 +203,31 @@ def session_estimates(conn: sqlite3.Connection, session_id: int, *, after_trial:
     )
 
 
-def session_annotations(conn: sqlite3.Connection, session_id: int) -> list[dict[str, Any]]:
+def session_annotations(conn: Connection, session_id: int) -> list[dict[str, Any]]:
     return _dicts(conn, "SELECT * FROM annotations WHERE session_id = ? ORDER BY id", (session_id,))
 
 
 # ---------------------------------------------------------------- status page
 
 
-def table_exists(conn: sqlite3.Connection, name: str) -> bool:
+def table_exists(conn: Connection, name: str) -> bool:
     """True when the database holds table `name` (tables added by later migrations)."""
-    found = conn.execute("SELECT 1 FROM sqlite_master WHERE type = 'table' AND name = ?", (name,)).fetchone()
-    return found is not None
+    return dialect.table_exists(conn, name)
 
 
-def latest_sessions_per_box(conn: sqlite3.Connection) -> list[dict[str, Any]]:
-    """The newest session of every box, ordered by box name."""
+def latest_sessions_per_box(conn: Connection) -> list[dict[str, Any]]:
+    """The newest session of every box, ordered by box name (by rig, then box, in a store
+    that several rigs write: two rigs may each have a box of the same name)."""
+    if dialect.schema_version(conn) >= 5:  # the rig column
+        return _dicts(
+            conn,
+            (
+                "SELECT s.* FROM sessions s WHERE s.id = (SELECT s2.id FROM sessions s2"
+                " WHERE s2.box = s.box AND coalesce(s2.rig, '') = coalesce(s.rig, '')"
+                " ORDER BY s2.started_at DESC, s2.id DESC LIMIT 1)"
+                " ORDER BY coalesce(s.rig, ''), s.box"
+            ),
+        )
     return _dicts(
         conn,
         (
@@ -205,7 +238,15 @@ def latest_sessions_per_box(conn: sqlite3.Connection) -> list[dict[str, Any]]:
     )
 
 
-def session_status(conn: sqlite3.Connection, session_id: int) -> dict[str, Any]:
+def rig_states(conn: Connection) -> list[dict[str, Any]]:
+    """The rigs that write to a lab-wide store, by name, with when each was last heard from
+    (empty for a one-computer store)."""
+    if not table_exists(conn, "rigs"):
+        return []
+    return _dicts(conn, "SELECT name, registered_at, seen_at, store_state FROM rigs ORDER BY name")
+
+
+def session_status(conn: Connection, session_id: int) -> dict[str, Any]:
     """What a status tile needs from the store about one session.
 
     accuracy (None without scored trials), last_input_t and last_t (session seconds of the
@@ -216,7 +257,7 @@ def session_status(conn: sqlite3.Connection, session_id: int) -> dict[str, Any]:
     """
     one = conn.execute
     accuracy = one(
-        "SELECT avg(correct) FROM trials WHERE session_id = ? AND correct IS NOT NULL",
+        "SELECT avg(CAST(correct AS DOUBLE PRECISION)) FROM trials WHERE session_id = ? AND correct IS NOT NULL",
         (session_id,),
     ).fetchone()[0]
     last_input = one(
@@ -255,7 +296,7 @@ def session_status(conn: sqlite3.Connection, session_id: int) -> dict[str, Any]:
     }
 
 
-def last_estimate(conn: sqlite3.Connection, session_id: int) -> dict[str, Any] | None:
+def last_estimate(conn: Connection, session_id: int) -> dict[str, Any] | None:
     """The estimate after the session's last estimated trial, or None."""
     found = _dicts(
         conn,
@@ -265,7 +306,7 @@ def last_estimate(conn: sqlite3.Connection, session_id: int) -> dict[str, Any] |
     return found[0] if found else None
 
 
-def session_rule_firings(conn: sqlite3.Connection, session_id: int) -> list[dict[str, Any]]:
+def session_rule_firings(conn: Connection, session_id: int) -> list[dict[str, Any]]:
     """Rule firings of a session in time order (t, trial, rule, actions, reads; JSON decoded);
     empty when the database predates the rule_firings table."""
     if not table_exists(conn, "rule_firings"):  # a database from before rules existed

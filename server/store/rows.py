@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import json
 import math
-import sqlite3
 from collections.abc import Mapping
 from datetime import datetime
 from typing import Any
@@ -90,8 +89,8 @@ SQLITE_INT_MAX = 2**63 - 1
 # Shared by the writer and crash recovery. OR IGNORE + the partial unique index on
 # (session_id, device_seq) drops a replayed device event.
 INSERT_EVENT = (
-    "INSERT OR IGNORE INTO events (session_id, kind, name, value, t, device_t_us, device_seq,"
-    " detail) VALUES (?, ?, ?, ?, ?, ?, ?, ?)"
+    "INSERT INTO events (session_id, kind, name, value, t, device_t_us, device_seq,"
+    " detail) VALUES (?, ?, ?, ?, ?, ?, ?, ?) ON CONFLICT DO NOTHING"
 )
 END_SESSION = "UPDATE sessions SET ended_at = ?, end_reason = ?, trials = ?, rewards = ? WHERE id = ?"
 
@@ -124,6 +123,19 @@ def parse_wall_time(text: str, what: str) -> datetime:
     if moment.utcoffset() is None:
         raise StoreError(f"{what} has no UTC offset: {text!r}")
     return moment
+
+
+def label(value: Any, what: str) -> str:
+    """A name as stored: any text but NUL, which PostgreSQL's text cannot hold (refused on
+    both backends alike, so a spool never keeps what its server would refuse)."""
+    text = str(value)
+    if "\x00" in text:
+        raise StoreError(f"{what} contains a NUL character: {text!r}")
+    return text
+
+
+def opt_label(value: Any, what: str) -> str | None:
+    return None if value is None else label(value, what)
 
 
 def real(value: Any, what: str) -> float:
@@ -162,13 +174,13 @@ def trial_params(session_id: int, rec: TrialRecord) -> tuple:
     return (
         session_id,
         integer(rec.trial, "trial number"),
-        str(rec.block),
+        label(rec.block, f"{what} block"),
         integer(rec.block_index, f"{what} block_index"),
-        str(rec.trial_type),
+        label(rec.trial_type, f"{what} trial_type"),
         real(rec.t_start, f"{what} t_start"),
         real(rec.t_end, f"{what} t_end"),
-        None if rec.choice is None else str(rec.choice),
-        None if rec.response is None else str(rec.response),
+        opt_label(rec.choice, f"{what} choice"),
+        opt_label(rec.response, f"{what} response"),
         opt_real(rec.latency_s, f"{what} latency_s"),
         int(bool(rec.rewarded)),
         real(rec.reward, f"{what} reward"),
@@ -201,8 +213,8 @@ def event_params(session_id: int, rec: EventLogged) -> tuple:
     what = f"event {rec.kind}/{rec.name}"
     return (
         session_id,
-        str(rec.kind),
-        str(rec.name),
+        label(rec.kind, "event kind"),
+        label(rec.name, f"{what} name"),
         opt_real(rec.value, f"{what} value"),
         real(rec.t, f"{what} t"),
         opt_integer(rec.device_t_us, f"{what} device_t_us"),
@@ -216,14 +228,14 @@ def block_params(session_id: int, rec: BlockStarted) -> tuple:
     return (
         session_id,
         integer(rec.block_index, f"{what} index"),
-        str(rec.block),
+        label(rec.block, f"{what} name"),
         real(rec.t, f"{what} t"),
         to_json(rec.contingencies, f"{what} contingencies"),
         int(bool(rec.outcomes_withheld)),
     )
 
 
-def row_dict(row: sqlite3.Row) -> dict[str, Any]:
+def row_dict(row: Any) -> dict[str, Any]:
     """A row as plain data for JSON and templates: JSON columns decoded, flags as bools."""
     out: dict[str, Any] = {}
     for key in row.keys():

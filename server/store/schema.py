@@ -1,4 +1,8 @@
-"""The database layout, versioned with `PRAGMA user_version` and grown by ordered migrations.
+"""The database layout, versioned and grown by ordered migrations, the same for both backends.
+
+The version is `PRAGMA user_version` on SQLite and the one row of `vigil_schema` on
+PostgreSQL; migrations are written once, in SQLite's words, and `dialect.pg_ddl` gives
+PostgreSQL its column types (server/store/dialect.py).
 
 Migration N takes a database at version N-1 to N inside one transaction, so a crash or a
 failure mid-way leaves the previous version intact. Later issues append migrations; never
@@ -7,10 +11,11 @@ edit one that has shipped.
 
 from __future__ import annotations
 
-import sqlite3
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
+from server.store import dialect
+from server.store.dialect import Connection
 from server.store.errors import StoreError
 
 
@@ -18,15 +23,15 @@ from server.store.errors import StoreError
 class Migration:
     version: int
     summary: str
-    apply: Callable[[sqlite3.Connection], None]
+    apply: Callable[[Connection], None]
 
 
-def statements(*sql: str) -> Callable[[sqlite3.Connection], None]:
+def statements(*sql: str) -> Callable[[Connection], None]:
     """A migration body from SQL statements run one by one (executescript would commit)."""
 
-    def apply(conn: sqlite3.Connection) -> None:
+    def apply(conn: Connection) -> None:
         for statement in sql:
-            conn.execute(statement)
+            conn.execute(dialect.ddl(conn, statement))
 
     return apply
 
@@ -152,23 +157,64 @@ _V4 = statements(
     "ALTER TABLE trials ADD COLUMN omitted2 INTEGER",  # 1: the second-stage window ran out
 )
 
+_V5 = statements(
+    # A lab-wide store: the rig (lab config `lab:` name) that ran each session.
+    "ALTER TABLE sessions ADD COLUMN rig TEXT",
+    "CREATE INDEX sessions_rig ON sessions(rig, id)",
+    # Every rig that writes to the store, and the number its session ids start from.
+    """CREATE TABLE rigs (
+        id INTEGER PRIMARY KEY,
+        name TEXT NOT NULL UNIQUE,
+        registered_at TEXT NOT NULL,
+        seen_at TEXT,                   -- last time the rig forwarded or polled (ISO 8601)
+        store_state TEXT                -- what the rig last said of its link to the store
+    )""",
+    # A rig's spool: every write committed locally, in order, until the server has it.
+    """CREATE TABLE outbox (
+        seq INTEGER PRIMARY KEY,
+        statement TEXT NOT NULL,
+        params TEXT NOT NULL            -- JSON list
+    )""",
+    # The last outbox entry of each rig that the lab-wide store holds: written in the same
+    # transaction as the entries themselves, so each is applied exactly once.
+    """CREATE TABLE forwarded (
+        rig TEXT PRIMARY KEY,
+        seq INTEGER NOT NULL
+    )""",
+    # Operator controls for a rig, asked by the page of `vigil serve`, polled by the rig.
+    """CREATE TABLE controls (
+        id INTEGER PRIMARY KEY,
+        rig TEXT NOT NULL,
+        session_id INTEGER NOT NULL,
+        op TEXT NOT NULL,               -- pause, resume, stop, annotate
+        text TEXT,
+        origin TEXT NOT NULL,
+        asked_at TEXT NOT NULL,
+        status INTEGER,                 -- the HTTP status the rig answered; NULL until then
+        detail TEXT,
+        answered_at TEXT
+    )""",
+    "CREATE INDEX controls_waiting ON controls(rig, id) WHERE status IS NULL",
+)
+
 MIGRATIONS: tuple[Migration, ...] = (
     Migration(1, "sessions, trials, events, blocks, estimates, annotations", _V1),
     Migration(2, "rule firings", _V2),
     Migration(3, "training stages per animal", _V3),
     Migration(4, "two-stage trials: state, transition and the second stage", _V4),
+    Migration(5, "lab-wide store: rigs, spool outbox, forwarding marks, controls", _V5),
 )
 
 
-def schema_version(conn: sqlite3.Connection) -> int:
-    return conn.execute("PRAGMA user_version").fetchone()[0]
+def schema_version(conn: Connection) -> int:
+    return dialect.schema_version(conn)
 
 
 def latest_version(migrations: Sequence[Migration] = MIGRATIONS) -> int:
     return migrations[-1].version if migrations else 0
 
 
-def migrate(conn: sqlite3.Connection, migrations: Sequence[Migration] = MIGRATIONS) -> int:
+def migrate(conn: Connection, migrations: Sequence[Migration] = MIGRATIONS) -> int:
     """Bring the database up to the newest version; return it.
 
     `conn` must be in autocommit mode (isolation_level=None). Each step reads the version
@@ -180,13 +226,13 @@ def migrate(conn: sqlite3.Connection, migrations: Sequence[Migration] = MIGRATIO
             raise ValueError(f"migration {migration.version} is out of order (expected {expected})")
     _refuse_unknown(conn, schema_version(conn), latest)
     for migration in migrations:
-        conn.execute("BEGIN IMMEDIATE")
+        dialect.begin_write(conn, migrating=True)
         try:
             current = schema_version(conn)
             _refuse_unknown(conn, current, latest)
             if current < migration.version:
                 migration.apply(conn)
-                conn.execute(f"PRAGMA user_version = {migration.version:d}")
+                dialect.set_schema_version(conn, migration.version)
             conn.execute("COMMIT")
         except BaseException:
             if conn.in_transaction:
@@ -195,10 +241,9 @@ def migrate(conn: sqlite3.Connection, migrations: Sequence[Migration] = MIGRATIO
     return schema_version(conn)
 
 
-def _refuse_unknown(conn: sqlite3.Connection, version: int, latest: int) -> None:
+def _refuse_unknown(conn: Connection, version: int, latest: int) -> None:
     if version > latest:
         raise StoreError(f"database schema version {version} is newer than this vigil knows ({latest}); upgrade vigil")
     if version == 0:
-        others = conn.execute("SELECT count(*) FROM sqlite_master WHERE name NOT LIKE 'sqlite_%'").fetchone()[0]
-        if others:
+        if dialect.other_tables(conn):
             raise StoreError("not a vigil database: it already holds tables of another program")

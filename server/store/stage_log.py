@@ -4,15 +4,16 @@ each stage, and the per-session figures that advancement is judged on."""
 from __future__ import annotations
 
 import json
-import sqlite3
 from typing import Any
 
+from server.store.dialect import Connection
 
-def session_figures(conn: sqlite3.Connection, session_id: int) -> dict[str, Any]:
+
+def session_figures(conn: Connection, session_id: int) -> dict[str, Any]:
     """Per-session figures the advancement criteria use (interrupted trials left out)."""
     row = conn.execute(
-        "SELECT COUNT(*), COALESCE(SUM(rewarded), 0), SUM(correct IS NOT NULL),"
-        " COALESCE(SUM(correct), 0), COALESCE(SUM(omission), 0)"
+        "SELECT COUNT(*), CAST(COALESCE(SUM(rewarded), 0) AS INTEGER), COUNT(correct),"
+        " CAST(COALESCE(SUM(correct), 0) AS INTEGER), CAST(COALESCE(SUM(omission), 0) AS INTEGER)"
         " FROM trials WHERE session_id = ? AND interrupted = 0",
         (session_id,),
     ).fetchone()
@@ -27,13 +28,13 @@ def session_figures(conn: sqlite3.Connection, session_id: int) -> dict[str, Any]
     }
 
 
-def current_stage(conn: sqlite3.Connection, animal: str) -> int | None:
+def current_stage(conn: Connection, animal: str) -> int | None:
     """1-based stage the animal is at, or None before its first session."""
     row = conn.execute("SELECT stage FROM stage_log WHERE animal = ? ORDER BY id DESC LIMIT 1", (animal,)).fetchone()
     return None if row is None else int(row[0])
 
 
-def stage_entered(conn: sqlite3.Connection, animal: str, stage: int) -> int:
+def stage_entered(conn: Connection, animal: str, stage: int) -> int:
     """The stage-log id of the animal's latest entry into `stage` (0 when never logged)."""
     row = conn.execute(
         "SELECT id FROM stage_log WHERE animal = ? AND stage = ? ORDER BY id DESC LIMIT 1", (animal, stage)
@@ -41,7 +42,7 @@ def stage_entered(conn: sqlite3.Connection, animal: str, stage: int) -> int:
     return int(row[0]) if row else 0
 
 
-def sessions_at_stage(conn: sqlite3.Connection, animal: str, stage: int, since_log_id: int) -> list[int]:
+def sessions_at_stage(conn: Connection, animal: str, stage: int, since_log_id: int) -> list[int]:
     """Finished sessions of the animal at this stage since it entered the stage, newest first."""
     rows = conn.execute(
         "SELECT id, settings FROM sessions WHERE animal = ? AND end_reason IS NOT NULL"
@@ -52,7 +53,7 @@ def sessions_at_stage(conn: sqlite3.Connection, animal: str, stage: int, since_l
     return [sid for sid, settings in rows if json.loads(settings or "{}").get("stage") == stage]
 
 
-def stage_history(conn: sqlite3.Connection) -> list[dict[str, Any]]:
+def stage_history(conn: Connection) -> list[dict[str, Any]]:
     rows = conn.execute(
         "SELECT animal, stage, protocol, at, session_id, reason, evidence FROM stage_log ORDER BY animal, id"
     ).fetchall()

@@ -1,7 +1,8 @@
 """What each record becomes in the database: the statements that store it, not yet run.
 
-Pure: no connection here, so the writer decides when a batch is committed and a second
-backend can reuse the translation with its own placeholders.
+Pure: no connection here, so the writer decides when a batch is committed. Written in the
+SQL that SQLite and PostgreSQL both accept (`ON CONFLICT`, `RETURNING`, `CASE` for a
+scalar max); `server.store.dialect` swaps the placeholders for psycopg.
 """
 
 from __future__ import annotations
@@ -16,17 +17,24 @@ from server.store import rows
 INSERT_TRIAL = (
     f"INSERT INTO trials ({', '.join(rows.TRIAL_COLUMNS)}) VALUES ({', '.join('?' * len(rows.TRIAL_COLUMNS))})"
 )
-COUNT_TRIAL = "UPDATE sessions SET trials = max(trials, ?), rewards = rewards + ? WHERE id = ?"
+COUNT_TRIAL = (
+    "UPDATE sessions SET trials = CASE WHEN trials > ? THEN trials ELSE ? END, rewards = rewards + ? WHERE id = ?"
+)
 INSERT_RULE_FIRING = "INSERT INTO rule_firings (session_id, trial, t, rule, actions, reads) VALUES (?, ?, ?, ?, ?, ?)"
 INSERT_BLOCK = (
     f"INSERT INTO blocks ({', '.join(rows.BLOCK_COLUMNS)}) VALUES ({', '.join('?' * len(rows.BLOCK_COLUMNS))})"
 )
-UPSERT_ESTIMATE = "INSERT OR REPLACE INTO estimates (session_id, trial, model, data) VALUES (?, ?, ?, ?)"
-INSERT_ANNOTATION = "INSERT INTO annotations (session_id, t, wall_time, origin, text) VALUES (?, ?, ?, ?, ?)"
-INSERT_SESSION = (
-    "INSERT INTO sessions (box, animal, protocol, protocol_path, protocol_sha256, started_at,"
-    " seed, settings) VALUES (?, ?, ?, ?, ?, ?, ?, ?)"
+UPSERT_ESTIMATE = (
+    "INSERT INTO estimates (session_id, trial, model, data) VALUES (?, ?, ?, ?)"
+    " ON CONFLICT (session_id, trial) DO UPDATE SET model = excluded.model, data = excluded.data"
 )
+INSERT_ANNOTATION = (
+    "INSERT INTO annotations (session_id, t, wall_time, origin, text) VALUES (?, ?, ?, ?, ?) RETURNING id"
+)
+_SESSION_COLUMNS = "box, animal, protocol, protocol_path, protocol_sha256, started_at, seed, settings, rig"
+INSERT_SESSION = f"INSERT INTO sessions ({_SESSION_COLUMNS}) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING id"
+INSERT_SESSION_WITH_ID = f"INSERT INTO sessions (id, {_SESSION_COLUMNS}) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)"
+INSERT_OUTBOX = "INSERT INTO outbox (statement, params) VALUES (?, ?)"
 INSERT_STAGE = (
     "INSERT INTO stage_log (animal, stage, protocol, at, session_id, reason, evidence) VALUES (?, ?, ?, ?, ?, ?, ?)"
 )
@@ -53,7 +61,7 @@ def event(session_id: int, record: EventLogged) -> Pending:
 
 def trial(session_id: int, record: TrialRecord) -> Pending:
     """The trial row and the session's running counts, in one unit."""
-    counts = (record.trial, int(bool(record.rewarded)), session_id)
+    counts = (record.trial, record.trial, int(bool(record.rewarded)), session_id)
     return Pending(
         session_id,
         f"trial {record.trial} of session {session_id}",

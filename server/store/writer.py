@@ -7,11 +7,18 @@ disk within 2 x `batch_s` (1 s by default). Commits run with `synchronous=FULL`,
 power loss as well as a killed process. When the disk is full or failing, nothing buffered is
 dropped: the records stay in memory, a `StoreError` says so, and the next flush retries.
 
-One process writes a database at a time; readers use `server.store.queries`.
+One process writes a SQLite database at a time; on PostgreSQL (`Store.open` with a
+`postgresql://` URL) several rigs write one database at once, each closing only its own
+sessions. A rig's spool is a SQLite store with `journal=True`: every write it commits is also
+kept, in the same transaction, in its outbox, which `server.store.forwarder` carries to the
+lab-wide store (session ids then come from the rig's number, `id_base`).
+
+Readers use `server.store.queries`.
 """
 
 from __future__ import annotations
 
+import json
 import sqlite3
 from collections import Counter
 from collections.abc import Callable, Mapping
@@ -30,20 +37,53 @@ from server.engine.records import (
     SessionStarted,
     TrialRecord,
 )
-from server.store import rows, statements
-from server.store.errors import StoreError, diagnose_path, sqlite_reason
+from server.store import dialect, rows, statements
+from server.store.dialect import Connection, is_server_url
+from server.store.errors import StoreError, diagnose_path
 from server.store.recovery import close_unended
 from server.store.schema import migrate
 from server.store.wall_clock import iso, local_now
 
 T = TypeVar("T")
 
+ID_RANGE = 2**32  # session ids of one rig in a lab-wide store: rig number x ID_RANGE + 1 ...
 
-def _row_id(cursor: sqlite3.Cursor) -> int:
-    """The id of the row a plain INSERT just added (sqlite3 sets it for every one that succeeds)."""
-    row_id = cursor.lastrowid
-    assert row_id is not None
-    return row_id
+
+def _row_id(cursor: Any) -> int:
+    """The id an `INSERT ... RETURNING id` just added."""
+    return int(cursor.fetchone()[0])
+
+
+class _Fetched:
+    """The rows of a statement already read (its cursor is spent)."""
+
+    def __init__(self, found: list[Any]):
+        self._rows = found
+        self.rowcount = len(found)
+
+    def fetchone(self) -> Any:
+        return self._rows[0] if self._rows else None
+
+    def fetchall(self) -> list[Any]:
+        return self._rows
+
+
+class _Journalled:
+    """The connection as a spool's transaction sees it: every write that changed something
+    is also appended to the outbox, in the same transaction, for forwarding."""
+
+    def __init__(self, conn: Connection):
+        self.conn = conn
+
+    def execute(self, sql: str, params: tuple = ()) -> Any:
+        if sql.lstrip()[:6].upper() not in ("INSERT", "UPDATE", "DELETE"):
+            return self.conn.execute(sql, params)
+        cursor: Any = self.conn.execute(sql, params)
+        if "RETURNING" in sql:
+            cursor = _Fetched(cursor.fetchall())
+        if cursor.rowcount != 0:
+            self.conn.execute(statements.INSERT_OUTBOX, (sql, json.dumps(list(params))))
+        return cursor
 
 
 @dataclass(slots=True)
@@ -58,15 +98,23 @@ class Store:
 
     def __init__(
         self,
-        conn: sqlite3.Connection,
-        path: Path,
+        conn: Connection,
+        path: Path | str,
         *,
         wall_clock: Callable[[], datetime] = local_now,
         batch_s: float = 0.5,
         max_buffered: int = 10_000,
+        rig: str | None = None,
+        journal: bool = False,
+        id_base: int | None = None,
     ):
         self._conn = conn
-        self.path = path
+        self.path = path  # the file, or the server's URL without its password
+        self.rig = rig  # the lab config's `lab:` name, stored with each session
+        self.journal = journal  # a rig's spool: keep every write in the outbox
+        self.id_base = id_base  # session ids from id_base + 1 on (a rig's range in a lab-wide store)
+        self.id_floor = 0  # ... and above any id of that range the server already holds
+        self._postgres = dialect.is_postgres(conn)
         self.batch_s = batch_s
         self.max_buffered = max_buffered
         self._wall_clock = wall_clock
@@ -86,12 +134,22 @@ class Store:
         wall_clock: Callable[[], datetime] = local_now,
         batch_s: float = 0.5,
         max_buffered: int = 10_000,
+        rig: str | None = None,
+        journal: bool = False,
+        id_base: int | None = None,
     ) -> Store:
-        """Open or create the database, migrate it, and prove it is writable.
+        """Open or create the database (a SQLite path or a PostgreSQL URL), migrate it, and
+        prove it is writable.
 
         Every reason it cannot be used (missing folder, read-only, not a database, newer
-        schema, full disk) is a one-line `StoreError` here, before any session starts.
+        schema, full disk, server unreachable) is a one-line `StoreError` here, before any
+        session starts.
         """
+        options: dict[str, Any] = dict(
+            wall_clock=wall_clock, batch_s=batch_s, max_buffered=max_buffered, rig=rig, journal=journal, id_base=id_base
+        )
+        if is_server_url(path):
+            return cls._open_server(str(path), options)
         path = Path(path)
         conn: sqlite3.Connection | None = None
         try:
@@ -115,10 +173,28 @@ class Store:
             if conn is not None:
                 conn.close()
             raise StoreError(f"cannot use database {path}: {err}") from None
-        return cls(conn, path, wall_clock=wall_clock, batch_s=batch_s, max_buffered=max_buffered)
+        return cls(conn, path, **options)
+
+    @classmethod
+    def _open_server(cls, url: str, options: dict[str, Any]) -> Store:
+        from server.store.postgres import connect
+
+        conn = connect(url)
+        try:
+            version = migrate(conn)
+            dialect.begin_write(conn)
+            dialect.set_schema_version(conn, version)
+            conn.execute("COMMIT")
+        except StoreError as err:
+            conn.close()
+            raise StoreError(f"cannot use database {conn.location}: {err}") from None
+        except dialect.database_errors(conn) as err:
+            conn.close()
+            raise StoreError(f"cannot use database {conn.location}: {dialect.reason(err)}") from None
+        return cls(conn, conn.location, **options)
 
     @property
-    def conn(self) -> sqlite3.Connection:
+    def conn(self) -> Connection:
         """The writing connection, for tests and maintenance; do not write through it."""
         return self._conn
 
@@ -148,8 +224,22 @@ class Store:
             started_at,
             rows.integer(seed, "seed"),
             rows.to_json(dict(settings or {}), "session settings"),
+            self.rig,
         )
-        session_id = self._commit(lambda conn: _row_id(conn.execute(statements.INSERT_SESSION, params)))
+
+        def insert(conn: Any) -> int:
+            if self.id_base is None:
+                return _row_id(conn.execute(statements.INSERT_SESSION, params))
+            # A rig's own range: the id it gets here is the id it keeps in the lab-wide store.
+            base = self.id_base
+            last = dialect.first(conn, "SELECT max(id) FROM sessions WHERE id > ? AND id <= ?", (base, base + ID_RANGE))
+            session_id = max(last or base, self.id_floor) + 1
+            if session_id > base + ID_RANGE:
+                raise StoreError(f"rig {self.rig} has used all {ID_RANGE} session ids of its range")
+            conn.execute(statements.INSERT_SESSION_WITH_ID, (session_id, *params))
+            return session_id
+
+        session_id = self._commit(insert)
         self._sessions[session_id] = _Running(started)
         return session_id
 
@@ -253,7 +343,7 @@ class Store:
         rows.parse_wall_time(wall, "wall_time")
         params = (session_id, rows.opt_real(t, "annotation t"), wall, str(origin), text)
 
-        def insert(conn: sqlite3.Connection) -> int:
+        def insert(conn: Any) -> int:
             if conn.execute("SELECT 1 FROM sessions WHERE id = ?", (session_id,)).fetchone() is None:
                 raise StoreError(f"no session {session_id} to annotate")
             return _row_id(conn.execute(statements.INSERT_ANNOTATION, params))
@@ -270,7 +360,9 @@ class Store:
         closed_at = iso(self._wall_clock()) if now_iso is None else now_iso
         rows.parse_wall_time(closed_at, "now_iso")
         running_here = {sid for sid, s in self._sessions.items() if not s.ended}
-        return self._commit(lambda conn: close_unended(conn, closed_at, running_here))
+        # Several rigs share a lab-wide store: each closes only what it left open itself.
+        rig = self.rig if self._postgres else None
+        return self._commit(lambda conn: close_unended(conn, closed_at, running_here, rig=rig))
 
     # ------------------------------------------------------------------ flushing
 
@@ -330,9 +422,9 @@ class Store:
     def _commit(self) -> None: ...
 
     @overload
-    def _commit(self, then: Callable[[sqlite3.Connection], T]) -> T: ...
+    def _commit(self, then: Callable[[Any], T]) -> T: ...
 
-    def _commit(self, then: Callable[[sqlite3.Connection], T] | None = None) -> T | None:
+    def _commit(self, then: Callable[[Any], T] | None = None) -> T | None:
         """One transaction: every pending record in order, then `then` (if given).
 
         A record the database refuses (a constraint) is dropped and reported; a failure of
@@ -341,28 +433,38 @@ class Store:
         batch = list(self._pending)
         if not batch and then is None:
             return None
-        conn = self._conn
+        conn: Any = _Journalled(self._conn) if self.journal else self._conn
         duplicates: Counter[int] = Counter()
         refused: list[str] = []
+        refusals = dialect.refusals(self._conn)
+        # PostgreSQL aborts the whole transaction on a refused statement: each record gets a
+        # savepoint there, so one refusal drops that record only, as on SQLite.
+        savepoints = self._postgres
         try:
-            conn.execute("BEGIN IMMEDIATE")
+            dialect.begin_write(self._conn)
             for item in batch:
                 try:
+                    if savepoints:
+                        conn.execute("SAVEPOINT one_record")
                     first, *rest = item.statements
                     cursor = conn.execute(*first)
                     for statement in rest:
                         conn.execute(*statement)
-                except sqlite3.IntegrityError as err:
-                    refused.append(f"{item.what} ({str(err).lower()})")
+                    if savepoints:
+                        conn.execute("RELEASE SAVEPOINT one_record")
+                except refusals as err:
+                    if savepoints:
+                        conn.execute("ROLLBACK TO SAVEPOINT one_record")
+                    refused.append(f"{item.what} ({dialect.reason(err)})")
                     continue
                 if item.device_event and cursor.rowcount == 0:
                     duplicates[item.session_id] += 1
             result = then(conn) if then is not None else None
-            conn.execute("COMMIT")
-        except sqlite3.Error as err:
+            self._conn.execute("COMMIT")
+        except dialect.database_errors(self._conn) as err:
             self._rollback()
             kept = f"; {len(batch)} record(s) kept in memory, retried at the next flush" if batch else ""
-            self.failure = StoreError(f"could not write to {self.path}: {sqlite_reason(err)}{kept}")
+            self.failure = StoreError(f"could not write to {self.path}: {dialect.reason(err)}{kept}")
             raise self.failure from None
         except BaseException:
             self._rollback()
@@ -377,8 +479,8 @@ class Store:
 
     def _rollback(self) -> None:
         # SQLite rolls back by itself after some errors (a full disk among them).
-        if self._conn.in_transaction:
-            try:
+        try:
+            if self._conn.in_transaction:
                 self._conn.execute("ROLLBACK")
-            except sqlite3.Error:
-                pass
+        except dialect.database_errors(self._conn):
+            pass

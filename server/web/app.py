@@ -12,6 +12,7 @@ import asyncio
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
+from urllib.parse import urlsplit
 
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
@@ -20,10 +21,11 @@ from fastapi.staticfiles import StaticFiles
 from starlette.concurrency import run_in_threadpool
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
+from server.store.dialect import is_server_url
 from server.web.api import api_router
 from server.web.auth import Guard, Refused, refuse_token_in_url
 from server.web.board import Board, ReadOnlyStore, Snapshot
-from server.web.controls import controls_router
+from server.web.controls import LabControls, controls_router
 from server.web.layout import page
 from server.web.markup import el
 from server.web.pages import login_body, pages_router
@@ -51,10 +53,11 @@ class WebState:
     live: Any  # a page_end.LabView, or None when read-only
     lab_name: str
     stopping: asyncio.Event = field(default_factory=asyncio.Event)
+    controls: LabControls | None = None  # the live lab, or the lab-wide store's control table
 
     @property
     def controls_on(self) -> bool:
-        return self.live is not None
+        return self.controls is not None
 
     async def snapshot(self) -> Snapshot:
         if self.live is not None:  # tiles from the feed in memory: cheap, read here
@@ -108,16 +111,24 @@ class Gate:
             if not path.startswith(OPEN_PATHS):
                 self.state.guard.check_read(request)
         except Refused as refused:
-            response = _refusal(path, refused.status, refused.message, self.state.lab_name, self.state.live is None)
+            response = _refusal(path, refused.status, refused.message, self.state.lab_name, not self.state.controls_on)
             await response(scope, receive, send_with_headers)
             return
         await self.app(scope, receive, send_with_headers)
+
+
+def _store_name(db_path: str | Path) -> str:
+    if is_server_url(db_path):
+        name = urlsplit(str(db_path)).path.strip("/")
+        return f"lab-wide store {name}".strip()
+    return Path(db_path).name
 
 
 def create_app(
     db_path: str | Path,
     *,
     live: Any = None,
+    controls: LabControls | None = None,
     operator_token: str | None = None,
     viewer_token: str | None = None,
     lab_name: str | None = None,
@@ -135,8 +146,11 @@ def create_app(
         quiet_after_s=quiet_after_s,
     )
     if lab_name is None:
-        lab_name = Path(db_path).name
-    state = WebState(store, board, Guard(operator_token=operator_token, viewer_token=viewer_token), live, lab_name)
+        lab_name = _store_name(db_path)
+    if controls is None and live is not None:
+        controls = live
+    guard = Guard(operator_token=operator_token, viewer_token=viewer_token)
+    state = WebState(store, board, guard, live, lab_name, controls=controls)
     app = FastAPI(
         title="Vigil status page",
         version="1",
@@ -147,11 +161,11 @@ def create_app(
     )
     app.state.vigil = state
     app.include_router(api_router(state))
-    if live is not None:
+    if controls is not None:
         app.include_router(controls_router(state))
     app.include_router(pages_router(state))
     app.mount("/assets", StaticFiles(directory=ASSETS), name="assets")
-    read_only = live is None
+    read_only = controls is None
 
     @app.exception_handler(Refused)
     async def refused(request: Request, exc: Refused) -> Response:

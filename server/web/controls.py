@@ -67,7 +67,7 @@ async def _note(request: Request) -> NoteIn:
 
 def controls_router(state: Any) -> APIRouter:
     router = APIRouter(tags=["controls"])
-    live: LabControls = state.live
+    live: LabControls = state.controls
 
     async def operator(request: Request) -> str:
         state.guard.check_operator(await supplied_token(request))

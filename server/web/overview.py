@@ -179,6 +179,7 @@ def overview_body(snap: Snapshot, *, with_controls: bool) -> Safe:
             "as of ",
             el("time", snap.wall_time, id="asof"),
             el("span", " · live updates", id="feed"),
+            el("span", f" · {snap.store}" if snap.store else "", id="storeline"),
             class_="asof",
         ),
         strip(snap.tiles),

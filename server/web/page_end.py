@@ -34,11 +34,14 @@ class LatestFeed:
         self.t = 0.0  # the lab's session clock when the feed was sent
         self.boxes: list[BoxFacts] = []  # as the lab sent them (JSON)
         self.received_at: float | None = None
+        self.store: str | None = None  # the lab's store line, with a lab-wide store
 
     def take(self, feed: dict[str, Any]) -> None:
         self.received_at = self.clock()
         self.t = float(feed["t"])
         self.boxes = list(feed["boxes"])
+        store = feed.get("store")
+        self.store = None if store is None else str(store)
 
     def tiles(self, quiet_after_s: float) -> list[dict[str, Any]]:
         aged = 0.0 if self.received_at is None else max(0.0, self.clock() - self.received_at)

@@ -42,7 +42,7 @@ def login_body(message: str | None = None) -> Any:
 
 def pages_router(state: Any) -> APIRouter:
     router = APIRouter(include_in_schema=False)
-    read_only = state.live is None
+    read_only = not state.controls_on
 
     def html(title: str, body: Any, cls: str, status: int = 200) -> HTMLResponse:
         return HTMLResponse(
@@ -75,7 +75,9 @@ def pages_router(state: Any) -> APIRouter:
     def session(session_id: int, done: str | None = None) -> HTMLResponse:
         found = _session(session_id)
         controllable = (
-            state.controls_on and found["end_reason"] is None and session_id in state.live.latest.running_sessions()
+            state.controls_on
+            and found["end_reason"] is None
+            and (state.live is None or session_id in state.live.latest.running_sessions())
         )
         paused = controllable and session_id in state.live.latest.paused_sessions()
         body = session_page.session_body(

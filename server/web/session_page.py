@@ -5,7 +5,6 @@ from __future__ import annotations
 
 import json
 import math
-import sqlite3
 from datetime import datetime, timedelta
 from typing import Any
 
@@ -13,6 +12,7 @@ from server.engine.stay import stay_counts
 from server.lab.status import reverses
 from server.protocol.model import Pavlovian
 from server.store import queries
+from server.store.dialect import Connection
 from server.web import plots
 from server.web.markup import Safe, el
 from server.web.overview import animal_href
@@ -40,7 +40,7 @@ def session_end_t(session: dict[str, Any], status: dict[str, Any], trials: list[
     return max(candidates)
 
 
-def panels(conn: sqlite3.Connection, session: dict[str, Any]) -> Safe:
+def panels(conn: Connection, session: dict[str, Any]) -> Safe:
     """Every plot of a session (the part the page refreshes while the session runs)."""
     sid = session["id"]
     status = queries.session_status(conn, sid)
@@ -116,7 +116,7 @@ def _firings_list(session: dict[str, Any], firings: list[dict[str, Any]]) -> Saf
 
 
 def _measures(
-    conn: sqlite3.Connection, session: dict[str, Any], status: dict[str, Any], firings: list[dict[str, Any]]
+    conn: Connection, session: dict[str, Any], status: dict[str, Any], firings: list[dict[str, Any]]
 ) -> list[tuple[str, Any, str]]:
     """The session's main measures: accuracy and reversals, or for a Pavlovian session its
     PCA index and what it classifies the animal as."""
@@ -156,7 +156,7 @@ def control_form(session: dict[str, Any], *, paused: bool) -> Safe:
 
 
 def session_body(
-    conn: sqlite3.Connection,
+    conn: Connection,
     session: dict[str, Any],
     *,
     controllable: bool,
@@ -233,7 +233,7 @@ def session_body(
     )
 
 
-def _notes(conn: sqlite3.Connection, session: dict[str, Any]) -> list[tuple[float, list[Any]]]:
+def _notes(conn: Connection, session: dict[str, Any]) -> list[tuple[float, list[Any]]]:
     """Every note on the session in session-time order: operators' notes, and the notes its
     rules wrote (a rule's `note` action), which carry their session time only."""
     sid = session["id"]

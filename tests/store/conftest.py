@@ -1,4 +1,9 @@
-"""Fixtures for store tests: a fresh database file per test and records of an invented session."""
+"""Fixtures for store tests: a fresh database per test and records of an invented session.
+
+`db_path` is a SQLite file by default. A module that holds for both backends says so with
+`pytestmark = BOTH_BACKENDS`: each of its tests then runs once on a SQLite file and once on
+a fresh schema of the session's PostgreSQL server (tests/pg_server.py), one suite for two
+backends."""
 
 from __future__ import annotations
 
@@ -29,7 +34,14 @@ def wall_clock() -> FakeWallClock:
 
 
 @pytest.fixture
-def db_path(tmp_path):
+def backend(request) -> str:
+    return getattr(request, "param", "sqlite")
+
+
+@pytest.fixture
+def db_path(request, backend, tmp_path):
+    if backend == "postgresql":
+        return request.getfixturevalue("pg_cluster").fresh_schema()
     return tmp_path / "lab.sqlite"
 
 

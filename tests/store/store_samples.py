@@ -4,7 +4,13 @@ from __future__ import annotations
 
 import dataclasses
 
+import pytest
+
 from server.engine.records import TrialRecord
+
+# A module whose tests hold for both backends says `pytestmark = BOTH_BACKENDS`
+# (the `backend` fixture, tests/store/conftest.py).
+BOTH_BACKENDS = pytest.mark.parametrize("backend", ["sqlite", "postgresql"], indirect=True)
 
 # An invented lab: box "shelf-2/left", rat "R-117", a two-lever reversal protocol "flip-flop".
 STARTED_AT = "2031-04-07T21:30:00.000+02:00"

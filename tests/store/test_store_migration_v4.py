@@ -36,7 +36,7 @@ def test_the_old_database_migrates_and_reads_as_it_was(old_db):
         before = conn.execute("SELECT trial, choice, rewarded, iti_s, extra FROM trials ORDER BY trial").fetchall()
     assert len(before) == 23
     store = Store.open(old_db)
-    assert schema_version(store.conn) == latest_version() == 4
+    assert schema_version(store.conn) == latest_version() == 5  # 4 two-stage columns, 5 the lab-wide store
     store.close()
     with sqlite3.connect(old_db) as conn:
         after = conn.execute("SELECT trial, choice, rewarded, iti_s, extra FROM trials ORDER BY trial").fetchall()

@@ -54,6 +54,7 @@ def test_tables_hold_every_field_of_the_records(store):
         "trials",
         "rewards",
         "settings",
+        "rig",
     ]
 
 

@@ -131,3 +131,17 @@ def test_the_board_is_shared_until_it_is_stale(lab_db):
     now[0] += 0.1
     second = board.snapshot()
     assert second is not first and second.version == first.version + 1
+
+
+def test_the_store_line_of_a_rig_reaches_the_page_and_its_live_updates():
+    from server.web.overview import overview_body
+    from server.web.page_end import LatestFeed
+
+    latest = LatestFeed(clock=lambda: 0.0)
+    latest.take({"t": 12.0, "boxes": [], "store": "store: forwarding 380"})
+    snap = Board(live=latest).snapshot()
+    assert snap.store == "store: forwarding 380"
+    assert '"store":"store: forwarding 380"' in snap.board_json  # what live updates carry
+    assert "store: forwarding 380" in str(overview_body(snap, with_controls=False))
+    latest.take({"t": 13.0, "boxes": []})  # a lab with a local store only says nothing
+    assert Board(live=latest).snapshot().store is None

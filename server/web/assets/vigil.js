@@ -73,6 +73,8 @@
           ...data.strip.map((a) => alarmItem(a, a.box)));
       }
       asof.textContent = data.at;
+      const storeline = document.getElementById("storeline");
+      if (storeline) storeline.textContent = data.store ? " · " + data.store : "";
       lastUpdate = Date.now();
       document.body.dataset.stale = "no";
     }
