@@ -112,8 +112,15 @@ class Lab:
         self.produced: Counter[tuple[int, str]] = Counter()
 
     def _last_store_failure(self) -> str | None:
+        """The last failed commit of the local store or, for a rig on a lab-wide store, the
+        server being out of reach (records wait in the spool meanwhile)."""
         failure = self.store.failure
-        return None if failure is None else str(failure)
+        if failure is not None:
+            return str(failure)
+        link = self.forwarder.status() if self.forwarder is not None else None
+        if link is not None and not link.reachable:
+            return f"{link.text()}" + (f" ({link.problem})" if link.problem else "")
+        return None
 
     @property
     def clock(self) -> Callable[[], float]:
