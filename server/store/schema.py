@@ -224,7 +224,8 @@ def migrate(conn: Connection, migrations: Sequence[Migration] = MIGRATIONS) -> i
     for expected, migration in enumerate(migrations, start=1):
         if migration.version != expected:
             raise ValueError(f"migration {migration.version} is out of order (expected {expected})")
-    _refuse_unknown(conn, schema_version(conn), latest)
+    # Checked under the write lock only: read before it, the version and the tables could come
+    # from either side of another process's first migration (tables there, version not yet).
     for migration in migrations:
         dialect.begin_write(conn, migrating=True)
         try:

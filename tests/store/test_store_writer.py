@@ -292,7 +292,7 @@ def test_writes_need_a_running_session_of_this_store(store, begin):
     store.write(session_id, EventLogged(t=2.0, kind="input", name="lick"))
     store.flush()
     stored = store.conn.execute("SELECT count(*) FROM events WHERE session_id = ? AND name = 'lick'", (session_id,))
-    assert stored.fetchone() == (1,)
+    assert tuple(stored.fetchone()) == (1,)
 
 
 @pytest.mark.parametrize(
