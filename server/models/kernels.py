@@ -42,7 +42,12 @@ class KernelTrial(NamedTuple):
     options: int  # how many options were known when the trial was made
     state: int = -1  # second-stage state index (-1: single-stage trial)
     common: int = -1  # 1 common transition, 0 rare, -1 single-stage
-    choice2: int = -1  # second-stage option index (-1: none offered or none made)
+    # second-stage option index; ANSWERED (-1): a single response was made, no option to choose
+    # between; MISSED (-2): the second-stage window ran out (nothing is learned from it)
+    choice2: int = -1
+
+
+ANSWERED, MISSED = -1, -2
 
 
 class TrialKernel(Protocol):

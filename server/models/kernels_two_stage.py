@@ -13,7 +13,7 @@ from typing import Any
 
 import numpy as np
 
-from .kernels import KERNEL_FACTORIES, KernelTrial, Values
+from .kernels import ANSWERED, KERNEL_FACTORIES, KernelTrial, Values
 from .params import Param
 from .two_stage import (
     TWO_STAGE_MODELS,
@@ -56,8 +56,12 @@ class HybridKernel:
             reached[trial.state] = 1.0
             opts = task.options[trial.state]
             offered[: max(1, len(opts)), 0] = 1.0
+            # as TwoStageTask.encode: a chosen option, a single response (slot 0), or a
+            # missed second stage (no slot: its values learn nothing)
             if trial.choice2 >= 0:
                 second[opts.index(self._second_labels[trial.choice2]) if opts else 0] = 1.0
+            elif trial.choice2 == ANSWERED:
+                second[0] = 1.0
         return TrialArrays(first, reached, offered, second, np.full((1,), trial.reward))
 
     def step(self, theta: Mapping[str, np.ndarray], values: Values, trial: KernelTrial) -> tuple[np.ndarray, Values]:

@@ -40,7 +40,7 @@ import numpy as np
 from server.engine.records import SecondStage
 
 from .estimator import Estimate, ParamEstimate, build_estimate
-from .kernels import ChoiceKernel, KernelTrial, TrialKernel, Values, get_kernel
+from .kernels import ANSWERED, MISSED, ChoiceKernel, KernelTrial, TrialKernel, Values, get_kernel
 from .params import Param, Prior
 
 STATE_FORMAT = 1
@@ -280,7 +280,12 @@ class ParticleEstimator:
         if second is None:
             return KernelTrial(idx, reward, len(self.options))
         state = self._states.setdefault(second.state, len(self._states))
-        c2 = -1 if second.choice is None else self._seconds.setdefault(second.choice, len(self._seconds))
+        if second.omitted:
+            c2 = MISSED
+        elif second.choice is None:
+            c2 = ANSWERED  # a single-response state, answered
+        else:
+            c2 = self._seconds.setdefault(second.choice, len(self._seconds))
         return KernelTrial(idx, reward, len(self.options), state, int(second.common), c2)
 
     def _set_log_weights(self, logw: np.ndarray) -> None:

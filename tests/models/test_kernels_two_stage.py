@@ -52,3 +52,45 @@ def test_the_lab_estimator_runs_the_hybrid_from_a_protocol_like_config():
     assert e.params["w"].low < e.params["w"].mean < e.params["w"].high
     restored = type(est).from_state(est.state_dict())
     assert restored.estimate().to_dict() == e.to_dict()
+
+
+def test_single_response_and_missed_second_stages_are_encoded_as_the_fit_encodes_them():
+    # A five-port task: each state offers one port, so the second stage is a single response.
+    # The estimator's kernel must read such a trial as the offline fit does
+    # (TwoStageTask.encode): answered -> its one slot learns from the outcome; missed -> no slot.
+    from server.models.kernels import ANSWERED, MISSED
+    from server.models.two_stage import TwoStageTask
+
+    task = {
+        "first": ["west", "east"],
+        "states": {"north": ["north_port"], "south": ["south_port"]},
+        "transitions": {"west": {"north": 0.8, "south": 0.2}, "east": {"north": 0.2, "south": 0.8}},
+    }
+    kernel = get_kernel("hybrid", task=task)
+    fit_task = TwoStageTask.build(task["first"], task["states"], task["transitions"])
+    cases = [
+        (KernelTrial(0, 1.0, 2, 0, 1, ANSWERED), fit_task.encode("west", "north", None, 1.0)),
+        (KernelTrial(1, 0.0, 2, 0, 0, ANSWERED), fit_task.encode("east", "north", None, 0.0)),
+        (KernelTrial(0, 0.0, 2, 1, 0, MISSED), fit_task.encode("west", "south", None, 0.0, omitted2=True)),
+    ]
+    for trial, encoded in cases:
+        arrays = kernel._arrays(trial)
+        assert np.array_equal(arrays.second[:, 0], encoded.second)
+        assert np.array_equal(arrays.offered[:, 0], encoded.offered)
+
+
+def test_the_estimator_learns_from_single_response_second_stages():
+    # After rewarded single responses at one state only, that state's second-stage value must
+    # have moved away from its start in every particle (it did not when they read as missed).
+    est = make_online_estimator(
+        "hybrid", ["west", "east"], states=["north", "south"], second_options=["north_port", "south_port"],
+        task={"first": ["west", "east"], "states": {"north": ["north_port"], "south": ["south_port"]},
+              "transitions": {"west": {"north": 0.8, "south": 0.2}, "east": {"north": 0.2, "south": 0.8}}},
+        particles=64, seed=3,
+    )  # fmt: skip
+    before = est.estimate()
+    for _ in range(30):
+        est.update("west", 1.0, second=SecondStage("north", True, None, "poke_north", 0.5))
+    after = est.estimate()
+    # The animal keeps choosing west and is paid: the choice probability of west must rise.
+    assert after.p_choice["west"] > before.p_choice["west"] + 0.2
