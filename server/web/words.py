@@ -15,6 +15,14 @@ QUANTITIES: dict[str, tuple[str, str]] = {
     "beta": ("inverse temperature β", "choice consistency; higher = exploits more, lower = explores more"),
     "kappa": ("perseveration κ", "bonus for repeating the previous choice; negative = tends to alternate"),
     "decay": ("forgetting rate", "how fast unchosen values drift back; higher = forgets faster"),
+    # the hybrid model-based/model-free learner of two-stage tasks (Daw et al. 2011)
+    "w": ("model-based weight w", "balance of control; 1 = goal-directed (uses the transitions), 0 = habitual"),
+    "alpha1": ("first-stage learning rate α1", "how far one trial moves the habitual value of the first choice"),
+    "alpha2": ("second-stage learning rate α2", "how far one outcome moves the value of the port it came from"),
+    "lambda": ("eligibility λ", "how much the outcome itself reaches back to the first choice's habitual value"),
+    "beta1": ("first-stage inverse temperature β1", "first-choice consistency; higher = exploits more"),
+    "beta2": ("second-stage inverse temperature β2", "second-choice consistency; higher = exploits more"),
+    "persev": ("perseveration", "tendency to repeat the previous first choice; negative = tends to alternate"),
     "exploration": (
         "exploration",
         "predicted probability of not choosing the best option next; higher = explores more",
