@@ -193,8 +193,17 @@ def cmd_rehearse(args: argparse.Namespace) -> int:
     result = rehearse(
         protocol, args.animals, args.seed, caps=HardCaps(), progress=progress_bar(),
         workers=args.workers, sessions=args.sessions, population=population,
-        firing_log=args.firings,
+        firing_log=args.firings, choices=bool(args.choices),
     )  # fmt: skip
+    if args.choices:
+        from server.store.csv_exports import write_choice_csv
+
+        try:
+            with open(args.choices, "w", newline="", encoding="utf-8") as fh:
+                write_choice_csv((p for animal in result["animals"] for p in animal.pop("choices")), fh)
+        except OSError as exc:
+            _err(f"cannot write choices {args.choices}: {exc.strerror}")
+            return 1
     if args.figure:
         try:
             Path(args.figure).write_text(criterion_figure_svg(result), encoding="utf-8")
@@ -358,6 +367,7 @@ def build_parser() -> argparse.ArgumentParser:
         help="vary a virtual animal's trait: NAME=LOW:HIGH, NAME=lognormal:MEDIAN:SIGMA, NAME=VALUE",
     )
     p.add_argument("--figure", metavar="FILE.svg", help="write a histogram of trials to criterion")
+    p.add_argument("--choices", metavar="FILE.csv", help="write every virtual animal's trials for `vigil fit`")
     p.add_argument("--firings", action="store_true", help="list every rule firing with the values its condition read")
     p.add_argument("--json", action="store_true", help="print JSON instead of a table")
     p.set_defaults(func=cmd_rehearse)

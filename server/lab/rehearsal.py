@@ -16,11 +16,13 @@ from typing import Any, TypedDict
 import numpy as np
 
 from server.engine.caps import HardCaps
+from server.engine.records import TrialRecord
 from server.engine.session import Session
 from server.engine.virtual import run_virtual
 from server.lab.assembly import build_session
 from server.lab.population import Population, Spread
 from server.protocol.model import SCHEDULE_ACTIONS, Protocol
+from server.store.history import PastTrial
 
 PARALLEL_FROM = 40  # animals; below this a process pool costs more than it saves
 
@@ -75,6 +77,7 @@ def rehearse_one(
     sessions: int = 1,
     closed_loop: bool = True,
     with_log: bool = False,
+    with_choices: bool = False,
 ) -> dict:
     """One virtual animal over `sessions` days: its learned values and the estimator's
     posterior carry from day to day, as they would for a real animal."""
@@ -88,6 +91,7 @@ def rehearse_one(
     firings: dict[str, int] = {}
     log: list[dict] = []
     trials_before = 0
+    choices: list[PastTrial] = []  # every trial, as `vigil fit` reads them (when asked)
     to_criterion = sessions_to_criterion = None
     for day in range(sessions):
         agent = make_agent(population.agent, **params)
@@ -100,7 +104,13 @@ def rehearse_one(
         else:  # the schedule alone: no estimator, no rules (a speed baseline)
             session = Session(protocol, animal.session_seed + day, caps, log_events=False)
         box = EmulatedBox(protocol.wiring, agent, np.random.default_rng(animal.agent_seed + day))
-        run_virtual(session, box)
+        if with_choices:
+            kept: list[TrialRecord] = []
+            run_virtual(session, box, on_records=_trials_into(kept))
+            name = f"virtual-{animal.index + 1:04d}"
+            choices.extend(PastTrial(name, day + 1, r.trial, r.choice, r.reward, r.omission, r.second) for r in kept)
+        else:
+            run_virtual(session, box)
         learned = agent.learned_state()
         if session.estimator is not None:
             estimator_state = session.estimator.state_dict()
@@ -151,7 +161,18 @@ def rehearse_one(
         result["sessions"] = [{k: v for k, v in d.items() if k != "blocks"} for d in days]
     if with_log:
         result["firing_log"] = log
+    if with_choices:
+        result["choices"] = choices
     return result
+
+
+def _trials_into(kept: list[TrialRecord]) -> Callable[[list], None]:
+    """A record sink that keeps a session's whole trials."""
+
+    def keep(records: list) -> None:
+        kept.extend(r for r in records if isinstance(r, TrialRecord) and not r.interrupted)
+
+    return keep
 
 
 def _end_time(session: Session) -> float:
@@ -159,8 +180,8 @@ def _end_time(session: Session) -> float:
 
 
 def _run_chunk(args) -> list[dict]:
-    protocol, animals, population, caps, sessions, closed_loop, with_log = args
-    return [rehearse_one(protocol, a, population, caps, sessions, closed_loop, with_log) for a in animals]
+    protocol, animals, population, caps, sessions, closed_loop, with_log, with_choices = args
+    return [rehearse_one(protocol, a, population, caps, sessions, closed_loop, with_log, with_choices) for a in animals]
 
 
 def rehearse(
@@ -177,7 +198,10 @@ def rehearse(
     population: Population | None = None,
     closed_loop: bool = True,
     firing_log: bool = False,
+    choices: bool = False,
 ) -> dict:
+    """Every virtual animal's sessions; `choices` keeps each one's trials (`"choices"`, as
+    `server.store.history.PastTrial`) for an export `vigil fit` reads."""
     if population is None:
         population = Population(agent, {k: Spread("fixed", float(v)) for k, v in (options or {}).items()})
     animals = cohort(seed, n_animals)
@@ -185,14 +209,14 @@ def rehearse(
     results: list[dict] = []
     if workers <= 1:
         for animal in animals:
-            results.append(rehearse_one(protocol, animal, population, caps, sessions, closed_loop, firing_log))
+            results.append(rehearse_one(protocol, animal, population, caps, sessions, closed_loop, firing_log, choices))
             if progress:
                 progress(len(results), n_animals)
     else:
         size = max(1, min(25, n_animals // (workers * 4) or 1))
         chunks = [animals[i : i + size] for i in range(0, n_animals, size)]
         with ProcessPoolExecutor(workers) as pool:
-            jobs = [(protocol, c, population, caps, sessions, closed_loop, firing_log) for c in chunks]
+            jobs = [(protocol, c, population, caps, sessions, closed_loop, firing_log, choices) for c in chunks]
             for part in pool.map(_run_chunk, jobs):
                 results.extend(part)
                 if progress:

@@ -11,9 +11,38 @@ from typing import Any, TextIO
 from server.store import rows
 from server.store.dialect import Connection
 from server.store.export_reads import trial_table
-from server.store.history import trial_history
+from server.store.history import PastTrial, trial_history
 
 CHOICE_COLUMNS = ("animal", "session", "trial", "choice", "reward")  # DESIGN.md: what `vigil fit` reads
+# ... and what it reads of two-stage trials (`transition` common or rare, `choice2` empty for a
+# single response; a missed second stage is not expressible here, the store keeps it)
+TWO_STAGE_CHOICE_COLUMNS = ("animal", "session", "trial", "choice", "transition", "state", "choice2", "reward")
+
+
+def choice_lines(past: Iterable[PastTrial]) -> tuple[tuple[str, ...], list[tuple]]:
+    """The fitting format's header and rows for these trials: the two-stage one when any
+    trial has a second stage. One function for the downloads and the rehearsal's export."""
+    past = list(past)
+    if not any(p.second is not None for p in past):
+        rows = [(p.animal, p.session_id, p.trial, None if p.omission or not p.choice else p.choice, p.reward or 0.0)
+                for p in past]  # fmt: skip
+        return CHOICE_COLUMNS, rows
+    two: list[tuple] = []
+    for p in past:
+        second = p.second
+        if p.omission or not p.choice or second is None:
+            two.append((p.animal, p.session_id, p.trial, None, None, None, None, p.reward or 0.0))
+            continue
+        transition = "common" if second.common else "rare"
+        reward = float(p.reward or 0)
+        two.append((p.animal, p.session_id, p.trial, p.choice, transition, second.state, second.choice, reward))
+    return TWO_STAGE_CHOICE_COLUMNS, two
+
+
+def write_choice_csv(past: Iterable[PastTrial], fileobj: TextIO) -> int:
+    """These trials in the fitting format (see `choice_lines`); returns the rows written."""
+    header, lines = choice_lines(past)
+    return _write_csv(lines, header, fileobj)
 
 
 def _write_csv(cursor: Iterable[Sequence[Any]], header: Sequence[str], fileobj: TextIO) -> int:
@@ -110,12 +139,8 @@ def export_choices_csv(
         if owner is None:
             return _write_csv((), CHOICE_COLUMNS, fileobj)
         animal = str(owner[0])
-    past = trial_history(conn, animals=None if animal is None else [animal])
+    past = trial_history(conn, animals=None if animal is None else [animal], two_stage=True)
     if session_id is not None:
         past = [p for p in past if p.session_id == session_id]
     past.sort(key=lambda p: p.animal)  # stable: each animal's trials stay in session order
-    lines = (
-        (p.animal, p.session_id, p.trial, None if p.omission or not p.choice else p.choice, p.reward or 0.0)
-        for p in past
-    )
-    return _write_csv(lines, CHOICE_COLUMNS, fileobj)
+    return write_choice_csv(past, fileobj)
