@@ -27,6 +27,12 @@ def _err(message: str) -> None:
 # ---------------------------------------------------------------- check
 
 
+def _problems(exc: InvalidFile) -> None:
+    """Every problem of an invalid file, one `file:line:col: message` line each."""
+    for problem in exc.problems:
+        sys.stderr.write(f"{problem}\n")
+
+
 def _warn(warnings: Sequence[Problem]) -> None:
     """Old spellings that were read, each naming the new one (they load until the next format version)."""
     for warning in warnings:
@@ -51,8 +57,7 @@ def cmd_check(args: argparse.Namespace) -> int:
                 warnings = protocol.warnings
         except InvalidFile as exc:
             bad += 1
-            for problem in exc.problems:
-                sys.stderr.write(f"{problem}\n")
+            _problems(exc)
             continue
         _warn(warnings)
         if not args.quiet:
@@ -105,8 +110,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     try:
         config = load_lab(args.config)
     except InvalidFile as exc:
-        for problem in exc.problems:
-            sys.stderr.write(f"{problem}\n")
+        _problems(exc)
         return 1
     _warn(config.warnings)
     return _run_lab(config, args.db or str(config.database), args.minutes, args.port)
@@ -118,8 +122,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
     try:
         config = demo_lab(DEMO_CONFIG, args.boxes)
     except InvalidFile as exc:
-        for problem in exc.problems:
-            sys.stderr.write(f"{problem}\n")
+        _problems(exc)
         return 1
     minutes = args.minutes
     print(
@@ -186,8 +189,7 @@ def cmd_rehearse(args: argparse.Namespace) -> int:
         else:
             population = parse_vary(args.vary or [], args.agent)
     except InvalidFile as exc:
-        for problem in exc.problems:
-            sys.stderr.write(f"{problem}\n")
+        _problems(exc)
         return 1
     _warn(protocol.warnings + population.warnings)
     result = rehearse(
@@ -255,8 +257,7 @@ def cmd_doctor(args: argparse.Namespace) -> int:
         try:
             config = load_lab(args.config)
         except InvalidFile as exc:
-            for problem in exc.problems:
-                sys.stderr.write(f"{problem}\n")
+            _problems(exc)
             return 1
         if not any(box.port for box in config.boxes):
             print(f"{args.config}: no box has a `port:`; nothing to check")
