@@ -117,6 +117,7 @@ class SerialLink:
         self._warned = False
         self._sleep_until = 0.0  # when the serve loop next wakes by itself
         self._closing = False
+        self.closed_connected: bool | None = None  # at close: was the link up (None: not closed yet)
         self._session: LinkSubscriber = _NoSession()
 
     def attach(self, subscriber: LinkSubscriber) -> None:
@@ -402,17 +403,26 @@ class SerialLink:
         }))  # fmt: skip
         self.say(f"{self.box}: link restored after {down:.1f} s")
 
+    def _unsettled(self) -> bool:
+        """Commands still unacknowledged, or device events still to be replayed."""
+        tracker = self.side.tracker
+        return bool(len(self.side.pending)) or (tracker is not None and tracker.missing)
+
     async def close(self, timeout_s: float = 1.0) -> bool:
         """Wait (up to `timeout_s`) for every command to be acknowledged, then close the port.
 
-        Returns True when nothing was left unacknowledged. Outputs left on by a link that
-        could not say so are turned off by the device itself after 5 s of host silence.
+        Returns True when nothing was left unacknowledged. Events the device has shown but
+        the host has not yet taken in order (a dropped line just before the end, such as the
+        box confirming its safe state) are asked for again within the same wait, so a clean
+        close keeps every event. Outputs left on by a link that could not say so are turned
+        off by the device itself after 5 s of host silence.
         """
         end = self._host() + timeout_s
-        while self.connected and len(self.side.pending) and self._host() < end:
+        while self.connected and self._unsettled() and self._host() < end:
             self._wake.set()
             await asyncio.sleep(0.01)
         acknowledged = self.connected and not len(self.side.pending)
+        self.closed_connected = self.connected
         self._closing = True
         self.connected = False
         self._wake.set()

@@ -33,8 +33,9 @@ def test_a_short_soak_loses_nothing_and_holds_memory_and_descriptors():
     assert live["store"]["problems"] == []
     assert live["store"]["trials"] > 20 and live["store"]["device_events"] > 50
     checks = result["checks"]
-    # A line dropped in the last half second before the sessions end is not replayed (the
-    # link closes first): printed by the soak, not checked here; see bench/soak.py.
+    # A line dropped just before the end is replayed before the link closes (a loss otherwise,
+    # among the problems above); events written while the cable was out at the very end stay
+    # on the box: printed, not checked.
     at_close = checks.pop("all_received_at_close")
     print("all received at close:", at_close, live["store"]["unreceived_at_close"] if not at_close else "")
     assert checks == {"memory": True, "fds_flat": True, "nothing_lost": True, "night_memory": True}, result
