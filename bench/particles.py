@@ -1,8 +1,10 @@
 """Speed and accuracy of the particle estimator (resample-move SMC, server/models/particles.py).
 
 1. Per-trial update, p50 / p99 / max over 300 trials of one animal, for every single-stage
-   model and for a six-parameter stand-in hybrid (tests/models/hybrid_standin.py), with the number
-   of rejuvenations (each replays the whole history for every particle, twice).
+   model and for the seven-parameter hybrid model-based/model-free learner (its compiled
+   kernel; the trials come from the separately written simulator of
+   tests/models/hybrid_standin.py), with the number of rejuvenations (each replays the whole
+   history for every particle, twice).
 2. Accuracy of the default particle count: posterior means and 95 % bounds against a run
    with four times as many particles, as a share of each parameter's range (target <= 2 %).
 3. Baseline in the same run: the exact grid estimator's update on the same trials.
@@ -23,15 +25,20 @@ sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "tests" / "models"))  # the stand-in hybrid lives beside the tests that use it
 
 import numpy as np  # noqa: E402
-from hybrid_standin import HybridStandIn, simulate  # noqa: E402
+from hybrid_standin import COMMON, simulate  # noqa: E402
 from machine import where_run  # noqa: E402
 
 from server.engine.records import SecondStage  # noqa: E402
 from server.models import CHOICE_MODELS, OnlineEstimator  # noqa: E402
-from server.models.kernels import KERNELS  # noqa: E402
 from server.models.particles import ParticleEstimator  # noqa: E402
 
-KERNELS["hybrid_standin"] = HybridStandIn()
+# The two-stage task of the simulated trials, as the lab hands it to the estimator
+TASK = {
+    "first": ["L", "R"],
+    "states": {"A": ["x", "y"], "B": ["x2", "y2"]},
+    "transitions": {"L": {"A": COMMON, "B": 1 - COMMON}, "R": {"A": 1 - COMMON, "B": COMMON}},
+}
+TWO_STAGE = {"states": ["A", "B"], "second_options": ["x", "y", "x2", "y2"], "task": TASK}
 
 
 def single_stage_trials(n: int, seed: int) -> list[tuple[str, float]]:
@@ -50,7 +57,8 @@ def single_stage_trials(n: int, seed: int) -> list[tuple[str, float]]:
 def hybrid_trials(n: int, seed: int) -> list[tuple[str, float, SecondStage]]:
     p = {"w": 0.6, "alpha": 0.5, "beta1": 4.0, "beta2": 4.0, "lam": 0.6, "persev": 0.3}
     return [
-        ("LR"[a1], r, SecondStage("AB"[s], bool(common), "xy"[a2])) for a1, s, common, a2, r in simulate(p, n, seed)
+        ("LR"[a1], r, SecondStage("AB"[s], bool(common), TWO_STAGE["second_options"][2 * s + a2]))
+        for a1, s, common, a2, r in simulate(p, n, seed)
     ]
 
 
@@ -79,9 +87,9 @@ def figures(particles: int | None = None, trials: int = 300) -> dict[str, dict[s
     """Per model: update p50 / p99 / max in ms, rejuvenations, largest gap against 4x particles."""
     rows = {}
     single = single_stage_trials(trials, 1)
-    for name in list(CHOICE_MODELS) + ["hybrid_standin"]:
-        seen = hybrid_trials(trials, 2) if name == "hybrid_standin" else single
-        two = {"states": ["A", "B"], "second_options": ["x", "y"]} if name == "hybrid_standin" else {}
+    for name in list(CHOICE_MODELS) + ["hybrid"]:
+        seen = hybrid_trials(trials, 2) if name == "hybrid" else single
+        two = TWO_STAGE if name == "hybrid" else {}
         est = ParticleEstimator(name, ["L", "R"], particles=particles, seed=1, **two)
         ms = timed(est, seen)
         count = est.config["particles"]

@@ -12,7 +12,9 @@ A `TrialKernel` is what `particles.ParticleEstimator` needs of a learning model:
   choice); an omission has `choice = -1` and must leave the values as they were with log
   probability 0;
 - `probabilities(theta, values, options)`: next-trial choice probabilities (options x n),
-  for summaries and `p_choice_at_least`.
+  for summaries and `p_choice_at_least`;
+- optionally `replay(theta, values, trials, weight)`: a stretch of trials in one call (see
+  `replay` below), where a kernel can do it faster than trial by trial.
 
 `ChoiceKernel` adapts today's single-stage models (`choice.ChoiceModel`: learn + drive)
 through it. A two-stage model whose trial update is already numpy over parameter sets adapts
@@ -22,7 +24,7 @@ that calls its update and returns (log p, values); register it in `KERNELS`.
 
 from __future__ import annotations
 
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any, NamedTuple, Protocol
 
@@ -116,6 +118,25 @@ class ChoiceKernel:
         return values[0][:options]
 
 
+def replay(
+    kernel: TrialKernel, theta: Mapping[str, np.ndarray], values: Values, trials: Sequence[KernelTrial],
+    weight: float = 1.0,
+) -> tuple[np.ndarray, Values]:  # fmt: skip
+    """Run a stretch of trials for every parameter set: (weight x summed log P, new values).
+
+    A kernel with a `replay` of its own (a compiled loop over trials) runs the stretch in one
+    call; any other steps through it trial by trial."""
+    own = getattr(kernel, "replay", None)
+    if own is not None:
+        return own(theta, values, trials, weight)
+    ll = np.zeros(values[0].shape[-1])
+    for trial in trials:
+        if trial.choice >= 0:
+            logp, values = kernel.step(theta, values, trial)
+            ll += weight * logp
+    return ll, values
+
+
 # The models the particle estimator offers, by name. A two-stage model whose kernel depends
 # on the task's structure registers a factory instead: it gets the estimator's `task` (plain
 # JSON, kept in the estimator's state: first-stage options, states with their options,
@@ -128,6 +149,8 @@ def get_kernel(name: str, q0: float = 0.0, task: Mapping[str, Any] | None = None
     """The kernel of a model by name (a did-you-mean on a typo, as for choice models)."""
     if name in CHOICE_MODELS:
         return ChoiceKernel(CHOICE_MODELS[name], q0)
+    from . import kernels_two_stage  # noqa: F401  (registers the two-stage factories; imports this module)
+
     if name in KERNEL_FACTORIES:
         return KERNEL_FACTORIES[name](task, q0)
     if name in KERNELS:

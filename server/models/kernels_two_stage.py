@@ -1,14 +1,16 @@
 """The hybrid model-based/model-free learner (two_stage.py) as a particle-estimator kernel.
 
-`hybrid_step` is already one call per trial over parameter sets, so the adapter only builds
-the task from the estimator's `task` data, turns a `KernelTrial`'s indices into the step's
-one-hot arrays (the estimator's states and second options are in the task's order), and
-fills in a variant's fixed parameters.
+The trial update runs compiled (`compiled_hybrid.hybrid_trials`, checked against the numpy
+`hybrid_step` that the offline fit runs): the adapter builds the task from the estimator's
+`task` data, turns `KernelTrial`s into the kernel's index arrays (the estimator's states and
+second options are in the task's order), and fills in a variant's fixed parameters. `replay`
+runs a stretch of stored trials in one call, which is what the estimator's moves spend their
+time on.
 """
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 import numpy as np
@@ -32,6 +34,18 @@ class HybridKernel:
         self.model, self.task, self.q0 = model, task, q0
         self._second_labels = [o for opts in task.options for o in opts]
         self._valid = task.valid
+        self._transitions = np.ascontiguousarray(task.transitions, dtype=float)
+        self._n_slots = np.array([max(1, len(o)) for o in task.options], dtype=np.int64)
+        self._packs: dict[int, tuple[Mapping[str, np.ndarray], np.ndarray]] = {}
+        # imported here, not at the top: numba's import costs about a second, which only a
+        # process that estimates a two-stage model should pay
+        from . import compiled_hybrid
+
+        self._compiled = compiled_hybrid
+        self.replay({p.name: np.full(1, p.low) for p in self.params}, self.start(1, 0),
+                    (KernelTrial(0, 0.0, 1, 0, 1, ANSWERED),))  # fmt: skip
+        # ^ the first call loads the machine code (compiles it in a fresh install): here, when
+        # the lab builds its sessions, not on a box's first trial
 
     @property
     def name(self) -> str:
@@ -64,11 +78,56 @@ class HybridKernel:
                 second[0] = 1.0
         return TrialArrays(first, reached, offered, second, np.full((1,), trial.reward))
 
-    def step(self, theta: Mapping[str, np.ndarray], values: Values, trial: KernelTrial) -> tuple[np.ndarray, Values]:
+    def reference_step(
+        self, theta: Mapping[str, np.ndarray], values: Values, trial: KernelTrial
+    ) -> tuple[np.ndarray, Values]:
+        """The same trial through the numpy reference (`hybrid_step`): for the tests."""
         if trial.choice < 0:
             return np.zeros(values[0].shape[-1]), values
         out = hybrid_step(self.model.theta(theta), HybridValues(*values), self.task, self._arrays(trial), self._valid)
         return out.logp, tuple(out.values)
+
+    def _slot(self, trial: KernelTrial) -> int:
+        """The option slot taken at the second stage; -1 for a missed one (nothing learned)."""
+        if trial.choice2 >= 0:
+            opts = self.task.options[trial.state]
+            return opts.index(self._second_labels[trial.choice2]) if opts else 0
+        return 0 if trial.choice2 == ANSWERED else -1
+
+    def _packed(self, theta: Mapping[str, np.ndarray], n: int) -> np.ndarray:
+        """theta as the compiled kernel's rows; the estimator passes the same mapping until its
+        particles move, so the last few packings are kept (with the mapping, so ids stay theirs)."""
+        hit = self._packs.get(id(theta))
+        if hit is not None and hit[0] is theta:
+            return hit[1]
+        rows = self._compiled.pack_theta(self.model.theta(theta), n)
+        if len(self._packs) >= 4:
+            self._packs.pop(next(iter(self._packs)))
+        self._packs[id(theta)] = (theta, rows)
+        return rows
+
+    def replay(
+        self, theta: Mapping[str, np.ndarray], values: Values, trials: Sequence[KernelTrial], weight: float = 1.0
+    ) -> tuple[np.ndarray, Values]:
+        """Run `trials` in order for every parameter set: (weight x the summed log P, the new
+        values). Omitted trials are skipped; the inputs are not changed."""
+        q1, q2, prev = (np.array(v, dtype=float, order="C") for v in values)
+        n = q1.shape[-1]
+        ll = np.zeros(n)
+        if trials:
+            choice = np.fromiter((t.choice for t in trials), np.int64, len(trials))
+            state = np.fromiter((t.state for t in trials), np.int64, len(trials))
+            slot = np.fromiter((self._slot(t) if t.choice >= 0 else -1 for t in trials), np.int64, len(trials))
+            reward = np.fromiter((t.reward for t in trials), float, len(trials))
+            weights = np.full(len(trials), float(weight))
+            self._compiled.hybrid_trials(self._packed(theta, n), q1, q2, prev, self._transitions, self._n_slots,
+                                         choice, state, slot, reward, weights, ll)  # fmt: skip
+        return ll, (q1, q2, prev)
+
+    def step(self, theta: Mapping[str, np.ndarray], values: Values, trial: KernelTrial) -> tuple[np.ndarray, Values]:
+        if trial.choice < 0:
+            return np.zeros(values[0].shape[-1]), values
+        return self.replay(theta, values, (trial,))
 
     def _logits(self, theta: Mapping[str, np.ndarray], values: Values) -> np.ndarray:
         q1, q2, prev = values

@@ -40,7 +40,7 @@ import numpy as np
 from server.engine.records import SecondStage
 
 from .estimator import Estimate, ParamEstimate, build_estimate
-from .kernels import ANSWERED, MISSED, ChoiceKernel, KernelTrial, TrialKernel, Values, get_kernel
+from .kernels import ANSWERED, MISSED, ChoiceKernel, KernelTrial, TrialKernel, Values, get_kernel, replay
 from .params import Param, Prior
 
 STATE_FORMAT = 1
@@ -353,15 +353,18 @@ class ParticleEstimator:
                 if not self.config["carry_values"]:
                     move.values = self.kernel.start(len(move.ll), k)
                 continue
-            trial = trials[move.trial]
-            move.trial += 1
-            if trial.choice < 0:
-                continue
+            # the next stretch of this session holding at most the budget's answered trials,
+            # replayed in one call
+            end, answered = move.trial, 0
+            while end < len(trials) and answered < budget - done:
+                answered += trials[end].choice >= 0
+                end += 1
+            chunk, move.trial = trials[move.trial : end], end
             if move.values[0].shape[0] < k:
                 move.values = self.kernel.grow(move.values, k)
-            logp, move.values = self.kernel.step(move.theta, move.values, trial)
-            move.ll += self._exponents[move.session] * logp
-            done += 1
+            ll, move.values = replay(self.kernel, move.theta, move.values, chunk, self._exponents[move.session])
+            move.ll += ll
+            done += answered
 
     def _judge(self, move: _Move) -> None:
         lp, lp_prop = self._log_prior_z(self._z), self._log_prior_z(move.z)
