@@ -167,12 +167,16 @@ async def echo_host(paths: list[str], until: asyncio.Future) -> None:
     loop = asyncio.get_running_loop()
     ports = [serial.serial_for_url(p, baudrate=115_200, timeout=0) for p in paths]
     next_id = [1000]
+    partial: dict[int, bytes] = {}
 
     def readable(fd: int) -> None:
-        data = os.read(fd, 65536)
-        if b" edge 0 + " in data:
-            next_id[0] += 1  # a fresh id: the device carries out a repeated one only once
-            os.write(fd, encode(PulseCommand(next_id[0], FEEDER, 20)))
+        # whole lines only: with many boxes a read can end inside a press line, which a search
+        # of each read alone would miss (that box then waited for ever for its pellet)
+        *lines, partial[fd] = (partial.get(fd, b"") + os.read(fd, 65536)).split(b"\n")
+        for line in lines:
+            if b" edge 0 + " in line:
+                next_id[0] += 1  # a fresh id: the device carries out a repeated one only once
+                os.write(fd, encode(PulseCommand(next_id[0], FEEDER, 20)))
 
     for port in ports:
         fd = port.fileno()
