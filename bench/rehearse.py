@@ -6,8 +6,9 @@ estimator after every trial, and the protocol's rules), and (c) a cohort through
 `vigil rehearse`'s own code path (closed loop on). The baseline measured in the same run is
 the session core alone replaying the same animal's recorded inputs.
 
-    python bench/rehearse.py [--protocol FILE] [--animals 1000] [--sessions 1] [--json]
+    python bench/rehearse.py [--protocol FILE] [--agent NAME] [--animals 1000] [--sessions 1] [--json]
     python bench/rehearse.py --animals 1000 --sessions 5     # the closed-loop cohort figure
+    python bench/rehearse.py --protocol protocols/two_stage.yaml --agent two_stage_learner
 """
 
 from __future__ import annotations
@@ -36,20 +37,20 @@ from server.lab.rehearsal import rehearse  # noqa: E402
 from server.protocol.load import load_protocol  # noqa: E402
 
 
-def one_session(protocol, seed: int, closed_loop: bool = False) -> tuple[float, Session, list]:
+def one_session(protocol, seed: int, agent: str, closed_loop: bool = False) -> tuple[float, Session, list]:
     if closed_loop:
         session = build_session(protocol, seed, HardCaps(), log_events=False, summarise_estimates=False)
     else:
         session = Session(protocol, seed, HardCaps(), log_events=False)
-    box = EmulatedBox(protocol.wiring, make_agent("q_learner"), np.random.default_rng(seed + 1))
+    box = EmulatedBox(protocol.wiring, make_agent(agent), np.random.default_rng(seed + 1))
     start = time.perf_counter()
     run_virtual(session, box)
     return time.perf_counter() - start, session, box
 
 
-def recorded_inputs(protocol, seed: int) -> list[tuple[float, InputEvent]]:
+def recorded_inputs(protocol, seed: int, agent: str) -> list[tuple[float, InputEvent]]:
     session = Session(protocol, seed, HardCaps(), log_events=True)
-    box = EmulatedBox(protocol.wiring, make_agent("q_learner"), np.random.default_rng(seed + 1))
+    box = EmulatedBox(protocol.wiring, make_agent(agent), np.random.default_rng(seed + 1))
     records: list = []
     run_virtual(session, box, on_records=records.extend)
     return [
@@ -74,6 +75,7 @@ def replay_core(protocol, seed: int, inputs) -> float:
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--protocol", default=str(ROOT / "protocols" / "reversal.yaml"))
+    parser.add_argument("--agent", default="q_learner", help="virtual animal (default q_learner)")
     parser.add_argument("--animals", type=int, default=1000)
     parser.add_argument("--repeats", type=int, default=20)
     parser.add_argument("--workers", type=int, default=None)
@@ -85,30 +87,30 @@ def main() -> int:
 
     times, trials, virtual = [], [], []
     for i in range(args.repeats):
-        wall, session, _ = one_session(protocol, 1000 + i)
+        wall, session, _ = one_session(protocol, 1000 + i, args.agent)
         times.append(wall)
         trials.append(session.trials_done)
         virtual.append(session.ended_at)
     wall = statistics.median(times)
     virtual_s = statistics.median(virtual)
-    inputs = recorded_inputs(protocol, 1000)
+    inputs = recorded_inputs(protocol, 1000, args.agent)
     core = statistics.median(replay_core(protocol, 1000, inputs) for _ in range(args.repeats))
     loop_times, loop_trials = [], []
     for i in range(max(3, args.repeats // 4)):
-        w, session, _ = one_session(protocol, 1000 + i, closed_loop=True)
+        w, session, _ = one_session(protocol, 1000 + i, args.agent, closed_loop=True)
         loop_times.append(w)
         loop_trials.append(session.trials_done)
     loop_wall = statistics.median(loop_times)
 
     start = time.perf_counter()
-    plain = rehearse(protocol, args.animals, seed=7, agent="q_learner", workers=args.workers, closed_loop=False)
+    plain = rehearse(protocol, args.animals, seed=7, agent=args.agent, workers=args.workers, closed_loop=False)
     plain_s = time.perf_counter() - start
     plain_trials = sum(a["trials"] for a in plain["animals"])
     plain_virtual = sum(a["duration_s"] for a in plain["animals"])
 
     start = time.perf_counter()
     result = rehearse(
-        protocol, args.loop_animals, seed=7, agent="q_learner", workers=args.workers, sessions=args.sessions
+        protocol, args.loop_animals, seed=7, agent=args.agent, workers=args.workers, sessions=args.sessions
     )
     cohort_s = time.perf_counter() - start
     cohort_trials = sum(a["trials"] for a in result["animals"])
@@ -139,7 +141,7 @@ def main() -> int:
         print(json.dumps(figures))
         return 0
     print(f"machine: {where_run()}")
-    print(f"protocol '{protocol.name}', agent q_learner")
+    print(f"protocol '{protocol.name}', agent {args.agent}")
     print(f"one session: {virtual_s / 60:.0f} virtual min in {wall * 1000:.1f} ms "
           f"(median of {args.repeats}) = {virtual_s / wall:,.0f}x real time, "
           f"{statistics.median(trials) / wall:,.0f} trials/s")  # fmt: skip
