@@ -30,26 +30,26 @@ from numba import njit
 THETA_ROWS = ("alpha1", "alpha2", "lambda", "beta1", "beta2", "w", "persev")
 
 
+@njit(cache=True, nogil=True, inline="always")
+def _particle(theta, n):  # pragma: no cover
+    """One particle's parameters, in THETA_ROWS order."""
+    return theta[0, n], theta[1, n], theta[2, n], theta[3, n], theta[4, n], theta[5, n], theta[6, n]
+
+
 @njit(cache=True, nogil=True)
 def hybrid_trials(theta, q1, q2, prev, trans, n_slots, choice, state, slot, reward, weight, ll):  # pragma: no cover
     """Run trials (choice, state, slot, reward: one entry each) for every particle, in place.
 
     theta (7, N) rows as THETA_ROWS; q1 (K1, N), q2 (S, B, N), prev (K1, N) updated in place;
     trans (K1, S); n_slots (S,) options per state (1 for a single response); ll (N,) gets
-    weight * log P(what the animal did) added per trial."""
+    weight (a number: one session's tempering exponent) x the trials' summed log P added."""
     k1n, n_par = q1.shape
     s_n = q2.shape[0]
     best = np.empty(s_n)
     logits = np.empty(k1n)
     trials = choice.shape[0]
     for n in range(n_par):
-        a1 = theta[0, n]
-        a2 = theta[1, n]
-        lam = theta[2, n]
-        b1 = theta[3, n]
-        b2 = theta[4, n]
-        w = theta[5, n]
-        pe = theta[6, n]
+        a1, a2, lam, b1, b2, w, pe = _particle(theta, n)
         acc = 0.0
         for t in range(trials):
             c = choice[t]
@@ -118,8 +118,105 @@ def hybrid_trials(theta, q1, q2, prev, trans, n_slots, choice, state, slot, rewa
             for k in range(k1n):
                 prev[k, n] = 0.0
             prev[c, n] = 1.0
-            acc -= weight[t] * (shift + math.log(product))
-        ll[n] += acc
+            acc -= shift + math.log(product)
+        ll[n] += weight * acc
+
+
+@njit(cache=True, nogil=True)
+def hybrid_trials_2x2(theta, q1, q2, prev, trans, n_slots, choice, state, slot, reward, weight, ll):  # pragma: no cover
+    """`hybrid_trials` for the common shape: two first-stage options and two states of one or
+    two options each. The same arithmetic with every value in a local, about twice as fast."""
+    n_par = q1.shape[1]
+    t00 = trans[0, 0]
+    t01 = trans[0, 1]
+    t10 = trans[1, 0]
+    t11 = trans[1, 1]
+    two0 = n_slots[0] == 2
+    two1 = n_slots[1] == 2
+    trials = choice.shape[0]
+    for n in range(n_par):
+        a1, a2, lam, b1, b2, w, pe = _particle(theta, n)
+        x0 = q1[0, n]
+        x1 = q1[1, n]
+        p0 = prev[0, n]
+        p1 = prev[1, n]
+        y00 = q2[0, 0, n]
+        y10 = q2[1, 0, n]
+        y01 = q2[0, 1, n] if two0 else 0.0
+        y11 = q2[1, 1, n] if two1 else 0.0
+        acc = 0.0
+        total_shift = 0.0
+        total_product = 1.0
+        for t in range(trials):
+            c = choice[t]
+            if c < 0:
+                continue
+            m0 = max(y00, y01) if two0 else y00
+            m1 = max(y10, y11) if two1 else y10
+            # logit of option 1 minus option 0; g: the other option's minus the chosen one's
+            d = b1 * (w * ((t10 - t00) * m0 + (t11 - t01) * m1) + (1.0 - w) * (x1 - x0) + pe * (p1 - p0))
+            g = d if c == 0 else -d
+            shift = max(g, 0.0)
+            product = 1.0 + math.exp(-abs(g))
+            s = state[t]
+            b = slot[t]
+            if b >= 0:
+                if s == 0:
+                    qa = y01 if b == 1 else y00
+                    qo = y00 if b == 1 else y01
+                    two = two0
+                else:
+                    qa = y11 if b == 1 else y10
+                    qo = y10 if b == 1 else y11
+                    two = two1
+                if two:
+                    g2 = b2 * (qo - qa)
+                    shift += max(g2, 0.0)
+                    product *= 1.0 + math.exp(-abs(g2))
+                d2 = reward[t] - qa
+                if c == 0:
+                    x0 += a1 * (qa - x0 + lam * d2)
+                else:
+                    x1 += a1 * (qa - x1 + lam * d2)
+                qa += a2 * d2
+                if s == 0:
+                    if b == 1:
+                        y01 = qa
+                    else:
+                        y00 = qa
+                elif b == 1:
+                    y11 = qa
+                else:
+                    y10 = qa
+            p0 = 1.0 if c == 0 else 0.0
+            p1 = 1.0 - p0
+            # the factors (each at most 2) multiply on over trials: one logarithm per run of
+            # them, taken well before the product could overflow
+            total_shift += shift
+            total_product *= product
+            if total_product > 1e150:
+                acc -= total_shift + math.log(total_product)
+                total_shift = 0.0
+                total_product = 1.0
+        acc -= total_shift + math.log(total_product)
+        q1[0, n] = x0
+        q1[1, n] = x1
+        prev[0, n] = p0
+        prev[1, n] = p1
+        q2[0, 0, n] = y00
+        q2[1, 0, n] = y10
+        if two0:
+            q2[0, 1, n] = y01
+        if two1:
+            q2[1, 1, n] = y11
+        ll[n] += weight * acc
+
+
+def kernel_for(first: int, n_slots: np.ndarray):
+    """The fastest of the two kernels that fits the task's shape."""
+    if first == 2 and len(n_slots) == 2 and int(n_slots.max()) <= 2:
+        return hybrid_trials_2x2
+    return hybrid_trials
 
 
 def pack_theta(full: dict[str, np.ndarray | float], n: int) -> np.ndarray:

@@ -41,7 +41,8 @@ class HybridKernel:
         # process that estimates a two-stage model should pay
         from . import compiled_hybrid
 
-        self._compiled = compiled_hybrid
+        self._pack = compiled_hybrid.pack_theta
+        self._run = compiled_hybrid.kernel_for(len(task.first), self._n_slots)
         self.replay({p.name: np.full(1, p.low) for p in self.params}, self.start(1, 0),
                     (KernelTrial(0, 0.0, 1, 0, 1, ANSWERED),))  # fmt: skip
         # ^ the first call loads the machine code (compiles it in a fresh install): here, when
@@ -100,7 +101,7 @@ class HybridKernel:
         hit = self._packs.get(id(theta))
         if hit is not None and hit[0] is theta:
             return hit[1]
-        rows = self._compiled.pack_theta(self.model.theta(theta), n)
+        rows = self._pack(self.model.theta(theta), n)
         if len(self._packs) >= 4:
             self._packs.pop(next(iter(self._packs)))
         self._packs[id(theta)] = (theta, rows)
@@ -119,9 +120,8 @@ class HybridKernel:
             state = np.fromiter((t.state for t in trials), np.int64, len(trials))
             slot = np.fromiter((self._slot(t) if t.choice >= 0 else -1 for t in trials), np.int64, len(trials))
             reward = np.fromiter((t.reward for t in trials), float, len(trials))
-            weights = np.full(len(trials), float(weight))
-            self._compiled.hybrid_trials(self._packed(theta, n), q1, q2, prev, self._transitions, self._n_slots,
-                                         choice, state, slot, reward, weights, ll)  # fmt: skip
+            self._run(self._packed(theta, n), q1, q2, prev, self._transitions, self._n_slots, choice, state, slot,
+                      reward, float(weight), ll)  # fmt: skip
         return ll, (q1, q2, prev)
 
     def step(self, theta: Mapping[str, np.ndarray], values: Values, trial: KernelTrial) -> tuple[np.ndarray, Values]:

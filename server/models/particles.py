@@ -166,6 +166,7 @@ class ParticleEstimator:
         n = particles
         draws = np.stack([_truncated_prior_draws(p, n, self._rng) for p in self.params], axis=1)
         self._z = self._to_z(draws)
+        self._lpz: np.ndarray | None = None  # log prior of z, once asked for (`_current_log_prior`)
         self._theta_cache: dict[str, np.ndarray] | None = None
         self._logw: np.ndarray = np.full(n, -math.log(n))  # normalised log weights
         self._w: np.ndarray | None = None  # the weights, once asked for
@@ -200,12 +201,13 @@ class ParticleEstimator:
             self._theta_cache = self._theta_of(self._z)
         return self._theta_cache
 
-    def _log_prior_z(self, z: np.ndarray) -> np.ndarray:
-        """log prior density of the parameters, as a density over z (with the Jacobian)."""
+    def _log_prior_z(self, z: np.ndarray, theta: Mapping[str, np.ndarray]) -> np.ndarray:
+        """log prior density of the parameters, as a density over z (with the Jacobian);
+        `theta` is z's parameter values (`_theta_of(z)`, which the caller already holds)."""
         u = 1.0 / (1.0 + np.exp(-z))
         out = np.zeros(len(z))
         for i, p in enumerate(self.params):
-            x = p.from_unit(u[:, i])
+            x = theta[p.name]
             lo, hi = p.low, p.high
             dxdu = x * (math.log(hi) - math.log(lo)) if p.scale == "log" else np.full(len(z), hi - lo)
             out += p.prior.logpdf(x) + np.log(dxdu) + np.log(u[:, i]) + np.log1p(-u[:, i])
@@ -314,6 +316,7 @@ class ParticleEstimator:
         cdf[-1] = 1.0
         idx = np.searchsorted(cdf, (self._rng.random() + np.arange(n)) / n)
         self._z, self._ll = self._z[idx], self._ll[idx]
+        self._lpz = None if self._lpz is None else self._lpz[idx]
         self._values = tuple(v[..., idx] for v in self._values)
         self._set_log_weights(np.full(n, -math.log(n)))
         self._theta_cache = None
@@ -366,9 +369,17 @@ class ParticleEstimator:
             move.ll += ll
             done += answered
 
+    def _current_log_prior(self) -> np.ndarray:
+        """The particles' own log prior over z, kept until they change (a move's judgement
+        needs it, and most particles are where the last one left them)."""
+        if self._lpz is None:
+            self._lpz = self._log_prior_z(self._z, self.theta)
+        return self._lpz
+
     def _judge(self, move: _Move) -> None:
-        lp, lp_prop = self._log_prior_z(self._z), self._log_prior_z(move.z)
+        lp, lp_prop = self._current_log_prior(), self._log_prior_z(move.z, move.theta)
         accept = np.log(self._rng.random(len(lp))) < (move.ll + lp_prop) - (self._ll + lp)
+        self._lpz = np.where(accept, lp_prop, lp)
         self._z = np.where(accept[:, None], move.z, self._z)
         self._ll = np.where(accept, move.ll, self._ll)
         values = self.kernel.grow(move.values, len(self.options))
@@ -471,7 +482,7 @@ class ParticleEstimator:
         z = np.array(state["z"], dtype=float)
         if z.shape != est._z.shape or len(state["log_weights"]) != n:
             raise ValueError("particle estimator state does not match its particle count")
-        est._z = z
+        est._z, est._lpz = z, None
         est._set_log_weights(np.array(state["log_weights"], dtype=float))
         est._w = np.array(state["weights"], dtype=float)
         est._ll = np.array(state["loglik"], dtype=float)

@@ -12,13 +12,23 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from server.models import kernels_two_stage  # noqa: F401  (registers the two-stage kernels)
+from server.models import compiled_hybrid
 from server.models.kernels import ANSWERED, MISSED, KernelTrial, get_kernel, replay
 
 TWO_BY_TWO = {
     "first": ["L", "R"],
     "states": {"A": ["x", "y"], "B": ["u", "v"]},
     "transitions": {"L": {"A": 0.7, "B": 0.3}, "R": {"A": 0.3, "B": 0.7}},
+}
+FIVE_PORT = {  # each state a single lit port: the second stage is one response
+    "first": ["L", "R"],
+    "states": {"A": [], "B": []},
+    "transitions": {"L": {"A": 0.8, "B": 0.2}, "R": {"A": 0.2, "B": 0.8}},
+}
+HALF = {  # one state with a choice, one with a single response
+    "first": ["L", "R"],
+    "states": {"A": ["x", "y"], "B": []},
+    "transitions": {"L": {"A": 0.75, "B": 0.25}, "R": {"A": 0.25, "B": 0.75}},
 }
 MIXED = {  # three first options; a single-response state, a two-option and a three-option one
     "first": ["L", "M", "R"],
@@ -56,7 +66,7 @@ def random_theta(kernel, n: int, seed: int) -> dict[str, np.ndarray]:
     return {p.name: p.from_unit(rng.uniform(0.02, 0.98, n)) for p in kernel.params}
 
 
-@pytest.mark.parametrize("task", [TWO_BY_TWO, MIXED], ids=["two-by-two", "mixed"])
+@pytest.mark.parametrize("task", [TWO_BY_TWO, FIVE_PORT, HALF, MIXED], ids=["two-by-two", "five-port", "half", "mixed"])
 @pytest.mark.parametrize("model", ["hybrid", "model_free", "model_based"])
 def test_the_compiled_update_gives_the_reference_trial_by_trial(task, model):
     kernel = get_kernel(model, q0=0.25, task=task)
@@ -88,6 +98,26 @@ def test_a_stretch_in_one_call_is_the_trials_one_by_one_and_leaves_its_inputs_al
         np.testing.assert_allclose(a, b, rtol=1e-10, atol=1e-12)
     for a, b in zip(start, kept):
         assert np.array_equal(a, b)
+
+
+@pytest.mark.parametrize("task", [TWO_BY_TWO, FIVE_PORT, HALF], ids=["two-by-two", "five-port", "half"])
+def test_the_two_by_two_kernel_is_the_general_one_on_its_shapes(task):
+    kernel = get_kernel("hybrid", task=task)
+    assert kernel._run is compiled_hybrid.hybrid_trials_2x2
+    n = 16
+    theta = compiled_hybrid.pack_theta(kernel.model.theta(random_theta(kernel, n, 11)), n)
+    trials = random_trials(task, 200, 12)
+    arrays = [np.array([getattr(t, f) for t in trials]) for f in ("choice", "state")]
+    slot = np.array([kernel._slot(t) if t.choice >= 0 else -1 for t in trials])
+    reward = np.array([t.reward for t in trials])
+    out = []
+    for run in (compiled_hybrid.hybrid_trials, compiled_hybrid.hybrid_trials_2x2):
+        q1, q2, prev = (np.array(v) for v in kernel.start(n, 2))
+        ll = np.zeros(n)
+        run(theta, q1, q2, prev, kernel._transitions, kernel._n_slots, *arrays, slot, reward, 1.0, ll)
+        out.append((ll, q1, q2, prev))
+    for a, b in zip(*out):
+        np.testing.assert_allclose(a, b, rtol=1e-12, atol=1e-14)
 
 
 def test_extreme_inverse_temperatures_stay_finite():
