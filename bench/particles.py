@@ -39,6 +39,9 @@ TASK = {
     "transitions": {"L": {"A": COMMON, "B": 1 - COMMON}, "R": {"A": 1 - COMMON, "B": COMMON}},
 }
 TWO_STAGE = {"states": ["A", "B"], "second_options": ["x", "y", "x2", "y2"], "task": TASK}
+# The example protocol's shape (protocols/two_stage.yaml): each state one lit port, so the
+# second stage is a single response
+FIVE_PORT = {"states": ["A", "B"], "second_options": [], "task": {**TASK, "states": {"A": [], "B": []}}}
 
 
 def single_stage_trials(n: int, seed: int) -> list[tuple[str, float]]:
@@ -54,12 +57,13 @@ def single_stage_trials(n: int, seed: int) -> list[tuple[str, float]]:
     return out
 
 
-def hybrid_trials(n: int, seed: int) -> list[tuple[str, float, SecondStage]]:
+def hybrid_trials(n: int, seed: int, single_response: bool = False) -> list[tuple[str, float, SecondStage]]:
     p = {"w": 0.6, "alpha": 0.5, "beta1": 4.0, "beta2": 4.0, "lam": 0.6, "persev": 0.3}
     return [
-        ("LR"[a1], r, SecondStage("AB"[s], bool(common), TWO_STAGE["second_options"][2 * s + a2]))
+        ("LR"[a1], r, SecondStage("AB"[s], bool(common),
+                                  None if single_response else TWO_STAGE["second_options"][2 * s + a2]))
         for a1, s, common, a2, r in simulate(p, n, seed)
-    ]
+    ]  # fmt: skip
 
 
 def timed(est, trials) -> np.ndarray:
@@ -87,15 +91,17 @@ def figures(particles: int | None = None, trials: int = 300) -> dict[str, dict[s
     """Per model: update p50 / p99 / max in ms, rejuvenations, largest gap against 4x particles."""
     rows = {}
     single = single_stage_trials(trials, 1)
-    for name in list(CHOICE_MODELS) + ["hybrid"]:
-        seen = hybrid_trials(trials, 2) if name == "hybrid" else single
-        two = TWO_STAGE if name == "hybrid" else {}
+    cases = [(name, name, single, {}) for name in CHOICE_MODELS] + [
+        ("hybrid", "hybrid", hybrid_trials(trials, 2), TWO_STAGE),
+        ("hybrid, single-response 2nd", "hybrid", hybrid_trials(trials, 2, single_response=True), FIVE_PORT),
+    ]
+    for label, name, seen, two in cases:
         est = ParticleEstimator(name, ["L", "R"], particles=particles, seed=1, **two)
         ms = timed(est, seen)
         count = est.config["particles"]
         ref = ParticleEstimator(name, ["L", "R"], particles=4 * count, seed=2, **two)
         timed(ref, seen)
-        rows[name] = {
+        rows[label] = {
             "particles": count,
             "p50_ms": round(float(np.percentile(ms, 50)), 3),
             "p99_ms": round(float(np.percentile(ms, 99)), 3),

@@ -150,7 +150,7 @@ def _factory(name: str):
         if task is None:
             raise ValueError(f"model {name!r} needs the two-stage task's structure")
         structure = TwoStageTask.build(task["first"], task["states"], task["transitions"])
-        return HybridKernel(TWO_STAGE_MODELS[name], structure, q0)
+        return HybridKernel(TWO_STAGE_MODELS[name].for_task(structure), structure, q0)
 
     return build
 

@@ -101,6 +101,15 @@ class TwoStageModel(DeclaredParams):
         """The full parameter set of `hybrid_step`: the free values plus the fixed ones."""
         return {**self.fixed, **free}
 
+    def for_task(self, task: TwoStageTask) -> TwoStageModel:
+        """This variant as it can be estimated on `task`. Where no state offers a choice (each
+        second stage a single response), beta2 never enters the likelihood: it is fixed
+        (at 1, a value that does not matter) rather than estimated at its prior, so it does
+        not count as a parameter and its flat direction cannot trouble a fit or a filter."""
+        if task.slots > 1 or "beta2" in self.fixed:
+            return self
+        return TwoStageModel(self.name, {**self.fixed, "beta2": 1.0}, self.summary)
+
 
 TWO_STAGE_MODELS: dict[str, TwoStageModel] = {
     m.name: m

@@ -60,6 +60,7 @@ class _Problem:
 def _fit_group(
     model: TwoStageModel, animals: Sequence[TwoStageTrials], use_prior: bool, values: ValueSettings
 ) -> list[FitResult]:
+    model = model.for_task(animals[0].task)  # the group shares one task
     problem = _Problem(model, stack_two_stage(animals), use_prior, values)
     n, d = len(animals), len(problem.free)
     points = halton(START_POINTS, d)
