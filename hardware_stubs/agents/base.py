@@ -59,6 +59,9 @@ class VirtualAnimal:
     name: ClassVar[str] = ""
     summary: ClassVar[str] = ""
     OPTIONS: ClassVar[tuple[AgentOption, ...]] = MAGAZINE_OPTIONS
+    # how a rehearsal cohort varies when the user declares nothing (`--vary` syntax): the
+    # trait its protocols exist to measure, so that the estimates have something to track
+    COHORT_VARY: ClassVar[tuple[str, ...]] = ()
 
     collect_s: float
     collect_sigma: float

@@ -45,6 +45,7 @@ class TwoStageLearner(RandomResponder):
     name = "two_stage_learner"
     summary = "two-stage choices by a mix (w) of model-based and model-free values (Daw et al. 2011)"
     OPTIONS = TWO_STAGE_OPTIONS
+    COHORT_VARY = ("w=0:1",)  # from habitual to goal-directed, one draw per animal
 
     w: float
     alpha: float

@@ -179,19 +179,26 @@ def cmd_rehearse(args: argparse.Namespace) -> int:
     from server.lab.rehearsal import rehearse
     from server.protocol.load import load_protocol
 
-    if args.agent not in AGENTS:
+    if args.agent is not None and args.agent not in AGENTS:
         _err(f"unknown agent '{args.agent}'; choose from {', '.join(sorted(AGENTS))}")
         return 2
+    defaulted = None
     try:
         protocol = load_protocol(args.protocol)
+        # a two-stage protocol is rehearsed by the two-stage learner unless told otherwise
+        agent = args.agent or ("two_stage_learner" if protocol.two_stage is not None else "q_learner")
         if args.population:
-            population = load_population(args.population, args.agent)
+            population = load_population(args.population, agent)
         else:
-            population = parse_vary(args.vary or [], args.agent)
+            vary = args.vary or list(AGENTS[agent].COHORT_VARY)  # nothing declared: the agent's cohort
+            defaulted = None if args.vary or not vary else vary
+            population = parse_vary(vary, agent)
     except InvalidFile as exc:
         _problems(exc)
         return 1
     _warn(protocol.warnings + population.warnings)
+    if defaulted and not args.json:
+        print(f"agent {agent}; drawn per animal: {', '.join(defaulted)} (--vary or --population to choose)")
     result = rehearse(
         protocol, args.animals, args.seed, caps=HardCaps(), progress=progress_bar(),
         workers=args.workers, sessions=args.sessions, population=population,
@@ -350,7 +357,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("protocol", metavar="PROTOCOL")
     p.add_argument("--animals", type=_positive_int, default=10, metavar="N")
     p.add_argument("--seed", type=_seed, default=0, metavar="S")
-    p.add_argument("--agent", default="q_learner", metavar="NAME")
+    p.add_argument("--agent", default=None, metavar="NAME",
+                   help="virtual animal (default: two_stage_learner for two-stage protocols, else q_learner)")  # fmt: skip
     p.add_argument("--workers", type=_positive_int, default=None, metavar="W",
                    help="worker processes (default: all cores for large cohorts)")  # fmt: skip
     p.add_argument(

@@ -190,7 +190,7 @@ def logistic_regression(x: np.ndarray, y: np.ndarray, names: Sequence[str], lags
     info = np.eye(d)
     for _ in range(100):
         eta = x @ b
-        mu = 1.0 / (1.0 + np.exp(-eta))
+        mu = 0.5 * (1.0 + np.tanh(0.5 * eta))  # the logistic, with no overflow for large |eta|
         info = x.T @ (x * (mu * (1 - mu))[:, None])
         try:
             step = np.linalg.solve(info, x.T @ (y - mu))
@@ -204,7 +204,7 @@ def logistic_regression(x: np.ndarray, y: np.ndarray, names: Sequence[str], lags
             break
     eta = x @ b
     loglik = float(np.sum(y * eta - np.logaddexp(0.0, eta)))
-    mu = 1.0 / (1.0 + np.exp(-eta))
+    mu = 0.5 * (1.0 + np.tanh(0.5 * eta))  # the logistic, with no overflow for large |eta|
     info = x.T @ (x * (mu * (1 - mu))[:, None])
     try:
         var = np.diag(np.linalg.inv(info))

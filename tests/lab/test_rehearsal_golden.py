@@ -24,6 +24,7 @@ CASES = [
     ("bandit", "q_learner", 2),
     ("autoshaping", "pavlovian", 2),
     ("lever_training_devaluation", "q_learner", 1),
+    ("two_stage", "two_stage_learner", 1),  # the hybrid estimator's particles, seeded
 ]
 
 
