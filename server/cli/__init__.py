@@ -358,7 +358,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--animals", type=_positive_int, default=10, metavar="N")
     p.add_argument("--seed", type=_seed, default=0, metavar="S")
     p.add_argument("--agent", default=None, metavar="NAME",
-                   help="virtual animal (default: two_stage_learner for two-stage protocols, else q_learner)")  # fmt: skip
+                   help="virtual animal (default: two_stage_learner for two-stage trials, else q_learner)")  # fmt: skip
     p.add_argument("--workers", type=_positive_int, default=None, metavar="W",
                    help="worker processes (default: all cores for large cohorts)")  # fmt: skip
     p.add_argument(
