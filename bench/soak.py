@@ -6,7 +6,8 @@ dropped (both ways) and 2 % preceded by garbage. The lab runs in this process ex
 `vigil run` runs it (serial links, live drivers, sessions, the store's writer thread, the
 alarm watch), into a SQLite file. Figures:
 
-- resident memory of the lab process after the warm-up and at the end (growth <= 5 %), and
+- resident memory of the lab process after the warm-up and at the end (growth <= 5 %; the bench
+  keeps only the current slice's samples, so what grows is the lab's), and
   its open file descriptors (flat: the same at the end as after the warm-up);
 - closed-loop latency per slice (default 10 min): from the moment a box's input happened
   (device clock, mapped to the host's) to the moment its session took it, p50/p99 per slice
@@ -98,7 +99,9 @@ async def soak(boxes: int, minutes: float, slice_s: float, warmup_s: float) -> d
     from server.lab.supervisor import Lab
     from server.store.writer import Store
 
-    samples: list[tuple[float, float]] = []  # (monotonic, ms from input to taken)
+    # (monotonic, ms from input to taken) and open descriptors, of the current slice only:
+    # the bench keeps nothing that grows with the run, so the memory that grows is the lab's
+    samples: list[tuple[float, float]] = []
     plain_live = supervisor.LiveSession
 
     class TimedQueue(asyncio.Queue):
@@ -127,8 +130,13 @@ async def soak(boxes: int, minutes: float, slice_s: float, warmup_s: float) -> d
     db = folder / "soak.sqlite"
     store = Store.open(db)
     config = LabConfig("soak", "soak bench", db, HardCaps(10**7, minutes + 10), configs)
-    said: list[str] = []
-    lab = Lab(config, store, say=said.append)
+    said: list[str] = []  # the first warnings the lab says (links lost and restored are not kept)
+
+    def say(line: str) -> None:
+        if line.startswith("warning") and len(said) < 10:
+            said.append(line)
+
+    lab = Lab(config, store, say=say)
     running = asyncio.create_task(lab.run())
     while len(lab.runs) < boxes and not running.done():
         await asyncio.sleep(0.1)
@@ -142,15 +150,19 @@ async def soak(boxes: int, minutes: float, slice_s: float, warmup_s: float) -> d
 
     counter = asyncio.create_task(count_fds())
     await asyncio.sleep(warmup_s)
+    samples.clear()
+    fds.clear()
     slices = []
     edge = time.monotonic()
     stop_at = began + minutes * 60
     while not running.done() and edge < stop_at - 1:
         await asyncio.wait([running], timeout=min(slice_s, stop_at - edge))
         now = time.monotonic()
-        ms = [v for t, v in samples if edge <= t < now]
+        ms = [v for t, v in samples if t < now]  # no await since `now`: nothing newer yet
+        samples.clear()
         taken = [v for v in ms if v <= REPLAYED_S * 1000]
-        most_fds = max([n for t, n in fds if edge <= t < now], default=0)
+        most_fds = max([n for t, n in fds if t < now], default=0)
+        fds.clear()
         direct = percentiles([v for v in taken if v <= LATE_MS])["p99_ms"]
         slices.append({"from_s": round(edge - began, 1), "to_s": round(now - began, 1), **percentiles(taken),
                        "p99_direct_ms": direct,
@@ -169,7 +181,7 @@ async def soak(boxes: int, minutes: float, slice_s: float, warmup_s: float) -> d
             "trend_p99_ms_per_h": trend([s["to_s"] for s in slices], [s["p99_ms"] for s in slices if s["n"]]),
             "trend_direct_ms_per_h": trend([s["to_s"] for s in slices], [s["p99_direct_ms"] for s in slices
                                                                         if s["n"]]),
-            "store": check, "warnings": [s for s in said if s.startswith("warning")][:10],
+            "store": check, "warnings": said,
             "db_mb": round(db.stat().st_size / 1e6, 1), "folder": str(folder)}  # fmt: skip
 
 
