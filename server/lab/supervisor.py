@@ -23,7 +23,7 @@ from server.engine.seams import BoxLink
 from server.engine.session import Session
 from server.lab.alarm_desk import AlarmDesk, AlarmSetupError
 from server.lab.alarm_send import Outgoing
-from server.lab.assembly import animal_estimator_state, build_session
+from server.lab.assembly import animal_estimator_state, build_session, make_estimator
 from server.lab.box_links import LabError, close_links, make_box
 from server.lab.config import BoxConfig, LabConfig
 from server.lab.signals import on_stop_signals
@@ -226,6 +226,11 @@ class Lab:
             return loop.time() - t0
 
         self._clock = clock
+        # Every protocol's estimator built once before any box is connected: a compiled
+        # kernel's first use loads (in a fresh install: compiles) its machine code, seconds
+        # that must not fall between a box's handshake and the start of its session.
+        for protocol in {id(b.protocol): b.protocol for b in self.config.boxes}.values():
+            make_estimator(protocol)
         # A folder for the emulated boxes' pty links, only when some box needs one.
         emulated = not self.in_process_boxes and any(b.emulate is not None for b in self.config.boxes)
         folder = Path(tempfile.mkdtemp(prefix="vigil-boxes-")) if emulated else None

@@ -90,18 +90,18 @@ def _prior_draws(prior: Prior, n: int, rng: np.random.Generator) -> np.ndarray:
 class ParticleEstimator:
     """Weighted particles over one model's parameters, each with its own learned values.
 
-    model: a kernel name (`kernels.get_kernel`). particles: how many (default by the
-    model's size, see `default_particles`). moves: Metropolis-
-    Hastings sweeps per rejuvenation at least, and more (up to 8 x) until the share `moved`
-    of the particles has moved (off by default: on the hybrid stand-in, 0.9 raised the
-    coverage of 95 % intervals from 0.90 to 0.92 at twice the cost). catch_up: stored trials
-    the pending moves replay per update (0: all at once; 12 keeps the hybrid's update near
-    0.8 ms at 2,048 particles, and its coverage was the same as with 16 on two cohorts). ess: rejuvenate when the effective
-    sample size falls below this fraction. seed: of the estimator's own generator. states,
-    second_options: a two-stage task's second-stage states and second-stage option labels, in
-    the order its kernel expects. task: the task's structure as plain data, for kernels built
-    from it (`kernels.KERNEL_FACTORIES`). temper, carry_values, q0, reward_rate_step: as for
-    the grid estimator.
+    model: a kernel name (`kernels.get_kernel`). particles: how many (default by the model's
+    size, see `default_particles`). moves: Metropolis- Hastings sweeps per rejuvenation at
+    least, and more (up to 8 x) until the share `moved` of the particles has moved (off by
+    default: on the hybrid stand-in, 0.9 raised the coverage of 95 % intervals from 0.90 to 0.92
+    at twice the cost). catch_up: stored trials the pending moves replay per update (0: all at
+    once; 12 keeps the hybrid's update near 0.8 ms at 2,048 particles, and its coverage was the
+    same as with 16 on two cohorts). ess: rejuvenate when the effective sample size falls below
+    this fraction. seed: of the estimator's own generator. states, second_options: a two-stage
+    task's second-stage states and second-stage option labels, in the order its kernel expects.
+    task: the task's structure as plain data, for kernels built from it
+    (`kernels.KERNEL_FACTORIES`). temper, carry_values, q0, reward_rate_step: as for the grid
+    estimator.
     """
 
     def __init__(
