@@ -91,7 +91,7 @@ class ParticleEstimator:
     """Weighted particles over one model's parameters, each with its own learned values.
 
     model: a kernel name (`kernels.get_kernel`). particles: how many (default by the model's
-    size, see `default_particles`). moves: Metropolis- Hastings sweeps per rejuvenation at
+    size, see `default_particles`). moves: Metropolis-Hastings sweeps per rejuvenation at
     least, and more (up to 8 x) until the share `moved` of the particles has moved (off by
     default: on the hybrid stand-in, 0.9 raised the coverage of 95 % intervals from 0.90 to 0.92
     at twice the cost). catch_up: stored trials the pending moves replay per update (0: all at
