@@ -403,22 +403,27 @@ class SerialLink:
         }))  # fmt: skip
         self.say(f"{self.box}: link restored after {down:.1f} s")
 
-    def _unsettled(self) -> bool:
-        """Commands still unacknowledged, or device events still to be replayed."""
+    def _unsettled(self, now: float, acks_until: float, events_until: float) -> bool:
+        """Commands still unacknowledged (until `acks_until`), or device events still to be
+        replayed (until `events_until`)."""
         tracker = self.side.tracker
-        return bool(len(self.side.pending)) or (tracker is not None and tracker.missing)
+        return (bool(len(self.side.pending)) and now < acks_until) or (
+            tracker is not None and tracker.missing and now < events_until
+        )
 
-    async def close(self, timeout_s: float = 1.0) -> bool:
+    async def close(self, timeout_s: float = 1.0, replay_s: float = 3.0) -> bool:
         """Wait (up to `timeout_s`) for every command to be acknowledged, then close the port.
 
         Returns True when nothing was left unacknowledged. Events the device has shown but
         the host has not yet taken in order (a dropped line just before the end, such as the
-        box confirming its safe state) are asked for again within the same wait, so a clean
-        close keeps every event. Outputs left on by a link that could not say so are turned
-        off by the device itself after 5 s of host silence.
+        box confirming its safe state) are asked for again for up to `replay_s` (a replay
+        request or its answer can be dropped too: each is asked again after half a second),
+        so a clean close keeps every event. Outputs left on by a link that could not say so
+        are turned off by the device itself after 5 s of host silence.
         """
-        end = self._host() + timeout_s
-        while self.connected and self._unsettled() and self._host() < end:
+        start = self._host()
+        acks_until, events_until = start + timeout_s, start + max(timeout_s, replay_s)
+        while self.connected and self._unsettled(self._host(), acks_until, events_until):
             self._wake.set()
             await asyncio.sleep(0.01)
         acknowledged = self.connected and not len(self.side.pending)

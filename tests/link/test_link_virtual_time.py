@@ -161,7 +161,7 @@ async def connected(wiring, clock):
 
 
 async def finish(device, link, runner) -> None:
-    await link.close(timeout_s=0)
+    await link.close(timeout_s=0, replay_s=0)
     runner.cancel()
     device.close()
 
