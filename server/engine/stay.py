@@ -190,7 +190,7 @@ def logistic_regression(x: np.ndarray, y: np.ndarray, names: Sequence[str], lags
     info = np.eye(d)
     for _ in range(100):
         eta = x @ b
-        mu = 0.5 * (1.0 + np.tanh(0.5 * eta))  # the logistic, with no overflow for large |eta|
+        mu = _logistic(eta)
         info = x.T @ (x * (mu * (1 - mu))[:, None])
         try:
             step = np.linalg.solve(info, x.T @ (y - mu))
@@ -204,7 +204,7 @@ def logistic_regression(x: np.ndarray, y: np.ndarray, names: Sequence[str], lags
             break
     eta = x @ b
     loglik = float(np.sum(y * eta - np.logaddexp(0.0, eta)))
-    mu = 0.5 * (1.0 + np.tanh(0.5 * eta))  # the logistic, with no overflow for large |eta|
+    mu = _logistic(eta)
     info = x.T @ (x * (mu * (1 - mu))[:, None])
     try:
         var = np.diag(np.linalg.inv(info))
@@ -298,3 +298,8 @@ def stay_analysis(
 def stay_from_records(records: Sequence[TwoStageTrial], lags: int = 1) -> StayAnalysis:
     """The stay analysis of one session's two-stage trials (records or outcomes)."""
     return stay_analysis(*_as_sequences(records), lags=lags)
+
+
+def _logistic(eta: np.ndarray) -> np.ndarray:
+    """1 / (1 + exp(-eta)), written through tanh so that a large |eta| cannot overflow."""
+    return 0.5 * (1.0 + np.tanh(0.5 * eta))
