@@ -38,6 +38,8 @@ from __future__ import annotations
 
 import argparse
 import asyncio
+import ctypes
+import ctypes.util
 import json
 import os
 import shutil
@@ -66,6 +68,40 @@ def rss_mb() -> float:
         if line.startswith("VmRSS:"):
             return int(line.split()[1]) / 1024
     return float("nan")
+
+
+class _MallInfo2(ctypes.Structure):
+    _fields_ = [
+        (name, ctypes.c_size_t)
+        for name in ("arena", "ordblks", "smblks", "hblks", "hblkhd", "usmblks", "fsmblks", "uordblks", "fordblks",
+                     "keepcost")
+    ]  # fmt: skip
+
+
+def memory_detail() -> dict:
+    """Where the resident memory is: anonymous, file-backed (libraries, the WAL index) and
+    C malloc's in-use and free bytes (glibc's mallinfo2, every arena), beside Python's blocks."""
+    out: dict = {}
+    for line in Path("/proc/self/status").read_text().splitlines():
+        key, _, value = line.partition(":")
+        if key in ("RssAnon", "RssFile", "RssShmem", "Threads"):
+            out[key] = int(value.split()[0]) / 1024 if key != "Threads" else int(value)
+    try:
+        libc = ctypes.CDLL(None)
+        libc.mallinfo2.restype = _MallInfo2
+        mi = libc.mallinfo2()
+        out["malloc_used"] = (mi.uordblks + mi.hblkhd) / 2**20
+        out["malloc_free"] = mi.fordblks / 2**20
+    except (AttributeError, OSError):  # not glibc
+        pass
+    try:  # the SQLite library Python's sqlite3 module links, when it is a shared one
+        lib = ctypes.CDLL(ctypes.util.find_library("sqlite3") or "libsqlite3.so.0")
+        lib.sqlite3_memory_used.restype = ctypes.c_int64
+        out["sqlite"] = lib.sqlite3_memory_used() / 2**20
+    except (AttributeError, OSError):
+        pass
+    out["py_blocks"] = sys.getallocatedblocks()
+    return {k: round(v, 2) if isinstance(v, float) else v for k, v in out.items()}
 
 
 def open_fds() -> int:
@@ -167,7 +203,8 @@ async def soak(boxes: int, minutes: float, slice_s: float, warmup_s: float) -> d
         slices.append({"from_s": round(edge - began, 1), "to_s": round(now - began, 1), **percentiles(taken),
                        "p99_direct_ms": direct,
                        "late": sum(v > LATE_MS for v in taken), "replayed": len(ms) - len(taken),
-                       "rss_mb": round(rss_mb(), 1), "fds": most_fds})  # fmt: skip
+                       "rss_mb": round(rss_mb(), 1), "fds": most_fds,
+                       "memory": memory_detail()})  # fmt: skip
         edge = now
     counter.cancel()
     lab.stop_all("soak over")

@@ -35,7 +35,7 @@ class BlockProgress:
         weights = np.array([w for _, w in block.mix], dtype=float)
         self._cum = np.cumsum(weights / weights.sum()).tolist()
         self._turns = [name for name, w in block.mix for _ in range(max(1, round(w)))]
-        self._history: list[str] = []
+        self._history: deque[str] = deque(maxlen=block.max_run or 1)  # the run limit looks this far back
         self.contingencies = self._contingencies(protocol, extra_swaps)
 
     # ------------------------------------------------------------ contingencies
@@ -78,7 +78,7 @@ class BlockProgress:
         limit = self.block.max_run
         banned = None
         if limit and len(self._history) >= limit:
-            tail = self._history[-limit:]
+            tail = self._history
             if all(n == tail[0] for n in tail):
                 banned = tail[0]
         while True:  # at most a few draws: the banned type never has all the weight

@@ -64,6 +64,11 @@ class LiveSession:
     # ------------------------------------------------------------ from the link (LinkSubscriber)
 
     def input(self, event: InputEvent, t: float) -> None:
+        if self.session.finished:
+            # The box still reports after the end (a late press, the replay of a dropped
+            # line): the core logs it and reacts to nothing, so it is stored all the same.
+            self._handle((event, t))
+            return
         self.inbox.put_nowait((event, t))
 
     def record(self, record: EventLogged) -> None:
@@ -121,6 +126,16 @@ class LiveSession:
         except Exception as exc:  # a bug must still leave the box safe and the session closed
             self._send(session.stop(self._t(self.clock()), f"error: {type(exc).__name__}: {exc}"))
             raise
+        finally:
+            self._log_left_over()
+
+    def _log_left_over(self) -> None:
+        """Inputs still queued when the session ended are logged (not acted on): every event
+        the box reported reaches the store."""
+        while not self.inbox.empty():
+            item = self.inbox.get_nowait()
+            if not isinstance(item, ControlRequest) and self.session.finished:
+                self._handle(item)
 
     def _handle(self, item: InboxItem) -> None:
         if isinstance(item, ControlRequest):

@@ -3,10 +3,11 @@
 from __future__ import annotations
 
 from collections import deque
+from dataclasses import dataclass
 from itertools import islice
 from statistics import median
 
-from server.engine.records import TrialOutcome
+from server.engine.records import SecondStage, TrialOutcome
 from server.engine.stay import stay_contrasts
 from server.protocol.model import Protocol
 from server.protocol.wiring import OPERANT_INPUT_KINDS
@@ -51,11 +52,28 @@ def win_stay_lose_shift(choices: list[str | None], rewarded: list[bool]) -> tupl
     return (stays / wins if wins else None, shifts / losses if losses else None)
 
 
+@dataclass(frozen=True, slots=True)
+class WindowTrial:
+    """What the windowed metrics read of a trial. A whole TrialOutcome (its steps, counts and
+    latencies by input) is about a kilobyte; 500 of them per box over a night was the lab's
+    largest memory growth, so the window keeps only this."""
+
+    choice: str | None
+    rewarded: bool
+    correct: bool | None
+    omission: bool
+    latency_s: float | None
+    t_start: float
+    t_end: float
+    operant_responses: int
+    second: SecondStage | None
+
+
 class SessionMetrics:
     def __init__(self, protocol: Protocol):
         self.pavlovian = protocol.pavlovian
         self.operant = {n for n, line in protocol.wiring.inputs.items() if line.kind in OPERANT_INPUT_KINDS}
-        self.recent: deque[TrialOutcome] = deque(maxlen=HISTORY)
+        self.recent: deque[WindowTrial] = deque(maxlen=HISTORY)
         self.streak = 0
         self.rewarded_trials = 0
         # running sums for the PCA index
@@ -67,7 +85,11 @@ class SessionMetrics:
     def add(self, trial: TrialOutcome) -> None:
         if trial.interrupted:
             return
-        self.recent.append(trial)
+        operant = sum(n for key, n in trial.counts.items() if key.rpartition(".")[2] in self.operant)
+        self.recent.append(
+            WindowTrial(trial.choice, trial.rewarded, trial.correct, trial.omission, trial.latency_s,
+                        trial.t_start, trial.t_end, operant, trial.second)
+        )  # fmt: skip
         self.rewarded_trials += trial.rewarded
         if trial.correct is not None:
             self.streak = self.streak + 1 if trial.correct else 0
@@ -97,7 +119,7 @@ class SessionMetrics:
             self._lever_latency / n, self._magazine_latency / n, pav.cs_seconds,
         )  # fmt: skip
 
-    def window(self, n: int) -> list[TrialOutcome] | None:
+    def window(self, n: int) -> list[WindowTrial] | None:
         """The last n trials, oldest first (None until there are n)."""
         if len(self.recent) < n:
             return None
@@ -144,5 +166,5 @@ class SessionMetrics:
         if trials is None:
             return None
         span = trials[-1].t_end - trials[0].t_start
-        responses = sum(n for t in trials for key, n in t.counts.items() if key.rpartition(".")[2] in self.operant)
+        responses = sum(t.operant_responses for t in trials)
         return responses / (span / 60.0) if span > 0 else None
