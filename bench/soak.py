@@ -362,6 +362,10 @@ def report(result: dict) -> str:
             lines.append(f"{sl['from_s']:>7.0f}-{sl['to_s']:<8.0f}{sl['n']:>7}{sl['p50_ms']:>9.3f}{sl['p99_ms']:>9.3f}"
                          f"{sl['p99_direct_ms']:>11.3f}{sl['late']:>6}{sl['replayed']:>10}"
                          f"{sl['rss_mb']:>9.1f}{sl['fds']:>6}")  # fmt: skip
+        first, last = live["slices"][0].get("memory"), live["slices"][-1].get("memory")
+        if first and last:
+            lines.append("where the resident memory is (MB; Threads and py_blocks count), first slice -> last: " + ", ".join(
+                f"{k} {first[k]:g} -> {last[k]:g}" for k in first if k in last))  # fmt: skip
         lines.append(f"p99 trend: {live['trend_p99_ms_per_h']} ms per hour, direct path "
                      f"{live['trend_direct_ms_per_h']} ms per hour (least squares over the slices)")  # fmt: skip
         st = live["store"]
