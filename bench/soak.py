@@ -365,7 +365,7 @@ def report(result: dict) -> str:
         first, last = live["slices"][0].get("memory"), live["slices"][-1].get("memory")
         if first and last:
             moved = ", ".join(f"{k} {first[k]:g} -> {last[k]:g}" for k in first if k in last)
-            lines.append(f"where the resident memory is (MB; Threads and py_blocks count), first slice -> last: {moved}")
+            lines.append(f"where the resident memory is (MB; Threads, py_blocks: counts), first -> last slice: {moved}")
         lines.append(f"p99 trend: {live['trend_p99_ms_per_h']} ms per hour, direct path "
                      f"{live['trend_direct_ms_per_h']} ms per hour (least squares over the slices)")  # fmt: skip
         st = live["store"]
