@@ -12,9 +12,9 @@ cell, so the walk never loses probability.
 
 The caller writes the weights to move into `inbox`, a view into a buffer with one spare
 cell at each end of the beta axis (the reflecting edges); `settle` then moves them, scales
-them and floors them in a handful of passes. When beta is the grid's last axis (the
-two-parameter models) the whole buffer is one flat 3-tap convolution, so a trial's walk is
-a single numpy call plus the copy out.
+them and floors them in a handful of passes. The three taps are written out rather than
+handed to `np.convolve`, whose dot products go to BLAS: its kernels differ by processor, and
+a seed must give the same bits everywhere (server/models/sums.py).
 """
 
 from __future__ import annotations
@@ -46,8 +46,6 @@ class BetaWalk:
         self._mid = self._pad[:, 1:-1]
         self.inbox = self._mid.reshape(grid.sizes)  # a view: writing here fills the buffer
         assert np.shares_memory(self.inbox, self._pad)
-        self._flat = after == 1  # beta last: rows of the buffer are independent lines
-        self._kernel = np.array([self.p, 1.0 - 2.0 * self.p, self.p])
         self._spare = np.empty((before, n, after))
         self._sum = np.empty((before, n, after))
 
@@ -59,15 +57,11 @@ class BetaWalk:
             last = i == self.substeps - 1
             pad[:, 0] = pad[:, 1]  # reflecting edges: what would step off the grid stays
             pad[:, -1] = pad[:, -2]
-            if self._flat:
-                moved: np.ndarray = np.convolve(pad.ravel(), self._kernel * scale, mode="same")
-                moved = moved.reshape(pad.shape)[:, 1:-1]
-            else:
-                moved = self._spare
-                np.add(pad[:, :-2], pad[:, 2:], out=self._sum)
-                np.multiply(mid, (1.0 - 2.0 * p) * scale, out=moved)
-                self._sum *= p * scale
-                moved += self._sum
+            moved = self._spare
+            np.add(pad[:, :-2], pad[:, 2:], out=self._sum)
+            np.multiply(mid, (1.0 - 2.0 * p) * scale, out=moved)
+            self._sum *= p * scale
+            moved += self._sum
             if last:
                 np.maximum(moved, floor, out=o)
             else:

@@ -36,6 +36,7 @@ from server.engine.records import SecondStage
 from .choice import get_choice_model
 from .drift import beta_walk
 from .grid import build_grid
+from .sums import dot, rows_dot
 
 STATE_FORMAT = 2
 # No weight falls below this: arithmetic stays out of slow subnormal numbers, and a grid
@@ -339,10 +340,10 @@ class OnlineEstimator:
         q_mean = probs = share = None
         if k:
             w_learn = w.sum(axis=self._choice_axes, keepdims=True).ravel()
-            q_mean = self._q.reshape(k, -1) @ w_learn
-            probs = self._probs().reshape(k, -1) @ w.ravel()
+            q_mean = rows_dot(self._q.reshape(k, -1), w_learn)
+            probs = rows_dot(self._probs().reshape(k, -1), w.ravel())
             top = self._q >= self._q.max(0) - _TIE
-            share = (top / top.sum(0)).reshape(k, -1) @ w_learn
+            share = rows_dot((top / top.sum(0)).reshape(k, -1), w_learn)
         rate = self._rate_sum / self._rate_norm if self._rate_norm else None
         return build_estimate(
             self.model.name,
@@ -369,7 +370,7 @@ class OnlineEstimator:
                 np.less_equal(gap, -cut, out=sure)
         else:
             sure = (self._probs()[idx] >= level).astype(float)
-        return min(max(float(np.dot(sure.ravel(), self._w.ravel())), 0.0), 1.0)
+        return min(max(dot(sure, self._w), 0.0), 1.0)
 
     # ------------------------------------------------------------------ sessions and state
 

@@ -17,6 +17,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .choice import ChoiceModel
+from .sums import dot
 
 
 @dataclass(frozen=True, eq=False)
@@ -60,7 +61,7 @@ class Grid:
             lo, hi = p.grid_range()
             out.append(
                 (
-                    float(m @ self.centres[i]) / float(cdf[-1]),
+                    dot(m, self.centres[i]) / float(cdf[-1]),
                     float(p.from_unit(lo_u, lo, hi)),
                     float(p.from_unit(hi_u, lo, hi)),
                 )

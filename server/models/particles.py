@@ -42,6 +42,7 @@ from server.engine.records import SecondStage
 from .estimator import Estimate, ParamEstimate, build_estimate
 from .kernels import ANSWERED, MISSED, ChoiceKernel, KernelTrial, TrialKernel, Values, get_kernel, replay
 from .params import Param, Prior
+from .sums import cholesky, covariance, dot, rows_dot, times_transposed
 
 STATE_FORMAT = 1
 METHOD = "particles"
@@ -249,7 +250,7 @@ class ParticleEstimator:
         self._last_pe = self._last_surprise = None
         if trial.choice >= 0:
             before = self.kernel.option_values(self._values, len(self.options))
-            self._last_pe = reward - float(before[trial.choice] @ self._weights())
+            self._last_pe = reward - dot(before[trial.choice], self._weights())
             logp, self._values = self.kernel.step(self.theta, self._values, trial)
             # the log weights stay normalised, so the log predictive is one log-sum-exp, and
             # the same exponentials are the new weights
@@ -312,7 +313,7 @@ class ParticleEstimator:
     def ess(self) -> float:
         """Effective sample size of the weights (Kong, Liu & Wong 1994): 1 / sum w²."""
         w = self._weights()
-        return float(1.0 / (w @ w))
+        return 1.0 / dot(w, w)
 
     def _rejuvenate(self) -> None:
         """Resample (systematic), then start the moves: Metropolis-Hastings steps whose target
@@ -337,9 +338,9 @@ class ParticleEstimator:
     def _start_move(self) -> None:
         """Draw every particle's proposal: a Gaussian step scaled to the particles' spread."""
         n, d = self._z.shape
-        cov = np.atleast_2d(np.cov(self._z, rowvar=False)) + 1e-10 * np.eye(d)
-        chol = np.linalg.cholesky(cov * (2.38**2 / d))
-        prop = self._z + self._rng.standard_normal((n, d)) @ chol.T
+        cov = covariance(self._z) + 1e-10 * np.eye(d)
+        chol = cholesky(cov * (2.38**2 / d))
+        prop = self._z + times_transposed(self._rng.standard_normal((n, d)), chol)
         self._move = _Move(prop, self._theta_of(prop), np.zeros(n), self.kernel.start(n, len(self.options)), 0, 0)
 
     def _advance_move(self, budget: float) -> None:
@@ -421,10 +422,10 @@ class ParticleEstimator:
         q_mean = probs = share = None
         if k:
             q = self.kernel.option_values(self._values, k)
-            q_mean = q @ w
-            probs = self.kernel.probabilities(theta, self._values, k) @ w
+            q_mean = rows_dot(q, w)
+            probs = rows_dot(self.kernel.probabilities(theta, self._values, k), w)
             top = q >= q.max(0) - _TIE
-            share = (top / top.sum(0)) @ w
+            share = rows_dot(top / top.sum(0), w)
         rate = self._rate[0] / self._rate[1] if self._rate[1] else None
         return build_estimate(self.model_name, self._session_trial, params, self.options, (q_mean, probs, share),
                               (self._last_pe, self._last_surprise, rate))  # fmt: skip
@@ -434,7 +435,7 @@ class ParticleEstimator:
         if idx is None:
             return None
         probs = self.kernel.probabilities(self.theta, self._values, len(self.options))[idx]
-        return min(max(float((probs >= level) @ self._weights()), 0.0), 1.0)
+        return min(max(dot(probs >= level, self._weights()), 0.0), 1.0)
 
     # ------------------------------------------------------------------ sessions and state
 
@@ -519,7 +520,7 @@ def _weighted_summary(x: np.ndarray, w: np.ndarray) -> ParamEstimate:
     xs, ws = x[order], w[order]
     mid = np.cumsum(ws) - 0.5 * ws
     lo, hi = np.interp(_TAILS, mid, xs)
-    return ParamEstimate(float(x @ w), float(lo), float(hi))
+    return ParamEstimate(dot(x, w), float(lo), float(hi))
 
 
 def _logsumexp(a: np.ndarray) -> float:
