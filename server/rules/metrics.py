@@ -69,11 +69,29 @@ class WindowTrial:
     second: SecondStage | None
 
 
+def longest_windows(protocol: Protocol) -> tuple[int, int]:
+    """How far back the protocol's rules look: (trials, scored trials for `accuracy`)."""
+    trials = scored = 0
+    for rule in protocol.rules:
+        for q in rule.reads:
+            if q.window:
+                if q.name == "accuracy":
+                    scored = max(scored, q.window)
+                else:
+                    trials = max(trials, q.window)
+    return min(trials, HISTORY), min(scored, HISTORY)
+
+
 class SessionMetrics:
+    """Keeps only as many trials as the protocol's rules read (`longest_windows`): a box runs
+    thousands of trials a night and 32 boxes share one process."""
+
     def __init__(self, protocol: Protocol):
         self.pavlovian = protocol.pavlovian
         self.operant = {n for n, line in protocol.wiring.inputs.items() if line.kind in OPERANT_INPUT_KINDS}
-        self.recent: deque[WindowTrial] = deque(maxlen=HISTORY)
+        trials, scored = longest_windows(protocol)
+        self.recent: deque[WindowTrial] = deque(maxlen=max(trials, 1))
+        self.scored: deque[bool] = deque(maxlen=max(scored, 1))  # `correct` of trials that had one
         self.streak = 0
         self.rewarded_trials = 0
         # running sums for the PCA index
@@ -92,6 +110,7 @@ class SessionMetrics:
         )  # fmt: skip
         self.rewarded_trials += trial.rewarded
         if trial.correct is not None:
+            self.scored.append(trial.correct)
             self.streak = self.streak + 1 if trial.correct else 0
         if self.pavlovian is not None:
             self._add_pavlovian(trial, self.pavlovian)
@@ -127,8 +146,9 @@ class SessionMetrics:
 
     def accuracy(self, n: int) -> float | None:
         """Fraction correct over the last n scored trials (None until there are n)."""
-        last = list(islice((t.correct for t in reversed(self.recent) if t.correct is not None), n))
-        return sum(last) / n if len(last) == n else None
+        if len(self.scored) < n:
+            return None
+        return sum(islice(reversed(self.scored), n)) / n
 
     def omission_rate(self, n: int) -> float | None:
         trials = self.window(n)
